@@ -1,0 +1,2 @@
+//! Writing plates: streamed TIFF strips and the JSON sidecar.
+pub mod tiff;
