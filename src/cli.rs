@@ -1,0 +1,70 @@
+//! Command-line definition: one place per command and option, with its help text.
+//! Parsing only; the work happens in the library (`job`).
+
+use std::path::PathBuf;
+
+use clap::{Args, Parser, Subcommand};
+
+/// fringemill: computes fringe patterns (holograms) for mask writers and phase modulators.
+#[derive(Parser, Debug)]
+#[command(name = "fringemill", version, about, long_about = None)]
+pub struct Cli {
+    /// What to do.
+    #[command(subcommand)]
+    pub command: Command,
+    /// Common options.
+    #[command(flatten)]
+    pub common: Common,
+}
+
+/// Options every command takes.
+#[derive(Args, Debug, Clone)]
+pub struct Common {
+    /// No progress display.
+    #[arg(long, short = 'q', global = true)]
+    pub quiet: bool,
+    /// Plain progress lines on stderr even on a terminal (the default when stderr is not a terminal).
+    #[arg(long, global = true)]
+    pub log_progress: bool,
+    /// Worker threads (default: all cores).
+    #[arg(long, global = true, value_name = "N")]
+    pub threads: Option<usize>,
+}
+
+/// The commands.
+#[derive(Subcommand, Debug)]
+pub enum Command {
+    /// Computes the plate of each job file (or of every .toml in a folder) and writes TIFF + sidecar.
+    Run {
+        /// Job files or folders of job files.
+        #[arg(required = true, value_name = "JOB")]
+        jobs: Vec<PathBuf>,
+    },
+    /// Validates a job without computing and prints what a run will do.
+    Plan {
+        /// Job file.
+        #[arg(value_name = "JOB")]
+        job: PathBuf,
+    },
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn parses_run_with_several_jobs_and_threads() {
+        let c = Cli::try_parse_from(["fringemill", "run", "a.toml", "b.toml", "--threads", "2", "-q"]).unwrap();
+        assert!(c.common.quiet);
+        assert_eq!(c.common.threads, Some(2));
+        match c.command {
+            Command::Run { jobs } => assert_eq!(jobs.len(), 2),
+            _ => panic!("wrong command"),
+        }
+    }
+
+    #[test]
+    fn run_needs_a_job() {
+        assert!(Cli::try_parse_from(["fringemill", "run"]).is_err());
+    }
+}

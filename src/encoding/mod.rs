@@ -1,0 +1,196 @@
+//! Encodings: the fringe term F, pixel by pixel, to the samples a device renders
+//! (physics.md, "Fringe term and encodings"). Every encoding is a function of F alone.
+//!
+//! * phase, N levels: phi = arg F in [0, 2 pi); g = round(N phi / 2 pi) mod N; stored with b = 8 bits
+//!   for N <= 256, else 16; stored value s = round(g 2^b / N).
+//! * binary-phase: 1 bit, s = 1 (phase pi) where Re F < 0.
+//! * binary-amplitude: 1 bit, s = 1 (clear) where Re F >= 0.
+//! * amplitude: bipolar intensity B = Re F, s = round((1 + B / B0) / 2 (2^b - 1)), clipped.
+//!
+//! Rows come out in file layout: 1-bit packed MSB first, each row padded to a whole byte;
+//! 16-bit little-endian. This module depends on nothing but num-complex.
+
+use num_complex::Complex64;
+
+/// A hologram encoding with its parameters resolved.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub enum Encoding {
+    /// N-level phase (kinoform), 2 <= levels <= 65536.
+    Phase {
+        /// N.
+        levels: u32,
+    },
+    /// Two phase levels, 0 and pi.
+    BinaryPhase,
+    /// Clear / opaque.
+    BinaryAmplitude,
+    /// Grey-level bipolar intensity.
+    Amplitude {
+        /// 8 or 16.
+        bits: u8,
+        /// B0: Re F = B0 maps to white, -B0 to black.
+        scale: f64,
+    },
+}
+
+impl Encoding {
+    /// The job-file spelling of the kind.
+    pub fn kind_name(&self) -> &'static str {
+        match self {
+            Encoding::Phase { .. } => "phase",
+            Encoding::BinaryPhase => "binary-phase",
+            Encoding::BinaryAmplitude => "binary-amplitude",
+            Encoding::Amplitude { .. } => "amplitude",
+        }
+    }
+
+    /// Bits per stored sample: 1, 8 or 16.
+    pub fn bits_per_sample(&self) -> u8 {
+        match *self {
+            Encoding::Phase { levels } => {
+                if levels <= 256 {
+                    8
+                } else {
+                    16
+                }
+            }
+            Encoding::BinaryPhase | Encoding::BinaryAmplitude => 1,
+            Encoding::Amplitude { bits, .. } => bits,
+        }
+    }
+
+    /// Bytes of one encoded row of `width` pixels.
+    pub fn row_bytes(&self, width: usize) -> usize {
+        match self.bits_per_sample() {
+            1 => width.div_ceil(8),
+            8 => width,
+            _ => 2 * width,
+        }
+    }
+
+    /// The stored sample value of one pixel (before packing).
+    #[inline]
+    pub fn sample(&self, f: Complex64) -> u16 {
+        match *self {
+            Encoding::Phase { levels } => phase_sample(f, levels),
+            Encoding::BinaryPhase => (f.re < 0.0) as u16,
+            Encoding::BinaryAmplitude => (f.re >= 0.0) as u16,
+            Encoding::Amplitude { bits, scale } => amplitude_sample(f.re, scale, bits),
+        }
+    }
+
+    /// Encodes one row of F into `out` (exactly `row_bytes(f.len())` bytes).
+    ///
+    /// # Panics
+    /// If `out` has the wrong length (a bug in the caller).
+    pub fn encode_row(&self, f: &[Complex64], out: &mut [u8]) {
+        assert_eq!(out.len(), self.row_bytes(f.len()), "encoded row length");
+        match self.bits_per_sample() {
+            1 => {
+                out.fill(0);
+                for (i, &v) in f.iter().enumerate() {
+                    if self.sample(v) != 0 {
+                        out[i / 8] |= 0x80 >> (i % 8);
+                    }
+                }
+            }
+            8 => {
+                for (o, &v) in out.iter_mut().zip(f) {
+                    *o = self.sample(v) as u8;
+                }
+            }
+            _ => {
+                for (o, &v) in out.chunks_exact_mut(2).zip(f) {
+                    o.copy_from_slice(&self.sample(v).to_le_bytes());
+                }
+            }
+        }
+    }
+
+    /// Phase in radians that a stored sample `s` stands for (phase encodings), or the transmittance
+    /// (amplitude encodings): what a replay rebuilds from the file.
+    pub fn transmittance(&self, s: u16) -> Complex64 {
+        match *self {
+            Encoding::Phase { levels } => {
+                let b = if levels <= 256 { 8 } else { 16 };
+                Complex64::from_polar(1.0, 2.0 * std::f64::consts::PI * s as f64 / (1u32 << b) as f64)
+            }
+            Encoding::BinaryPhase => Complex64::new(if s != 0 { -1.0 } else { 1.0 }, 0.0),
+            Encoding::BinaryAmplitude => Complex64::new(if s != 0 { 1.0 } else { 0.0 }, 0.0),
+            Encoding::Amplitude { bits, .. } => Complex64::new(s as f64 / ((1u32 << bits) - 1) as f64, 0.0),
+        }
+    }
+}
+
+/// Phase level g = round(N phi / 2 pi) mod N of phi = arg F in [0, 2 pi).
+#[inline]
+pub fn phase_level(f: Complex64, levels: u32) -> u32 {
+    let mut phi = f.im.atan2(f.re);
+    if phi < 0.0 {
+        phi += 2.0 * std::f64::consts::PI;
+    }
+    let g = (levels as f64 * phi / (2.0 * std::f64::consts::PI)).round() as u64;
+    (g % levels as u64) as u32
+}
+
+/// Stored value s = round(g 2^b / N) in exact integer arithmetic (no ties can occur for N <= 2^b).
+#[inline]
+pub fn phase_stored(g: u32, levels: u32) -> u16 {
+    let b: u64 = if levels <= 256 { 8 } else { 16 };
+    let num = (g as u64) << b;
+    ((2 * num + levels as u64) / (2 * levels as u64)) as u16
+}
+
+#[inline]
+fn phase_sample(f: Complex64, levels: u32) -> u16 {
+    phase_stored(phase_level(f, levels), levels)
+}
+
+/// s = round((1 + B / B0) / 2 (2^b - 1)), clipped to [0, 2^b - 1].
+#[inline]
+pub fn amplitude_sample(b: f64, b0: f64, bits: u8) -> u16 {
+    let max = ((1u32 << bits) - 1) as f64;
+    ((1.0 + b / b0) / 2.0 * max).round().clamp(0.0, max) as u16
+}
+
+#[cfg(test)]
+mod unit_tests {
+    use super::*;
+
+    /// physics.md: with 2^b / N not an integer the stored values still spread over the full range:
+    /// level g stands for the phase 2 pi g / N, stored s = round(g 2^b / N).
+    #[test]
+    fn phase_levels_and_stored_values() {
+        assert_eq!(phase_stored(1, 3), 85); // 256/3 = 85.33
+        assert_eq!(phase_stored(2, 3), 171); // 512/3 = 170.67
+        assert_eq!(phase_stored(255, 256), 255);
+        assert_eq!(phase_stored(1, 257), 255); // 65536/257 = 255.0039
+        assert_eq!(phase_stored(65535, 65536), 65535);
+        // phi just below 2 pi rounds to level N, i.e. 0.
+        let f = Complex64::from_polar(1.0, -1e-6);
+        assert_eq!(phase_level(f, 4), 0);
+        assert_eq!(phase_level(Complex64::new(0.0, 1.0), 4), 1);
+        assert_eq!(phase_level(Complex64::new(-1.0, 1e-9), 4), 2);
+    }
+
+    #[test]
+    fn binary_conventions() {
+        let neg = Complex64::new(-0.5, 3.0);
+        let pos = Complex64::new(0.0, -3.0);
+        assert_eq!(Encoding::BinaryPhase.sample(neg), 1);
+        assert_eq!(Encoding::BinaryPhase.sample(pos), 0);
+        assert_eq!(Encoding::BinaryAmplitude.sample(neg), 0);
+        assert_eq!(Encoding::BinaryAmplitude.sample(pos), 1);
+        let mut out = [0u8; 2];
+        Encoding::BinaryAmplitude.encode_row(&[pos, neg, pos, neg, neg, neg, neg, neg, pos], &mut out);
+        assert_eq!(out, [0b1010_0000, 0b1000_0000]);
+    }
+
+    #[test]
+    fn amplitude_mapping_clips() {
+        assert_eq!(amplitude_sample(0.0, 1.0, 8), 128); // 127.5 rounds half away from zero
+        assert_eq!(amplitude_sample(1.0, 1.0, 8), 255);
+        assert_eq!(amplitude_sample(-5.0, 1.0, 8), 0);
+        assert_eq!(amplitude_sample(7.0, 1.0, 16), 65535);
+    }
+}

@@ -1,0 +1,130 @@
+//! The JSON sidecar written beside each plate (`NAME.json` for `NAME.tif`): every physical parameter,
+//! the encoding, counts, tool version, the job's hash and the TIFF's SHA-256. Its fields are
+//! documented in README.md ("The sidecar"); `format_version` changes when a field changes meaning.
+//! It holds no time stamps, so the same job gives the same sidecar.
+
+use std::path::Path;
+
+use serde_json::{json, Value};
+
+use super::tiff::{Compression, FinishedTiff, TiffLayout};
+use crate::encoding::Encoding;
+use crate::error::{Error, Result};
+use crate::job::spec::JobSpec;
+use crate::optics::Reference;
+
+/// Version of the sidecar layout.
+pub const FORMAT_VERSION: u32 = 1;
+
+/// Everything the sidecar records.
+pub struct SidecarInput<'a> {
+    /// The job.
+    pub spec: &'a JobSpec,
+    /// Encoding as written (amplitude scale resolved).
+    pub encoding: &'a Encoding,
+    /// TIFF layout.
+    pub layout: &'a TiffLayout,
+    /// The finished TIFF.
+    pub tiff: &'a FinishedTiff,
+    /// Emitters summed.
+    pub emitters: usize,
+    /// Emitters with no support on the plate.
+    pub unreachable: usize,
+    /// Point-pixel updates done.
+    pub updates: u64,
+}
+
+/// The sidecar as a JSON value.
+pub fn to_json(i: &SidecarInput) -> Value {
+    let p = &i.spec.plate;
+    let reference = match i.spec.reference {
+        Reference::Plane { tilt } => json!({"kind": "plane", "tilt_deg": [tilt[0].to_degrees(), tilt[1].to_degrees()]}),
+        Reference::Spherical { position } => {
+            json!({"kind": "spherical", "position_mm": [position[0] * 1e3, position[1] * 1e3, position[2] * 1e3]})
+        }
+    };
+    let encoding = match *i.encoding {
+        Encoding::Phase { levels } => json!({
+            "kind": "phase", "levels": levels, "bits_per_sample": i.encoding.bits_per_sample(),
+            "stored_value": "s = round(g 2^b / N), g = round(N arg(F) / 2 pi) mod N; displayed phase 2 pi s / 2^b"
+        }),
+        Encoding::BinaryPhase => json!({"kind": "binary-phase", "bits_per_sample": 1, "stored_value": "1 (phase pi) where Re F < 0, else 0"}),
+        Encoding::BinaryAmplitude => json!({"kind": "binary-amplitude", "bits_per_sample": 1, "stored_value": "1 (clear) where Re F >= 0, else 0 (opaque)"}),
+        Encoding::Amplitude { bits, scale } => json!({
+            "kind": "amplitude", "bits_per_sample": bits, "bipolar_scale": scale,
+            "stored_value": "s = round((1 + Re F / bipolar_scale) / 2 (2^b - 1)), clipped"
+        }),
+    };
+    let objects: Vec<Value> = i
+        .spec
+        .objects
+        .iter()
+        .map(|o| {
+            json!({
+                "points": o.points.file_name().map(|f| f.to_string_lossy().into_owned()),
+                "offset_mm": [o.offset[0] * 1e3, o.offset[1] * 1e3, o.offset[2] * 1e3],
+                "scale": o.scale, "gain": o.gain,
+            })
+        })
+        .collect();
+    let s = &i.spec.synthesis;
+    json!({
+        "format": "fringemill-sidecar",
+        "format_version": FORMAT_VERSION,
+        "tool": {"name": "fringemill", "version": env!("CARGO_PKG_VERSION")},
+        "job": {"file": i.spec.path.file_name().map(|f| f.to_string_lossy().into_owned()), "sha256": i.spec.sha256},
+        "hologram": {
+            "width_px": p.width, "height_px": p.height,
+            "pitch_um": [p.pitch[0] * 1e6, p.pitch[1] * 1e6],
+            "wavelength_nm": p.wavelength * 1e9,
+            "size_mm": [p.size()[0] * 1e3, p.size()[1] * 1e3],
+            "max_half_angle_deg": [p.max_half_angle()[0].to_degrees(), p.max_half_angle()[1].to_degrees()],
+            "pixel_centre": "x = (j - (W-1)/2) px, y = ((H-1)/2 - i) py; row 0 is the top row; y up",
+        },
+        "reference": reference,
+        "objects": objects,
+        "synthesis": {
+            "method": "point-sum",
+            "approximation": s.approximation.name(),
+            "obliquity": s.obliquity,
+            "anti_aliasing": "emitter j contributes where |(d_j - d_R)_x| <= lambda / (2 px) and likewise in y (d: local direction cosines)",
+            "fringe_term": "F = O conj(R), O = sum a_j exp(i (k r_j + phi_j)) / r_j",
+            "emitters": i.emitters,
+            "emitters_without_support": i.unreachable,
+            "point_pixel_updates": i.updates,
+        },
+        "encoding": encoding,
+        "output": {
+            "file": i.tiff.path.file_name().map(|f| f.to_string_lossy().into_owned()),
+            "bytes": i.tiff.bytes,
+            "sha256": i.tiff.sha256,
+            "bigtiff": i.tiff.bigtiff,
+            "compression": match i.layout.compression { Compression::None => "none", Compression::Deflate => "deflate" },
+            "rows_per_strip": i.layout.rows_per_strip,
+            "strips": i.tiff.strips,
+            "photometric": "min-is-black",
+        },
+    })
+}
+
+/// Writes the sidecar under a temporary name and renames it into place.
+pub fn write(path: &Path, i: &SidecarInput) -> Result<()> {
+    let text = serde_json::to_string_pretty(&to_json(i)).expect("JSON of plain values") + "\n";
+    write_atomically(path, text.as_bytes())
+}
+
+/// Writes `bytes` to `path.partial`, syncs, renames to `path`; removes the partial on failure.
+pub fn write_atomically(path: &Path, bytes: &[u8]) -> Result<()> {
+    use std::io::Write;
+    let tmp = super::tiff::partial_path(path);
+    let res = (|| -> std::io::Result<()> {
+        let mut f = std::fs::File::create(&tmp)?;
+        f.write_all(bytes)?;
+        f.sync_all()?;
+        std::fs::rename(&tmp, path)
+    })();
+    res.map_err(|e| {
+        let _ = std::fs::remove_file(&tmp);
+        Error::io(path, e)
+    })
+}

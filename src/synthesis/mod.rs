@@ -1,0 +1,58 @@
+//! Synthesis: from emitters to the complex fringe term F = O conj(R), band by band.
+//!
+//! `point_sum` is the production point-source engine; `reference` is the slow, obviously correct
+//! per-pixel sum that every fast path is tested against; `support` bounds where each emitter may
+//! contribute without aliasing. This module depends on `optics` only.
+
+pub mod point_sum;
+pub mod reference;
+pub mod support;
+
+/// One point source on the object side of the plate, in plate coordinates (metres).
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Emitter {
+    /// Position (x, y, z), metres; z > 0 is the distance in front of the plate.
+    pub pos: [f64; 3],
+    /// Amplitude a_j (dimensionless, >= 0).
+    pub amplitude: f64,
+    /// Initial phase phi_j, radians.
+    pub phase: f64,
+}
+
+/// How the phase and amplitude of each spherical wave are computed.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Approximation {
+    /// exp(i k r) / r with r the exact distance.
+    Exact,
+    /// Paraxial: phase k (z + rho^2 / (2 z)), amplitude 1 / z.
+    Fresnel,
+}
+
+impl Approximation {
+    /// The job-file spelling.
+    pub fn name(self) -> &'static str {
+        match self {
+            Approximation::Exact => "exact",
+            Approximation::Fresnel => "fresnel",
+        }
+    }
+}
+
+/// Options of the point-source summation.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct PointSumOptions {
+    /// Exact or paraxial waves.
+    pub approximation: Approximation,
+    /// Multiply each wave by the obliquity factor z / r (Rayleigh-Sommerfeld, first kind);
+    /// with the Fresnel approximation the factor is 1.
+    pub obliquity: bool,
+    /// Restrict each emitter to the plate region where its fringes are below the pixel Nyquist limit.
+    /// Always on in jobs; off only to study aliasing.
+    pub anti_alias: bool,
+}
+
+impl Default for PointSumOptions {
+    fn default() -> Self {
+        PointSumOptions { approximation: Approximation::Exact, obliquity: false, anti_alias: true }
+    }
+}
