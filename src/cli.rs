@@ -26,6 +26,9 @@ pub struct Common {
     /// Plain progress lines on stderr even on a terminal (the default when stderr is not a terminal).
     #[arg(long, global = true)]
     pub log_progress: bool,
+    /// After each job, print elapsed time, throughput and peak memory on stderr.
+    #[arg(long, global = true)]
+    pub stats: bool,
     /// Worker threads (default: all cores).
     #[arg(long, global = true, value_name = "N")]
     pub threads: Option<usize>,

@@ -69,8 +69,21 @@ fn main() -> ExitCode {
             let opts = RunOptions { progress };
             let mut failed = 0usize;
             for f in &files {
+                let t0 = std::time::Instant::now();
                 match run_one(f, &opts) {
                     Ok(s) => {
+                        if cli.common.stats {
+                            let el = t0.elapsed().as_secs_f64();
+                            let peak = job::progress::peak_rss_bytes().map(|b| format!("{:.1} MiB", b as f64 / 1048576.0)).unwrap_or_else(|| "unknown".into());
+                            eprintln!(
+                                "fringemill: stats: {}: {:.3} s, {} point-pixel updates, {:.3} G updates/s, peak memory {}",
+                                f.display(),
+                                el,
+                                s.updates,
+                                s.updates as f64 / el / 1e9,
+                                peak
+                            );
+                        }
                         if !cli.common.quiet {
                             eprintln!("fringemill: {}: wrote {} and {} ({} emitters, {} point-pixel updates)", f.display(), s.tiff.display(), s.sidecar.display(), s.emitters, s.updates);
                         }

@@ -179,3 +179,26 @@ fn batch_goes_on_after_a_failure() {
     assert!(d.path().join("a.tif").exists());
     assert!(String::from_utf8_lossy(&o.stderr).contains("1 failed"));
 }
+
+fn peak_mib(stderr: &str) -> f64 {
+    let l = stderr.lines().find(|l| l.contains("peak memory")).unwrap_or_else(|| panic!("no stats in {stderr}"));
+    l.split("peak memory ").nth(1).unwrap().trim_end_matches(" MiB").parse().unwrap()
+}
+
+/// Peak memory is set by the band, not the plate: 32 times more rows (1.9 GB of complex field if held
+/// at once) must not raise the peak by more than a few MiB. Linux only (reads VmHWM).
+#[test]
+fn peak_memory_flat_as_plate_grows() {
+    if !Path::new("/proc/self/status").exists() {
+        return;
+    }
+    let mut peaks = Vec::new();
+    for h in [512, 16384] {
+        let text = job_text("kind = \"binary-amplitude\"", "o.tif").replace("width_px = 96", "width_px = 8192").replace("height_px = 64", &format!("height_px = {h}"));
+        let (_d, j) = setup(&text);
+        let o = run(&["run", "-q", "--stats", j.to_str().unwrap()]);
+        assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+        peaks.push(peak_mib(&String::from_utf8_lossy(&o.stderr)));
+    }
+    assert!(peaks[1] - peaks[0] < 8.0, "peak memory grew from {} to {} MiB", peaks[0], peaks[1]);
+}

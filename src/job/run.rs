@@ -102,7 +102,7 @@ pub fn tiff_layout(spec: &JobSpec, encoding: &Encoding) -> TiffLayout {
         pixel_pitch_m: (spec.plate.pitch[0], spec.plate.pitch[1]),
         software: format!("fringemill {}", env!("CARGO_PKG_VERSION")),
         description: Some(format!("fringe pattern, {} encoding; parameters in the JSON sidecar", encoding.kind_name())),
-        bigtiff: None,
+        bigtiff: spec.bigtiff,
     }
 }
 
@@ -270,7 +270,7 @@ pub fn plan(spec: &JobSpec) -> Result<PlanReport> {
         },
         bytes as f64 / 1e6,
         if matches!(spec.compression, crate::output::tiff::Compression::Deflate) { " at most" } else { "" },
-        if layout.needs_bigtiff() { ", BigTIFF" } else { "" }
+        if layout.uses_bigtiff() { ", BigTIFF" } else { "" }
     ));
     lines.push(format!("sidecar: {}", sidecar_path(&spec.output).display()));
     Ok(PlanReport { lines, unreachable, updates, bytes })

@@ -87,6 +87,8 @@ pub struct RawOutput {
     /// "none" (default) or "deflate".
     pub compression: Option<String>,
     pub rows_per_strip: Option<i64>,
+    /// Force BigTIFF (true) or classic TIFF (false); default automatic.
+    pub bigtiff: Option<bool>,
 }
 
 /// The job file as written.
@@ -153,6 +155,8 @@ pub struct JobSpec {
     pub compression: Compression,
     /// TIFF rows per strip, if set.
     pub rows_per_strip: Option<u32>,
+    /// Forced TIFF flavour, if set.
+    pub bigtiff: Option<bool>,
 }
 
 /// Largest accepted side, pixels (a 4 Gpx-wide row would not fit a TIFF strip).
@@ -351,6 +355,7 @@ impl JobSpec {
             output,
             compression,
             rows_per_strip,
+            bigtiff: o.bigtiff,
         })
     }
 }

@@ -17,6 +17,8 @@
 //! This is the only module with `unsafe`: the calls into the `#[target_feature]` copies, made only
 //! after the CPU has been checked for the features.
 
+use num_complex::Complex64;
+
 /// Per-row inputs shared by every emitter.
 pub struct RowInputs<'a> {
     /// x of each column centre, metres.
@@ -120,6 +122,35 @@ fn fresnel_generic(ri: &RowInputs, e: &EmitterRow, c0: usize, c1: usize, re: &mu
         n += inside as u64;
     }
     n
+}
+
+/// out = (re + i im) exp(-i 2 pi t) per pixel: the sum times conj(R), R's phase given in cycles.
+#[inline(always)]
+fn conj_reference_generic(t: &[f64], re: &[f64], im: &[f64], out: &mut [Complex64]) {
+    for i in 0..out.len() {
+        let (s, c) = sincos_cycles(t[i]);
+        out[i] = Complex64::new(re[i] * c + im[i] * s, im[i] * c - re[i] * s);
+    }
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+unsafe fn conj_reference_avx2(t: &[f64], re: &[f64], im: &[f64], out: &mut [Complex64]) {
+    conj_reference_generic(t, re, im, out)
+}
+
+/// Writes F = (re + i im) conj(R) into `out`, with R = exp(i 2 pi t).
+///
+/// # Panics
+/// If the slices differ in length.
+pub fn conj_reference(isa: KernelIsa, t: &[f64], re: &[f64], im: &[f64], out: &mut [Complex64]) {
+    assert!(t.len() == out.len() && re.len() == out.len() && im.len() == out.len(), "row length");
+    match isa {
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: as in `accumulate_exact`.
+        KernelIsa::Avx2 => unsafe { conj_reference_avx2(t, re, im, out) },
+        _ => conj_reference_generic(t, re, im, out),
+    }
 }
 
 #[cfg(target_arch = "x86_64")]

@@ -13,7 +13,7 @@
 use num_complex::Complex64;
 
 use super::support::{direction_window, plate_rows, row_columns};
-use super::kernels::{self, sincos_cycles, EmitterRow, KernelIsa, RowInputs};
+use super::kernels::{self, EmitterRow, KernelIsa, RowInputs};
 use super::{Approximation, Emitter, PointSumOptions};
 use crate::optics::{Plate, Reference};
 
@@ -45,6 +45,7 @@ pub struct BandScratch {
     ref_dir_y: Vec<f64>,
     re: Vec<f64>,
     im: Vec<f64>,
+    ref_cycles: Vec<f64>,
 }
 
 impl PointSum {
@@ -133,7 +134,7 @@ impl PointSum {
         let inv_lambda = 1.0 / self.plate.wavelength;
         let mut cands = std::mem::take(&mut scratch.candidates);
         self.candidates(row0, rows, &mut cands);
-        for v in [&mut scratch.ref_dir_x, &mut scratch.ref_dir_y, &mut scratch.re, &mut scratch.im] {
+        for v in [&mut scratch.ref_dir_x, &mut scratch.ref_dir_y, &mut scratch.re, &mut scratch.im, &mut scratch.ref_cycles] {
             v.resize(w, 0.0);
         }
         let mut updates = 0u64;
@@ -142,10 +143,19 @@ impl PointSum {
             let y = self.plate.y_of_row(row as f64);
             scratch.re.fill(0.0);
             scratch.im.fill(0.0);
-            for c in 0..w {
-                let d = self.reference.direction(self.xs[c], y);
-                scratch.ref_dir_x[c] = d[0];
-                scratch.ref_dir_y[c] = d[1];
+            match self.reference {
+                Reference::Plane { .. } => {
+                    let d = self.reference.direction(0.0, y);
+                    scratch.ref_dir_x.fill(d[0]);
+                    scratch.ref_dir_y.fill(d[1]);
+                }
+                Reference::Spherical { .. } => {
+                    for c in 0..w {
+                        let d = self.reference.direction(self.xs[c], y);
+                        scratch.ref_dir_x[c] = d[0];
+                        scratch.ref_dir_y[c] = d[1];
+                    }
+                }
             }
             let (wx, wy) = self.row_window(y);
             let inputs = RowInputs { xs: &self.xs, rdx: &scratch.ref_dir_x, rdy: &scratch.ref_dir_y, half_band: self.half_band, inv_lambda };
@@ -172,11 +182,21 @@ impl PointSum {
                     Approximation::Fresnel => kernels::accumulate_fresnel(self.isa, &inputs, &er, c0, c1, &mut scratch.re, &mut scratch.im),
                 };
             }
-            // F = O conj(R).
-            for (c, f) in orow.iter_mut().enumerate() {
-                let (s, co) = sincos_cycles(self.reference.phase(self.xs[c], y, 1.0) * inv_lambda);
-                *f = Complex64::new(scratch.re[c], scratch.im[c]) * Complex64::new(co, -s);
+            // F = O conj(R), R's phase in cycles (path length / lambda).
+            match self.reference {
+                Reference::Plane { tilt } => {
+                    let (ax, ty) = (tilt[0].sin() * inv_lambda, y * tilt[1].sin() * inv_lambda);
+                    for (t, &x) in scratch.ref_cycles.iter_mut().zip(&self.xs) {
+                        *t = x * ax + ty;
+                    }
+                }
+                Reference::Spherical { .. } => {
+                    for (t, &x) in scratch.ref_cycles.iter_mut().zip(&self.xs) {
+                        *t = self.reference.phase(x, y, 1.0) * inv_lambda;
+                    }
+                }
             }
+            kernels::conj_reference(self.isa, &scratch.ref_cycles, &scratch.re, &scratch.im, orow);
         }
         scratch.candidates = cands;
         updates

@@ -1,0 +1,141 @@
+//! Whole plates, pixel by pixel: a job is run through the library, its TIFF read back with the
+//! `tiff` crate's decoder, and every pixel compared with the encoding formulas of physics.md
+//! ("Fringe term and encodings") applied, here in the test, to the slow reference sum.
+
+use std::path::Path;
+
+use fringemill::job::{run_job, JobSpec, ProgressMode, RunOptions};
+use fringemill::synthesis::reference::fringe_at;
+use fringemill::synthesis::Emitter;
+use num_complex::Complex64;
+use tiff::decoder::{Decoder, DecodingResult};
+
+const POINTS: &str = "x_mm,y_mm,z_mm,amplitude,phase_rad\n0.010,0.004,0.9,1.0,0.3\n-0.012,-0.006,1.1,0.7,2.2\n0.003,-0.011,1.3,0.9,4.0\n";
+
+fn write_job(dir: &Path, encoding: &str, extra_output: &str) -> std::path::PathBuf {
+    std::fs::write(dir.join("pts.csv"), POINTS).unwrap();
+    let text = format!(
+        "[hologram]\nwidth_px = 53\nheight_px = 41\npitch_um = [1.0, 1.2]\nwavelength_nm = 633\n\
+         [reference]\nkind = \"plane\"\ntilt_deg = [2.0, -1.0]\n\
+         [[object]]\npoints = \"pts.csv\"\n\
+         [synthesis]\nmethod = \"point-sum\"\napproximation = \"exact\"\n\
+         [encoding]\n{encoding}\n[output]\npath = \"plate.tif\"\n{extra_output}\n"
+    );
+    let p = dir.join("job.toml");
+    std::fs::write(&p, text).unwrap();
+    p
+}
+
+/// Decoded samples as u16, one per pixel (1-bit rows unpacked MSB first).
+fn decode(path: &Path) -> (u32, u32, Vec<u16>) {
+    let mut d = Decoder::new(std::fs::File::open(path).unwrap()).unwrap();
+    let (w, h) = d.dimensions().unwrap();
+    let img = d.read_image().unwrap();
+    let v = match img {
+        DecodingResult::U8(b) => {
+            if b.len() == (w as usize * h as usize) {
+                b.into_iter().map(u16::from).collect()
+            } else {
+                let rb = (w as usize).div_ceil(8);
+                let mut out = Vec::new();
+                for r in 0..h as usize {
+                    for c in 0..w as usize {
+                        out.push(((b[r * rb + c / 8] >> (7 - c % 8)) & 1) as u16);
+                    }
+                }
+                out
+            }
+        }
+        DecodingResult::U16(v) => v,
+        other => panic!("unexpected sample type {:?}", std::mem::discriminant(&other)),
+    };
+    (w, h, v)
+}
+
+/// physics.md encodings, written independently of `fringemill::encoding`.
+fn expected(kind: &str, levels: u32, bits: u32, b0: f64, f: Complex64) -> u16 {
+    match kind {
+        "phase" => {
+            let mut phi = f.im.atan2(f.re);
+            if phi < 0.0 {
+                phi += 2.0 * std::f64::consts::PI;
+            }
+            let g = ((levels as f64 * phi / (2.0 * std::f64::consts::PI)).round() as u32) % levels;
+            let b = if levels <= 256 { 8 } else { 16 };
+            (g as f64 * (1u64 << b) as f64 / levels as f64).round() as u16
+        }
+        "binary-phase" => (f.re < 0.0) as u16,
+        "binary-amplitude" => (f.re >= 0.0) as u16,
+        "amplitude" => {
+            let max = ((1u32 << bits) - 1) as f64;
+            ((1.0 + f.re / b0) / 2.0 * max).round().clamp(0.0, max) as u16
+        }
+        _ => unreachable!(),
+    }
+}
+
+#[test]
+fn every_encoding_pixel_by_pixel() {
+    let cases = [
+        ("phase", "kind = \"phase\"\nlevels = 16", 16, 8, 0.0, ""),
+        ("phase", "kind = \"phase\"\nlevels = 3", 3, 8, 0.0, "compression = \"deflate\""),
+        ("phase", "kind = \"phase\"\nlevels = 4096", 4096, 16, 0.0, "bigtiff = true"),
+        ("binary-phase", "kind = \"binary-phase\"", 0, 1, 0.0, ""),
+        ("binary-amplitude", "kind = \"binary-amplitude\"", 0, 1, 0.0, "bigtiff = true\ncompression = \"deflate\"\nrows_per_strip = 7"),
+        ("amplitude", "kind = \"amplitude\"\nbits = 8\nbipolar_scale = 900.0", 0, 8, 900.0, ""),
+        ("amplitude", "kind = \"amplitude\"\nbits = 16\nbipolar_scale = 1500.0", 0, 16, 1500.0, "bigtiff = false"),
+    ];
+    for (kind, enc, levels, bits, b0, extra) in cases {
+        let dir = tempfile::tempdir().unwrap();
+        let job = write_job(dir.path(), enc, extra);
+        let spec = JobSpec::load(&job).unwrap();
+        let summary = run_job(&spec, &RunOptions { progress: ProgressMode::Quiet }).unwrap();
+        let side: serde_json::Value = serde_json::from_slice(&std::fs::read(&summary.sidecar).unwrap()).unwrap();
+        assert_eq!(side["output"]["bigtiff"].as_bool().unwrap(), extra.contains("bigtiff = true"), "{enc}");
+        let (w, h, samples) = decode(&summary.tiff);
+        assert_eq!((w, h), (53, 41));
+        let emitters: Vec<Emitter> = fringemill::job::build_emitters(&spec).unwrap();
+        let mut mismatches = 0;
+        for i in 0..h {
+            for j in 0..w {
+                let f = fringe_at(&spec.plate, &spec.reference, &emitters, &spec.synthesis, i, j);
+                let e = expected(kind, levels, bits, b0, f);
+                if samples[(i * w + j) as usize] != e {
+                    mismatches += 1;
+                }
+            }
+        }
+        assert_eq!(mismatches, 0, "{enc} {extra}");
+        // The amplitude cases must actually use the grey range (not all clipped).
+        if kind == "amplitude" {
+            let distinct: std::collections::BTreeSet<u16> = samples.iter().copied().collect();
+            assert!(distinct.len() > 20, "{enc}: {} grey levels", distinct.len());
+        }
+        if kind == "phase" {
+            let distinct: std::collections::BTreeSet<u16> = samples.iter().copied().collect();
+            // Every stored value is one of the N levels, and the plate uses many of them.
+            assert!(distinct.iter().all(|&v| (0..levels).any(|g| expected("phase", levels, bits, 0.0, Complex64::from_polar(1.0, 2.0 * std::f64::consts::PI * g as f64 / levels as f64)) == v)));
+            assert!(distinct.len() as u32 >= levels.min(500), "{enc}: {} levels used", distinct.len());
+        }
+    }
+}
+
+/// TIFF resolution tags give the physical size width x pitch (ResolutionUnit 3 = centimetre).
+#[test]
+fn resolution_tags_give_physical_size() {
+    let dir = tempfile::tempdir().unwrap();
+    let job = write_job(dir.path(), "kind = \"binary-phase\"", "");
+    let spec = JobSpec::load(&job).unwrap();
+    let s = run_job(&spec, &RunOptions { progress: ProgressMode::Quiet }).unwrap();
+    let mut d = Decoder::new(std::fs::File::open(&s.tiff).unwrap()).unwrap();
+    let unit = d.get_tag_u32(tiff::tags::Tag::ResolutionUnit).unwrap();
+    assert_eq!(unit, 3);
+    for (tag, pitch_cm) in [(tiff::tags::Tag::XResolution, 1.0e-4), (tiff::tags::Tag::YResolution, 1.2e-4)] {
+        let v = d.get_tag(tag).unwrap();
+        let px_per_cm = match v {
+            tiff::decoder::ifd::Value::Rational(n, dd) => n as f64 / dd as f64,
+            other => panic!("{other:?}"),
+        };
+        assert!((px_per_cm * pitch_cm - 1.0).abs() < 1e-9);
+    }
+}
