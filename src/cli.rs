@@ -42,6 +42,22 @@ pub enum Command {
         /// Job files or folders of job files.
         #[arg(required = true, value_name = "JOB")]
         jobs: Vec<PathBuf>,
+        /// Discard the partial work of an interrupted run instead of continuing it.
+        #[arg(long)]
+        restart: bool,
+        /// Compute only share K of N (1-based, e.g. 2/4) into a part file for `assemble`;
+        /// `slurm` takes K and N from the job-array environment.
+        #[arg(long, value_name = "K/N|slurm")]
+        shard: Option<String>,
+        /// Least seconds between two checkpoints of the journal (default 30).
+        #[arg(long, value_name = "S", default_value_t = 30.0)]
+        checkpoint_secs: f64,
+    },
+    /// Streams the finished shards' parts into the plate's TIFF and sidecar.
+    Assemble {
+        /// Job file.
+        #[arg(value_name = "JOB")]
+        job: PathBuf,
     },
     /// Validates a job without computing and prints what a run will do.
     Plan {
@@ -61,7 +77,7 @@ mod tests {
         assert!(c.common.quiet);
         assert_eq!(c.common.threads, Some(2));
         match c.command {
-            Command::Run { jobs } => assert_eq!(jobs.len(), 2),
+            Command::Run { jobs, .. } => assert_eq!(jobs.len(), 2),
             _ => panic!("wrong command"),
         }
     }

@@ -1,5 +1,5 @@
 //! The `fringemill` binary: parses the command line and hands over to the library.
-//! Exit codes: 0 success, 1 a job failed, 2 usage error.
+//! Exit codes: 0 success, 1 a job failed, 2 usage error, 130 interrupted (work saved to continue).
 
 mod cli;
 
@@ -7,7 +7,11 @@ use std::path::{Path, PathBuf};
 use std::process::ExitCode;
 
 use clap::Parser;
-use fringemill::job::{self, JobSpec, ProgressMode, RunOptions};
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::Arc;
+use std::time::Duration;
+
+use fringemill::job::{self, JobSpec, ProgressMode, RunOptions, Shard};
 
 fn job_files(args: &[PathBuf]) -> Vec<PathBuf> {
     let mut out = Vec::new();
@@ -63,41 +67,64 @@ fn main() -> ExitCode {
     } else {
         ProgressMode::Auto
     };
+    let stop = Arc::new(AtomicBool::new(false));
+    {
+        let stop = stop.clone();
+        // First Ctrl-C / SIGTERM: finish the band in flight and checkpoint; a second one ends at once.
+        let _ = ctrlc::set_handler(move || {
+            if stop.swap(true, Ordering::SeqCst) {
+                std::process::exit(130);
+            }
+            eprintln!("fringemill: stopping after the band in flight (Ctrl-C again to quit at once)");
+        });
+    }
     match cli.command {
-        cli::Command::Run { jobs } => {
-            let files = job_files(&jobs);
-            let opts = RunOptions { progress };
-            let mut failed = 0usize;
-            for f in &files {
-                let t0 = std::time::Instant::now();
-                match run_one(f, &opts) {
-                    Ok(s) => {
-                        if cli.common.stats {
-                            let el = t0.elapsed().as_secs_f64();
-                            let peak = job::progress::peak_rss_bytes().map(|b| format!("{:.1} MiB", b as f64 / 1048576.0)).unwrap_or_else(|| "unknown".into());
-                            eprintln!(
-                                "fringemill: stats: {}: {:.3} s, {} point-pixel updates, {:.3} G updates/s, peak memory {}",
-                                f.display(),
-                                el,
-                                s.updates,
-                                s.updates as f64 / el / 1e9,
-                                peak
-                            );
-                        }
-                        if !cli.common.quiet {
-                            eprintln!("fringemill: {}: wrote {} and {} ({} emitters, {} point-pixel updates)", f.display(), s.tiff.display(), s.sidecar.display(), s.emitters, s.updates);
-                        }
-                        println!("{}", s.tiff.display());
-                    }
-                    Err(e) => {
-                        failed += 1;
-                        eprintln!("fringemill: error: {e}");
-                    }
+        cli::Command::Run { jobs, restart, shard, checkpoint_secs } => {
+            let shard = match shard.as_deref().map(Shard::parse).transpose() {
+                Ok(s) => s,
+                Err(e) => {
+                    eprintln!("fringemill: error: {e}");
+                    return ExitCode::from(2);
                 }
+            };
+            if !(checkpoint_secs >= 0.0 && checkpoint_secs.is_finite()) {
+                eprintln!("fringemill: error: --checkpoint-secs must be >= 0");
+                return ExitCode::from(2);
+            }
+            let files = job_files(&jobs);
+            let mut opts = RunOptions::new(progress);
+            opts.restart = restart;
+            opts.shard = shard;
+            opts.checkpoint_every = Duration::from_secs_f64(checkpoint_secs);
+            opts.stop = stop.clone();
+            let mut failed = 0usize;
+            let mut interrupted = false;
+            for f in &files {
+                if stop.load(Ordering::SeqCst) {
+                    break;
+                }
+                let t0 = std::time::Instant::now();
+                let res = run_one(f, &opts);
+                report(f, res, &cli.common, t0, &mut failed, &mut interrupted);
             }
             if files.len() > 1 {
                 eprintln!("fringemill: {} job(s): {} succeeded, {} failed", files.len(), files.len() - failed, failed);
             }
+            if interrupted {
+                ExitCode::from(130)
+            } else if failed > 0 {
+                ExitCode::from(1)
+            } else {
+                ExitCode::SUCCESS
+            }
+        }
+        cli::Command::Assemble { job } => {
+            let mut opts = RunOptions::new(progress);
+            opts.stop = stop;
+            let t0 = std::time::Instant::now();
+            let res = JobSpec::load(&job).and_then(|s| job::assemble(&s, &opts));
+            let (mut failed, mut interrupted) = (0, false);
+            report(&job, res, &cli.common, t0, &mut failed, &mut interrupted);
             if failed > 0 {
                 ExitCode::from(1)
             } else {
@@ -116,5 +143,35 @@ fn main() -> ExitCode {
                 ExitCode::from(1)
             }
         },
+    }
+}
+
+fn report(f: &Path, res: fringemill::Result<job::RunSummary>, common: &cli::Common, t0: std::time::Instant, failed: &mut usize, interrupted: &mut bool) {
+    match res {
+        Ok(s) => {
+            if common.stats {
+                let el = t0.elapsed().as_secs_f64();
+                let peak = job::progress::peak_rss_bytes().map(|b| format!("{:.1} MiB", b as f64 / 1048576.0)).unwrap_or_else(|| "unknown".into());
+                eprintln!(
+                    "fringemill: stats: {}: {:.3} s, {} point-pixel updates, {:.3} G updates/s, peak memory {}",
+                    f.display(),
+                    el,
+                    s.updates,
+                    s.updates as f64 / el / 1e9,
+                    peak
+                );
+            }
+            if !common.quiet {
+                eprintln!("fringemill: {}: wrote {} and {} ({} emitters, {} point-pixel updates)", f.display(), s.tiff.display(), s.sidecar.display(), s.emitters, s.updates);
+            }
+            println!("{}", s.tiff.display());
+        }
+        Err(e) => {
+            if matches!(e, fringemill::Error::Interrupted(_)) {
+                *interrupted = true;
+            }
+            *failed += 1;
+            eprintln!("fringemill: error: {e}");
+        }
     }
 }

@@ -89,7 +89,7 @@ fn every_encoding_pixel_by_pixel() {
         let dir = tempfile::tempdir().unwrap();
         let job = write_job(dir.path(), enc, extra);
         let spec = JobSpec::load(&job).unwrap();
-        let summary = run_job(&spec, &RunOptions { progress: ProgressMode::Quiet }).unwrap();
+        let summary = run_job(&spec, &RunOptions::new(ProgressMode::Quiet)).unwrap();
         let side: serde_json::Value = serde_json::from_slice(&std::fs::read(&summary.sidecar).unwrap()).unwrap();
         assert_eq!(side["output"]["bigtiff"].as_bool().unwrap(), extra.contains("bigtiff = true"), "{enc}");
         let (w, h, samples) = decode(&summary.tiff);
@@ -126,7 +126,7 @@ fn resolution_tags_give_physical_size() {
     let dir = tempfile::tempdir().unwrap();
     let job = write_job(dir.path(), "kind = \"binary-phase\"", "");
     let spec = JobSpec::load(&job).unwrap();
-    let s = run_job(&spec, &RunOptions { progress: ProgressMode::Quiet }).unwrap();
+    let s = run_job(&spec, &RunOptions::new(ProgressMode::Quiet)).unwrap();
     let mut d = Decoder::new(std::fs::File::open(&s.tiff).unwrap()).unwrap();
     let unit = d.get_tag_u32(tiff::tags::Tag::ResolutionUnit).unwrap();
     assert_eq!(unit, 3);

@@ -1,10 +1,11 @@
 //! Jobs: the job file, running it end to end, planning it, and reporting progress.
 //! This is the only module that connects scenes, synthesis, encoding and output.
 
+pub mod journal;
 pub mod progress;
 pub mod run;
 pub mod spec;
 
 pub use progress::ProgressMode;
-pub use run::{build_emitters, plan, run_job, PlanReport, RunOptions, RunSummary};
+pub use run::{assemble, build_emitters, plan, run_job, PlanReport, RunOptions, RunSummary, Shard};
 pub use spec::JobSpec;

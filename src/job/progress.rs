@@ -88,6 +88,13 @@ impl Progress {
         }
     }
 
+    /// Ends the report without claiming completion (interrupted work).
+    pub fn abandon(self) {
+        if let Some(bar) = self.bar {
+            bar.abandon();
+        }
+    }
+
     /// Ends the report.
     pub fn finish(self) {
         if let Some(bar) = self.bar {

@@ -1,26 +1,98 @@
 //! Running a job: emitters from the objects, the point sum band by band in parallel, encoding,
-//! and the TIFF streamed strip by strip with its sidecar. Also `plan`: what a run would do.
+//! and the TIFF streamed strip by strip with its sidecar; resuming an interrupted run from its
+//! journal; shards of a plate for a cluster and their assembly. Also `plan`: what a run would do.
 
+use std::fs::{File, OpenOptions};
+use std::io::{Read, Seek, SeekFrom, Write};
 use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::Arc;
+use std::time::{Duration, Instant};
 
 use num_complex::Complex64;
 use rayon::prelude::*;
 
+use super::journal::{changed_key, journal_path, Journal, FORMAT};
 use super::progress::{Progress, ProgressMode};
 use super::spec::{EncodingRequest, JobSpec};
 use crate::encoding::Encoding;
 use crate::error::{Error, Result};
-use crate::output::sidecar::{self, SidecarInput};
-use crate::output::tiff::{StripWriter, TiffLayout};
+use crate::output::sidecar::{self, write_atomically, SidecarInput};
+use crate::output::tiff::{partial_path, StripWriter, TiffLayout};
 use crate::scene::points::read_points;
 use crate::synthesis::point_sum::{BandScratch, PointSum};
 use crate::synthesis::Emitter;
 
+/// A share of a plate: shard `index` of `count` (0-based index).
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct Shard {
+    /// 0-based.
+    pub index: u32,
+    /// Number of shards.
+    pub count: u32,
+}
+
+impl Shard {
+    /// Parses `K/N` (1-based K, as users count) or `slurm` (from the job-array environment).
+    pub fn parse(text: &str) -> std::result::Result<Shard, String> {
+        if text == "slurm" {
+            return Self::from_slurm(|k| std::env::var(k).ok());
+        }
+        let (k, n) = text.split_once('/').ok_or_else(|| format!("--shard {text}: expected K/N, e.g. 2/4, or 'slurm'"))?;
+        let k: u32 = k.trim().parse().map_err(|_| format!("--shard {text}: K is not a whole number"))?;
+        let n: u32 = n.trim().parse().map_err(|_| format!("--shard {text}: N is not a whole number"))?;
+        if n == 0 || k == 0 || k > n {
+            return Err(format!("--shard {text}: need 1 <= K <= N"));
+        }
+        Ok(Shard { index: k - 1, count: n })
+    }
+
+    /// The shard of a Slurm array task: index = SLURM_ARRAY_TASK_ID - SLURM_ARRAY_TASK_MIN (0 if
+    /// unset), count = SLURM_ARRAY_TASK_COUNT, else MAX - MIN + 1.
+    pub fn from_slurm(get: impl Fn(&str) -> Option<String>) -> std::result::Result<Shard, String> {
+        let num = |k: &str| -> std::result::Result<Option<u32>, String> {
+            match get(k) {
+                None => Ok(None),
+                Some(v) => v.trim().parse().map(Some).map_err(|_| format!("{k}={v} is not a whole number")),
+            }
+        };
+        let id = num("SLURM_ARRAY_TASK_ID")?.ok_or("--shard slurm: SLURM_ARRAY_TASK_ID is not set (not inside a job array?)")?;
+        let min = num("SLURM_ARRAY_TASK_MIN")?.unwrap_or(0);
+        let count = match num("SLURM_ARRAY_TASK_COUNT")? {
+            Some(c) => c,
+            None => {
+                let max = num("SLURM_ARRAY_TASK_MAX")?.ok_or("--shard slurm: neither SLURM_ARRAY_TASK_COUNT nor SLURM_ARRAY_TASK_MAX is set")?;
+                max.checked_sub(min).ok_or("--shard slurm: SLURM_ARRAY_TASK_MAX < MIN")? + 1
+            }
+        };
+        let index = id.checked_sub(min).ok_or("--shard slurm: task id below SLURM_ARRAY_TASK_MIN")?;
+        if count == 0 || index >= count {
+            return Err(format!("--shard slurm: task {id} is outside an array of {count} tasks starting at {min} (array ids must be contiguous)"));
+        }
+        Ok(Shard { index, count })
+    }
+}
+
 /// Options of a run that are not part of the job.
-#[derive(Clone, Copy, Debug)]
+#[derive(Clone, Debug)]
 pub struct RunOptions {
     /// Progress display.
     pub progress: ProgressMode,
+    /// Discard an interrupted run's partial work instead of continuing it.
+    pub restart: bool,
+    /// Compute only this share of the plate (into a part file), for `assemble` later.
+    pub shard: Option<Shard>,
+    /// Least time between two checkpoints (journal updates).
+    pub checkpoint_every: Duration,
+    /// Set from outside (Ctrl-C) to stop after the band in flight, with a checkpoint.
+    pub stop: Arc<AtomicBool>,
+}
+
+impl RunOptions {
+    /// Defaults: checkpoints every 30 s, no shard, progress as given.
+    pub fn new(progress: ProgressMode) -> RunOptions {
+        RunOptions { progress, restart: false, shard: None, checkpoint_every: Duration::from_secs(30), stop: Arc::new(AtomicBool::new(false)) }
+    }
 }
 
 /// What a finished run produced.
@@ -111,52 +183,320 @@ pub fn sidecar_path(tiff: &Path) -> PathBuf {
     tiff.with_extension("json")
 }
 
-/// Runs one job end to end. On any error nothing that looks finished is left behind.
-pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
+/// Rows per band: the largest divisor of the strip height not above [`default_band_rows`], so
+/// that strips (the unit of checkpoints and shards) are whole numbers of bands.
+fn band_rows_for(spec: &JobSpec, rows_per_strip: u32) -> usize {
+    let target = spec.band_rows.unwrap_or_else(|| default_band_rows(spec.plate.width)).min(rows_per_strip as usize).max(1);
+    (1..=target).rev().find(|b| rows_per_strip as usize % b == 0).unwrap_or(1)
+}
+
+/// Everything a run of one job needs, prepared once.
+struct Prepared {
+    sum: PointSum,
+    encoding: Encoding,
+    layout: TiffLayout,
+    emitters: usize,
+    /// Effective rows per strip.
+    rps: u32,
+    band_rows: usize,
+}
+
+fn prepare(spec: &JobSpec) -> Result<Prepared> {
     let emitters = build_emitters(spec)?;
-    let n_emitters = emitters.len();
+    let n = emitters.len();
     let sum = PointSum::new(spec.plate, spec.reference, emitters, spec.synthesis);
     let encoding = match spec.encoding {
         EncodingRequest::Fixed(e) => e,
         EncodingRequest::AmplitudeAuto { bits } => Encoding::Amplitude { bits, scale: measure_bipolar_scale(&sum) },
     };
-    if let Some(parent) = spec.output.parent() {
+    let layout = tiff_layout(spec, &encoding);
+    let rps = layout.effective_rows_per_strip();
+    let band_rows = band_rows_for(spec, rps);
+    Ok(Prepared { sum, encoding, layout, emitters: n, rps, band_rows })
+}
+
+/// Number of strips of the plate.
+fn strip_count(p: &Prepared) -> u32 {
+    p.sum.plate().height.div_ceil(p.rps)
+}
+
+/// Contiguous strip ranges of the shards, balanced by estimated work (emitters cluster, so equal
+/// row counts would not give equal times). Deterministic: every shard computes the same split.
+pub fn shard_strips(sum: &PointSum, rps: u32, count: u32) -> Vec<(u32, u32)> {
+    let h = sum.plate().height;
+    let strips = h.div_ceil(rps);
+    let mut cands = Vec::new();
+    let work: Vec<f64> = (0..strips)
+        .map(|s| {
+            let r0 = (s * rps) as usize;
+            let n = rps.min(h - s * rps) as usize;
+            sum.candidates(r0, n, &mut cands);
+            let mid = r0 + n / 2;
+            // Span lengths on the middle row, plus a per-pixel cost for the reference and encoding.
+            let spans: usize = cands.iter().filter_map(|&j| sum.row_span(j as usize, mid)).map(|(a, b)| b - a).sum();
+            (spans as f64 + 0.05 * sum.plate().width as f64) * n as f64
+        })
+        .collect();
+    let total: f64 = work.iter().sum();
+    let mut out = Vec::new();
+    let mut start = 0u32;
+    let mut acc = 0.0;
+    for k in 0..count {
+        let goal = total * (k + 1) as f64 / count as f64;
+        let mut end = start;
+        while end < strips && (k + 1 == count || acc + work[end as usize] / 2.0 <= goal) {
+            acc += work[end as usize];
+            end += 1;
+        }
+        out.push((start, end));
+        start = end;
+    }
+    out
+}
+
+/// Where one run writes its rows: the TIFF writer (whole plates) or a raw part file (shards).
+enum Sink {
+    Tiff(StripWriter),
+    Part { file: std::io::BufWriter<File>, path: PathBuf },
+}
+
+impl Sink {
+    fn write_rows(&mut self, bytes: &[u8]) -> Result<()> {
+        match self {
+            Sink::Tiff(w) => w.write_rows(bytes),
+            Sink::Part { file, path } => file.write_all(bytes).map_err(|e| Error::io(&*path, e)),
+        }
+    }
+    /// Makes what was written durable; returns the TIFF writer state if any.
+    fn sync(&mut self) -> Result<Option<crate::output::tiff::WriterState>> {
+        match self {
+            Sink::Tiff(w) => w.checkpoint().map(Some),
+            Sink::Part { file, path } => {
+                file.flush().and_then(|_| file.get_ref().sync_data()).map_err(|e| Error::io(&*path, e))?;
+                Ok(None)
+            }
+        }
+    }
+}
+
+/// Free bytes on the file system holding `dir`, if the platform says.
+pub fn free_bytes(dir: &Path) -> Option<u64> {
+    #[cfg(unix)]
+    {
+        use std::os::unix::ffi::OsStrExt;
+        let c = std::ffi::CString::new(dir.as_os_str().as_bytes()).ok()?;
+        let mut st: libc::statvfs = unsafe { std::mem::zeroed() };
+        // SAFETY: `c` is a valid NUL-terminated path and `st` a writable statvfs struct.
+        let r = unsafe { libc::statvfs(c.as_ptr(), &mut st) };
+        if r != 0 {
+            return None;
+        }
+        Some(st.f_bavail as u64 * st.f_frsize as u64)
+    }
+    #[cfg(not(unix))]
+    {
+        let _ = dir;
+        None
+    }
+}
+
+/// Refuses to start when the file system holding `dir` has less than `needed` bytes (plus slack) free.
+pub fn check_space(dir: &Path, needed: u64) -> Result<()> {
+    let dir = if dir.as_os_str().is_empty() { Path::new(".") } else { dir };
+    if let Some(free) = free_bytes(dir) {
+        let needed = needed + (1 << 20); // journal, sidecar and slack
+        if free < needed {
+            return Err(Error::io(
+                dir,
+                std::io::Error::other(format!("not enough free space: the output needs about {:.1} MB, {:.1} MB are free", needed as f64 / 1e6, free as f64 / 1e6)),
+            ));
+        }
+    }
+    Ok(())
+}
+
+fn ensure_parent(path: &Path) -> Result<()> {
+    if let Some(parent) = path.parent() {
         if !parent.as_os_str().is_empty() {
             std::fs::create_dir_all(parent).map_err(|e| Error::io(parent, e))?;
         }
     }
-    let layout = tiff_layout(spec, &encoding);
-    let mut writer = StripWriter::create(&spec.output, layout.clone())?;
-    let streamed = stream_plate(&sum, &encoding, &mut writer, opts);
+    Ok(())
+}
+
+/// Looks for an interrupted run of this output. Ok(Some(journal)) to continue; Ok(None) to start
+/// afresh (no journal, or --restart); Err when the job changed and --restart was not given.
+fn find_resume(spec: &JobSpec, data: &Path, journal: &Path, shard: Option<[u32; 2]>, restart: bool) -> Result<Option<Journal>> {
+    let Some(j) = Journal::read(journal)? else { return Ok(None) };
+    if restart {
+        let _ = std::fs::remove_file(data);
+        let _ = std::fs::remove_file(journal);
+        return Ok(None);
+    }
+    if j.job_sha256 != spec.sha256 {
+        return Err(Error::job(
+            &spec.path,
+            format!(
+                "changed since the interrupted run in {} ({}); run again with --restart to discard the partial work",
+                journal.display(),
+                changed_key(&j.job_toml, &spec.text)
+            ),
+        ));
+    }
+    if j.shard != shard {
+        return Err(Error::job(&spec.path, format!("{} belongs to another shard split; run with --restart", journal.display())));
+    }
+    if !data.exists() {
+        let _ = std::fs::remove_file(journal);
+        return Ok(None);
+    }
+    Ok(Some(j))
+}
+
+/// Runs one job end to end (or one shard of it). On any error nothing that looks finished is left
+/// behind; after a checkpoint, the partial file and its journal stay so the same command continues.
+pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
+    let prep = prepare(spec)?;
+    ensure_parent(&spec.output)?;
+    let strips = strip_count(&prep);
+    let row_bytes = prep.encoding.row_bytes(spec.plate.width as usize);
+    let (first_strip, end_strip, data_path, shard_tag) = match opts.shard {
+        None => (0, strips, partial_path(&spec.output), None),
+        Some(sh) => {
+            let split = shard_strips(&prep.sum, prep.rps, sh.count);
+            let (a, b) = split[sh.index as usize];
+            (a, b, partial_path(&part_path(&spec.output, sh)), Some([sh.index, sh.count]))
+        }
+    };
+    let journal = journal_path(&data_path);
+    let resume = find_resume(spec, &data_path, &journal, shard_tag, opts.restart)?;
+    let first_row = first_strip * prep.rps;
+    let end_row = (end_strip * prep.rps).min(spec.plate.height);
+    let (rows_done, updates0) = resume.as_ref().map(|j| (j.rows_done, j.updates)).unwrap_or((0, 0));
+    // Room on disk for what remains.
+    let remaining = match opts.shard {
+        None => prep.layout.estimated_file_bytes().saturating_sub(resume.as_ref().and_then(|j| j.writer.as_ref()).map(|w| w.file_len).unwrap_or(0)),
+        Some(_) => (end_row - first_row - rows_done) as u64 * row_bytes as u64,
+    };
+    check_space(data_path.parent().unwrap_or(Path::new(".")), remaining)?;
+    let mut sink = match (&opts.shard, resume) {
+        (None, Some(j)) => {
+            let state = j.writer.ok_or_else(|| Error::input(&journal, "journal without writer state; run with --restart"))?;
+            Sink::Tiff(StripWriter::resume(&spec.output, prep.layout.clone(), state)?)
+        }
+        (None, None) => Sink::Tiff(StripWriter::create(&spec.output, prep.layout.clone())?),
+        (Some(_), resumed) => {
+            let mut f = OpenOptions::new().create(true).write(true).truncate(resumed.is_none()).open(&data_path).map_err(|e| Error::io(&data_path, e))?;
+            let keep = rows_done as u64 * row_bytes as u64;
+            f.set_len(keep).and_then(|_| f.seek(SeekFrom::Start(keep)).map(|_| ())).map_err(|e| Error::io(&data_path, e))?;
+            Sink::Part { file: std::io::BufWriter::with_capacity(1 << 20, f), path: data_path.clone() }
+        }
+    };
+    let ctx = StreamCtx { spec, prep: &prep, journal: &journal, shard: shard_tag, rows: (first_row + rows_done, end_row), rows_before: rows_done, updates_before: updates0 };
+    let streamed = stream_rows(&ctx, &mut sink, opts);
     let updates = match streamed {
         Ok(u) => u,
         Err(e) => {
-            let _ = writer.abandon();
-            return Err(e);
+            let checkpointed = journal.exists();
+            if let Sink::Tiff(w) = sink {
+                if !checkpointed {
+                    let _ = w.abandon();
+                }
+            } else if !checkpointed {
+                let _ = std::fs::remove_file(&data_path);
+            }
+            return Err(match e {
+                Error::Interrupted(_) | Error::Job { .. } => e,
+                other if checkpointed => Error::Interrupted(format!("{other}; stopped with the work so far saved in {}: fix the cause (e.g. free disk space) and run the same command again to continue", journal.display())),
+                other => other,
+            });
         }
     };
-    let finished = writer.finish()?;
-    let sidecar = sidecar_path(&spec.output);
-    let input = SidecarInput { spec, encoding: &encoding, layout: &layout, tiff: &finished, emitters: n_emitters, unreachable: sum.unreachable(), updates };
-    if let Err(e) = sidecar::write(&sidecar, &input) {
-        let _ = std::fs::remove_file(&finished.path);
-        return Err(e);
+    match sink {
+        Sink::Tiff(w) => {
+            let finished = w.finish()?;
+            let sidecar = sidecar_path(&spec.output);
+            let input = SidecarInput { spec, encoding: &prep.encoding, layout: &prep.layout, tiff: &finished, emitters: prep.emitters, unreachable: prep.sum.unreachable(), updates };
+            if let Err(e) = sidecar::write(&sidecar, &input) {
+                let _ = std::fs::remove_file(&finished.path);
+                return Err(e);
+            }
+            let _ = std::fs::remove_file(&journal);
+            Ok(RunSummary { tiff: finished.path, sidecar, emitters: prep.emitters, updates, encoding: prep.encoding })
+        }
+        Sink::Part { mut file, path } => {
+            file.flush().and_then(|_| file.get_ref().sync_all()).map_err(|e| Error::io(&path, e))?;
+            drop(file);
+            let sh = opts.shard.expect("part sink only for shards");
+            let final_part = part_path(&spec.output, sh);
+            let meta = PartMeta { format: FORMAT.into(), job_sha256: spec.sha256.clone(), shard: [sh.index, sh.count], rows: [first_row, end_row], updates, row_bytes: row_bytes as u64 };
+            std::fs::rename(&path, &final_part).map_err(|e| Error::io(&final_part, e))?;
+            write_atomically(&part_meta_path(&final_part), &serde_json::to_vec_pretty(&meta).expect("plain data"))?;
+            let _ = std::fs::remove_file(&journal);
+            Ok(RunSummary { tiff: final_part.clone(), sidecar: part_meta_path(&final_part), emitters: prep.emitters, updates, encoding: prep.encoding })
+        }
     }
-    Ok(RunSummary { tiff: finished.path, sidecar, emitters: n_emitters, updates, encoding })
 }
 
-/// Computes every band, in parallel waves, and appends them in order to the writer.
-fn stream_plate(sum: &PointSum, encoding: &Encoding, writer: &mut StripWriter, opts: &RunOptions) -> Result<u64> {
-    let plate = *sum.plate();
+/// Part file of a shard: `NAME.tif.part-K-of-N` (1-based K).
+pub fn part_path(output: &Path, sh: Shard) -> PathBuf {
+    let mut s = output.as_os_str().to_owned();
+    s.push(format!(".part-{}-of-{}", sh.index + 1, sh.count));
+    PathBuf::from(s)
+}
+
+fn part_meta_path(part: &Path) -> PathBuf {
+    let mut s = part.as_os_str().to_owned();
+    s.push(".json");
+    PathBuf::from(s)
+}
+
+/// What a finished shard records beside its part file.
+#[derive(serde::Serialize, serde::Deserialize, Debug)]
+struct PartMeta {
+    format: String,
+    job_sha256: String,
+    shard: [u32; 2],
+    rows: [u32; 2],
+    updates: u64,
+    row_bytes: u64,
+}
+
+struct StreamCtx<'a> {
+    spec: &'a JobSpec,
+    prep: &'a Prepared,
+    journal: &'a Path,
+    shard: Option<[u32; 2]>,
+    /// Rows [start, end) still to compute.
+    rows: (u32, u32),
+    rows_before: u32,
+    updates_before: u64,
+}
+
+/// Computes rows in waves of whole strips, bands in parallel inside a wave, appends them in order,
+/// and checkpoints (sink sync, then journal) between waves. Returns the total updates.
+fn stream_rows(ctx: &StreamCtx, sink: &mut Sink, opts: &RunOptions) -> Result<u64> {
+    let prep = ctx.prep;
+    let plate = *prep.sum.plate();
     let w = plate.width as usize;
-    let h = plate.height as usize;
-    let band = default_band_rows(plate.width);
-    let bands: Vec<(usize, usize)> = (0..h).step_by(band).map(|r| (r, band.min(h - r))).collect();
-    let wave = 4 * rayon::current_num_threads();
-    let total = sum.estimate_updates(64).max(1.0);
-    let mut progress = Progress::new("point sum", total, opts.progress);
-    let row_bytes = encoding.row_bytes(w);
-    let mut updates = 0u64;
+    let (start, end) = ctx.rows;
+    let band = prep.band_rows;
+    let bands: Vec<(usize, usize)> = (start as usize..end as usize).step_by(band).map(|r| (r, band.min(end as usize - r))).collect();
+    let bands_per_strip = (prep.rps as usize).div_ceil(band);
+    let strips_per_wave = (4 * rayon::current_num_threads()).div_ceil(bands_per_strip).max(1);
+    let wave = strips_per_wave * bands_per_strip;
+    let total = prep.sum.estimate_updates(64).max(1.0);
+    let label = match ctx.shard {
+        None => "point sum".to_string(),
+        Some([k, n]) => format!("point sum, shard {}/{}", k + 1, n),
+    };
+    let mut progress = Progress::new(&label, total, opts.progress);
+    progress.advance(ctx.updates_before as f64);
+    let row_bytes = prep.encoding.row_bytes(w);
+    let mut updates = ctx.updates_before;
+    let mut rows_done = ctx.rows_before;
+    let mut last_checkpoint = Instant::now();
+    let encoding = prep.encoding;
     for chunk in bands.chunks(wave) {
         let done: Vec<(Vec<u8>, u64)> = chunk
             .par_iter()
@@ -164,7 +504,7 @@ fn stream_plate(sum: &PointSum, encoding: &Encoding, writer: &mut StripWriter, o
                 || (BandScratch::default(), Vec::<Complex64>::new()),
                 |(scratch, field), &(r0, n)| {
                     field.resize(n * w, Complex64::new(0.0, 0.0));
-                    let u = sum.compute_band(r0, n, field, scratch);
+                    let u = prep.sum.compute_band(r0, n, field, scratch);
                     let mut bytes = vec![0u8; n * row_bytes];
                     for (f, o) in field.chunks_exact(w).zip(bytes.chunks_exact_mut(row_bytes)) {
                         encoding.encode_row(f, o);
@@ -174,13 +514,106 @@ fn stream_plate(sum: &PointSum, encoding: &Encoding, writer: &mut StripWriter, o
             )
             .collect();
         for (bytes, u) in done {
-            writer.write_rows(&bytes)?;
+            sink.write_rows(&bytes)?;
             updates += u;
+            rows_done += (bytes.len() / row_bytes) as u32;
             progress.advance(u as f64);
+        }
+        let stop = opts.stop.load(Ordering::SeqCst);
+        let finished = start - ctx.rows_before + rows_done >= end;
+        if (stop || last_checkpoint.elapsed() >= opts.checkpoint_every) && !finished {
+            let writer = sink.sync()?;
+            Journal { format: FORMAT.into(), job_sha256: ctx.spec.sha256.clone(), job_toml: ctx.spec.text.clone(), shard: ctx.shard, rows_done, updates, writer }.write(ctx.journal)?;
+            last_checkpoint = Instant::now();
+            if stop {
+                progress.abandon();
+                return Err(Error::Interrupted(format!(
+                    "interrupted after {rows_done} rows; the work so far is saved in {}: run the same command again to continue",
+                    ctx.journal.display()
+                )));
+            }
         }
     }
     progress.finish();
     Ok(updates)
+}
+
+/// Streams the finished shards' part files into the plate's TIFF and writes its sidecar, then
+/// removes the parts. All parts of one split (same N, same job) must be present.
+pub fn assemble(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
+    let prep = prepare(spec)?;
+    let dir = spec.output.parent().map(Path::to_path_buf).unwrap_or_default();
+    let dir_read = if dir.as_os_str().is_empty() { PathBuf::from(".") } else { dir.clone() };
+    let name = spec.output.file_name().map(|f| f.to_string_lossy().into_owned()).unwrap_or_default();
+    // Find the split: any NAME.part-K-of-N.json present.
+    let mut count = None;
+    for e in std::fs::read_dir(&dir_read).map_err(|e| Error::io(&dir_read, e))?.flatten() {
+        let f = e.file_name().to_string_lossy().into_owned();
+        if let Some(rest) = f.strip_prefix(&format!("{name}.part-")).and_then(|r| r.strip_suffix(".json")) {
+            if let Some((_, n)) = rest.split_once("-of-") {
+                if let Ok(n) = n.parse::<u32>() {
+                    count = Some(count.map_or(n, |c: u32| c.max(n)));
+                }
+            }
+        }
+    }
+    let count = count.ok_or_else(|| Error::job(&spec.path, format!("no finished shard parts of {} found in {}", name, dir_read.display())))?;
+    let row_bytes = prep.encoding.row_bytes(spec.plate.width as usize) as u64;
+    let mut metas = Vec::new();
+    let mut next_row = 0u32;
+    for k in 0..count {
+        let part = part_path(&spec.output, Shard { index: k, count });
+        let mp = part_meta_path(&part);
+        let bytes = std::fs::read(&mp).map_err(|_| Error::job(&spec.path, format!("shard {}/{count} is not finished: {} is missing", k + 1, mp.display())))?;
+        let m: PartMeta = serde_json::from_slice(&bytes).map_err(|e| Error::input(&mp, format!("damaged shard record: {e}")))?;
+        if m.job_sha256 != spec.sha256 {
+            return Err(Error::job(&spec.path, format!("{} was computed from another version of the job; run that shard again", part.display())));
+        }
+        if m.rows[0] != next_row || m.row_bytes != row_bytes {
+            return Err(Error::input(&mp, format!("rows {:?} do not continue at row {next_row}", m.rows)));
+        }
+        let len = std::fs::metadata(&part).map_err(|e| Error::io(&part, e))?.len();
+        if len != (m.rows[1] - m.rows[0]) as u64 * row_bytes {
+            return Err(Error::input(&part, format!("holds {len} bytes, expected {}", (m.rows[1] - m.rows[0]) as u64 * row_bytes)));
+        }
+        next_row = m.rows[1];
+        metas.push((part, mp, m));
+    }
+    if next_row != spec.plate.height {
+        return Err(Error::job(&spec.path, format!("the shards cover rows 0..{next_row} of {}", spec.plate.height)));
+    }
+    check_space(&dir_read, prep.layout.estimated_file_bytes())?;
+    let mut writer = StripWriter::create(&spec.output, prep.layout.clone())?;
+    let mut progress = Progress::new("assemble", spec.plate.height as f64, opts.progress);
+    let mut updates = 0u64;
+    let chunk_rows = (prep.rps as u64).max((4 << 20) / row_bytes.max(1)).max(1);
+    let mut buf = vec![0u8; (chunk_rows * row_bytes) as usize];
+    for (part, _, m) in &metas {
+        let mut f = File::open(part).map_err(|e| Error::io(part, e))?;
+        let mut left = (m.rows[1] - m.rows[0]) as u64;
+        while left > 0 {
+            let n = left.min(chunk_rows);
+            let b = &mut buf[..(n * row_bytes) as usize];
+            f.read_exact(b).map_err(|e| Error::io(part, e))?;
+            writer.write_rows(b)?;
+            progress.advance(n as f64);
+            left -= n;
+        }
+        updates += m.updates;
+    }
+    progress.finish();
+    let finished = writer.finish()?;
+    let sidecar = sidecar_path(&spec.output);
+    let input = SidecarInput { spec, encoding: &prep.encoding, layout: &prep.layout, tiff: &finished, emitters: prep.emitters, unreachable: prep.sum.unreachable(), updates };
+    if let Err(e) = sidecar::write(&sidecar, &input) {
+        let _ = std::fs::remove_file(&finished.path);
+        return Err(e);
+    }
+    for (part, mp, _) in &metas {
+        let _ = std::fs::remove_file(part);
+        let _ = std::fs::remove_file(mp);
+    }
+    Ok(RunSummary { tiff: finished.path, sidecar, emitters: prep.emitters, updates, encoding: prep.encoding })
 }
 
 /// What `plan` reports.
@@ -274,4 +707,31 @@ pub fn plan(spec: &JobSpec) -> Result<PlanReport> {
     ));
     lines.push(format!("sidecar: {}", sidecar_path(&spec.output).display()));
     Ok(PlanReport { lines, unreachable, updates, bytes })
+}
+
+#[cfg(test)]
+mod unit_tests {
+    use super::*;
+
+    #[test]
+    fn shard_from_slurm_environment() {
+        let env = |pairs: &'static [(&'static str, &'static str)]| move |k: &str| pairs.iter().find(|p| p.0 == k).map(|p| p.1.to_string());
+        assert_eq!(Shard::from_slurm(env(&[("SLURM_ARRAY_TASK_ID", "2"), ("SLURM_ARRAY_TASK_COUNT", "4")])).unwrap(), Shard { index: 2, count: 4 });
+        assert_eq!(
+            Shard::from_slurm(env(&[("SLURM_ARRAY_TASK_ID", "5"), ("SLURM_ARRAY_TASK_MIN", "3"), ("SLURM_ARRAY_TASK_MAX", "6")])).unwrap(),
+            Shard { index: 2, count: 4 }
+        );
+        assert!(Shard::from_slurm(env(&[])).is_err());
+        assert!(Shard::from_slurm(env(&[("SLURM_ARRAY_TASK_ID", "9"), ("SLURM_ARRAY_TASK_COUNT", "4")])).is_err());
+        assert_eq!(Shard::parse("2/4").unwrap(), Shard { index: 1, count: 4 });
+        assert!(Shard::parse("5/4").is_err() && Shard::parse("0/4").is_err() && Shard::parse("x").is_err());
+    }
+
+    #[test]
+    fn refuses_when_disk_lacks_room() {
+        let d = std::env::temp_dir();
+        assert!(check_space(&d, 1024).is_ok());
+        let e = check_space(&d, u64::MAX / 4).unwrap_err().to_string();
+        assert!(e.contains("not enough free space"), "{e}");
+    }
 }

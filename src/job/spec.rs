@@ -137,6 +137,8 @@ pub struct JobSpec {
     pub path: PathBuf,
     /// SHA-256 of the job file's bytes, lowercase hex.
     pub sha256: String,
+    /// The job file's text (journals keep it to name what changed).
+    pub text: String,
     /// Pixel grid, pitch and wavelength.
     pub plate: Plate,
     /// Reference wave.
@@ -181,7 +183,9 @@ impl JobSpec {
         })?;
         let sha256 = hex(&Sha256::digest(&bytes));
         let dir = path.parent().map(Path::to_path_buf).unwrap_or_default();
-        Self::from_raw(raw, path, &dir, sha256)
+        let mut spec = Self::from_raw(raw, path, &dir, sha256)?;
+        spec.text = text;
+        Ok(spec)
     }
 
     /// Validates a parsed job. `dir` is the folder paths resolve against.
@@ -346,6 +350,7 @@ impl JobSpec {
         Ok(JobSpec {
             path: path.to_path_buf(),
             sha256,
+            text: String::new(),
             plate,
             reference,
             objects,

@@ -1,0 +1,199 @@
+//! Overnight robustness, end to end through the binary: kill -9 and Ctrl-C followed by a resume give
+//! byte-identical plates; thread counts and shard splits give byte-identical plates; a disk that
+//! fills mid-run stops cleanly and resumes; an edited job never resumes onto old work.
+
+use std::path::{Path, PathBuf};
+use std::process::{Command, Stdio};
+use std::time::Duration;
+
+const BIN: &str = env!("CARGO_BIN_EXE_fringemill");
+
+fn job(dir: &Path, encoding: &str) -> PathBuf {
+    let pts = Path::new(env!("CARGO_MANIFEST_DIR")).join("samples/badge_points.ply");
+    std::fs::copy(pts, dir.join("pts.ply")).unwrap();
+    let text = format!(
+        "[hologram]\nwidth_px = 768\nheight_px = 640\npitch_um = 2.0\nwavelength_nm = 532\n\
+         [reference]\nkind = \"plane\"\ntilt_deg = [3.0, 1.0]\n\
+         [[object]]\npoints = \"pts.ply\"\noffset_mm = [0, 0, 20]\n\
+         [encoding]\n{encoding}\n[output]\npath = \"out/plate.tif\"\nrows_per_strip = 16\n"
+    );
+    let p = dir.join("job.toml");
+    std::fs::write(&p, text).unwrap();
+    p
+}
+
+fn run(args: &[&str]) -> std::process::Output {
+    Command::new(BIN).args(args).output().unwrap()
+}
+
+fn clean_plate(encoding: &str) -> Vec<u8> {
+    let d = tempfile::tempdir().unwrap();
+    let j = job(d.path(), encoding);
+    let o = run(&["run", "-q", j.to_str().unwrap()]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    std::fs::read(d.path().join("out/plate.tif")).unwrap()
+}
+
+/// Deterministic pseudo-random delays.
+fn delays(seed: u64, n: usize, max_ms: u64) -> Vec<u64> {
+    let mut x = seed;
+    (0..n)
+        .map(|_| {
+            x ^= x << 13;
+            x ^= x >> 7;
+            x ^= x << 17;
+            30 + x % max_ms
+        })
+        .collect()
+}
+
+#[test]
+fn kill_9_then_resume_is_byte_identical() {
+    let enc = "kind = \"phase\"\nlevels = 256";
+    let reference = clean_plate(enc);
+    let d = tempfile::tempdir().unwrap();
+    let j = job(d.path(), enc);
+    let tif = d.path().join("out/plate.tif");
+    let mut kills = 0;
+    for ms in delays(0x9e3779b9, 4, 900) {
+        let mut child = Command::new(BIN).args(["run", "-q", "--checkpoint-secs", "0", j.to_str().unwrap()]).stdout(Stdio::null()).stderr(Stdio::null()).spawn().unwrap();
+        std::thread::sleep(Duration::from_millis(ms));
+        if child.try_wait().unwrap().is_none() {
+            child.kill().unwrap(); // SIGKILL
+            kills += 1;
+        }
+        child.wait().unwrap();
+        if tif.exists() {
+            break;
+        }
+        // Nothing that looks finished after a kill.
+        assert!(!tif.exists());
+    }
+    let o = run(&["run", "-q", j.to_str().unwrap()]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    assert!(kills > 0, "the run finished before any kill: make the job heavier");
+    assert!(std::fs::read(&tif).unwrap() == reference, "resumed plate differs");
+    assert!(!d.path().join("out/plate.tif.partial.journal").exists());
+}
+
+/// Starts a run and sends SIGINT after a delay; retries with shorter delays if the run finished
+/// first (a fast machine), so the test does not depend on the machine's speed.
+fn interrupt_run(dir: &Path, j: &Path) -> std::process::Output {
+    for ms in [400, 120, 40, 10] {
+        let child = Command::new(BIN).args(["run", "-q", "--checkpoint-secs", "0", j.to_str().unwrap()]).stdout(Stdio::null()).stderr(Stdio::piped()).spawn().unwrap();
+        std::thread::sleep(Duration::from_millis(ms));
+        // SAFETY: plain kill(2) on our own child's pid.
+        unsafe { libc::kill(child.id() as i32, libc::SIGINT) };
+        let o = child.wait_with_output().unwrap();
+        if !o.status.success() {
+            return o;
+        }
+        let _ = std::fs::remove_dir_all(dir.join("out"));
+    }
+    panic!("every run finished before SIGINT: make the job heavier");
+}
+
+#[test]
+fn sigint_stops_cleanly_and_resumes_byte_identical() {
+    let enc = "kind = \"binary-amplitude\"";
+    let reference = clean_plate(enc);
+    let d = tempfile::tempdir().unwrap();
+    let j = job(d.path(), enc);
+    let o = interrupt_run(d.path(), &j);
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(130), "{err}");
+    assert!(err.contains("run the same command again"), "{err}");
+    assert!(d.path().join("out/plate.tif.partial.journal").exists());
+    assert!(!d.path().join("out/plate.tif").exists());
+    let o = run(&["run", "-q", j.to_str().unwrap()]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    assert!(std::fs::read(d.path().join("out/plate.tif")).unwrap() == reference);
+}
+
+/// 1 and 2 threads, and shard splits 1/1, 2/2, 3/3 and 5/5 (assembled), all byte-identical.
+#[test]
+fn threads_and_shards_are_byte_identical() {
+    let enc = "kind = \"phase\"\nlevels = 16";
+    let reference = clean_plate(enc);
+    for threads in ["1", "2"] {
+        let d = tempfile::tempdir().unwrap();
+        let j = job(d.path(), enc);
+        assert!(run(&["run", "-q", "--threads", threads, j.to_str().unwrap()]).status.success());
+        assert!(std::fs::read(d.path().join("out/plate.tif")).unwrap() == reference, "threads {threads}");
+    }
+    for n in [1u32, 2, 3, 5] {
+        let d = tempfile::tempdir().unwrap();
+        let j = job(d.path(), enc);
+        // Shards in reverse order, as a scheduler may run them.
+        for k in (1..=n).rev() {
+            let o = run(&["run", "-q", "--shard", &format!("{k}/{n}"), j.to_str().unwrap()]);
+            assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+        }
+        let o = run(&["assemble", "-q", j.to_str().unwrap()]);
+        assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+        assert!(std::fs::read(d.path().join("out/plate.tif")).unwrap() == reference, "{n} shards");
+        let left: Vec<_> = std::fs::read_dir(d.path().join("out")).unwrap().map(|e| e.unwrap().file_name()).collect();
+        assert_eq!(left.len(), 2, "parts left behind: {left:?}");
+    }
+    // The Slurm environment selects the shard.
+    let d = tempfile::tempdir().unwrap();
+    let j = job(d.path(), enc);
+    for id in 0..2 {
+        let o = Command::new(BIN)
+            .args(["run", "-q", "--shard", "slurm", j.to_str().unwrap()])
+            .env("SLURM_ARRAY_TASK_ID", id.to_string())
+            .env("SLURM_ARRAY_TASK_COUNT", "2")
+            .output()
+            .unwrap();
+        assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    }
+    assert!(run(&["assemble", "-q", j.to_str().unwrap()]).status.success());
+    assert!(std::fs::read(d.path().join("out/plate.tif")).unwrap() == reference);
+}
+
+/// A file-size limit (the same write error a full disk gives) stops the run with the journal
+/// intact; without the limit the same command finishes the identical plate.
+#[test]
+fn disk_full_mid_run_then_resume() {
+    let enc = "kind = \"phase\"\nlevels = 256"; // 768 x 640 x 8 bit: 491 kB uncompressed
+    let reference = clean_plate(enc);
+    let d = tempfile::tempdir().unwrap();
+    let j = job(d.path(), enc);
+    // bash counts ulimit -f in 1024-byte blocks; SIGXFSZ ignored so write(2) fails with EFBIG.
+    let o = Command::new("bash")
+        .arg("-c")
+        .arg(format!("trap '' XFSZ; ulimit -f 250; exec '{BIN}' run -q --checkpoint-secs 0 '{}'", j.display()))
+        .output()
+        .unwrap();
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(!o.status.success(), "{err}");
+    assert_eq!(err.trim_end().lines().count(), 1, "{err}");
+    assert!(err.contains("run the same command again"), "{err}");
+    assert!(!d.path().join("out/plate.tif").exists());
+    let journal = d.path().join("out/plate.tif.partial.journal");
+    let jv: serde_json::Value = serde_json::from_slice(&std::fs::read(&journal).unwrap()).unwrap();
+    let rows = jv["rows_done"].as_u64().unwrap();
+    assert!(rows > 0 && rows < 640 && rows % 16 == 0, "rows_done {rows}");
+    // The journal never claims more than the file holds.
+    let len = std::fs::metadata(d.path().join("out/plate.tif.partial")).unwrap().len();
+    assert!(jv["writer"]["file_len"].as_u64().unwrap() <= len);
+    let o = run(&["run", "-q", j.to_str().unwrap()]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    assert!(std::fs::read(d.path().join("out/plate.tif")).unwrap() == reference);
+}
+
+#[test]
+fn edited_job_refuses_to_resume_and_names_the_change() {
+    let d = tempfile::tempdir().unwrap();
+    let j = job(d.path(), "kind = \"binary-phase\"");
+    interrupt_run(d.path(), &j);
+    let text = std::fs::read_to_string(&j).unwrap().replace("wavelength_nm = 532", "wavelength_nm = 633");
+    std::fs::write(&j, text).unwrap();
+    let o = run(&["run", "-q", j.to_str().unwrap()]);
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(!o.status.success());
+    assert!(err.contains("hologram.wavelength_nm: 532 -> 633") && err.contains("--restart"), "{err}");
+    let o = run(&["run", "-q", "--restart", j.to_str().unwrap()]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    assert!(d.path().join("out/plate.tif").exists());
+}
