@@ -7,6 +7,9 @@
 //!
 //! Nothing here depends on scenes, encodings or files.
 
+pub mod fft2d;
+pub mod propagation;
+
 use std::f64::consts::PI;
 
 /// The plate: its pixel grid, pitch and the design wavelength.

@@ -1,0 +1,206 @@
+//! Fourier-transform propagation: a thin lens of focal length f between its two focal planes, or
+//! the far field (Fraunhofer) scaled to a distance f.
+//!
+//! This file owns [`Fourier`] and the centred, scaled 2-D DFT that it shares with the single-FFT
+//! Fresnel propagator (`CentredDft`). It depends on [`crate::optics::fft2d`] and the shared types of
+//! [`super`] only; nothing here may depend on jobs, scenes, encodings or output.
+//!
+//! # What is computed
+//! With the input in the front focal plane of a lens of focal length `f` and the output in its back
+//! focal plane (Goodman, Introduction to Fourier Optics, sec. 5.2):
+//!
+//! `U2(u, v) = 1 / (i lambda f) * integral U1(x, y) exp(-i 2 pi (x u + y v) / (lambda f)) dx dy`,
+//!
+//! evaluated as a DFT on the pixel-centre grids of `physics.md`: output pitch `lambda |f| / (N p)`
+//! per axis, with the optical axis at the centre of both grids for odd and even sizes alike (the
+//! half-pixel offsets of even sizes are exact phase ramps, not an `fftshift`). The factor
+//! `px py / (i lambda f)` makes the transform unitary in the sense of power:
+//! `sum |U2|^2 du dv = sum |U1|^2 dx dy`.
+//!
+//! Phase factors dropped, on purpose:
+//! * the constant `exp(i 2 k f)` of the path through the 2f system (a global phase);
+//! * no quadratic phase is dropped in the focal-plane-to-focal-plane geometry: the output quadratic
+//!   phase of a lens at distance f from its input is exactly zero. For an input placed against the
+//!   lens, or for the far field at distance z = f without a lens, the true output carries an extra
+//!   `exp(i k (u^2 + v^2) / (2 f))` (and `exp(i k f)`); this propagator leaves both out, so its
+//!   intensity is right and its phase is that of the focal-plane geometry.
+//!
+//! A negative `f` gives the inverse transform (`+i` in the exponent, `1 / (i lambda f)` with `f < 0`):
+//! it maps the back focal plane to the front one, and propagating by `f` then by `-f` returns the
+//! input to rounding.
+
+use std::sync::Arc;
+
+use num_complex::Complex;
+use rustfft::num_traits::Float;
+use rustfft::FftNum;
+
+use super::{check_len, cis_cycles, mul_by, scratch_failed, to_t, Grid, Propagator, Separable};
+use crate::optics::fft2d::Fft2d;
+
+/// A 2-D DFT between two centred pixel grids of the same shape,
+/// `out[m, n] = post[m, n] * sum_{i, j} pre[i, j] in[i, j] exp(-+ i 2 pi ((j-cx)(m-cx)/nx + (i-cy)(n-cy)/ny))`,
+/// where `c = (n - 1) / 2`, with separable `pre` and `post` factors that may carry chirps and a
+/// constant. Shared by [`Fourier`] and the single-FFT Fresnel propagator.
+#[derive(Clone, Debug)]
+pub(crate) struct CentredDft<T: FftNum> {
+    fft: Arc<Fft2d<T>>,
+    inverse: bool,
+    pre: Separable<T>,
+    post: Separable<T>,
+}
+
+/// Per-axis factors of [`CentredDft`], in f64.
+///
+/// `inverse` selects the `+i` kernel. `chirp_in(x)` and `chirp_out(u)` return extra phases in cycles
+/// for the input sample at `x` and the output sample at `u` (metres from the axis).
+fn axis_factors(
+    n: usize,
+    p_in: f64,
+    p_out: f64,
+    inverse: bool,
+    chirp_in: &dyn Fn(f64) -> f64,
+    chirp_out: &dyn Fn(f64) -> f64,
+) -> (Vec<Complex<f64>>, Vec<Complex<f64>>) {
+    // exp(-s i 2 pi (j - c)(m - c) / n) = exp(-s i 2 pi j m / n) exp(s i 2 pi j c / n)
+    //                                     exp(s i 2 pi c m / n) exp(-s i 2 pi c^2 / n),
+    // with c = (n - 1) / 2; the ramps are reduced exactly in integers: j c / n = j (n - 1) / (2 n).
+    let s = if inverse { -1.0 } else { 1.0 };
+    let n64 = n as u64;
+    let ramp = |j: usize| -> f64 { ((j as u64 * (n64 - 1)) % (2 * n64)) as f64 / (2 * n64) as f64 };
+    let c2 = ((n64 - 1) * (n64 - 1) % (4 * n64)) as f64 / (4 * n64) as f64;
+    let c = (n as f64 - 1.0) / 2.0;
+    let pre = (0..n)
+        .map(|j| cis_cycles(s * ramp(j) + chirp_in((j as f64 - c) * p_in)))
+        .collect();
+    let post = (0..n)
+        .map(|m| cis_cycles(s * (ramp(m) - c2) + chirp_out((m as f64 - c) * p_out)))
+        .collect();
+    (pre, post)
+}
+
+impl<T: FftNum + Float> CentredDft<T> {
+    /// Plans the transform from `input` to output pitch `out_pitch`. `constant` multiplies every
+    /// output sample; `chirp_in` / `chirp_out` give extra phases in cycles as functions of the
+    /// squared distance from the axis, `rho^2`, in square metres.
+    pub(crate) fn new(
+        fft: Arc<Fft2d<T>>,
+        input: &Grid,
+        out_pitch: [f64; 2],
+        inverse: bool,
+        constant: Complex<f64>,
+        chirp_in: &dyn Fn(f64) -> f64,
+        chirp_out: &dyn Fn(f64) -> f64,
+    ) -> Self {
+        assert_eq!(
+            (fft.nx(), fft.ny()),
+            (input.nx, input.ny),
+            "CentredDft: plan shape mismatch"
+        );
+        // A chirp exp(i a rho^2) = exp(i a x^2) exp(i a y^2) separates by axis.
+        let cin = |x: f64| chirp_in(x * x);
+        let cout = |u: f64| chirp_out(u * u);
+        let (pre_x, post_x) =
+            axis_factors(input.nx, input.pitch[0], out_pitch[0], inverse, &cin, &cout);
+        let (pre_y, post_y) =
+            axis_factors(input.ny, input.pitch[1], out_pitch[1], inverse, &cin, &cout);
+        let conv = |v: Vec<Complex<f64>>| v.into_iter().map(to_t::<T>).collect::<Vec<_>>();
+        CentredDft {
+            fft,
+            inverse,
+            pre: Separable {
+                x: conv(pre_x),
+                y: conv(pre_y),
+            },
+            post: Separable {
+                x: conv(post_x),
+                y: conv(post_y.into_iter().map(|v| v * constant).collect()),
+            },
+        }
+    }
+
+    /// Scratch needed by [`apply`](Self::apply).
+    pub(crate) fn scratch_len(&self) -> usize {
+        self.fft.scratch_len()
+    }
+
+    /// Runs the transform in place. The pre factor is applied to each row just before its FFT and
+    /// the post factor to each column just after its FFT, while the data is in cache.
+    pub(crate) fn apply(&self, field: &mut [Complex<T>], scratch: &mut [Complex<T>]) {
+        check_len(field.len(), self.fft.nx() * self.fft.ny());
+        if scratch.len() < self.scratch_len() {
+            scratch_failed(scratch.len(), self.scratch_len());
+        }
+        let (pre, post) = (&self.pre, &self.post);
+        self.fft.run(
+            field,
+            scratch,
+            self.inverse,
+            |i, row| mul_by(row, &pre.x, pre.y[i]),
+            |j, col| mul_by(col, &post.y, post.x[j]),
+        );
+    }
+}
+
+/// Fourier-transform propagation through a lens of focal length `focal` (module docs): output pitch
+/// `lambda |f| / (N p)`, power conserved.
+#[derive(Clone, Debug)]
+pub struct Fourier<T: FftNum> {
+    input: Grid,
+    output: Grid,
+    focal: f64,
+    dft: CentredDft<T>,
+}
+
+impl<T: FftNum + Float> Fourier<T> {
+    /// Plans the transform for `grid` and focal length `focal` (metres, non-zero; negative for the
+    /// inverse transform). `fft` must be planned for the grid's shape.
+    ///
+    /// # Panics
+    /// If the grid is invalid, `focal` is zero or not finite, or `fft` has another shape.
+    pub fn new(grid: &Grid, focal: f64, fft: Arc<Fft2d<T>>) -> Self {
+        grid.validate("Fourier");
+        assert!(
+            focal.is_finite() && focal != 0.0,
+            "Fourier: focal length must be finite and non-zero, got {focal}"
+        );
+        let lambda = grid.wavelength;
+        let out_pitch = [
+            lambda * focal.abs() / (grid.nx as f64 * grid.pitch[0]),
+            lambda * focal.abs() / (grid.ny as f64 * grid.pitch[1]),
+        ];
+        // px py / (i lambda f)
+        let constant = Complex::new(0.0, -grid.pixel_area() / (lambda * focal));
+        let none = |_: f64| 0.0;
+        let dft = CentredDft::new(fft, grid, out_pitch, focal < 0.0, constant, &none, &none);
+        Fourier {
+            input: *grid,
+            output: Grid {
+                pitch: out_pitch,
+                ..*grid
+            },
+            focal,
+            dft,
+        }
+    }
+
+    /// The focal length, metres.
+    pub fn focal(&self) -> f64 {
+        self.focal
+    }
+}
+
+impl<T: FftNum + Float> Propagator<T> for Fourier<T> {
+    fn input(&self) -> Grid {
+        self.input
+    }
+    fn output(&self) -> Grid {
+        self.output
+    }
+    fn scratch_len(&self) -> usize {
+        self.dft.scratch_len()
+    }
+    fn propagate_with_scratch(&self, field: &mut [Complex<T>], scratch: &mut [Complex<T>]) {
+        self.dft.apply(field, scratch);
+    }
+}

@@ -1,0 +1,216 @@
+//! Free-space propagation of sampled complex fields between parallel planes.
+//!
+//! This module owns the [`Propagator`] trait, the sampling [`Grid`] it works on, and the shared
+//! helpers of its implementations (one algorithm per file: [`angular_spectrum`], [`fresnel`],
+//! [`fourier`]); [`planner`] chooses between them. It depends on [`crate::optics::fft2d`], rustfft
+//! and rayon only: nothing here may depend on jobs, scenes, encodings or output.
+//!
+//! # Conventions (shared `physics.md`)
+//! * SI units: metres.
+//! * Fields are row-major, `ny` rows of `nx` samples; pixel (row i, column j) has its centre at
+//!   `x = (j - (nx-1)/2) px`, `y = ((ny-1)/2 - i) py`: row 0 is the top row, y points up, and the
+//!   optical axis passes through the centre of the grid (between pixels when a size is even).
+//! * Time dependence `exp(-i w t)`: a wave travelling towards +z gains `exp(+i k z)`, a wave diverging
+//!   from a point is `exp(+i k r) / r`. A positive distance propagates towards +z, a negative one
+//!   back-propagates.
+//! * Fields carry absolute phase and amplitude: the propagators that change the pitch scale the field
+//!   so that power, `sum |U|^2 dx dy`, is conserved between the planes.
+
+use std::f64::consts::PI;
+
+use num_complex::Complex;
+use rayon::prelude::*;
+use rustfft::num_traits::Float;
+use rustfft::FftNum;
+
+pub mod angular_spectrum;
+pub mod fourier;
+pub mod fresnel;
+pub mod planner;
+
+pub use angular_spectrum::AngularSpectrum;
+pub use fourier::Fourier;
+pub use fresnel::SingleFftFresnel;
+pub use planner::{PropagationPlanner, PropagationRecipe};
+
+/// A sampled plane: its shape, its pitch and the wavelength of the light on it.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Grid {
+    /// Columns (samples along x).
+    pub nx: usize,
+    /// Rows (samples along y).
+    pub ny: usize,
+    /// Sample pitch [px, py], metres.
+    pub pitch: [f64; 2],
+    /// Wavelength, metres.
+    pub wavelength: f64,
+}
+
+impl Grid {
+    /// Number of samples, `nx * ny`.
+    pub fn len(&self) -> usize {
+        self.nx * self.ny
+    }
+
+    /// True when the grid has no sample.
+    pub fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
+
+    /// Area of one sample, `px py`, square metres.
+    pub fn pixel_area(&self) -> f64 {
+        self.pitch[0] * self.pitch[1]
+    }
+
+    /// x of the centre of column `j`, metres.
+    pub fn x_of_col(&self, j: usize) -> f64 {
+        (j as f64 - (self.nx as f64 - 1.0) / 2.0) * self.pitch[0]
+    }
+
+    /// y of the centre of row `i`, metres (row 0 is the top, y points up).
+    pub fn y_of_row(&self, i: usize) -> f64 {
+        ((self.ny as f64 - 1.0) / 2.0 - i as f64) * self.pitch[1]
+    }
+
+    /// Critical distance `N p^2 / lambda` per axis, [x, y], metres (Voelz and Roggemann, Applied
+    /// Optics 48, 6132, 2009). At this distance the single-FFT Fresnel output pitch equals the input
+    /// pitch.
+    pub fn critical_distance(&self) -> [f64; 2] {
+        [
+            self.nx as f64 * self.pitch[0] * self.pitch[0] / self.wavelength,
+            self.ny as f64 * self.pitch[1] * self.pitch[1] / self.wavelength,
+        ]
+    }
+
+    /// Power of a field on this grid, `sum |U|^2 px py`, accumulated in f64.
+    ///
+    /// # Panics
+    /// If `field.len() != nx * ny`.
+    pub fn power<T: FftNum + Float>(&self, field: &[Complex<T>]) -> f64 {
+        check_len(field.len(), self.len());
+        let s: f64 = field
+            .par_chunks(self.nx.max(1))
+            .map(|row| {
+                row.iter()
+                    .map(|v| {
+                        let (re, im) = (
+                            v.re.to_f64().unwrap_or(f64::NAN),
+                            v.im.to_f64().unwrap_or(f64::NAN),
+                        );
+                        re * re + im * im
+                    })
+                    .sum::<f64>()
+            })
+            .collect::<Vec<_>>()
+            .iter()
+            .sum();
+        s * self.pixel_area()
+    }
+
+    /// Panics with a readable message unless the grid is usable: non-empty, finite positive pitch
+    /// and wavelength.
+    pub(crate) fn validate(&self, who: &str) {
+        assert!(
+            self.nx > 0 && self.ny > 0,
+            "{who}: empty grid {} x {}",
+            self.nx,
+            self.ny
+        );
+        assert!(
+            self.pitch.iter().all(|p| p.is_finite() && *p > 0.0),
+            "{who}: pitch must be finite and > 0, got {:?}",
+            self.pitch
+        );
+        assert!(
+            self.wavelength.is_finite() && self.wavelength > 0.0,
+            "{who}: wavelength must be finite and > 0, got {}",
+            self.wavelength
+        );
+    }
+}
+
+/// Propagates a sampled complex field from one plane to a parallel one, in place.
+///
+/// Implementations are planned once (FFT plans, transfer functions, phase factors) and then shared:
+/// `propagate` takes `&self`, so one propagator can serve many threads.
+pub trait Propagator<T: FftNum>: Send + Sync {
+    /// The sampling of the input plane.
+    fn input(&self) -> Grid;
+
+    /// The sampling of the output plane: same shape and wavelength as the input; the pitch may
+    /// change (single-FFT Fresnel, Fourier).
+    fn output(&self) -> Grid;
+
+    /// Length of the scratch buffer that [`propagate_with_scratch`](Self::propagate_with_scratch)
+    /// needs.
+    fn scratch_len(&self) -> usize;
+
+    /// Propagates `field` (row-major `ny x nx`, conventions of the module docs) in place, using
+    /// `scratch` (at least [`scratch_len`](Self::scratch_len) elements, any content on entry).
+    ///
+    /// # Panics
+    /// If `field.len() != nx * ny` or the scratch is too short.
+    fn propagate_with_scratch(&self, field: &mut [Complex<T>], scratch: &mut [Complex<T>]);
+
+    /// Propagates `field` in place, allocating the scratch.
+    ///
+    /// # Panics
+    /// If `field.len() != nx * ny`.
+    fn propagate(&self, field: &mut [Complex<T>]) {
+        let mut scratch = vec![Complex::new(T::zero(), T::zero()); self.scratch_len()];
+        self.propagate_with_scratch(field, &mut scratch);
+    }
+}
+
+/// `exp(i 2 pi cycles)`, with the argument reduced to [-1/2, 1/2] cycle in f64 before the
+/// trigonometry, so large phases keep their accuracy.
+#[inline]
+pub(crate) fn cis_cycles(cycles: f64) -> Complex<f64> {
+    let t = cycles - cycles.round();
+    let (s, c) = (2.0 * PI * t).sin_cos();
+    Complex::new(c, s)
+}
+
+/// Converts an f64 complex to the field's precision.
+#[inline]
+pub(crate) fn to_t<T: FftNum>(v: Complex<f64>) -> Complex<T> {
+    Complex::new(
+        T::from_f64(v.re).expect("from f64"),
+        T::from_f64(v.im).expect("from f64"),
+    )
+}
+
+/// A pointwise factor that separates into a product of a per-column and a per-row term,
+/// `f[i, j] = y[i] x[j]`. The terms are computed in f64 and stored in the field's precision.
+#[derive(Clone, Debug)]
+pub(crate) struct Separable<T> {
+    pub(crate) x: Vec<Complex<T>>,
+    pub(crate) y: Vec<Complex<T>>,
+}
+
+/// Applies `fac[k] * scale` to `v[k]`.
+#[inline]
+pub(crate) fn mul_by<T: FftNum>(v: &mut [Complex<T>], fac: &[Complex<T>], scale: Complex<T>) {
+    for (a, &b) in v.iter_mut().zip(fac) {
+        *a = *a * (b * scale);
+    }
+}
+
+#[cold]
+#[inline(never)]
+pub(crate) fn check_len_failed(got: usize, want: usize) -> ! {
+    panic!("propagation: field has {got} elements, expected {want}");
+}
+
+#[inline]
+pub(crate) fn check_len(got: usize, want: usize) {
+    if got != want {
+        check_len_failed(got, want);
+    }
+}
+
+#[cold]
+#[inline(never)]
+pub(crate) fn scratch_failed(got: usize, want: usize) -> ! {
+    panic!("propagation: scratch has {got} elements, need at least {want}");
+}
