@@ -59,6 +59,39 @@ pub enum Command {
         #[arg(value_name = "JOB")]
         job: PathBuf,
     },
+    /// Replays a plate numerically: intensity images at chosen depths plus metrics (JSON).
+    Reconstruct {
+        /// The plate TIFF (its sidecar NAME.json must sit beside it).
+        #[arg(value_name = "PLATE.tif")]
+        plate: PathBuf,
+        /// Depth in front of the plate, mm: D, or a stack A:B:STEP.
+        #[arg(long, value_name = "D|A:B:STEP")]
+        distance_mm: String,
+        /// Replay only this window of the plate: first column, first row, width, height (pixels).
+        #[arg(long, value_name = "X,Y,W,H")]
+        window: Option<String>,
+        /// Light the plate with a plane wave at these tilts (degrees) instead of the recorded reference.
+        #[arg(long, value_name = "TX,TY")]
+        illumination: Option<String>,
+        /// Output PNG (default: PLATE-replay.png); metrics go to the same name with .json.
+        #[arg(long, value_name = "FILE")]
+        out: Option<PathBuf>,
+        /// Grey mapping: linear, gamma or log.
+        #[arg(long, default_value = "gamma")]
+        scale: String,
+        /// PNG bits per sample: 8 or 16.
+        #[arg(long, default_value_t = 8)]
+        bits: u8,
+        /// Region of the replay image for power fraction, uniformity, speckle contrast: X,Y,W,H pixels.
+        #[arg(long, value_name = "X,Y,W,H")]
+        region: Option<String>,
+        /// Target image (PNG, same size as the replay) for correlation and RMSE.
+        #[arg(long, value_name = "PNG")]
+        target: Option<PathBuf>,
+        /// Number of intensity peaks to report.
+        #[arg(long, default_value_t = 10)]
+        peaks: usize,
+    },
     /// Validates a job without computing and prints what a run will do.
     Plan {
         /// Job file.

@@ -33,6 +33,7 @@ pub mod error;
 pub mod job;
 pub mod optics;
 pub mod output;
+pub mod replay;
 pub mod scene;
 pub mod synthesis;
 pub use error::{Error, Result};

@@ -12,6 +12,7 @@ use std::sync::Arc;
 use std::time::Duration;
 
 use fringemill::job::{self, JobSpec, ProgressMode, RunOptions, Shard};
+use fringemill::replay;
 
 fn job_files(args: &[PathBuf]) -> Vec<PathBuf> {
     let mut out = Vec::new();
@@ -131,6 +132,26 @@ fn main() -> ExitCode {
                 ExitCode::SUCCESS
             }
         }
+        cli::Command::Reconstruct { plate, distance_mm, window, illumination, out, scale, bits, region, target, peaks } => {
+            match reconstruct_request(plate, &distance_mm, window, illumination, out, &scale, bits, region, target, peaks) {
+                Err(m) => {
+                    eprintln!("fringemill: error: {m}");
+                    ExitCode::from(2)
+                }
+                Ok(req) => match replay::reconstruct(&req) {
+                    Ok(files) => {
+                        for f in files {
+                            println!("{}", f.display());
+                        }
+                        ExitCode::SUCCESS
+                    }
+                    Err(e) => {
+                        eprintln!("fringemill: error: {e}");
+                        ExitCode::from(1)
+                    }
+                },
+            }
+        }
         cli::Command::Plan { job } => match JobSpec::load(&job).and_then(|s| job::plan(&s)) {
             Ok(r) => {
                 for l in r.lines {
@@ -144,6 +165,49 @@ fn main() -> ExitCode {
             }
         },
     }
+}
+
+#[allow(clippy::too_many_arguments)]
+fn reconstruct_request(
+    plate: PathBuf,
+    distance_mm: &str,
+    window: Option<String>,
+    illumination: Option<String>,
+    out: Option<PathBuf>,
+    scale: &str,
+    bits: u8,
+    region: Option<String>,
+    target: Option<PathBuf>,
+    peaks: usize,
+) -> Result<replay::ReconstructRequest, String> {
+    let distances = replay::parse_distances_mm(distance_mm).map_err(|m| format!("--distance-mm {m}"))?;
+    let window = window.as_deref().map(replay::Window::parse).transpose().map_err(|m| format!("--window {m}"))?;
+    let illumination = match illumination {
+        None => replay::Illumination::Recorded,
+        Some(s) => {
+            let v: Vec<f64> = s.split(',').map(|t| t.trim().parse::<f64>()).collect::<Result<_, _>>().map_err(|_| format!("--illumination '{s}': expected TX,TY in degrees"))?;
+            if v.len() != 2 || v.iter().any(|t| !t.is_finite() || t.abs() >= 90.0) {
+                return Err(format!("--illumination '{s}': expected TX,TY in degrees, each between -90 and 90"));
+            }
+            replay::Illumination::Plane([v[0].to_radians(), v[1].to_radians()])
+        }
+    };
+    let region = match region {
+        None => None,
+        Some(s) => {
+            let w = replay::Window::parse(&s).map_err(|m| format!("--region {m}"))?;
+            Some([w.x as usize, w.y as usize, w.w as usize, w.h as usize])
+        }
+    };
+    if bits != 8 && bits != 16 {
+        return Err(format!("--bits {bits}: expected 8 or 16"));
+    }
+    let scale = replay::metrics::ToneScale::parse(scale).map_err(|m| format!("--scale {m}"))?;
+    let out = out.unwrap_or_else(|| {
+        let stem = plate.file_stem().map(|s| s.to_string_lossy().into_owned()).unwrap_or_else(|| "plate".into());
+        plate.with_file_name(format!("{stem}-replay.png"))
+    });
+    Ok(replay::ReconstructRequest { tif: plate, distances, window, illumination, out, scale, bits, region, target, peaks })
 }
 
 fn report(f: &Path, res: fringemill::Result<job::RunSummary>, common: &cli::Common, t0: std::time::Instant, failed: &mut usize, interrupted: &mut bool) {

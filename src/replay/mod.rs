@@ -1,0 +1,351 @@
+//! Replay: numerical reconstruction of a plate this tool wrote, before it is exposed or displayed.
+//!
+//! The TIFF and its sidecar give the pitch, wavelength, encoding and reference. The stored samples
+//! of a window of the plate (only the strips it needs are read) are turned back into the
+//! transmittance the device shows (phase levels -> exp(i phi), binary, amplitude), lit by the
+//! recorded reference (or another plane wave) and propagated to the requested depths.
+//!
+//! Depth convention: replaying at distance D shows the plane z = D in front of the plate, where the
+//! object points at depth D are sharp. The field just behind the plate is propagated by -D (the
+//! virtual image, as an eye or camera focused at D sees it); the intensity equals that of the real
+//! image formed by conjugate illumination at +D.
+//!
+//! Depends on `optics` (propagators), `encoding` (transmittance) and `output` (sidecar format).
+
+pub mod metrics;
+
+use std::path::{Path, PathBuf};
+
+use num_complex::Complex;
+use tiff::decoder::{Decoder, DecodingResult};
+
+use crate::encoding::Encoding;
+use crate::error::{Error, Result};
+use crate::optics::propagation::{Grid, PropagationPlanner};
+use crate::optics::{Plate, Reference};
+
+/// A plate on disk with what its sidecar says about it.
+#[derive(Clone, Debug)]
+pub struct PlateFile {
+    /// The TIFF.
+    pub tif: PathBuf,
+    /// Geometry and wavelength.
+    pub plate: Plate,
+    /// The reference it was computed with.
+    pub reference: Reference,
+    /// The encoding of its samples.
+    pub encoding: Encoding,
+}
+
+/// A rectangle of plate pixels: first column, first row, width, height.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct Window {
+    /// First column.
+    pub x: u32,
+    /// First row (0 = top).
+    pub y: u32,
+    /// Columns.
+    pub w: u32,
+    /// Rows.
+    pub h: u32,
+}
+
+impl Window {
+    /// Parses `X,Y,W,H`.
+    pub fn parse(s: &str) -> std::result::Result<Window, String> {
+        let v: Vec<u32> = s.split(',').map(|t| t.trim().parse::<u32>()).collect::<std::result::Result<_, _>>().map_err(|_| format!("'{s}': expected X,Y,W,H in whole pixels"))?;
+        if v.len() != 4 || v[2] == 0 || v[3] == 0 {
+            return Err(format!("'{s}': expected X,Y,W,H with W, H > 0"));
+        }
+        Ok(Window { x: v[0], y: v[1], w: v[2], h: v[3] })
+    }
+}
+
+fn num(v: &serde_json::Value, path: &Path, key: &str) -> Result<f64> {
+    v.as_f64().filter(|x| x.is_finite()).ok_or_else(|| Error::input(path, format!("sidecar field {key} is missing or not a number")))
+}
+
+/// Sidecar path of a TIFF (`NAME.json`).
+pub fn sidecar_of(tif: &Path) -> PathBuf {
+    tif.with_extension("json")
+}
+
+impl PlateFile {
+    /// Opens a plate: reads its sidecar (`NAME.json` beside `NAME.tif`) and checks the TIFF's size.
+    pub fn open(tif: &Path) -> Result<PlateFile> {
+        let sc = sidecar_of(tif);
+        let bytes = std::fs::read(&sc).map_err(|e| Error::io(&sc, e))?;
+        let v: serde_json::Value = serde_json::from_slice(&bytes).map_err(|e| Error::input(&sc, format!("not JSON: {e}")))?;
+        if v["format"] != "fringemill-sidecar" {
+            return Err(Error::input(&sc, "not a fringemill sidecar (format field)"));
+        }
+        let h = &v["hologram"];
+        let plate = Plate {
+            width: num(&h["width_px"], &sc, "hologram.width_px")? as u32,
+            height: num(&h["height_px"], &sc, "hologram.height_px")? as u32,
+            pitch: [num(&h["pitch_um"][0], &sc, "hologram.pitch_um")? * 1e-6, num(&h["pitch_um"][1], &sc, "hologram.pitch_um")? * 1e-6],
+            wavelength: num(&h["wavelength_nm"], &sc, "hologram.wavelength_nm")? * 1e-9,
+        };
+        let r = &v["reference"];
+        let reference = match r["kind"].as_str() {
+            Some("plane") => Reference::Plane { tilt: [num(&r["tilt_deg"][0], &sc, "reference.tilt_deg")?.to_radians(), num(&r["tilt_deg"][1], &sc, "reference.tilt_deg")?.to_radians()] },
+            Some("spherical") => {
+                let p = |i: usize| num(&r["position_mm"][i], &sc, "reference.position_mm").map(|x| x * 1e-3);
+                Reference::Spherical { position: [p(0)?, p(1)?, p(2)?] }
+            }
+            _ => return Err(Error::input(&sc, "reference.kind is not plane or spherical")),
+        };
+        let e = &v["encoding"];
+        let encoding = match e["kind"].as_str() {
+            Some("phase") => Encoding::Phase { levels: num(&e["levels"], &sc, "encoding.levels")? as u32 },
+            Some("binary-phase") => Encoding::BinaryPhase,
+            Some("binary-amplitude") => Encoding::BinaryAmplitude,
+            Some("amplitude") => Encoding::Amplitude { bits: num(&e["bits_per_sample"], &sc, "encoding.bits_per_sample")? as u8, scale: num(&e["bipolar_scale"], &sc, "encoding.bipolar_scale")? },
+            _ => return Err(Error::input(&sc, "encoding.kind is not one this tool writes")),
+        };
+        let f = std::fs::File::open(tif).map_err(|e| Error::io(tif, e))?;
+        let mut d = Decoder::new(std::io::BufReader::new(f)).map_err(|e| Error::input(tif, format!("not a readable TIFF: {e}")))?;
+        let (w, hh) = d.dimensions().map_err(|e| Error::input(tif, e.to_string()))?;
+        if (w, hh) != (plate.width, plate.height) {
+            return Err(Error::input(tif, format!("is {w} x {hh} px but its sidecar says {} x {}", plate.width, plate.height)));
+        }
+        Ok(PlateFile { tif: tif.to_path_buf(), plate, reference, encoding })
+    }
+
+    /// Stored samples of a window, row-major; reads only the strips that overlap it.
+    pub fn read_window(&self, win: Window) -> Result<Vec<u16>> {
+        let p = &self.plate;
+        if win.x as u64 + win.w as u64 > p.width as u64 || win.y as u64 + win.h as u64 > p.height as u64 {
+            return Err(Error::job(&self.tif, format!("window {},{},{},{} leaves the {} x {} plate", win.x, win.y, win.w, win.h, p.width, p.height)));
+        }
+        let f = std::fs::File::open(&self.tif).map_err(|e| Error::io(&self.tif, e))?;
+        let mut d = Decoder::new(std::io::BufReader::new(f)).map_err(|e| Error::input(&self.tif, e.to_string()))?;
+        let (_, rps) = d.chunk_dimensions();
+        let rps = rps.max(1);
+        let bad = |e: tiff::TiffError| Error::input(&self.tif, format!("cannot read strip: {e}"));
+        let mut out = Vec::with_capacity(win.w as usize * win.h as usize);
+        let bits = self.encoding.bits_per_sample();
+        for s in win.y / rps..=(win.y + win.h - 1) / rps {
+            let chunk = d.read_chunk(s).map_err(bad)?;
+            let (cw, ch) = d.chunk_data_dimensions(s);
+            for r in 0..ch {
+                let row = s * rps + r;
+                if row < win.y || row >= win.y + win.h {
+                    continue;
+                }
+                let cols = win.x as usize..(win.x + win.w) as usize;
+                match (&chunk, bits) {
+                    (DecodingResult::U8(b), 1) => {
+                        let rb = (cw as usize).div_ceil(8);
+                        let base = r as usize * rb;
+                        out.extend(cols.map(|c| ((b[base + c / 8] >> (7 - c % 8)) & 1) as u16));
+                    }
+                    (DecodingResult::U8(b), 8) => {
+                        let base = r as usize * cw as usize;
+                        out.extend(cols.map(|c| b[base + c] as u16));
+                    }
+                    (DecodingResult::U16(b), 16) => {
+                        let base = r as usize * cw as usize;
+                        out.extend(cols.map(|c| b[base + c]));
+                    }
+                    _ => return Err(Error::input(&self.tif, format!("sample type does not match the {bits}-bit encoding of its sidecar"))),
+                }
+            }
+        }
+        Ok(out)
+    }
+}
+
+/// How the plate is lit.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub enum Illumination {
+    /// The reference recorded in the sidecar.
+    Recorded,
+    /// A plane wave with these tilts (radians).
+    Plane([f64; 2]),
+}
+
+/// One replayed plane.
+pub struct ReplayImage {
+    /// Distance in front of the plate, metres.
+    pub distance: f64,
+    /// Sampling of the image plane (pitch may differ from the plate's).
+    pub grid: Grid,
+    /// Position of the image's centre in plate coordinates, metres (the window's centre).
+    pub centre: [f64; 2],
+    /// Intensity |U|^2, row-major, row 0 on top.
+    pub intensity: Vec<f32>,
+}
+
+/// The transmittance of the window lit by the illumination: the field just behind the plate.
+pub fn lit_window(pf: &PlateFile, win: Window, ill: Illumination) -> Result<Vec<Complex<f32>>> {
+    let samples = pf.read_window(win)?;
+    let p = &pf.plate;
+    let k = p.k();
+    let mut field = Vec::with_capacity(samples.len());
+    // Transmittance per stored value, tabulated (at most 65536 entries).
+    let levels = 1usize << pf.encoding.bits_per_sample();
+    let table: Vec<Complex<f64>> = (0..levels).map(|s| pf.encoding.transmittance(s as u16)).collect();
+    for (i, row) in samples.chunks_exact(win.w as usize).enumerate() {
+        let y = p.y_of_row((win.y as usize + i) as f64);
+        for (j, &s) in row.iter().enumerate() {
+            let x = p.x_of_col((win.x as usize + j) as f64);
+            let phase = match ill {
+                Illumination::Recorded => pf.reference.phase(x, y, k),
+                Illumination::Plane(t) => k * (x * t[0].sin() + y * t[1].sin()),
+            };
+            let t = table[s as usize] * Complex::from_polar(1.0, phase.rem_euclid(2.0 * std::f64::consts::PI));
+            field.push(Complex::new(t.re as f32, t.im as f32));
+        }
+    }
+    Ok(field)
+}
+
+/// Largest window side replayed at once.
+pub const MAX_WINDOW_SIDE: u32 = 8192;
+
+/// Replays the window at each distance (metres). The planner picks angular spectrum or single-FFT
+/// Fresnel per distance (physics.md: critical distance N p^2 / lambda) and reuses FFT plans.
+pub fn replay(pf: &PlateFile, win: Window, ill: Illumination, distances: &[f64]) -> Result<Vec<ReplayImage>> {
+    if win.w > MAX_WINDOW_SIDE || win.h > MAX_WINDOW_SIDE {
+        return Err(Error::job(
+            &pf.tif,
+            format!("the replay window is {} x {} px; replay at most {MAX_WINDOW_SIDE} x {MAX_WINDOW_SIDE} at once (--window X,Y,W,H)", win.w, win.h),
+        ));
+    }
+    let lit = lit_window(pf, win, ill)?;
+    let p = &pf.plate;
+    let grid = Grid { nx: win.w as usize, ny: win.h as usize, pitch: p.pitch, wavelength: p.wavelength };
+    let centre = [p.x_of_col(win.x as f64 + (win.w as f64 - 1.0) / 2.0), p.y_of_row(win.y as f64 + (win.h as f64 - 1.0) / 2.0)];
+    let mut planner = PropagationPlanner::<f32>::new();
+    let mut out = Vec::new();
+    for &d in distances {
+        if !(d.is_finite() && d > 0.0) {
+            return Err(Error::job(&pf.tif, format!("replay distance {} mm must be > 0", d * 1e3)));
+        }
+        let prop = planner.plan(&grid, -d);
+        let mut field = lit.clone();
+        prop.propagate(&mut field);
+        out.push(ReplayImage { distance: d, grid: prop.output(), centre, intensity: field.iter().map(|c| c.norm_sqr()).collect() });
+    }
+    Ok(out)
+}
+
+/// Distances from `D` or a stack `A:B:S` (millimetres, inclusive of B when it falls on the grid).
+pub fn parse_distances_mm(s: &str) -> std::result::Result<Vec<f64>, String> {
+    let parts: Vec<&str> = s.split(':').collect();
+    let p = |t: &str| t.trim().parse::<f64>().ok().filter(|v| v.is_finite() && *v > 0.0).ok_or_else(|| format!("'{s}': distances are positive millimetres, D or A:B:STEP"));
+    match parts.len() {
+        1 => Ok(vec![p(parts[0])? * 1e-3]),
+        3 => {
+            let (a, b, st) = (p(parts[0])?, p(parts[1])?, p(parts[2])?);
+            if b < a {
+                return Err(format!("'{s}': the stack must run from near to far (A <= B)"));
+            }
+            let n = ((b - a) / st + 1e-9).floor() as usize + 1;
+            if n > 1000 {
+                return Err(format!("'{s}': {n} planes; at most 1000"));
+            }
+            Ok((0..n).map(|i| (a + i as f64 * st) * 1e-3).collect())
+        }
+        _ => Err(format!("'{s}': expected D or A:B:STEP in millimetres")),
+    }
+}
+
+/// Everything `fringemill reconstruct` asks for.
+#[derive(Clone, Debug)]
+pub struct ReconstructRequest {
+    /// The plate.
+    pub tif: PathBuf,
+    /// Depths, metres.
+    pub distances: Vec<f64>,
+    /// Window of the plate; None for the whole plate.
+    pub window: Option<Window>,
+    /// Lighting.
+    pub illumination: Illumination,
+    /// Output PNG (a stack adds `-zD.DDDmm` before the extension).
+    pub out: PathBuf,
+    /// Grey mapping.
+    pub scale: metrics::ToneScale,
+    /// 8 or 16.
+    pub bits: u8,
+    /// Region of the replay image for power fraction, uniformity and speckle contrast.
+    pub region: Option<metrics::Region>,
+    /// Target image to compare with.
+    pub target: Option<PathBuf>,
+    /// How many peaks to report.
+    pub peaks: usize,
+}
+
+/// Runs a reconstruction: writes one PNG per depth and one JSON of metrics (`OUT.json`).
+/// Returns the files written.
+pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
+    let pf = PlateFile::open(&req.tif)?;
+    let win = req.window.unwrap_or(Window { x: 0, y: 0, w: pf.plate.width, h: pf.plate.height });
+    let target = match &req.target {
+        Some(t) => Some(metrics::read_png_grey(t)?),
+        None => None,
+    };
+    let images = replay(&pf, win, req.illumination, &req.distances)?;
+    let mut written = Vec::new();
+    let mut planes = Vec::new();
+    for img in &images {
+        let (w, h) = (img.grid.nx, img.grid.ny);
+        let path = if images.len() == 1 {
+            req.out.clone()
+        } else {
+            let stem = req.out.file_stem().map(|s| s.to_string_lossy().into_owned()).unwrap_or_else(|| "replay".into());
+            req.out.with_file_name(format!("{stem}-z{:.3}mm.png", img.distance * 1e3))
+        };
+        metrics::write_png(&path, w, h, &img.intensity, req.scale, req.bits)?;
+        written.push(path.clone());
+        let pk: Vec<metrics::Peak> = metrics::peaks(w, h, &img.intensity, req.peaks, 0.05)
+            .into_iter()
+            .map(|(c, r, rel)| metrics::Peak {
+                col: c,
+                row: r,
+                x_mm: (img.centre[0] + img.grid.x_of_col(c)) * 1e3,
+                y_mm: (img.centre[1] + img.grid.y_of_row(r)) * 1e3,
+                relative: rel,
+            })
+            .collect();
+        let region = match req.region {
+            Some(rg) => Some(metrics::region_stats(w, h, &img.intensity, rg).map_err(|m| Error::job(&req.tif, m))?),
+            None => None,
+        };
+        let cmp = match &target {
+            Some((tw, th, t)) => {
+                if (*tw, *th) != (w, h) {
+                    return Err(Error::input(req.target.as_ref().unwrap(), format!("is {tw} x {th} px; the replay image is {w} x {h}")));
+                }
+                Some(metrics::compare(w, h, &img.intensity, t, req.region))
+            }
+            None => None,
+        };
+        planes.push(serde_json::json!({
+            "image": path.file_name().map(|f| f.to_string_lossy().into_owned()),
+            "distance_mm": img.distance * 1e3,
+            "width_px": w, "height_px": h,
+            "pitch_um": [img.grid.pitch[0] * 1e6, img.grid.pitch[1] * 1e6],
+            "centre_mm": [img.centre[0] * 1e3, img.centre[1] * 1e3],
+            "total_power": img.intensity.iter().map(|&v| v as f64).sum::<f64>() * img.grid.pixel_area(),
+            "peaks": pk,
+            "region": region,
+            "target": cmp,
+        }));
+    }
+    let json = serde_json::json!({
+        "plate": req.tif.file_name().map(|f| f.to_string_lossy().into_owned()),
+        "window": [win.x, win.y, win.w, win.h],
+        "illumination": match req.illumination {
+            Illumination::Recorded => serde_json::json!("recorded reference"),
+            Illumination::Plane(t) => serde_json::json!({"plane_tilt_deg": [t[0].to_degrees(), t[1].to_degrees()]}),
+        },
+        "depth_convention": "distance D shows the plane z = D in front of the plate (field propagated by -D)",
+        "planes": planes,
+    });
+    let jp = req.out.with_extension("json");
+    crate::output::sidecar::write_atomically(&jp, (serde_json::to_string_pretty(&json).expect("plain data") + "\n").as_bytes())?;
+    written.push(jp);
+    Ok(written)
+}
