@@ -8,7 +8,10 @@ use fringemill::job::{run_job, JobSpec, ProgressMode, RunOptions};
 use fringemill::synthesis::reference::fringe_at;
 use fringemill::synthesis::Emitter;
 use num_complex::Complex64;
-use tiff::decoder::{Decoder, DecodingResult};
+use tiff::decoder::Decoder;
+
+mod common;
+use common::decode;
 
 const POINTS: &str = "x_mm,y_mm,z_mm,amplitude,phase_rad\n0.010,0.004,0.9,1.0,0.3\n-0.012,-0.006,1.1,0.7,2.2\n0.003,-0.011,1.3,0.9,4.0\n";
 
@@ -24,32 +27,6 @@ fn write_job(dir: &Path, encoding: &str, extra_output: &str) -> std::path::PathB
     let p = dir.join("job.toml");
     std::fs::write(&p, text).unwrap();
     p
-}
-
-/// Decoded samples as u16, one per pixel (1-bit rows unpacked MSB first).
-fn decode(path: &Path) -> (u32, u32, Vec<u16>) {
-    let mut d = Decoder::new(std::fs::File::open(path).unwrap()).unwrap();
-    let (w, h) = d.dimensions().unwrap();
-    let img = d.read_image().unwrap();
-    let v = match img {
-        DecodingResult::U8(b) => {
-            if b.len() == (w as usize * h as usize) {
-                b.into_iter().map(u16::from).collect()
-            } else {
-                let rb = (w as usize).div_ceil(8);
-                let mut out = Vec::new();
-                for r in 0..h as usize {
-                    for c in 0..w as usize {
-                        out.push(((b[r * rb + c / 8] >> (7 - c % 8)) & 1) as u16);
-                    }
-                }
-                out
-            }
-        }
-        DecodingResult::U16(v) => v,
-        other => panic!("unexpected sample type {:?}", std::mem::discriminant(&other)),
-    };
-    (w, h, v)
 }
 
 /// physics.md encodings, written independently of `fringemill::encoding`.

@@ -33,6 +33,9 @@ pub struct Journal {
     pub updates: u64,
     /// The TIFF writer's checkpoint (whole plates).
     pub writer: Option<WriterState>,
+    /// Field runs: fields done and the current row's writer checkpoints.
+    #[serde(default)]
+    pub fields: Option<super::fields::FieldsState>,
 }
 
 /// Journal path for an output (TIFF or part) path.

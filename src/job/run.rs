@@ -12,12 +12,13 @@ use std::time::{Duration, Instant};
 use num_complex::Complex64;
 use rayon::prelude::*;
 
+use super::fields::{manifest_json, FieldEntry, FieldGrid, FieldSink, FieldsState};
 use super::journal::{changed_key, journal_path, Journal, FORMAT};
 use super::progress::{Progress, ProgressMode};
 use super::spec::{EncodingRequest, JobSpec};
 use crate::encoding::Encoding;
 use crate::error::{Error, Result};
-use crate::output::sidecar::{self, write_atomically, SidecarInput};
+use crate::output::sidecar::{self, write_atomically, OutputRecord, SidecarInput};
 use crate::output::tiff::{partial_path, StripWriter, TiffLayout};
 use crate::scene::points::read_points;
 use crate::synthesis::point_sum::{BandScratch, PointSum};
@@ -199,6 +200,12 @@ struct Prepared {
     /// Effective rows per strip.
     rps: u32,
     band_rows: usize,
+    /// Field files, when the job asks for them.
+    fields: Option<FieldGrid>,
+    /// Column ranges encoded separately: the field columns, or the whole width.
+    blocks: Vec<(usize, usize)>,
+    /// Rows of the unit shards are made of: a strip, or a field row.
+    unit_rows: u32,
 }
 
 fn prepare(spec: &JobSpec) -> Result<Prepared> {
@@ -209,15 +216,29 @@ fn prepare(spec: &JobSpec) -> Result<Prepared> {
         EncodingRequest::Fixed(e) => e,
         EncodingRequest::AmplitudeAuto { bits } => Encoding::Amplitude { bits, scale: measure_bipolar_scale(&sum) },
     };
-    let layout = tiff_layout(spec, &encoding);
-    let rps = layout.effective_rows_per_strip();
+    let mut layout = tiff_layout(spec, &encoding);
+    let (fields, blocks, rps, unit_rows) = match spec.field_px {
+        None => {
+            let rps = layout.effective_rows_per_strip();
+            (None, vec![(0, spec.plate.width as usize)], rps, rps)
+        }
+        Some([fw, fh]) => {
+            // Strips must tile each field row exactly.
+            let target = spec.rows_per_strip.unwrap_or_else(|| TiffLayout::default_rows_per_strip(fw, encoding.bits_per_sample())).min(fh);
+            let rps = (1..=target).rev().find(|r| fh % r == 0).unwrap_or(1);
+            layout.rows_per_strip = rps;
+            let grid = FieldGrid { field: [fw, fh], plate: spec.plate, output: spec.output.clone(), layout: layout.clone() };
+            let blocks = grid.column_blocks();
+            (Some(grid), blocks, rps, fh)
+        }
+    };
     let band_rows = band_rows_for(spec, rps);
-    Ok(Prepared { sum, encoding, layout, emitters: n, rps, band_rows })
+    Ok(Prepared { sum, encoding, layout, emitters: n, rps, band_rows, fields, blocks, unit_rows })
 }
 
-/// Number of strips of the plate.
-fn strip_count(p: &Prepared) -> u32 {
-    p.sum.plate().height.div_ceil(p.rps)
+/// Number of shard units (strips, or field rows) of the plate.
+fn unit_count(p: &Prepared) -> u32 {
+    p.sum.plate().height.div_ceil(p.unit_rows)
 }
 
 /// Contiguous strip ranges of the shards, balanced by estimated work (emitters cluster, so equal
@@ -254,27 +275,35 @@ pub fn shard_strips(sum: &PointSum, rps: u32, count: u32) -> Vec<(u32, u32)> {
     out
 }
 
-/// Where one run writes its rows: the TIFF writer (whole plates) or a raw part file (shards).
+/// Where one run writes its rows: the TIFF writer (whole plates), a raw part file (shards of a
+/// single-file plate) or field files.
 enum Sink {
     Tiff(StripWriter),
     Part { file: std::io::BufWriter<File>, path: PathBuf },
+    Fields(FieldSink),
 }
 
+/// What a checkpoint of a sink records in the journal.
+type SinkState = (Option<crate::output::tiff::WriterState>, Option<FieldsState>);
+
 impl Sink {
-    fn write_rows(&mut self, bytes: &[u8]) -> Result<()> {
+    /// Appends a band starting at plate row `row0`, one block of encoded rows per column block.
+    fn write_band(&mut self, row0: u32, blocks: &[Vec<u8>]) -> Result<()> {
         match self {
-            Sink::Tiff(w) => w.write_rows(bytes),
-            Sink::Part { file, path } => file.write_all(bytes).map_err(|e| Error::io(&*path, e)),
+            Sink::Tiff(w) => w.write_rows(&blocks[0]),
+            Sink::Part { file, path } => file.write_all(&blocks[0]).map_err(|e| Error::io(&*path, e)),
+            Sink::Fields(f) => f.write_band(row0, blocks),
         }
     }
-    /// Makes what was written durable; returns the TIFF writer state if any.
-    fn sync(&mut self) -> Result<Option<crate::output::tiff::WriterState>> {
+    /// Makes what was written durable; returns what the journal must record to continue.
+    fn sync(&mut self) -> Result<SinkState> {
         match self {
-            Sink::Tiff(w) => w.checkpoint().map(Some),
+            Sink::Tiff(w) => Ok((Some(w.checkpoint()?), None)),
             Sink::Part { file, path } => {
                 file.flush().and_then(|_| file.get_ref().sync_data()).map_err(|e| Error::io(&*path, e))?;
-                Ok(None)
+                Ok((None, None))
             }
+            Sink::Fields(f) => Ok((None, Some(f.checkpoint()?))),
         }
     }
 }
@@ -346,7 +375,7 @@ fn find_resume(spec: &JobSpec, data: &Path, journal: &Path, shard: Option<[u32; 
     if j.shard != shard {
         return Err(Error::job(&spec.path, format!("{} belongs to another shard split; run with --restart", journal.display())));
     }
-    if !data.exists() {
+    if j.fields.is_none() && !data.exists() {
         let _ = std::fs::remove_file(journal);
         return Ok(None);
     }
@@ -358,34 +387,39 @@ fn find_resume(spec: &JobSpec, data: &Path, journal: &Path, shard: Option<[u32; 
 pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
     let prep = prepare(spec)?;
     ensure_parent(&spec.output)?;
-    let strips = strip_count(&prep);
+    let units = unit_count(&prep);
     let row_bytes = prep.encoding.row_bytes(spec.plate.width as usize);
-    let (first_strip, end_strip, data_path, shard_tag) = match opts.shard {
-        None => (0, strips, partial_path(&spec.output), None),
-        Some(sh) => {
-            let split = shard_strips(&prep.sum, prep.rps, sh.count);
-            let (a, b) = split[sh.index as usize];
-            (a, b, partial_path(&part_path(&spec.output, sh)), Some([sh.index, sh.count]))
-        }
+    let (first_unit, end_unit) = match opts.shard {
+        None => (0, units),
+        Some(sh) => shard_strips(&prep.sum, prep.unit_rows, sh.count)[sh.index as usize],
+    };
+    let shard_tag = opts.shard.map(|sh| [sh.index, sh.count]);
+    // The file whose journal records progress: the TIFF, the shard's part, or the field manifest.
+    let data_path = match (&prep.fields, opts.shard) {
+        (None, None) => partial_path(&spec.output),
+        (None, Some(sh)) => partial_path(&part_path(&spec.output, sh)),
+        (Some(g), None) => partial_path(&g.manifest_path()),
+        (Some(g), Some(sh)) => partial_path(&part_path(&g.manifest_path(), sh)),
     };
     let journal = journal_path(&data_path);
     let resume = find_resume(spec, &data_path, &journal, shard_tag, opts.restart)?;
-    let first_row = first_strip * prep.rps;
-    let end_row = (end_strip * prep.rps).min(spec.plate.height);
+    let first_row = first_unit * prep.unit_rows;
+    let end_row = (end_unit * prep.unit_rows).min(spec.plate.height);
     let (rows_done, updates0) = resume.as_ref().map(|j| (j.rows_done, j.updates)).unwrap_or((0, 0));
     // Room on disk for what remains.
-    let remaining = match opts.shard {
-        None => prep.layout.estimated_file_bytes().saturating_sub(resume.as_ref().and_then(|j| j.writer.as_ref()).map(|w| w.file_len).unwrap_or(0)),
-        Some(_) => (end_row - first_row - rows_done) as u64 * row_bytes as u64,
+    let remaining = match (&prep.fields, opts.shard) {
+        (None, None) => prep.layout.estimated_file_bytes().saturating_sub(resume.as_ref().and_then(|j| j.writer.as_ref()).map(|w| w.file_len).unwrap_or(0)),
+        _ => (end_row - first_row - rows_done) as u64 * row_bytes as u64,
     };
     check_space(data_path.parent().unwrap_or(Path::new(".")), remaining)?;
-    let mut sink = match (&opts.shard, resume) {
-        (None, Some(j)) => {
+    let mut sink = match (&prep.fields, &opts.shard, resume) {
+        (Some(g), _, resumed) => Sink::Fields(FieldSink::new(g.clone(), first_row + rows_done, resumed.and_then(|j| j.fields))?),
+        (None, None, Some(j)) => {
             let state = j.writer.ok_or_else(|| Error::input(&journal, "journal without writer state; run with --restart"))?;
             Sink::Tiff(StripWriter::resume(&spec.output, prep.layout.clone(), state)?)
         }
-        (None, None) => Sink::Tiff(StripWriter::create(&spec.output, prep.layout.clone())?),
-        (Some(_), resumed) => {
+        (None, None, None) => Sink::Tiff(StripWriter::create(&spec.output, prep.layout.clone())?),
+        (None, Some(_), resumed) => {
             let mut f = OpenOptions::new().create(true).write(true).truncate(resumed.is_none()).open(&data_path).map_err(|e| Error::io(&data_path, e))?;
             let keep = rows_done as u64 * row_bytes as u64;
             f.set_len(keep).and_then(|_| f.seek(SeekFrom::Start(keep)).map(|_| ())).map_err(|e| Error::io(&data_path, e))?;
@@ -398,12 +432,16 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
         Ok(u) => u,
         Err(e) => {
             let checkpointed = journal.exists();
-            if let Sink::Tiff(w) = sink {
-                if !checkpointed {
-                    let _ = w.abandon();
+            if !checkpointed {
+                match sink {
+                    Sink::Tiff(w) => {
+                        let _ = w.abandon();
+                    }
+                    Sink::Part { .. } => {
+                        let _ = std::fs::remove_file(&data_path);
+                    }
+                    Sink::Fields(f) => f.abandon(),
                 }
-            } else if !checkpointed {
-                let _ = std::fs::remove_file(&data_path);
             }
             return Err(match e {
                 Error::Interrupted(_) | Error::Job { .. } => e,
@@ -416,7 +454,7 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
         Sink::Tiff(w) => {
             let finished = w.finish()?;
             let sidecar = sidecar_path(&spec.output);
-            let input = SidecarInput { spec, encoding: &prep.encoding, layout: &prep.layout, tiff: &finished, emitters: prep.emitters, unreachable: prep.sum.unreachable(), updates };
+            let input = SidecarInput { spec, encoding: &prep.encoding, layout: &prep.layout, output: OutputRecord::Tiff(&finished), emitters: prep.emitters, unreachable: prep.sum.unreachable(), updates };
             if let Err(e) = sidecar::write(&sidecar, &input) {
                 let _ = std::fs::remove_file(&finished.path);
                 return Err(e);
@@ -429,13 +467,52 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
             drop(file);
             let sh = opts.shard.expect("part sink only for shards");
             let final_part = part_path(&spec.output, sh);
-            let meta = PartMeta { format: FORMAT.into(), job_sha256: spec.sha256.clone(), shard: [sh.index, sh.count], rows: [first_row, end_row], updates, row_bytes: row_bytes as u64 };
+            let meta = PartMeta { format: FORMAT.into(), job_sha256: spec.sha256.clone(), shard: [sh.index, sh.count], rows: [first_row, end_row], updates, row_bytes: row_bytes as u64, fields: Vec::new() };
             std::fs::rename(&path, &final_part).map_err(|e| Error::io(&final_part, e))?;
             write_atomically(&part_meta_path(&final_part), &serde_json::to_vec_pretty(&meta).expect("plain data"))?;
             let _ = std::fs::remove_file(&journal);
             Ok(RunSummary { tiff: final_part.clone(), sidecar: part_meta_path(&final_part), emitters: prep.emitters, updates, encoding: prep.encoding })
         }
+        Sink::Fields(mut f) => {
+            f.finish_row()?;
+            let grid = f.grid().clone();
+            let entries = std::mem::take(&mut f.done);
+            match opts.shard {
+                Some(sh) => {
+                    // A shard's fields are complete files already; its record lists them for assemble.
+                    let rec = part_path(&grid.manifest_path(), sh);
+                    let meta = PartMeta { format: FORMAT.into(), job_sha256: spec.sha256.clone(), shard: [sh.index, sh.count], rows: [first_row, end_row], updates, row_bytes: row_bytes as u64, fields: entries };
+                    write_atomically(&rec, &serde_json::to_vec_pretty(&meta).expect("plain data"))?;
+                    let _ = std::fs::remove_file(&journal);
+                    Ok(RunSummary { tiff: rec.clone(), sidecar: rec, emitters: prep.emitters, updates, encoding: prep.encoding })
+                }
+                None => {
+                    let summary = finish_fields(spec, &prep, &grid, &entries, updates)?;
+                    let _ = std::fs::remove_file(&journal);
+                    Ok(summary)
+                }
+            }
+        }
     }
+}
+
+/// Writes the field manifest and the plate's sidecar.
+fn finish_fields(spec: &JobSpec, prep: &Prepared, grid: &FieldGrid, entries: &[FieldEntry], updates: u64) -> Result<RunSummary> {
+    let manifest = grid.manifest_path();
+    let text = serde_json::to_string_pretty(&manifest_json(grid, entries, &spec.sha256)).expect("plain data") + "\n";
+    write_atomically(&manifest, text.as_bytes())?;
+    let sidecar = sidecar_path(&spec.output);
+    let input = SidecarInput {
+        spec,
+        encoding: &prep.encoding,
+        layout: &prep.layout,
+        output: OutputRecord::Fields { manifest: &manifest, count: entries.len(), field_px: grid.field },
+        emitters: prep.emitters,
+        unreachable: prep.sum.unreachable(),
+        updates,
+    };
+    sidecar::write(&sidecar, &input)?;
+    Ok(RunSummary { tiff: manifest, sidecar, emitters: prep.emitters, updates, encoding: prep.encoding })
 }
 
 /// Part file of a shard: `NAME.tif.part-K-of-N` (1-based K).
@@ -460,6 +537,9 @@ struct PartMeta {
     rows: [u32; 2],
     updates: u64,
     row_bytes: u64,
+    /// Field runs: the fields this shard wrote.
+    #[serde(default)]
+    fields: Vec<FieldEntry>,
 }
 
 struct StreamCtx<'a> {
@@ -492,38 +572,45 @@ fn stream_rows(ctx: &StreamCtx, sink: &mut Sink, opts: &RunOptions) -> Result<u6
     };
     let mut progress = Progress::new(&label, total, opts.progress);
     progress.advance(ctx.updates_before as f64);
-    let row_bytes = prep.encoding.row_bytes(w);
+    let blocks = &prep.blocks;
     let mut updates = ctx.updates_before;
     let mut rows_done = ctx.rows_before;
     let mut last_checkpoint = Instant::now();
     let encoding = prep.encoding;
     for chunk in bands.chunks(wave) {
-        let done: Vec<(Vec<u8>, u64)> = chunk
+        let done: Vec<(usize, usize, Vec<Vec<u8>>, u64)> = chunk
             .par_iter()
             .map_init(
                 || (BandScratch::default(), Vec::<Complex64>::new()),
                 |(scratch, field), &(r0, n)| {
                     field.resize(n * w, Complex64::new(0.0, 0.0));
                     let u = prep.sum.compute_band(r0, n, field, scratch);
-                    let mut bytes = vec![0u8; n * row_bytes];
-                    for (f, o) in field.chunks_exact(w).zip(bytes.chunks_exact_mut(row_bytes)) {
-                        encoding.encode_row(f, o);
-                    }
-                    (bytes, u)
+                    let out = blocks
+                        .iter()
+                        .map(|&(c0, c1)| {
+                            let rb = encoding.row_bytes(c1 - c0);
+                            let mut bytes = vec![0u8; n * rb];
+                            for (f, o) in field.chunks_exact(w).zip(bytes.chunks_exact_mut(rb)) {
+                                encoding.encode_row(&f[c0..c1], o);
+                            }
+                            bytes
+                        })
+                        .collect();
+                    (r0, n, out, u)
                 },
             )
             .collect();
-        for (bytes, u) in done {
-            sink.write_rows(&bytes)?;
+        for (r0, n, bytes, u) in done {
+            sink.write_band(r0 as u32, &bytes)?;
             updates += u;
-            rows_done += (bytes.len() / row_bytes) as u32;
+            rows_done += n as u32;
             progress.advance(u as f64);
         }
         let stop = opts.stop.load(Ordering::SeqCst);
         let finished = start - ctx.rows_before + rows_done >= end;
         if (stop || last_checkpoint.elapsed() >= opts.checkpoint_every) && !finished {
-            let writer = sink.sync()?;
-            Journal { format: FORMAT.into(), job_sha256: ctx.spec.sha256.clone(), job_toml: ctx.spec.text.clone(), shard: ctx.shard, rows_done, updates, writer }.write(ctx.journal)?;
+            let (writer, fields) = sink.sync()?;
+            Journal { format: FORMAT.into(), job_sha256: ctx.spec.sha256.clone(), job_toml: ctx.spec.text.clone(), shard: ctx.shard, rows_done, updates, writer, fields }.write(ctx.journal)?;
             last_checkpoint = Instant::now();
             if stop {
                 progress.abandon();
@@ -542,6 +629,9 @@ fn stream_rows(ctx: &StreamCtx, sink: &mut Sink, opts: &RunOptions) -> Result<u6
 /// removes the parts. All parts of one split (same N, same job) must be present.
 pub fn assemble(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
     let prep = prepare(spec)?;
+    if let Some(grid) = prep.fields.clone() {
+        return assemble_fields(spec, &prep, &grid);
+    }
     let dir = spec.output.parent().map(Path::to_path_buf).unwrap_or_default();
     let dir_read = if dir.as_os_str().is_empty() { PathBuf::from(".") } else { dir.clone() };
     let name = spec.output.file_name().map(|f| f.to_string_lossy().into_owned()).unwrap_or_default();
@@ -604,7 +694,7 @@ pub fn assemble(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
     progress.finish();
     let finished = writer.finish()?;
     let sidecar = sidecar_path(&spec.output);
-    let input = SidecarInput { spec, encoding: &prep.encoding, layout: &prep.layout, tiff: &finished, emitters: prep.emitters, unreachable: prep.sum.unreachable(), updates };
+    let input = SidecarInput { spec, encoding: &prep.encoding, layout: &prep.layout, output: OutputRecord::Tiff(&finished), emitters: prep.emitters, unreachable: prep.sum.unreachable(), updates };
     if let Err(e) = sidecar::write(&sidecar, &input) {
         let _ = std::fs::remove_file(&finished.path);
         return Err(e);
@@ -614,6 +704,47 @@ pub fn assemble(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
         let _ = std::fs::remove_file(mp);
     }
     Ok(RunSummary { tiff: finished.path, sidecar, emitters: prep.emitters, updates, encoding: prep.encoding })
+}
+
+/// Field runs: the shards wrote complete field files; merge their records into the manifest.
+fn assemble_fields(spec: &JobSpec, prep: &Prepared, grid: &FieldGrid) -> Result<RunSummary> {
+    let manifest = grid.manifest_path();
+    let dir = manifest.parent().filter(|d| !d.as_os_str().is_empty()).map(Path::to_path_buf).unwrap_or_else(|| PathBuf::from("."));
+    let prefix = format!("{}.part-", manifest.file_name().map(|f| f.to_string_lossy().into_owned()).unwrap_or_default());
+    let mut count = None;
+    for e in std::fs::read_dir(&dir).map_err(|e| Error::io(&dir, e))?.flatten() {
+        let f = e.file_name().to_string_lossy().into_owned();
+        if let Some((_, n)) = f.strip_prefix(&prefix).and_then(|r| r.split_once("-of-")) {
+            if let Ok(n) = n.parse::<u32>() {
+                count = Some(count.map_or(n, |c: u32| c.max(n)));
+            }
+        }
+    }
+    let count = count.ok_or_else(|| Error::job(&spec.path, format!("no finished shard records of {} found in {}", manifest.display(), dir.display())))?;
+    let (mut entries, mut updates, mut next_row, mut recs) = (Vec::new(), 0u64, 0u32, Vec::new());
+    for k in 0..count {
+        let rec = part_path(&manifest, Shard { index: k, count });
+        let bytes = std::fs::read(&rec).map_err(|_| Error::job(&spec.path, format!("shard {}/{count} is not finished: {} is missing", k + 1, rec.display())))?;
+        let m: PartMeta = serde_json::from_slice(&bytes).map_err(|e| Error::input(&rec, format!("damaged shard record: {e}")))?;
+        if m.job_sha256 != spec.sha256 {
+            return Err(Error::job(&spec.path, format!("{} was computed from another version of the job; run that shard again", rec.display())));
+        }
+        if m.rows[0] != next_row {
+            return Err(Error::input(&rec, format!("rows {:?} do not continue at row {next_row}", m.rows)));
+        }
+        next_row = m.rows[1];
+        updates += m.updates;
+        entries.extend(m.fields);
+        recs.push(rec);
+    }
+    if next_row != spec.plate.height {
+        return Err(Error::job(&spec.path, format!("the shards cover rows 0..{next_row} of {}", spec.plate.height)));
+    }
+    let summary = finish_fields(spec, prep, grid, &entries, updates)?;
+    for r in recs {
+        let _ = std::fs::remove_file(r);
+    }
+    Ok(summary)
 }
 
 /// What `plan` reports.

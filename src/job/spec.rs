@@ -89,6 +89,8 @@ pub struct RawOutput {
     pub rows_per_strip: Option<i64>,
     /// Force BigTIFF (true) or classic TIFF (false); default automatic.
     pub bigtiff: Option<bool>,
+    /// Split the plate into field files of [w, h] pixels.
+    pub field_px: Option<[i64; 2]>,
 }
 
 /// The job file as written.
@@ -159,6 +161,8 @@ pub struct JobSpec {
     pub rows_per_strip: Option<u32>,
     /// Forced TIFF flavour, if set.
     pub bigtiff: Option<bool>,
+    /// Field size [w, h], if the plate is split into field files.
+    pub field_px: Option<[u32; 2]>,
 }
 
 /// Largest accepted side, pixels (a 4 Gpx-wide row would not fit a TIFF strip).
@@ -361,6 +365,18 @@ impl JobSpec {
             compression,
             rows_per_strip,
             bigtiff: o.bigtiff,
+            field_px: match o.field_px {
+                None => None,
+                Some(f) => {
+                    let f = super::fields::validate(f, path)?;
+                    if let Some(r) = rows_per_strip {
+                        if f[1] % r != 0 {
+                            return Err(bad(format!("[output] rows_per_strip = {r} must divide the field height {}", f[1])));
+                        }
+                    }
+                    Some([f[0].min(plate.width), f[1].min(plate.height)])
+                }
+            },
         })
     }
 }

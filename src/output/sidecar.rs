@@ -24,14 +24,29 @@ pub struct SidecarInput<'a> {
     pub encoding: &'a Encoding,
     /// TIFF layout.
     pub layout: &'a TiffLayout,
-    /// The finished TIFF.
-    pub tiff: &'a FinishedTiff,
+    /// What was written.
+    pub output: OutputRecord<'a>,
     /// Emitters summed.
     pub emitters: usize,
     /// Emitters with no support on the plate.
     pub unreachable: usize,
     /// Point-pixel updates done.
     pub updates: u64,
+}
+
+/// What a run wrote: one TIFF, or a set of field files with their manifest.
+pub enum OutputRecord<'a> {
+    /// One TIFF.
+    Tiff(&'a FinishedTiff),
+    /// Field files.
+    Fields {
+        /// The manifest file.
+        manifest: &'a Path,
+        /// Number of fields.
+        count: usize,
+        /// Field size.
+        field_px: [u32; 2],
+    },
 }
 
 /// The sidecar as a JSON value.
@@ -68,6 +83,30 @@ pub fn to_json(i: &SidecarInput) -> Value {
         })
         .collect();
     let s = &i.spec.synthesis;
+    let compression = match i.layout.compression {
+        Compression::None => "none",
+        Compression::Deflate => "deflate",
+    };
+    let output = match &i.output {
+        OutputRecord::Tiff(t) => json!({
+            "file": t.path.file_name().map(|f| f.to_string_lossy().into_owned()),
+            "bytes": t.bytes,
+            "sha256": t.sha256,
+            "bigtiff": t.bigtiff,
+            "compression": compression,
+            "rows_per_strip": i.layout.rows_per_strip,
+            "strips": t.strips,
+            "photometric": "min-is-black",
+        }),
+        OutputRecord::Fields { manifest, count, field_px } => json!({
+            "fields_manifest": manifest.file_name().map(|f| f.to_string_lossy().into_owned()),
+            "fields": count,
+            "field_px": field_px,
+            "compression": compression,
+            "rows_per_strip": i.layout.rows_per_strip,
+            "photometric": "min-is-black",
+        }),
+    };
     json!({
         "format": "fringemill-sidecar",
         "format_version": FORMAT_VERSION,
@@ -94,16 +133,7 @@ pub fn to_json(i: &SidecarInput) -> Value {
             "point_pixel_updates": i.updates,
         },
         "encoding": encoding,
-        "output": {
-            "file": i.tiff.path.file_name().map(|f| f.to_string_lossy().into_owned()),
-            "bytes": i.tiff.bytes,
-            "sha256": i.tiff.sha256,
-            "bigtiff": i.tiff.bigtiff,
-            "compression": match i.layout.compression { Compression::None => "none", Compression::Deflate => "deflate" },
-            "rows_per_strip": i.layout.rows_per_strip,
-            "strips": i.tiff.strips,
-            "photometric": "min-is-black",
-        },
+        "output": output,
     })
 }
 

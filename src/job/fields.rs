@@ -1,0 +1,205 @@
+//! Write fields: the plate split into a grid of complete TIFF files (the unit many writers expose
+//! at once), `NAME_rRRR_cCCC.tif` by field row and column, listed in a manifest `NAME.fields.json`
+//! with each field's physical origin, size and SHA-256.
+//!
+//! Rows stream through one row of fields at a time: a [`FieldSink`] holds the writers of the
+//! current field row only, so memory stays set by the band, whatever the plate.
+
+use std::path::{Path, PathBuf};
+
+use serde::{Deserialize, Serialize};
+
+use crate::error::{Error, Result};
+use crate::optics::Plate;
+use crate::output::tiff::{StripWriter, TiffLayout, WriterState};
+
+/// One finished field.
+#[derive(Clone, Debug, Serialize, Deserialize, PartialEq)]
+pub struct FieldEntry {
+    /// File name (in the output's folder).
+    pub file: String,
+    /// Field row (0 = top).
+    pub row: u32,
+    /// Field column (0 = left).
+    pub col: u32,
+    /// Plate pixel of the field's top-left pixel: [column, row].
+    pub first_px: [u32; 2],
+    /// Size in pixels [w, h].
+    pub size_px: [u32; 2],
+    /// Plate coordinates of the field's top-left corner (pixel edge, not centre), mm: [x, y], y up.
+    pub origin_mm: [f64; 2],
+    /// Physical size [w, h], mm.
+    pub size_mm: [f64; 2],
+    /// File size.
+    pub bytes: u64,
+    /// SHA-256 of the file.
+    pub sha256: String,
+}
+
+/// Resume state of a field run: fields done and the writers of the field row in progress.
+#[derive(Clone, Debug, Serialize, Deserialize, PartialEq, Default)]
+pub struct FieldsState {
+    /// Finished fields, in order.
+    pub done: Vec<FieldEntry>,
+    /// Checkpoints of the current field row's writers (empty at a field-row boundary).
+    pub writers: Vec<WriterState>,
+}
+
+/// The grid of fields of a plate.
+#[derive(Clone, Debug)]
+pub struct FieldGrid {
+    /// Field size [w, h] (the last row and column may be smaller).
+    pub field: [u32; 2],
+    /// Plate.
+    pub plate: Plate,
+    /// Final output path NAME.tif (fields are named after it).
+    pub output: PathBuf,
+    /// Layout template (width/height replaced per field).
+    pub layout: TiffLayout,
+}
+
+impl FieldGrid {
+    /// Number of field columns and rows.
+    pub fn counts(&self) -> [u32; 2] {
+        [self.plate.width.div_ceil(self.field[0]), self.plate.height.div_ceil(self.field[1])]
+    }
+    /// Column ranges [c0, c1) of the field columns.
+    pub fn column_blocks(&self) -> Vec<(usize, usize)> {
+        (0..self.counts()[0]).map(|c| ((c * self.field[0]) as usize, ((c + 1) * self.field[0]).min(self.plate.width) as usize)).collect()
+    }
+    /// Path of field (row, col).
+    pub fn path(&self, row: u32, col: u32) -> PathBuf {
+        let n = self.counts();
+        let digits = n[0].max(n[1]).saturating_sub(1).to_string().len().max(3);
+        let stem = self.output.file_stem().map(|s| s.to_string_lossy().into_owned()).unwrap_or_default();
+        let ext = self.output.extension().map(|s| s.to_string_lossy().into_owned()).unwrap_or_else(|| "tif".into());
+        self.output.with_file_name(format!("{stem}_r{row:0digits$}_c{col:0digits$}.{ext}"))
+    }
+    /// Manifest path NAME.fields.json.
+    pub fn manifest_path(&self) -> PathBuf {
+        let stem = self.output.file_stem().map(|s| s.to_string_lossy().into_owned()).unwrap_or_default();
+        self.output.with_file_name(format!("{stem}.fields.json"))
+    }
+    fn layout(&self, row: u32, col: u32) -> TiffLayout {
+        let mut l = self.layout.clone();
+        l.width = ((col + 1) * self.field[0]).min(self.plate.width) - col * self.field[0];
+        l.height = ((row + 1) * self.field[1]).min(self.plate.height) - row * self.field[1];
+        l.rows_per_strip = l.rows_per_strip.min(l.height);
+        l
+    }
+    fn entry(&self, row: u32, col: u32, bytes: u64, sha256: String, path: &Path) -> FieldEntry {
+        let l = self.layout(row, col);
+        let p = &self.plate;
+        let (c0, r0) = (col * self.field[0], row * self.field[1]);
+        FieldEntry {
+            file: path.file_name().map(|f| f.to_string_lossy().into_owned()).unwrap_or_default(),
+            row,
+            col,
+            first_px: [c0, r0],
+            size_px: [l.width, l.height],
+            origin_mm: [(p.x_of_col(c0 as f64) - p.pitch[0] / 2.0) * 1e3, (p.y_of_row(r0 as f64) + p.pitch[1] / 2.0) * 1e3],
+            size_mm: [l.width as f64 * p.pitch[0] * 1e3, l.height as f64 * p.pitch[1] * 1e3],
+            bytes,
+            sha256,
+        }
+    }
+}
+
+/// Streams rows into the fields of one field row at a time.
+pub struct FieldSink {
+    grid: FieldGrid,
+    /// Field row of `writers`.
+    row: u32,
+    writers: Vec<StripWriter>,
+    /// Finished fields.
+    pub done: Vec<FieldEntry>,
+}
+
+impl FieldSink {
+    /// Starts (or resumes, from `state`) writing fields; `next_row` is the first plate row to come.
+    pub fn new(grid: FieldGrid, next_row: u32, state: Option<FieldsState>) -> Result<FieldSink> {
+        let state = state.unwrap_or_default();
+        let row = next_row / grid.field[1];
+        let mut writers = Vec::new();
+        if !state.writers.is_empty() {
+            for (col, ws) in state.writers.into_iter().enumerate() {
+                let col = col as u32;
+                writers.push(StripWriter::resume(&grid.path(row, col), grid.layout(row, col), ws)?);
+            }
+        }
+        Ok(FieldSink { grid, row, writers, done: state.done })
+    }
+
+    /// Appends the band starting at plate row `row0`: one block of encoded rows per field column.
+    /// Bands never straddle field rows (band heights divide the field height).
+    pub fn write_band(&mut self, row0: u32, blocks: &[Vec<u8>]) -> Result<()> {
+        let fr = row0 / self.grid.field[1];
+        if self.writers.is_empty() || fr != self.row {
+            self.finish_row()?;
+            self.row = fr;
+            for col in 0..self.grid.counts()[0] {
+                self.writers.push(StripWriter::create(&self.grid.path(fr, col), self.grid.layout(fr, col))?);
+            }
+        }
+        for (w, b) in self.writers.iter_mut().zip(blocks) {
+            w.write_rows(b)?;
+        }
+        Ok(())
+    }
+
+    /// Finishes the writers of the current field row (all rows written).
+    pub fn finish_row(&mut self) -> Result<()> {
+        let row = self.row;
+        for (col, w) in std::mem::take(&mut self.writers).into_iter().enumerate() {
+            let f = w.finish()?;
+            let e = self.grid.entry(row, col as u32, f.bytes, f.sha256, &f.path);
+            self.done.push(e);
+        }
+        Ok(())
+    }
+
+    /// Syncs the writers and returns the resume state.
+    pub fn checkpoint(&mut self) -> Result<FieldsState> {
+        let mut ws = Vec::new();
+        for w in &mut self.writers {
+            ws.push(w.checkpoint()?);
+        }
+        Ok(FieldsState { done: self.done.clone(), writers: ws })
+    }
+
+    /// Removes the partial files of the current row (failure before any checkpoint).
+    pub fn abandon(self) {
+        for w in self.writers {
+            let _ = w.abandon();
+        }
+    }
+
+    /// The grid.
+    pub fn grid(&self) -> &FieldGrid {
+        &self.grid
+    }
+}
+
+/// The manifest JSON of a finished field set.
+pub fn manifest_json(grid: &FieldGrid, entries: &[FieldEntry], job_sha256: &str) -> serde_json::Value {
+    let n = grid.counts();
+    serde_json::json!({
+        "format": "fringemill-fields",
+        "format_version": 1,
+        "job_sha256": job_sha256,
+        "plate_px": [grid.plate.width, grid.plate.height],
+        "pitch_um": [grid.plate.pitch[0] * 1e6, grid.plate.pitch[1] * 1e6],
+        "field_px": grid.field,
+        "fields_x": n[0], "fields_y": n[1],
+        "origin_convention": "origin_mm is the field's top-left corner in plate coordinates (x right, y up, plate centre at 0)",
+        "fields": entries,
+    })
+}
+
+/// Checks a field size against the plate: each side at least 1.
+pub fn validate(field: [i64; 2], path: &Path) -> Result<[u32; 2]> {
+    if field.iter().any(|&v| v < 1 || v > u32::MAX as i64) {
+        return Err(Error::job(path, format!("[output] field_px = {field:?}: each side must be at least 1 pixel")));
+    }
+    Ok([field[0] as u32, field[1] as u32])
+}
