@@ -23,10 +23,25 @@ fn reduced_cycles(phase: f64) -> f64 {
     t - t.floor()
 }
 
+/// Decides whether an emitter is seen from a point of the plate (occlusion by the scene).
+/// Implemented outside this module (ray casting against the scene's triangles).
+pub trait Visibility: Send + Sync {
+    /// True when emitter `j` (index in summation order) is visible from `eye` (plate coordinates, m).
+    fn visible(&self, j: usize, eye: [f64; 3]) -> bool;
+}
+
+/// One scene recorded with its own reference (angle multiplexing): its emitters are the index range.
+#[derive(Clone, Copy, Debug)]
+struct Channel {
+    reference: Reference,
+    start: usize,
+    end: usize,
+}
+
 /// A prepared point-source summation over a plate.
 pub struct PointSum {
     plate: Plate,
-    reference: Reference,
+    channels: Vec<Channel>,
     emitters: Vec<Emitter>,
     opts: PointSumOptions,
     /// Rows [start, end) each emitter may reach (conservative), or None.
@@ -35,6 +50,9 @@ pub struct PointSum {
     /// x of every column centre.
     xs: Vec<f64>,
     isa: KernelIsa,
+    /// Occlusion tested from the centre of each tile (band x `tile_cols` columns), if any.
+    visibility: Option<std::sync::Arc<dyn Visibility>>,
+    tile_cols: usize,
 }
 
 /// Scratch buffers a worker reuses from band to band.
@@ -46,32 +64,51 @@ pub struct BandScratch {
     re: Vec<f64>,
     im: Vec<f64>,
     ref_cycles: Vec<f64>,
+    sum_row: Vec<Complex64>,
+    /// visible[k * tiles + t]: candidate k seen from tile t's centre.
+    visible: Vec<bool>,
 }
 
 impl PointSum {
-    /// Prepares the summation: computes each emitter's conservative row range on the plate.
+    /// Prepares the summation with one reference: computes each emitter's conservative row range.
     pub fn new(plate: Plate, reference: Reference, emitters: Vec<Emitter>, opts: PointSumOptions) -> Self {
+        Self::with_channels(plate, vec![(reference, emitters)], opts)
+    }
+
+    /// Several scenes, each recorded with its own reference: F = sum over channels of O_c conj(R_c).
+    /// Emitters are summed channel by channel, in order.
+    pub fn with_channels(plate: Plate, channels: Vec<(Reference, Vec<Emitter>)>, opts: PointSumOptions) -> Self {
         let half_band = if opts.anti_alias { plate.nyquist_cosines() } else { [f64::INFINITY; 2] };
         let size = plate.size();
-        let (sx, sy) = reference.direction_range([-size[0] / 2.0, size[0] / 2.0], [-size[1] / 2.0, size[1] / 2.0]);
-        let (wx, wy) = direction_window(sx, sy, half_band);
-        let rows = emitters
-            .iter()
-            .map(|e| {
-                if opts.anti_alias {
-                    plate_rows(&plate, e, wx, wy, opts.approximation)
-                } else {
-                    Some((0, plate.height as usize))
-                }
-            })
-            .collect();
+        let mut all = Vec::new();
+        let mut rows = Vec::new();
+        let mut chans = Vec::new();
+        for (reference, emitters) in channels {
+            let (sx, sy) = reference.direction_range([-size[0] / 2.0, size[0] / 2.0], [-size[1] / 2.0, size[1] / 2.0]);
+            let (wx, wy) = direction_window(sx, sy, half_band);
+            let start = all.len();
+            for e in emitters {
+                rows.push(if opts.anti_alias { plate_rows(&plate, &e, wx, wy, opts.approximation) } else { Some((0, plate.height as usize)) });
+                all.push(e);
+            }
+            chans.push(Channel { reference, start, end: all.len() });
+        }
         let xs = (0..plate.width).map(|c| plate.x_of_col(c as f64)).collect();
-        PointSum { plate, reference, emitters, opts, rows, half_band, xs, isa: kernels::detect() }
+        PointSum { plate, channels: chans, emitters: all, opts, rows, half_band, xs, isa: kernels::detect(), visibility: None, tile_cols: 512 }
     }
 
     /// Forces one copy of the inner loops (tests compare them).
     pub fn with_isa(mut self, isa: KernelIsa) -> Self {
         self.isa = isa;
+        self
+    }
+
+    /// Occlusion, tested per tile: an emitter contributes to a tile (a band of rows by `tile_cols`
+    /// columns) only if it is visible from the tile's centre on the plate (parallax-correct to the
+    /// tile size).
+    pub fn with_visibility(mut self, v: std::sync::Arc<dyn Visibility>, tile_cols: usize) -> Self {
+        self.visibility = Some(v);
+        self.tile_cols = tile_cols.max(1);
         self
     }
 
@@ -93,10 +130,14 @@ impl PointSum {
         self.rows.iter().filter(|r| r.is_none()).count()
     }
 
+    fn channel_of(&self, j: usize) -> &Channel {
+        self.channels.iter().find(|c| j < c.end).expect("emitter index in range")
+    }
+
     /// Direction window (emitter directions that may pass the test) on the row at height y.
-    fn row_window(&self, y: f64) -> ([f64; 2], [f64; 2]) {
+    fn row_window(&self, reference: &Reference, y: f64) -> ([f64; 2], [f64; 2]) {
         let half = self.plate.size()[0] / 2.0;
-        let (sx, sy) = self.reference.direction_range([-half, half], [y, y]);
+        let (sx, sy) = reference.direction_range([-half, half], [y, y]);
         direction_window(sx, sy, self.half_band)
     }
 
@@ -107,7 +148,7 @@ impl PointSum {
             return Some((0, self.plate.width as usize));
         }
         let y = self.plate.y_of_row(row as f64);
-        let (wx, wy) = self.row_window(y);
+        let (wx, wy) = self.row_window(&self.channel_of(j).reference, y);
         row_columns(&self.plate, e, y, wx, wy, self.opts.approximation)
     }
 
@@ -137,66 +178,107 @@ impl PointSum {
         for v in [&mut scratch.ref_dir_x, &mut scratch.ref_dir_y, &mut scratch.re, &mut scratch.im, &mut scratch.ref_cycles] {
             v.resize(w, 0.0);
         }
+        // Occlusion per tile, from the tile's centre on the plate.
+        let tiles = w.div_ceil(self.tile_cols);
+        if let Some(vis) = &self.visibility {
+            let yc = self.plate.y_of_row(row0 as f64 + (rows as f64 - 1.0) / 2.0);
+            scratch.visible.clear();
+            for &j in &cands {
+                for t in 0..tiles {
+                    let c0 = t * self.tile_cols;
+                    let c1 = ((t + 1) * self.tile_cols).min(w);
+                    let xc = self.plate.x_of_col((c0 + c1 - 1) as f64 / 2.0);
+                    scratch.visible.push(vis.visible(j as usize, [xc, yc, 0.0]));
+                }
+            }
+        }
+        let single = self.channels.len() == 1;
+        if !single {
+            scratch.sum_row.resize(w, Complex64::new(0.0, 0.0));
+        }
         let mut updates = 0u64;
         for (ri, orow) in out.chunks_exact_mut(w).enumerate() {
             let row = row0 + ri;
             let y = self.plate.y_of_row(row as f64);
-            scratch.re.fill(0.0);
-            scratch.im.fill(0.0);
-            match self.reference {
-                Reference::Plane { .. } => {
-                    let d = self.reference.direction(0.0, y);
-                    scratch.ref_dir_x.fill(d[0]);
-                    scratch.ref_dir_y.fill(d[1]);
-                }
-                Reference::Spherical { .. } => {
-                    for c in 0..w {
-                        let d = self.reference.direction(self.xs[c], y);
-                        scratch.ref_dir_x[c] = d[0];
-                        scratch.ref_dir_y[c] = d[1];
-                    }
-                }
+            if !single {
+                orow.fill(Complex64::new(0.0, 0.0));
             }
-            let (wx, wy) = self.row_window(y);
-            let inputs = RowInputs { xs: &self.xs, rdx: &scratch.ref_dir_x, rdy: &scratch.ref_dir_y, half_band: self.half_band, inv_lambda };
-            for &j in &cands {
-                let e = &self.emitters[j as usize];
-                let (c0, c1) = if self.opts.anti_alias {
-                    match row_columns(&self.plate, e, y, wx, wy, self.opts.approximation) {
-                        Some(s) => s,
-                        None => continue,
+            for ch in &self.channels {
+                scratch.re.fill(0.0);
+                scratch.im.fill(0.0);
+                match ch.reference {
+                    Reference::Plane { .. } => {
+                        let d = ch.reference.direction(0.0, y);
+                        scratch.ref_dir_x.fill(d[0]);
+                        scratch.ref_dir_y.fill(d[1]);
                     }
+                    Reference::Spherical { .. } => {
+                        for c in 0..w {
+                            let d = ch.reference.direction(self.xs[c], y);
+                            scratch.ref_dir_x[c] = d[0];
+                            scratch.ref_dir_y[c] = d[1];
+                        }
+                    }
+                }
+                let (wx, wy) = self.row_window(&ch.reference, y);
+                let inputs = RowInputs { xs: &self.xs, rdx: &scratch.ref_dir_x, rdy: &scratch.ref_dir_y, half_band: self.half_band, inv_lambda };
+                let k0 = cands.partition_point(|&j| (j as usize) < ch.start);
+                let k1 = cands.partition_point(|&j| (j as usize) < ch.end);
+                for (k, &j) in cands.iter().enumerate().take(k1).skip(k0) {
+                    let e = &self.emitters[j as usize];
+                    let (c0, c1) = if self.opts.anti_alias {
+                        match row_columns(&self.plate, e, y, wx, wy, self.opts.approximation) {
+                            Some(s) => s,
+                            None => continue,
+                        }
+                    } else {
+                        (0, w)
+                    };
+                    let er = EmitterRow {
+                        xj: e.pos[0],
+                        dy: y - e.pos[1],
+                        z: e.pos[2],
+                        amplitude: e.amplitude,
+                        phase_cycles: reduced_cycles(e.phase),
+                        obliquity: self.opts.obliquity,
+                    };
+                    let mut add = |a: usize, b: usize| match self.opts.approximation {
+                        Approximation::Exact => kernels::accumulate_exact(self.isa, &inputs, &er, a, b, &mut scratch.re, &mut scratch.im),
+                        Approximation::Fresnel => kernels::accumulate_fresnel(self.isa, &inputs, &er, a, b, &mut scratch.re, &mut scratch.im),
+                    };
+                    if self.visibility.is_some() {
+                        for t in c0 / self.tile_cols..=(c1 - 1) / self.tile_cols {
+                            if scratch.visible[k * tiles + t] {
+                                updates += add(c0.max(t * self.tile_cols), c1.min((t + 1) * self.tile_cols));
+                            }
+                        }
+                    } else {
+                        updates += add(c0, c1);
+                    }
+                }
+                // O_c conj(R_c), R's phase in cycles (path length / lambda).
+                match ch.reference {
+                    Reference::Plane { tilt } => {
+                        let (ax, ty) = (tilt[0].sin() * inv_lambda, y * tilt[1].sin() * inv_lambda);
+                        for (t, &x) in scratch.ref_cycles.iter_mut().zip(&self.xs) {
+                            *t = x * ax + ty;
+                        }
+                    }
+                    Reference::Spherical { .. } => {
+                        for (t, &x) in scratch.ref_cycles.iter_mut().zip(&self.xs) {
+                            *t = ch.reference.phase(x, y, 1.0) * inv_lambda;
+                        }
+                    }
+                }
+                if single {
+                    kernels::conj_reference(self.isa, &scratch.ref_cycles, &scratch.re, &scratch.im, orow);
                 } else {
-                    (0, w)
-                };
-                let er = EmitterRow {
-                    xj: e.pos[0],
-                    dy: y - e.pos[1],
-                    z: e.pos[2],
-                    amplitude: e.amplitude,
-                    phase_cycles: reduced_cycles(e.phase),
-                    obliquity: self.opts.obliquity,
-                };
-                updates += match self.opts.approximation {
-                    Approximation::Exact => kernels::accumulate_exact(self.isa, &inputs, &er, c0, c1, &mut scratch.re, &mut scratch.im),
-                    Approximation::Fresnel => kernels::accumulate_fresnel(self.isa, &inputs, &er, c0, c1, &mut scratch.re, &mut scratch.im),
-                };
-            }
-            // F = O conj(R), R's phase in cycles (path length / lambda).
-            match self.reference {
-                Reference::Plane { tilt } => {
-                    let (ax, ty) = (tilt[0].sin() * inv_lambda, y * tilt[1].sin() * inv_lambda);
-                    for (t, &x) in scratch.ref_cycles.iter_mut().zip(&self.xs) {
-                        *t = x * ax + ty;
-                    }
-                }
-                Reference::Spherical { .. } => {
-                    for (t, &x) in scratch.ref_cycles.iter_mut().zip(&self.xs) {
-                        *t = self.reference.phase(x, y, 1.0) * inv_lambda;
+                    kernels::conj_reference(self.isa, &scratch.ref_cycles, &scratch.re, &scratch.im, &mut scratch.sum_row);
+                    for (o, v) in orow.iter_mut().zip(&scratch.sum_row) {
+                        *o += *v;
                     }
                 }
             }
-            kernels::conj_reference(self.isa, &scratch.ref_cycles, &scratch.re, &scratch.im, orow);
         }
         scratch.candidates = cands;
         updates
