@@ -4,6 +4,7 @@
 //! per-pixel sum that every fast path is tested against; `support` bounds where each emitter may
 //! contribute without aliasing. This module depends on `optics` only.
 
+pub mod iterative;
 pub mod kernels;
 pub mod point_sum;
 pub mod reference;
