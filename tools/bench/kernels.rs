@@ -1,0 +1,162 @@
+//! Criterion benches of the hot kernels.
+//!
+//! * `point_sum/{exact,fresnel}/{avx2,portable}`: `PointSum::compute_band` on one band of a plate where
+//!   every emitter's anti-aliasing support covers every pixel (pitch 0.4 um at 633 nm: lambda / 2p =
+//!   0.79, while no emitter is seen at a direction cosine above 0.15), so the work is exactly
+//!   points x pixels; throughput is reported in point-pixel updates (`Throughput::Elements`). One core.
+//! * `fft2d/2048`: one forward 2-D FFT, complex f32, 2048^2, with caller scratch (rayon, all cores).
+//! * `propagation/asm_2048`: one band-limited angular-spectrum propagation (2x padding) at 2048^2, f32.
+//! * `gs_equiv/{2048,4096}`: what one Gerchberg-Saxton iteration costs with the crate's parts: a
+//!   Fourier-lens propagation forward, the target amplitude imposed, the inverse propagation, the
+//!   plate amplitude set to one (complex f32). The numpy counterpart is `tools/reference/gs_numpy.py`.
+//!
+//! Run: `cargo bench --bench kernels` (or `-- point_sum` for one group). The numpy reference doing the
+//! same work is in `tools/reference/`; `tools/bench/run_all.sh` runs both and writes the ratios.
+
+use std::time::Duration;
+
+use criterion::{black_box, criterion_group, criterion_main, BenchmarkId, Criterion, Throughput};
+use fringemill::optics::fft2d::Fft2d;
+use fringemill::optics::propagation::{Grid, PropagationPlanner, PropagationRecipe};
+use fringemill::optics::{Plate, Reference};
+use fringemill::synthesis::kernels::KernelIsa;
+use fringemill::synthesis::point_sum::{BandScratch, PointSum};
+use fringemill::synthesis::{Approximation, Emitter, PointSumOptions};
+use num_complex::{Complex32, Complex64};
+use rayon::prelude::*;
+
+/// Plate of the point-sum benches: 1024 x 1024 at 0.4 um, 633 nm (0.41 mm square).
+const PLATE_W: u32 = 1024;
+/// Rows of the benched band (the band sits in the middle of the plate).
+const BAND_ROWS: usize = 32;
+/// Emitters: a 8 x 8 grid 2 mm in front of the plate, each seeing the plate within +-0.15 in
+/// direction cosine, far inside the 0.79 the pitch allows.
+const POINTS_SIDE: usize = 8;
+
+fn bench_plate() -> Plate {
+    Plate { width: PLATE_W, height: PLATE_W, pitch: [0.4e-6; 2], wavelength: 633e-9 }
+}
+
+/// Deterministic scene: points on a 0.1 mm grid around the axis, depths 2.0 .. 2.1 mm,
+/// amplitudes and phases from a fixed sequence.
+fn bench_emitters() -> Vec<Emitter> {
+    let mut out = Vec::with_capacity(POINTS_SIDE * POINTS_SIDE);
+    for a in 0..POINTS_SIDE {
+        for b in 0..POINTS_SIDE {
+            let n = (a * POINTS_SIDE + b) as f64;
+            out.push(Emitter {
+                pos: [
+                    (b as f64 - 3.5) * 12.5e-6,
+                    (a as f64 - 3.5) * 12.5e-6,
+                    2.0e-3 + 0.1e-3 * ((n * 0.618_033_988_7).fract()),
+                ],
+                amplitude: 0.5 + 0.5 * ((n * 0.754_877_666).fract()),
+                phase: 6.283_185_307 * ((n * 0.569_840_291).fract()),
+            });
+        }
+    }
+    out
+}
+
+fn point_sum(c: &mut Criterion) {
+    let plate = bench_plate();
+    let emitters = bench_emitters();
+    let row0 = (PLATE_W as usize - BAND_ROWS) / 2;
+    let w = PLATE_W as usize;
+    let work = (emitters.len() * BAND_ROWS * w) as u64;
+    let mut g = c.benchmark_group("point_sum");
+    g.sample_size(10).measurement_time(Duration::from_secs(3)).warm_up_time(Duration::from_secs(1));
+    g.throughput(Throughput::Elements(work));
+    let mut isas = vec![("portable", KernelIsa::Portable)];
+    #[cfg(target_arch = "x86_64")]
+    if std::arch::is_x86_feature_detected!("avx2") {
+        isas.insert(0, ("avx2", KernelIsa::Avx2));
+    }
+    for (aname, approximation) in [("exact", Approximation::Exact), ("fresnel", Approximation::Fresnel)] {
+        for &(iname, isa) in &isas {
+            let opts = PointSumOptions { approximation, ..PointSumOptions::default() };
+            let ps = PointSum::new(plate, Reference::Plane { tilt: [0.0, 0.0] }, emitters.clone(), opts)
+                .with_isa(isa);
+            let mut out = vec![Complex64::new(0.0, 0.0); BAND_ROWS * w];
+            let mut scratch = BandScratch::default();
+            // The bench only means what it says if every point reached every pixel.
+            let done = ps.compute_band(row0, BAND_ROWS, &mut out, &mut scratch);
+            assert_eq!(done, work, "support does not cover the whole band ({aname}, {iname})");
+            g.bench_function(BenchmarkId::new(aname, iname), |b| {
+                b.iter(|| black_box(ps.compute_band(row0, BAND_ROWS, black_box(&mut out), &mut scratch)))
+            });
+        }
+    }
+    g.finish();
+}
+
+fn fft(c: &mut Criterion) {
+    let n = 2048;
+    let fft = Fft2d::<f32>::new(n, n);
+    let mut data: Vec<Complex32> =
+        (0..n * n).map(|i| Complex32::new(((i * 7919) % 1013) as f32 / 1013.0, 0.0)).collect();
+    let mut scratch = vec![Complex32::new(0.0, 0.0); fft.scratch_len()];
+    let mut g = c.benchmark_group("fft2d");
+    g.sample_size(10).measurement_time(Duration::from_secs(3)).warm_up_time(Duration::from_secs(1));
+    g.throughput(Throughput::Elements((n * n) as u64));
+    g.bench_function(BenchmarkId::from_parameter(n), |b| {
+        b.iter(|| fft.process_with_scratch(black_box(&mut data), &mut scratch))
+    });
+    g.finish();
+}
+
+fn grid(n: usize) -> Grid {
+    Grid { nx: n, ny: n, pitch: [2e-6; 2], wavelength: 532e-9 }
+}
+
+fn propagation(c: &mut Criterion) {
+    let n = 2048;
+    let g0 = grid(n);
+    let mut planner = PropagationPlanner::<f32>::new();
+    // 5 mm is below z_c = N p^2 / lambda = 15.4 mm: the planner's own choice is this recipe too.
+    let prop = planner.plan_recipe(&g0, 5e-3, PropagationRecipe::AngularSpectrum { band_limited: true, pad: 2 });
+    let mut field: Vec<Complex32> =
+        (0..n * n).map(|i| if (i / n + i % n) % 64 < 32 { Complex32::new(1.0, 0.0) } else { Complex32::new(0.0, 0.0) }).collect();
+    let mut scratch = vec![Complex32::new(0.0, 0.0); prop.scratch_len()];
+    let mut g = c.benchmark_group("propagation");
+    g.sample_size(10).measurement_time(Duration::from_secs(3)).warm_up_time(Duration::from_secs(1));
+    g.throughput(Throughput::Elements((n * n) as u64));
+    g.bench_function("asm_2048", |b| b.iter(|| prop.propagate_with_scratch(black_box(&mut field), &mut scratch)));
+    g.finish();
+}
+
+fn gs_equiv(c: &mut Criterion) {
+    let mut g = c.benchmark_group("gs_equiv");
+    g.sample_size(10).measurement_time(Duration::from_secs(3)).warm_up_time(Duration::from_secs(1));
+    for n in [2048usize, 4096] {
+        let g0 = grid(n);
+        let mut planner = PropagationPlanner::<f32>::new();
+        let focal = 0.1;
+        let fwd = planner.plan_recipe(&g0, 0.0, PropagationRecipe::Fourier { focal });
+        let inv = planner.plan_recipe(&fwd.output(), 0.0, PropagationRecipe::Fourier { focal: -focal });
+        let target: Vec<f32> = (0..n * n).map(|i| if (i / n / 64 + i % n / 64) % 2 == 0 { 1.0 } else { 0.0 }).collect();
+        let mut field: Vec<Complex32> =
+            (0..n * n).map(|i| Complex32::from_polar(1.0, ((i * 2654435761usize) % 6283) as f32 * 1e-3)).collect();
+        let mut scratch = vec![Complex32::new(0.0, 0.0); fwd.scratch_len().max(inv.scratch_len())];
+        g.throughput(Throughput::Elements((n * n) as u64));
+        g.bench_function(BenchmarkId::from_parameter(n), |b| {
+            b.iter(|| {
+                fwd.propagate_with_scratch(&mut field, &mut scratch);
+                field.par_iter_mut().zip(target.par_iter()).for_each(|(v, &a)| {
+                    let m = v.norm();
+                    *v = if m > 0.0 { *v * (a / m) } else { Complex32::new(a, 0.0) };
+                });
+                inv.propagate_with_scratch(&mut field, &mut scratch);
+                field.par_iter_mut().for_each(|v| {
+                    let m = v.norm();
+                    *v = if m > 0.0 { *v / m } else { Complex32::new(1.0, 0.0) };
+                });
+                black_box(&field);
+            })
+        });
+    }
+    g.finish();
+}
+
+criterion_group!(benches, point_sum, fft, propagation, gs_equiv);
+criterion_main!(benches);

@@ -1,0 +1,84 @@
+#!/usr/bin/env bash
+# Runs fringemill and the numpy references in one session and records the ratios.
+#
+#   tools/bench/run_all.sh            # everything (about 10-15 min on 2 cores)
+#   QUICK=1 tools/bench/run_all.sh    # shorter numpy timings, no 4096^2 GS
+#
+# Writes tools/bench/runs/<date>-<host>/{raw.txt,summary.md} (RUN_DIR overrides the folder).
+# Steps: release build; the sample job samples/badge.toml (exact) at --threads 2 and 1, and a Fresnel
+# copy of it made in a temp folder, each with --stats; the criterion benches (tools/bench/kernels.rs);
+# tools/reference/pointsum_numpy.py (BLAS at 2 and 1 threads) and tools/reference/gs_numpy.py.
+# OPENBLAS_CORETYPE / OPENBLAS_L2_SIZE, if set on the machine, are unset for the numpy commands only
+# (they pin an older, slower OpenBLAS kernel); the kernel threadpoolctl sees is recorded.
+set -euo pipefail
+
+root="$(cd "$(dirname "$0")/../.." && pwd)"
+cd "$root"
+host="$(hostname -s 2>/dev/null || hostname)"
+run_dir="${RUN_DIR:-tools/bench/runs/$(date +%Y-%m-%d)-$host}"
+mkdir -p "$run_dir"
+raw="$run_dir/raw.txt"
+: > "$raw"
+tmp="$(mktemp -d)"
+trap 'rm -rf "$tmp"' EXIT
+py="${PYTHON:-python3}"
+quick="${QUICK:-0}"
+
+log() { echo "$@" | tee -a "$raw"; }
+section() { log ""; log "=== $1 ($(date +%H:%M:%S), load average: $(cut -d' ' -f1-3 /proc/loadavg))"; }
+# Runs a command, appending its stdout and stderr to raw.txt (and showing them).
+run() { log "\$ $*"; "$@" 2>&1 | tee -a "$raw"; }
+numpy_env() { env -u OPENBLAS_CORETYPE -u OPENBLAS_L2_SIZE "$@"; }
+
+section "machine"
+log "date: $(date -Iseconds)"
+log "host: $host"
+log "cpu: $(grep -m1 'model name' /proc/cpuinfo | cut -d: -f2- | sed 's/^ *//')"
+log "nproc: $(nproc)"
+log "simd: $(grep -m1 '^flags' /proc/cpuinfo | tr ' ' '\n' | grep -E '^(avx|avx2|fma|avx512f)$' | tr '\n' ' ')"
+log "memory: $(free -g | awk '/Mem:/ {print $2 " GiB"}')"
+log "rustc: $(rustc --version)"
+log "python: $($py --version 2>&1)"
+log "git: $(git rev-parse --short HEAD 2>/dev/null || echo none)"
+log "machine env: OPENBLAS_CORETYPE=${OPENBLAS_CORETYPE:-(unset)} OPENBLAS_L2_SIZE=${OPENBLAS_L2_SIZE:-(unset)} (unset for numpy runs)"
+
+section "python packages"
+if ! $py -c 'import numpy' 2>/dev/null; then run $py -m pip install -q numpy || true; fi
+for p in threadpoolctl pyfftw; do
+    if ! $py -c "import $p" 2>/dev/null; then run $py -m pip install -q "$p" || log "($p could not be installed)"; fi
+done
+numpy_env $py -c 'import numpy; print("numpy", numpy.__version__)' 2>&1 | tee -a "$raw" || true
+numpy_env $py -c 'from threadpoolctl import threadpool_info as t; import numpy; [print("threadpoolctl:", i["internal_api"], i["version"], "kernel", i["architecture"], "threads", i["num_threads"]) for i in t()]' 2>&1 | tee -a "$raw" || true
+
+section "build"
+run cargo build --release --quiet
+bin="${CARGO_TARGET_DIR:-$root/target}/release/fringemill"
+
+section "whole jobs"
+cp samples/badge.toml samples/badge_points.ply "$tmp/"
+sed -e 's/^approximation = "exact"/approximation = "fresnel"/' -e 's#out/badge.tif#out/badge_fresnel.tif#' \
+    samples/badge.toml > "$tmp/badge_fresnel.toml"
+grep -q 'approximation = "fresnel"' "$tmp/badge_fresnel.toml"
+for job in badge badge_fresnel; do
+    for t in 2 1; do
+        log "JOB $job threads=$t"
+        run "$bin" run "$tmp/$job.toml" --restart --stats --threads "$t" -q
+    done
+done
+
+section "criterion benches (tools/bench/kernels.rs)"
+run cargo bench --quiet --bench kernels -- --noplot
+
+section "numpy point sum, BLAS 2 threads"
+qa=(); [ "$quick" = 1 ] && qa=(--quick)
+run numpy_env OPENBLAS_NUM_THREADS=2 $py tools/reference/pointsum_numpy.py "${qa[@]}"
+section "numpy point sum, BLAS 1 thread"
+run numpy_env OPENBLAS_NUM_THREADS=1 $py tools/reference/pointsum_numpy.py --quick
+
+section "numpy GS iteration"
+sizes=2048,4096; [ "$quick" = 1 ] && sizes=2048
+run numpy_env OPENBLAS_NUM_THREADS=2 $py tools/reference/gs_numpy.py --threads 2 --sizes "$sizes" "${qa[@]}"
+
+section "end"
+run $py tools/bench/summarize.py "$raw" "$run_dir/summary.md"
+echo "wrote $raw and $run_dir/summary.md"

@@ -1,0 +1,131 @@
+#!/usr/bin/env python3
+"""Reads the raw.txt that run_all.sh writes and writes summary.md with the ratios fringemill / reference.
+
+Every ratio is a speed ratio: fringemill's throughput over the reference's (for times, reference time
+over fringemill time), so > 1 means fringemill is faster. Standard library only.
+
+Usage: summarize.py RAW.txt SUMMARY.md
+"""
+import re
+import sys
+
+UNIT = {"ps": 1e-12, "ns": 1e-9, "µs": 1e-6, "us": 1e-6, "ms": 1e-3, "s": 1.0}
+EUNIT = {"elem/s": 1.0, "Kelem/s": 1e3, "Melem/s": 1e6, "Gelem/s": 1e9, "Telem/s": 1e12}
+
+
+def parse(text):
+    crit_time, crit_thrpt, res, jobs, loads = {}, {}, {}, {}, []
+    name = None
+    job = None
+    for line in text.splitlines():
+        m = re.match(r"^=== (.*) \((\S+), load average: ([\d. ]+)\)", line)
+        if m:
+            loads.append((m.group(1), m.group(2), m.group(3).strip()))
+        m = re.match(r"^(\S+)\s+time:\s+\[(\S+) (\S+) (\S+) (\S+) (\S+) (\S+)\]", line)
+        if m:
+            name = m.group(1)
+            crit_time[name] = float(m.group(4)) * UNIT[m.group(5)]
+            continue
+        m = re.match(r"^(\S+)\s*$", line)
+        if m and "/" in line and not line.startswith("$"):
+            name = m.group(1)
+        m = re.match(r"^\s+time:\s+\[(\S+) (\S+) (\S+) (\S+) (\S+) (\S+)\]", line)
+        if m and name:
+            crit_time[name] = float(m.group(3)) * UNIT[m.group(4)]
+        m = re.match(r"^\s+thrpt:\s+\[(\S+) (\S+) (\S+) (\S+) (\S+) (\S+)\]", line)
+        if m and name:
+            crit_thrpt[name] = float(m.group(3)) * EUNIT[m.group(4)]
+        m = re.match(r"^RESULT (\S+) ([\d.]+) (\S+)", line)
+        if m:
+            key = m.group(1)
+            val = float(m.group(2))
+            # the 1-thread point-sum pass comes after the 2-thread one: keep both
+            if key in res and key.startswith(("exact", "fresnel")):
+                key = key + "@1t"
+            res[key] = val
+        m = re.match(r"^JOB (\S+) threads=(\d+)", line)
+        if m:
+            job = (m.group(1), int(m.group(2)))
+        m = re.search(r"stats: .*: ([\d.]+) s, (\d+) point-pixel updates, ([\d.]+) G updates/s, peak memory (.*)$", line)
+        if m and job:
+            jobs[job] = dict(secs=float(m.group(1)), updates=int(m.group(2)), gups=float(m.group(3)), peak=m.group(4))
+    return crit_time, crit_thrpt, res, jobs, loads
+
+
+def main():
+    raw, out = sys.argv[1], sys.argv[2]
+    text = open(raw, encoding="utf-8").read()
+    ct, cg, res, jobs, loads = parse(text)
+    rows = []
+
+    def ratio(label, fm, ref, fm_s, ref_s):
+        if fm is None or ref is None:
+            rows.append(f"| {label} | {fm_s if fm is not None else 'n/a'} | {ref_s if ref is not None else 'n/a'} | n/a |")
+        else:
+            rows.append(f"| {label} | {fm_s} | {ref_s} | **{fm / ref:.2f}x** |")
+
+    g = lambda k: cg.get(k)
+    gs = lambda v: f"{v / 1e9:.3f} G/s" if v is not None else None
+    exact = g("point_sum/exact/avx2") or g("point_sum/exact/portable")
+    fres = g("point_sum/fresnel/avx2") or g("point_sum/fresnel/portable")
+    careful = res.get("exact_careful")
+    plain = res.get("exact_plain")
+    ratio("point sum exact, 1 core: kernel vs careful numpy (1 core)", exact, careful and careful * 1e9,
+          gs(exact), gs(careful and careful * 1e9))
+    ratio("point sum exact, 1 core: kernel vs plain numpy (1 core)", exact, plain and plain * 1e9,
+          gs(exact), gs(plain and plain * 1e9))
+    gb = res.get("fresnel_gemm_band")
+    ratio("Fresnel, same band: kernel 1 core vs numpy GEMM (BLAS 2 threads)", fres, gb and gb * 1e9, gs(fres), gs(gb and gb * 1e9))
+    big = {k: v for k, v in res.items() if k.startswith("fresnel_gemm_") and "@" not in k}
+    if big:
+        bk = max(big, key=big.get)
+        bv = big[bk] * 1e9
+        ratio(f"Fresnel: kernel x 2 cores (ideal) vs best numpy GEMM ({bk[13:]}, 2 threads)",
+              fres and 2 * fres, bv, gs(fres and 2 * fres), gs(bv))
+        jf = jobs.get(("badge_fresnel", 2))
+        ratio(f"Fresnel: whole badge job, 2 threads vs best numpy GEMM ({bk[13:]}, 2 threads)",
+              jf and jf["gups"] * 1e9, bv, gs(jf and jf["gups"] * 1e9), gs(bv))
+    for name in ["badge", "badge_fresnel"]:
+        a, b = jobs.get((name, 2)), jobs.get((name, 1))
+        ratio(f"thread scaling, whole job `{name}`: 2 threads vs 1", a and a["gups"], b and b["gups"],
+              a and f"{a['gups']:.3f} G/s", b and f"{b['gups']:.3f} G/s")
+    ia, ip = g("point_sum/exact/avx2"), g("point_sum/exact/portable")
+    ratio("ISA: exact kernel AVX2 vs portable", ia, ip, gs(ia), gs(ip))
+    fa, fp = g("point_sum/fresnel/avx2"), g("point_sum/fresnel/portable")
+    ratio("ISA: Fresnel kernel AVX2 vs portable", fa, fp, gs(fa), gs(fp))
+
+    ms = lambda s: f"{s * 1e3:.1f} ms" if s is not None else None
+    f2 = ct.get("fft2d/2048")
+    for key, label in [("fft2_numpy_2048", "numpy.fft (1 thread)"), ("fft2_fftw_2048", "pyFFTW (2 threads)")]:
+        r = res.get(key)
+        ratio(f"FFT 2048^2 complex64, rustfft+rayon 2 threads vs {label}", r and r / 1e3, f2, ms(f2), ms(r and r / 1e3))
+    for n in [2048, 4096]:
+        fm = ct.get(f"gs_equiv/{n}")
+        for key, label in [(f"gs_numpy_{n}", "numpy.fft"), (f"gs_fftw_{n}", "numpy+pyFFTW 2 threads")]:
+            r = res.get(key)
+            ratio(f"GS iteration {n}^2 vs {label}", r and r / 1e3, fm, ms(fm), ms(r and r / 1e3))
+    f2g = ct.get("gs_equiv/2048")
+    ratio("GS iteration 2048^2 vs goal (FFTW from C, quoted 32 ms)", 0.032, f2g, ms(f2g), "32 ms (quoted)")
+
+    lines = ["# Benchmark run", "", "Ratios are fringemill speed / reference speed (> 1: fringemill faster).",
+             "Raw output: raw.txt beside this file.", ""]
+    head = [l for l in text.splitlines()[:14] if ":" in l and not l.startswith("===")]
+    lines += ["## Machine", ""] + [f"- {l}" for l in head] + [""]
+    lines += ["## Load average at each step (2 cores)", "", "| step | time | load 1/5/15 min |", "| --- | --- | --- |"]
+    lines += [f"| {s} | {t} | {l} |" for s, t, l in loads] + [""]
+    lines += ["## Ratios", "", "| comparison | fringemill | reference | ratio |", "| --- | --- | --- | --- |"] + rows + [""]
+    lines += ["## Whole jobs (--stats)", "", "| job | threads | s | G updates/s | peak RSS |", "| --- | --- | --- | --- | --- |"]
+    for (n, t), v in sorted(jobs.items()):
+        lines.append(f"| {n} | {t} | {v['secs']:.2f} | {v['gups']:.3f} | {v['peak']} |")
+    lines += ["", "## Criterion (median)", "", "| bench | time | throughput |", "| --- | --- | --- |"]
+    for k in sorted(ct):
+        lines.append(f"| {k} | {ct[k] * 1e3:.3f} ms | {gs(cg.get(k)) or ''} |")
+    lines += ["", "## numpy", "", "| result | value |", "| --- | --- |"]
+    for k, v in res.items():
+        lines.append(f"| {k} | {v} |")
+    open(out, "w", encoding="utf-8").write("\n".join(lines) + "\n")
+    print("\n".join(lines))
+
+
+if __name__ == "__main__":
+    main()
