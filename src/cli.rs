@@ -65,8 +65,11 @@ pub enum Command {
         #[arg(value_name = "PLATE.tif")]
         plate: PathBuf,
         /// Depth in front of the plate, mm: D, or a stack A:B:STEP.
-        #[arg(long, value_name = "D|A:B:STEP")]
-        distance_mm: String,
+        #[arg(long, value_name = "D|A:B:STEP", required_unless_present = "focal_mm", conflicts_with = "focal_mm")]
+        distance_mm: Option<String>,
+        /// Replay through a lens of this focal length (mm) onto its focal plane (Fourier geometry).
+        #[arg(long, value_name = "F")]
+        focal_mm: Option<f64>,
         /// Replay only this window of the plate: first column, first row, width, height (pixels).
         #[arg(long, value_name = "X,Y,W,H")]
         window: Option<String>,
@@ -91,6 +94,15 @@ pub enum Command {
         /// Number of intensity peaks to report.
         #[arg(long, default_value_t = 10)]
         peaks: usize,
+    },
+    /// Writes a job's emitters (position, amplitude, phase, normal, channel) as a PLY point cloud.
+    Sample {
+        /// Job file.
+        #[arg(value_name = "JOB")]
+        job: PathBuf,
+        /// Output PLY file.
+        #[arg(long, value_name = "FILE.ply")]
+        out: PathBuf,
     },
     /// Validates a job without computing and prints what a run will do.
     Plan {

@@ -132,8 +132,8 @@ fn main() -> ExitCode {
                 ExitCode::SUCCESS
             }
         }
-        cli::Command::Reconstruct { plate, distance_mm, window, illumination, out, scale, bits, region, target, peaks } => {
-            match reconstruct_request(plate, &distance_mm, window, illumination, out, &scale, bits, region, target, peaks) {
+        cli::Command::Reconstruct { plate, distance_mm, focal_mm, window, illumination, out, scale, bits, region, target, peaks } => {
+            match reconstruct_request(plate, distance_mm.as_deref(), focal_mm, window, illumination, out, &scale, bits, region, target, peaks) {
                 Err(m) => {
                     eprintln!("fringemill: error: {m}");
                     ExitCode::from(2)
@@ -152,6 +152,17 @@ fn main() -> ExitCode {
                 },
             }
         }
+        cli::Command::Sample { job, out } => match JobSpec::load(&job).and_then(|s| job::scene::build_scene(&s)).and_then(|sc| job::scene::write_emitters_ply(&out, &sc).map(|_| sc.normals.len())) {
+            Ok(n) => {
+                eprintln!("fringemill: wrote {n} emitters to {}", out.display());
+                println!("{}", out.display());
+                ExitCode::SUCCESS
+            }
+            Err(e) => {
+                eprintln!("fringemill: error: {e}");
+                ExitCode::from(1)
+            }
+        },
         cli::Command::Plan { job } => match JobSpec::load(&job).and_then(|s| job::plan(&s)) {
             Ok(r) => {
                 for l in r.lines {
@@ -170,7 +181,8 @@ fn main() -> ExitCode {
 #[allow(clippy::too_many_arguments)]
 fn reconstruct_request(
     plate: PathBuf,
-    distance_mm: &str,
+    distance_mm: Option<&str>,
+    focal_mm: Option<f64>,
     window: Option<String>,
     illumination: Option<String>,
     out: Option<PathBuf>,
@@ -180,7 +192,15 @@ fn reconstruct_request(
     target: Option<PathBuf>,
     peaks: usize,
 ) -> Result<replay::ReconstructRequest, String> {
-    let distances = replay::parse_distances_mm(distance_mm).map_err(|m| format!("--distance-mm {m}"))?;
+    let distances = match distance_mm {
+        Some(d) => replay::parse_distances_mm(d).map_err(|m| format!("--distance-mm {m}"))?,
+        None => Vec::new(),
+    };
+    let focal = match focal_mm {
+        Some(f) if f.is_finite() && f > 0.0 => Some(f * 1e-3),
+        Some(f) => return Err(format!("--focal-mm {f}: must be > 0")),
+        None => None,
+    };
     let window = window.as_deref().map(replay::Window::parse).transpose().map_err(|m| format!("--window {m}"))?;
     let illumination = match illumination {
         None => replay::Illumination::Recorded,
@@ -207,7 +227,7 @@ fn reconstruct_request(
         let stem = plate.file_stem().map(|s| s.to_string_lossy().into_owned()).unwrap_or_else(|| "plate".into());
         plate.with_file_name(format!("{stem}-replay.png"))
     });
-    Ok(replay::ReconstructRequest { tif: plate, distances, window, illumination, out, scale, bits, region, target, peaks })
+    Ok(replay::ReconstructRequest { tif: plate, distances, focal, window, illumination, out, scale, bits, region, target, peaks })
 }
 
 fn report(f: &Path, res: fringemill::Result<job::RunSummary>, common: &cli::Common, t0: std::time::Instant, failed: &mut usize, interrupted: &mut bool) {

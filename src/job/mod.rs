@@ -2,9 +2,11 @@
 //! This is the only module that connects scenes, synthesis, encoding and output.
 
 pub mod fields;
+pub mod iterative;
 pub mod journal;
 pub mod progress;
 pub mod run;
+pub mod scene;
 pub mod spec;
 
 pub use progress::ProgressMode;

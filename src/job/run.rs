@@ -20,7 +20,10 @@ use crate::encoding::Encoding;
 use crate::error::{Error, Result};
 use crate::output::sidecar::{self, write_atomically, OutputRecord, SidecarInput};
 use crate::output::tiff::{partial_path, StripWriter, TiffLayout};
-use crate::scene::points::read_points;
+use super::iterative::{build_cell, sidecar_json as iterative_sidecar, IterationRecord};
+use super::scene::{build_scene, Scene};
+use super::spec::{IterativeSpec, Method};
+use crate::synthesis::phase_cell::PhaseCell;
 use crate::synthesis::point_sum::{BandScratch, PointSum};
 use crate::synthesis::Emitter;
 
@@ -111,30 +114,82 @@ pub struct RunSummary {
     pub encoding: Encoding,
 }
 
-/// Reads every object's points and places them: p = scale * p_file + offset, in metres.
-/// Errors name the file and point of any emitter that lands at z <= 0.
+/// All emitters of a job in summation order (every channel), placed in plate coordinates.
 pub fn build_emitters(spec: &JobSpec) -> Result<Vec<Emitter>> {
-    let mut out = Vec::new();
-    for o in &spec.objects {
-        let pts = read_points(&o.points)?;
-        for (i, p) in pts.iter().enumerate() {
-            let pos = [p.x_mm * 1e-3 * o.scale + o.offset[0], p.y_mm * 1e-3 * o.scale + o.offset[1], p.z_mm * 1e-3 * o.scale + o.offset[2]];
-            if !(pos[2] > 0.0) {
-                return Err(Error::job(
-                    &spec.path,
-                    format!(
-                        "point {} of {} lands at z = {} mm after scale and offset_mm; points must sit in front of the plate (z > 0)",
-                        i,
-                        o.points.display(),
-                        pos[2] * 1e3
-                    ),
-                ));
-            }
-            out.push(Emitter { pos, amplitude: p.amplitude * o.gain, phase: p.phase_rad });
+    Ok(build_scene(spec)?.emitters())
+}
+
+/// The point sum of a job: its channels, with occlusion when a mesh asks for it.
+fn point_sum(spec: &JobSpec, scene: Scene) -> PointSum {
+    let sum = PointSum::with_channels(spec.plate, scene.channels, spec.synthesis);
+    match scene.visibility {
+        Some(v) => sum.with_visibility(v, OCCLUSION_TILE_COLS),
+        None => sum,
+    }
+}
+
+/// What produces the fringe term band by band: the point sum, or an iterated phase cell.
+pub enum Source {
+    /// Point-source summation.
+    Points(PointSum),
+    /// Iterated phase cell over the plate, with the iteration's record.
+    Cell(PhaseCell, IterationRecord, IterativeSpec),
+}
+
+impl Source {
+    /// The plate.
+    pub fn plate(&self) -> &crate::optics::Plate {
+        match self {
+            Source::Points(s) => s.plate(),
+            Source::Cell(c, ..) => c.plate(),
         }
     }
-    Ok(out)
+    /// F for a band; returns the work done (point-pixel updates, or pixels).
+    pub fn compute_band(&self, r0: usize, n: usize, out: &mut [Complex64], scratch: &mut BandScratch) -> u64 {
+        match self {
+            Source::Points(s) => s.compute_band(r0, n, out, scratch),
+            Source::Cell(c, ..) => c.compute_band(r0, n, out),
+        }
+    }
+    /// Estimated work of the whole plate, in the units of `compute_band`.
+    pub fn estimate_updates(&self, max_rows: usize) -> f64 {
+        match self {
+            Source::Points(s) => s.estimate_updates(max_rows),
+            Source::Cell(c, ..) => c.plate().pixels() as f64,
+        }
+    }
+    /// Emitters that miss the plate.
+    pub fn unreachable(&self) -> usize {
+        match self {
+            Source::Points(s) => s.unreachable(),
+            Source::Cell(..) => 0,
+        }
+    }
+    /// Relative cost of rows [r0, r0 + n), for balancing shards.
+    fn rows_work(&self, r0: usize, n: usize, cands: &mut Vec<u32>) -> f64 {
+        let w = self.plate().width as f64;
+        match self {
+            Source::Points(sum) => {
+                sum.candidates(r0, n, cands);
+                let mid = r0 + n / 2;
+                // Span lengths on the middle row, plus a per-pixel cost for the reference and encoding.
+                let spans: usize = cands.iter().filter_map(|&j| sum.row_span(j as usize, mid)).map(|(a, b)| b - a).sum();
+                (spans as f64 + 0.05 * w) * n as f64
+            }
+            Source::Cell(..) => w * n as f64,
+        }
+    }
+    /// The sidecar's synthesis extras.
+    fn sidecar_extra(&self) -> Option<serde_json::Value> {
+        match self {
+            Source::Points(_) => None,
+            Source::Cell(_, rec, it) => Some(iterative_sidecar(it, rec)),
+        }
+    }
 }
+
+/// Columns of an occlusion tile (its rows are a band).
+pub const OCCLUSION_TILE_COLS: usize = 256;
 
 /// Rows per band: about 4 MiB of complex field per band, at most 64 rows.
 pub fn default_band_rows(width: u32) -> usize {
@@ -142,7 +197,7 @@ pub fn default_band_rows(width: u32) -> usize {
 }
 
 /// B0 for the amplitude encoding: 3 x RMS of Re F over up to 16 evenly spread rows.
-fn measure_bipolar_scale(sum: &PointSum) -> f64 {
+fn measure_bipolar_scale(sum: &Source) -> f64 {
     let p = *sum.plate();
     let w = p.width as usize;
     let n = (p.height as usize).min(16);
@@ -193,7 +248,7 @@ fn band_rows_for(spec: &JobSpec, rows_per_strip: u32) -> usize {
 
 /// Everything a run of one job needs, prepared once.
 struct Prepared {
-    sum: PointSum,
+    source: Source,
     encoding: Encoding,
     layout: TiffLayout,
     emitters: usize,
@@ -208,10 +263,18 @@ struct Prepared {
     unit_rows: u32,
 }
 
-fn prepare(spec: &JobSpec) -> Result<Prepared> {
-    let emitters = build_emitters(spec)?;
-    let n = emitters.len();
-    let sum = PointSum::new(spec.plate, spec.reference, emitters, spec.synthesis);
+fn prepare(spec: &JobSpec, mode: ProgressMode) -> Result<Prepared> {
+    let (sum, n) = match &spec.method {
+        Method::PointSum => {
+            let scene = build_scene(spec)?;
+            let n = scene.normals.len();
+            (Source::Points(point_sum(spec, scene)), n)
+        }
+        Method::Iterative(it) => {
+            let (cell, rec) = build_cell(spec, it, mode)?;
+            (Source::Cell(cell, rec, it.clone()), 0)
+        }
+    };
     let encoding = match spec.encoding {
         EncodingRequest::Fixed(e) => e,
         EncodingRequest::AmplitudeAuto { bits } => Encoding::Amplitude { bits, scale: measure_bipolar_scale(&sum) },
@@ -233,17 +296,17 @@ fn prepare(spec: &JobSpec) -> Result<Prepared> {
         }
     };
     let band_rows = band_rows_for(spec, rps);
-    Ok(Prepared { sum, encoding, layout, emitters: n, rps, band_rows, fields, blocks, unit_rows })
+    Ok(Prepared { source: sum, encoding, layout, emitters: n, rps, band_rows, fields, blocks, unit_rows })
 }
 
 /// Number of shard units (strips, or field rows) of the plate.
 fn unit_count(p: &Prepared) -> u32 {
-    p.sum.plate().height.div_ceil(p.unit_rows)
+    p.source.plate().height.div_ceil(p.unit_rows)
 }
 
 /// Contiguous strip ranges of the shards, balanced by estimated work (emitters cluster, so equal
 /// row counts would not give equal times). Deterministic: every shard computes the same split.
-pub fn shard_strips(sum: &PointSum, rps: u32, count: u32) -> Vec<(u32, u32)> {
+pub fn shard_strips(sum: &Source, rps: u32, count: u32) -> Vec<(u32, u32)> {
     let h = sum.plate().height;
     let strips = h.div_ceil(rps);
     let mut cands = Vec::new();
@@ -251,11 +314,7 @@ pub fn shard_strips(sum: &PointSum, rps: u32, count: u32) -> Vec<(u32, u32)> {
         .map(|s| {
             let r0 = (s * rps) as usize;
             let n = rps.min(h - s * rps) as usize;
-            sum.candidates(r0, n, &mut cands);
-            let mid = r0 + n / 2;
-            // Span lengths on the middle row, plus a per-pixel cost for the reference and encoding.
-            let spans: usize = cands.iter().filter_map(|&j| sum.row_span(j as usize, mid)).map(|(a, b)| b - a).sum();
-            (spans as f64 + 0.05 * sum.plate().width as f64) * n as f64
+            sum.rows_work(r0, n, &mut cands)
         })
         .collect();
     let total: f64 = work.iter().sum();
@@ -385,13 +444,13 @@ fn find_resume(spec: &JobSpec, data: &Path, journal: &Path, shard: Option<[u32; 
 /// Runs one job end to end (or one shard of it). On any error nothing that looks finished is left
 /// behind; after a checkpoint, the partial file and its journal stay so the same command continues.
 pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
-    let prep = prepare(spec)?;
+    let prep = prepare(spec, opts.progress)?;
     ensure_parent(&spec.output)?;
     let units = unit_count(&prep);
     let row_bytes = prep.encoding.row_bytes(spec.plate.width as usize);
     let (first_unit, end_unit) = match opts.shard {
         None => (0, units),
-        Some(sh) => shard_strips(&prep.sum, prep.unit_rows, sh.count)[sh.index as usize],
+        Some(sh) => shard_strips(&prep.source, prep.unit_rows, sh.count)[sh.index as usize],
     };
     let shard_tag = opts.shard.map(|sh| [sh.index, sh.count]);
     // The file whose journal records progress: the TIFF, the shard's part, or the field manifest.
@@ -454,7 +513,7 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
         Sink::Tiff(w) => {
             let finished = w.finish()?;
             let sidecar = sidecar_path(&spec.output);
-            let input = SidecarInput { spec, encoding: &prep.encoding, layout: &prep.layout, output: OutputRecord::Tiff(&finished), emitters: prep.emitters, unreachable: prep.sum.unreachable(), updates };
+            let input = SidecarInput { spec, encoding: &prep.encoding, layout: &prep.layout, output: OutputRecord::Tiff(&finished), emitters: prep.emitters, unreachable: prep.source.unreachable(), updates, extra: prep.source.sidecar_extra() };
             if let Err(e) = sidecar::write(&sidecar, &input) {
                 let _ = std::fs::remove_file(&finished.path);
                 return Err(e);
@@ -508,8 +567,9 @@ fn finish_fields(spec: &JobSpec, prep: &Prepared, grid: &FieldGrid, entries: &[F
         layout: &prep.layout,
         output: OutputRecord::Fields { manifest: &manifest, count: entries.len(), field_px: grid.field },
         emitters: prep.emitters,
-        unreachable: prep.sum.unreachable(),
+        unreachable: prep.source.unreachable(),
         updates,
+        extra: prep.source.sidecar_extra(),
     };
     sidecar::write(&sidecar, &input)?;
     Ok(RunSummary { tiff: manifest, sidecar, emitters: prep.emitters, updates, encoding: prep.encoding })
@@ -557,7 +617,7 @@ struct StreamCtx<'a> {
 /// and checkpoints (sink sync, then journal) between waves. Returns the total updates.
 fn stream_rows(ctx: &StreamCtx, sink: &mut Sink, opts: &RunOptions) -> Result<u64> {
     let prep = ctx.prep;
-    let plate = *prep.sum.plate();
+    let plate = *prep.source.plate();
     let w = plate.width as usize;
     let (start, end) = ctx.rows;
     let band = prep.band_rows;
@@ -565,10 +625,10 @@ fn stream_rows(ctx: &StreamCtx, sink: &mut Sink, opts: &RunOptions) -> Result<u6
     let bands_per_strip = (prep.rps as usize).div_ceil(band);
     let strips_per_wave = (4 * rayon::current_num_threads()).div_ceil(bands_per_strip).max(1);
     let wave = strips_per_wave * bands_per_strip;
-    let total = prep.sum.estimate_updates(64).max(1.0);
+    let total = prep.source.estimate_updates(64).max(1.0);
     let label = match ctx.shard {
-        None => "point sum".to_string(),
-        Some([k, n]) => format!("point sum, shard {}/{}", k + 1, n),
+        None => "plate".to_string(),
+        Some([k, n]) => format!("plate, shard {}/{}", k + 1, n),
     };
     let mut progress = Progress::new(&label, total, opts.progress);
     progress.advance(ctx.updates_before as f64);
@@ -584,7 +644,7 @@ fn stream_rows(ctx: &StreamCtx, sink: &mut Sink, opts: &RunOptions) -> Result<u6
                 || (BandScratch::default(), Vec::<Complex64>::new()),
                 |(scratch, field), &(r0, n)| {
                     field.resize(n * w, Complex64::new(0.0, 0.0));
-                    let u = prep.sum.compute_band(r0, n, field, scratch);
+                    let u = prep.source.compute_band(r0, n, field, scratch);
                     let out = blocks
                         .iter()
                         .map(|&(c0, c1)| {
@@ -628,7 +688,7 @@ fn stream_rows(ctx: &StreamCtx, sink: &mut Sink, opts: &RunOptions) -> Result<u6
 /// Streams the finished shards' part files into the plate's TIFF and writes its sidecar, then
 /// removes the parts. All parts of one split (same N, same job) must be present.
 pub fn assemble(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
-    let prep = prepare(spec)?;
+    let prep = prepare(spec, opts.progress)?;
     if let Some(grid) = prep.fields.clone() {
         return assemble_fields(spec, &prep, &grid);
     }
@@ -694,7 +754,7 @@ pub fn assemble(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
     progress.finish();
     let finished = writer.finish()?;
     let sidecar = sidecar_path(&spec.output);
-    let input = SidecarInput { spec, encoding: &prep.encoding, layout: &prep.layout, output: OutputRecord::Tiff(&finished), emitters: prep.emitters, unreachable: prep.sum.unreachable(), updates };
+    let input = SidecarInput { spec, encoding: &prep.encoding, layout: &prep.layout, output: OutputRecord::Tiff(&finished), emitters: prep.emitters, unreachable: prep.source.unreachable(), updates, extra: prep.source.sidecar_extra() };
     if let Err(e) = sidecar::write(&sidecar, &input) {
         let _ = std::fs::remove_file(&finished.path);
         return Err(e);
@@ -747,6 +807,38 @@ fn assemble_fields(spec: &JobSpec, prep: &Prepared, grid: &FieldGrid) -> Result<
     Ok(summary)
 }
 
+/// `plan` for iterative synthesis: sizes and replay sampling, without iterating.
+fn plan_iterative(spec: &JobSpec, it: &IterativeSpec) -> Result<PlanReport> {
+    let p = spec.plate;
+    let cell = it.cell_px.unwrap_or([p.width, p.height]);
+    let mut lines = vec![
+        format!("job: {}", spec.path.display()),
+        format!("plate: {} x {} px, pitch {:.4} x {:.4} um, wavelength {:.2} nm", p.width, p.height, p.pitch[0] * 1e6, p.pitch[1] * 1e6, p.wavelength * 1e9),
+        format!("iterative synthesis: {:?}, {} iterations at most, cell {} x {} px repeated over the plate", it.algorithm, it.iterations, cell[0], cell[1]),
+    ];
+    if let super::spec::Geometry::Fourier(f) = it.geometry {
+        lines.push(format!(
+            "fourier geometry, f = {:.3} mm: replay pitch lambda f / (N p) = {:.3} x {:.3} um, replay field {:.3} x {:.3} mm",
+            f * 1e3,
+            p.wavelength * f / (cell[0] as f64 * p.pitch[0]) * 1e6,
+            p.wavelength * f / (cell[1] as f64 * p.pitch[1]) * 1e6,
+            p.wavelength * f / p.pitch[0] * 1e3,
+            p.wavelength * f / p.pitch[1] * 1e3
+        ));
+    }
+    for o in &spec.objects {
+        let (w, h, _) = super::iterative::read_target(&o.points)?;
+        lines.push(format!("target {}: {} x {} px", o.points.display(), w, h));
+    }
+    let layout = tiff_layout(spec, &match spec.encoding {
+        EncodingRequest::Fixed(e) => e,
+        EncodingRequest::AmplitudeAuto { bits } => Encoding::Amplitude { bits, scale: 1.0 },
+    });
+    let bytes = layout.estimated_file_bytes();
+    lines.push(format!("output: {} ({:.3} MB)", spec.output.display(), bytes as f64 / 1e6));
+    Ok(PlanReport { lines, unreachable: 0, updates: p.pixels() as f64, bytes })
+}
+
 /// What `plan` reports.
 #[derive(Clone, Debug)]
 pub struct PlanReport {
@@ -762,7 +854,11 @@ pub struct PlanReport {
 
 /// Validates a job without computing the plate and says what a run will do.
 pub fn plan(spec: &JobSpec) -> Result<PlanReport> {
-    let emitters = build_emitters(spec)?;
+    if let Method::Iterative(it) = &spec.method {
+        return plan_iterative(spec, it);
+    }
+    let scene = build_scene(spec)?;
+    let emitters = scene.emitters();
     let p = spec.plate;
     let mut lines = Vec::new();
     let size = p.size();
@@ -793,8 +889,9 @@ pub fn plan(spec: &JobSpec) -> Result<PlanReport> {
         z.sort_by(f64::total_cmp);
         z
     };
-    lines.push(format!("emitters: {} from {} object(s)", emitters.len(), spec.objects.len()));
-    let sum = PointSum::new(p, spec.reference, emitters, spec.synthesis);
+    lines.push(format!("emitters: {} from {} object(s) in {} channel(s)", emitters.len(), spec.objects.len(), scene.channels.len()));
+    lines.extend(scene.notes.iter().cloned());
+    let sum = point_sum(spec, scene);
     if !zs.is_empty() {
         for (name, z) in [("nearest", zs[0]), ("median", zs[zs.len() / 2]), ("farthest", zs[zs.len() - 1])] {
             // Support half-widths on the foot row for a point on the axis at this depth.

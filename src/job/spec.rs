@@ -47,12 +47,45 @@ pub struct RawReference {
 #[derive(Deserialize, Debug, Clone)]
 #[serde(deny_unknown_fields)]
 pub struct RawObject {
+    /// Point cloud (.ply, .csv).
     pub points: Option<String>,
+    /// Mesh (.glb, .gltf, .obj, .stl, .ply with faces).
+    pub mesh: Option<String>,
     #[serde(default)]
     pub offset_mm: Option<[f64; 3]>,
     pub scale: Option<f64>,
     /// Multiplies every amplitude of this object (default 1).
     pub gain: Option<f64>,
+    /// Own reference: this object is a separate channel (angle multiplexing).
+    pub reference: Option<RawReference>,
+    /// Meshes: rotations about x, y, z (applied in that order), degrees.
+    pub rotation_deg: Option<[f64; 3]>,
+    /// Meshes: largest extent after rotation, mm (instead of scale).
+    pub fit_mm: Option<f64>,
+    /// Meshes: number of emitters.
+    pub emitters: Option<i64>,
+    /// Meshes: mean emitter spacing, micrometres.
+    pub spacing_um: Option<f64>,
+    /// Meshes: "stratified" (default) or "random".
+    pub pattern: Option<String>,
+    /// Meshes: seed of the sampling and of random phases (default 1).
+    pub seed: Option<u64>,
+    /// Meshes: direction towards the light, plate coordinates.
+    pub light_dir: Option<[f64; 3]>,
+    /// Meshes: ambient share of the intensity, 0..=1.
+    pub ambient: Option<f64>,
+    /// Meshes: "smooth" (default) or "flat" normals.
+    pub normals: Option<String>,
+    /// Meshes: "random" (diffuse, default) or "constant" (specular look) emitter phases.
+    pub phase: Option<String>,
+    /// Meshes: "tiles" (default: visibility from each tile's centre), "centre" or "none".
+    pub occlusion: Option<String>,
+    /// Iterative synthesis: target intensity image (8/16-bit grey PNG or TIFF).
+    pub image: Option<String>,
+    /// Iterative synthesis, fresnel geometry: distance of the image's plane, mm.
+    pub distance_mm: Option<f64>,
+    /// Iterative synthesis: shift of the image's centre from the axis, replay-plane pixels [right, up].
+    pub shift_px: Option<[i64; 2]>,
 }
 
 /// `[synthesis]`
@@ -65,6 +98,28 @@ pub struct RawSynthesis {
     pub obliquity: Option<bool>,
     /// Rows computed together per task (default: chosen from the width).
     pub band_rows: Option<i64>,
+    /// Iterative: "fourier" or "fresnel".
+    pub geometry: Option<String>,
+    /// Iterative, fourier geometry: focal length of the replay lens, mm.
+    pub focal_mm: Option<f64>,
+    /// Iterative: number of iterations (default 50).
+    pub iterations: Option<i64>,
+    /// Iterative: seed of the start phase (default 1).
+    pub seed: Option<u64>,
+    /// Iterative: "gs" (default), "weighted-gs" or "mixed-region".
+    pub algorithm: Option<String>,
+    /// Iterative, mixed-region: share of the target imposed in the signal window (default 0.6).
+    pub mix: Option<f64>,
+    /// Iterative: last iterations projected onto the encoding's phase levels (default 5).
+    pub quantize_last: Option<i64>,
+    /// Iterative: stop when the error improves less than this over 5 iterations (default 1e-5, 0 = never).
+    pub stall_tolerance: Option<f64>,
+    /// Iterative: size of the computed cell, repeated over the plate (default: the whole plate).
+    pub cell_px: Option<[i64; 2]>,
+    /// Iterative: blazed carrier tilts, degrees (moves the image off the zero order).
+    pub carrier_deg: Option<[f64; 2]>,
+    /// Iterative: lens term focal length, mm.
+    pub lens_mm: Option<f64>,
 }
 
 /// `[encoding]`
@@ -119,17 +174,119 @@ pub enum EncodingRequest {
     },
 }
 
+/// Where an object's emitters come from.
+#[derive(Clone, Debug, PartialEq)]
+pub enum ObjectSource {
+    /// A target intensity image for iterative synthesis.
+    Image {
+        /// Plane distance, metres (fresnel geometry).
+        distance: Option<f64>,
+        /// Shift of the image centre, replay pixels [right, up].
+        shift_px: [i64; 2],
+    },
+    /// A point cloud file.
+    Points,
+    /// A mesh sampled into emitters.
+    Mesh(MeshObject),
+}
+
+/// How a mesh object is placed, sampled, shaded and occluded.
+#[derive(Clone, Debug, PartialEq)]
+pub struct MeshObject {
+    /// Placement (offset, rotation, scale or fit).
+    pub placement: crate::scene::mesh::Placement,
+    /// Emitter count or spacing (metres); None: derived from the plate's resolution at that depth.
+    pub density: Option<crate::scene::sampling::Density>,
+    /// Sampling pattern.
+    pub pattern: crate::scene::sampling::Pattern,
+    /// Seed.
+    pub seed: u64,
+    /// Lighting.
+    pub shading: crate::scene::sampling::Shading,
+    /// Phases.
+    pub phase: crate::scene::sampling::PhaseMode,
+    /// Occlusion.
+    pub occlusion: Occlusion,
+}
+
+/// How occlusion is decided for a mesh's emitters.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Occlusion {
+    /// Every emitter contributes everywhere.
+    None,
+    /// Emitters hidden from the plate centre are dropped.
+    Centre,
+    /// Visibility from the centre of each tile of the plate (parallax-correct to the tile).
+    Tiles,
+}
+
 /// One validated `[[object]]`.
 #[derive(Clone, Debug, PartialEq)]
 pub struct ObjectSpec {
-    /// Point file, resolved against the job's folder.
+    /// Points or mesh file, resolved against the job's folder.
     pub points: PathBuf,
-    /// Added after scaling, metres.
+    /// Point cloud or mesh.
+    pub source: ObjectSource,
+    /// Added after scaling, metres (point clouds; meshes carry it in their placement too).
     pub offset: [f64; 3],
     /// Multiplies the file's coordinates.
     pub scale: f64,
     /// Multiplies the amplitudes.
     pub gain: f64,
+    /// Own reference (a separate channel), or None for the job's.
+    pub reference: Option<Reference>,
+}
+
+/// Iterative synthesis geometry.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub enum Geometry {
+    /// Lens of this focal length (metres): the replay plane is its focal plane.
+    Fourier(f64),
+    /// Free-space propagation to each image's distance.
+    Fresnel,
+}
+
+/// Algorithm choice as written.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub enum AlgorithmChoice {
+    /// Gerchberg-Saxton.
+    Gs,
+    /// Weighted GS.
+    WeightedGs,
+    /// Mixed-region amplitude freedom with this mix.
+    MixedRegion(f64),
+}
+
+/// `[synthesis] method = "iterative"`, validated.
+#[derive(Clone, Debug, PartialEq)]
+pub struct IterativeSpec {
+    /// Geometry.
+    pub geometry: Geometry,
+    /// Iterations.
+    pub iterations: usize,
+    /// Seed.
+    pub seed: u64,
+    /// Algorithm.
+    pub algorithm: AlgorithmChoice,
+    /// Quantized final iterations.
+    pub quantize_last: usize,
+    /// Early-stop tolerance.
+    pub stall_tolerance: f64,
+    /// Cell size, if smaller than the plate.
+    pub cell_px: Option<[u32; 2]>,
+    /// Carrier tilts, radians.
+    pub carrier: [f64; 2],
+    /// Lens focal length, metres.
+    pub lens: Option<f64>,
+}
+
+/// The synthesis method.
+#[derive(Clone, Debug, PartialEq)]
+pub enum Method {
+    /// Point-source summation.
+    PointSum,
+    /// Iterative phase retrieval from images.
+    Iterative(IterativeSpec),
 }
 
 /// A validated job.
@@ -149,6 +306,8 @@ pub struct JobSpec {
     pub objects: Vec<ObjectSpec>,
     /// Point-sum options.
     pub synthesis: PointSumOptions,
+    /// The method.
+    pub method: Method,
     /// Rows per band, if set.
     pub band_rows: Option<usize>,
     /// Encoding.
@@ -223,35 +382,7 @@ impl JobSpec {
         }
         let plate = Plate { width: h.width_px as u32, height: h.height_px as u32, pitch: [pitch_um[0] * 1e-6, pitch_um[1] * 1e-6], wavelength: wl * 1e-9 };
 
-        let r = &raw.reference;
-        let reference = match r.kind.as_str() {
-            "plane" => {
-                if r.position_mm.is_some() {
-                    return Err(bad("[reference] position_mm belongs to kind = \"spherical\", not \"plane\"".into()));
-                }
-                let t = r.tilt_deg.unwrap_or([0.0, 0.0]);
-                for v in t {
-                    if !(finite("[reference] tilt_deg", v)?.abs() < 90.0) {
-                        return Err(bad(format!("[reference] tilt_deg = {v} must be between -90 and 90")));
-                    }
-                }
-                Reference::Plane { tilt: [t[0].to_radians(), t[1].to_radians()] }
-            }
-            "spherical" => {
-                if r.tilt_deg.is_some() {
-                    return Err(bad("[reference] tilt_deg belongs to kind = \"plane\", not \"spherical\"".into()));
-                }
-                let p = r.position_mm.ok_or_else(|| bad("[reference] kind = \"spherical\" needs position_mm = [x, y, z]".into()))?;
-                for v in p {
-                    finite("[reference] position_mm", v)?;
-                }
-                if p[2] == 0.0 {
-                    return Err(bad("[reference] position_mm: z must not be 0 (the source cannot sit on the plate)".into()));
-                }
-                Reference::Spherical { position: [p[0] * 1e-3, p[1] * 1e-3, p[2] * 1e-3] }
-            }
-            other => return Err(bad(format!("[reference] kind = \"{other}\" is not one of \"plane\", \"spherical\""))),
-        };
+        let reference = parse_reference(&raw.reference, "[reference]", &bad)?;
 
         if raw.object.is_empty() {
             return Err(bad("no [[object]] table: nothing to record".into()));
@@ -259,7 +390,52 @@ impl JobSpec {
         let mut objects = Vec::new();
         for (i, o) in raw.object.iter().enumerate() {
             let n = i + 1;
-            let points = o.points.as_ref().ok_or_else(|| bad(format!("[[object]] #{n} needs points = \"file.ply\" or \"file.csv\"")))?;
+            let mesh_keys = [
+                ("rotation_deg", o.rotation_deg.is_some()),
+                ("fit_mm", o.fit_mm.is_some()),
+                ("emitters", o.emitters.is_some()),
+                ("spacing_um", o.spacing_um.is_some()),
+                ("pattern", o.pattern.is_some()),
+                ("seed", o.seed.is_some()),
+                ("light_dir", o.light_dir.is_some()),
+                ("ambient", o.ambient.is_some()),
+                ("normals", o.normals.is_some()),
+                ("phase", o.phase.is_some()),
+                ("occlusion", o.occlusion.is_some()),
+            ];
+            let img_keys = [("distance_mm", o.distance_mm.is_some()), ("shift_px", o.shift_px.is_some())];
+            if o.image.is_none() {
+                if let Some((k, _)) = img_keys.iter().find(|k| k.1) {
+                    return Err(bad(format!("[[object]] #{n}: {k} applies to image objects")));
+                }
+            }
+            let (points, source) = match (&o.points, &o.mesh) {
+                (None, None) if o.image.is_some() => {
+                    if let Some((k, _)) = mesh_keys.iter().find(|k| k.1) {
+                        return Err(bad(format!("[[object]] #{n}: {k} applies to mesh objects, not to images")));
+                    }
+                    let distance = match o.distance_mm {
+                        None => None,
+                        Some(d) if d.is_finite() && d > 0.0 => Some(d * 1e-3),
+                        Some(d) => return Err(bad(format!("[[object]] #{n} distance_mm = {d} must be > 0"))),
+                    };
+                    (o.image.as_ref().expect("checked"), ObjectSource::Image { distance, shift_px: o.shift_px.unwrap_or([0, 0]) })
+                }
+                (_, _) if o.image.is_some() => return Err(bad(format!("[[object]] #{n}: one source per object (image, points or mesh)"))),
+                (Some(p), None) => {
+                    if let Some((k, _)) = mesh_keys.iter().find(|k| k.1) {
+                        return Err(bad(format!("[[object]] #{n}: {k} applies to mesh objects, not to points")));
+                    }
+                    (p, ObjectSource::Points)
+                }
+                (None, Some(m)) => (m, ObjectSource::Mesh(mesh_object(o, n, &bad)?)),
+                (Some(_), Some(_)) => return Err(bad(format!("[[object]] #{n} has both points and mesh: one object, one source"))),
+                (None, None) => return Err(bad(format!("[[object]] #{n} needs points = \"file.ply\" or \"file.csv\", or mesh = \"file.glb\""))),
+            };
+            let own_reference = match &o.reference {
+                Some(r) => Some(parse_reference(r, &format!("[[object]] #{n} reference"), &bad)?),
+                None => None,
+            };
             let off = o.offset_mm.unwrap_or([0.0; 3]);
             for v in off {
                 finite(&format!("[[object]] #{n} offset_mm"), v)?;
@@ -272,14 +448,46 @@ impl JobSpec {
             if gain < 0.0 {
                 return Err(bad(format!("[[object]] #{n} gain = {gain} must be >= 0")));
             }
-            objects.push(ObjectSpec { points: dir.join(points), offset: [off[0] * 1e-3, off[1] * 1e-3, off[2] * 1e-3], scale, gain });
+            if o.fit_mm.is_some() && o.scale.is_some() {
+                return Err(bad(format!("[[object]] #{n}: give scale or fit_mm, not both")));
+            }
+            objects.push(ObjectSpec { points: dir.join(points), source, offset: [off[0] * 1e-3, off[1] * 1e-3, off[2] * 1e-3], scale, gain, reference: own_reference });
         }
 
         let s = &raw.synthesis;
-        match s.method.as_deref().unwrap_or("point-sum") {
-            "point-sum" => {}
-            other => return Err(bad(format!("[synthesis] method = \"{other}\" is not one of \"point-sum\""))),
-        }
+        let iter_keys = [
+            ("geometry", s.geometry.is_some()),
+            ("focal_mm", s.focal_mm.is_some()),
+            ("iterations", s.iterations.is_some()),
+            ("seed", s.seed.is_some()),
+            ("algorithm", s.algorithm.is_some()),
+            ("mix", s.mix.is_some()),
+            ("quantize_last", s.quantize_last.is_some()),
+            ("stall_tolerance", s.stall_tolerance.is_some()),
+            ("cell_px", s.cell_px.is_some()),
+            ("carrier_deg", s.carrier_deg.is_some()),
+            ("lens_mm", s.lens_mm.is_some()),
+        ];
+        let images = objects.iter().filter(|o| matches!(o.source, ObjectSource::Image { .. })).count();
+        let method = match s.method.as_deref().unwrap_or("point-sum") {
+            "point-sum" => {
+                if let Some((k, _)) = iter_keys.iter().find(|k| k.1) {
+                    return Err(bad(format!("[synthesis] {k} applies to method = \"iterative\"")));
+                }
+                if images > 0 {
+                    return Err(bad("image objects need [synthesis] method = \"iterative\"".into()));
+                }
+                Method::PointSum
+            }
+            "iterative" => {
+                if images != objects.len() {
+                    return Err(bad("method = \"iterative\" takes image objects only (no points or meshes)".into()));
+                }
+                Method::Iterative(iterative_spec(s, &objects, &bad)?)
+            }
+            other => return Err(bad(format!("[synthesis] method = \"{other}\" is not one of \"point-sum\", \"iterative\""))),
+        };
+
         let approximation = match s.approximation.as_deref().unwrap_or("exact") {
             "exact" => Approximation::Exact,
             "fresnel" => Approximation::Fresnel,
@@ -359,6 +567,7 @@ impl JobSpec {
             reference,
             objects,
             synthesis: PointSumOptions { approximation, obliquity: s.obliquity.unwrap_or(false), anti_alias: true },
+            method,
             band_rows,
             encoding,
             output,
@@ -379,6 +588,173 @@ impl JobSpec {
             },
         })
     }
+}
+
+/// Validates a reference table (`what` names it in messages).
+fn parse_reference(r: &RawReference, what: &str, bad: &dyn Fn(String) -> Error) -> Result<Reference> {
+    let finite = |name: &str, v: f64| -> Result<f64> {
+        if v.is_finite() {
+            Ok(v)
+        } else {
+            Err(bad(format!("{what} {name} = {v} is not a finite number")))
+        }
+    };
+    match r.kind.as_str() {
+        "plane" => {
+            if r.position_mm.is_some() {
+                return Err(bad(format!("{what} position_mm belongs to kind = \"spherical\", not \"plane\"")));
+            }
+            let t = r.tilt_deg.unwrap_or([0.0, 0.0]);
+            for v in t {
+                if !(finite("tilt_deg", v)?.abs() < 90.0) {
+                    return Err(bad(format!("{what} tilt_deg = {v} must be between -90 and 90")));
+                }
+            }
+            Ok(Reference::Plane { tilt: [t[0].to_radians(), t[1].to_radians()] })
+        }
+        "spherical" => {
+            if r.tilt_deg.is_some() {
+                return Err(bad(format!("{what} tilt_deg belongs to kind = \"plane\", not \"spherical\"")));
+            }
+            let p = r.position_mm.ok_or_else(|| bad(format!("{what} kind = \"spherical\" needs position_mm = [x, y, z]")))?;
+            for v in p {
+                finite("position_mm", v)?;
+            }
+            if p[2] == 0.0 {
+                return Err(bad(format!("{what} position_mm: z must not be 0 (the source cannot sit on the plate)")));
+            }
+            Ok(Reference::Spherical { position: [p[0] * 1e-3, p[1] * 1e-3, p[2] * 1e-3] })
+        }
+        other => Err(bad(format!("{what} kind = \"{other}\" is not one of \"plane\", \"spherical\""))),
+    }
+}
+
+/// Validates the iterative keys of `[synthesis]`.
+fn iterative_spec(s: &RawSynthesis, objects: &[ObjectSpec], bad: &dyn Fn(String) -> Error) -> Result<IterativeSpec> {
+    let geometry = match s.geometry.as_deref() {
+        Some("fourier") => {
+            let f = s.focal_mm.ok_or_else(|| bad("[synthesis] geometry = \"fourier\" needs focal_mm".into()))?;
+            if !(f.is_finite() && f > 0.0) {
+                return Err(bad(format!("[synthesis] focal_mm = {f} must be > 0")));
+            }
+            if objects.iter().any(|o| matches!(o.source, ObjectSource::Image { distance: Some(_), .. })) {
+                return Err(bad("distance_mm does not apply in fourier geometry (the image plane is the lens's focal plane)".into()));
+            }
+            if objects.len() > 1 {
+                return Err(bad("fourier geometry has one image plane: give one image object".into()));
+            }
+            Geometry::Fourier(f * 1e-3)
+        }
+        Some("fresnel") => {
+            if s.focal_mm.is_some() {
+                return Err(bad("[synthesis] focal_mm applies to geometry = \"fourier\"".into()));
+            }
+            if let Some(i) = objects.iter().position(|o| matches!(o.source, ObjectSource::Image { distance: None, .. })) {
+                return Err(bad(format!("[[object]] #{} needs distance_mm in fresnel geometry", i + 1)));
+            }
+            Geometry::Fresnel
+        }
+        Some(other) => return Err(bad(format!("[synthesis] geometry = \"{other}\" is not one of \"fourier\", \"fresnel\""))),
+        None => return Err(bad("[synthesis] method = \"iterative\" needs geometry = \"fourier\" or \"fresnel\"".into())),
+    };
+    let iterations = match s.iterations.unwrap_or(50) {
+        i if (1..=100_000).contains(&i) => i as usize,
+        i => return Err(bad(format!("[synthesis] iterations = {i} is outside 1..=100000"))),
+    };
+    let algorithm = match s.algorithm.as_deref().unwrap_or("gs") {
+        "gs" => AlgorithmChoice::Gs,
+        "weighted-gs" => AlgorithmChoice::WeightedGs,
+        "mixed-region" => {
+            let m = s.mix.unwrap_or(0.6);
+            if !(m > 0.0 && m <= 1.0) {
+                return Err(bad(format!("[synthesis] mix = {m} must be within (0, 1]")));
+            }
+            AlgorithmChoice::MixedRegion(m)
+        }
+        other => return Err(bad(format!("[synthesis] algorithm = \"{other}\" is not one of \"gs\", \"weighted-gs\", \"mixed-region\""))),
+    };
+    if s.mix.is_some() && !matches!(algorithm, AlgorithmChoice::MixedRegion(_)) {
+        return Err(bad("[synthesis] mix applies to algorithm = \"mixed-region\"".into()));
+    }
+    let quantize_last = match s.quantize_last.unwrap_or(5) {
+        q if q >= 0 && q as usize <= iterations => q as usize,
+        q => return Err(bad(format!("[synthesis] quantize_last = {q} must be within 0..=iterations"))),
+    };
+    let stall_tolerance = s.stall_tolerance.unwrap_or(1e-5);
+    if !(stall_tolerance.is_finite() && stall_tolerance >= 0.0) {
+        return Err(bad(format!("[synthesis] stall_tolerance = {stall_tolerance} must be >= 0")));
+    }
+    let cell_px = match s.cell_px {
+        None => None,
+        Some(c) if c.iter().all(|&v| (1..=8192).contains(&v)) => Some([c[0] as u32, c[1] as u32]),
+        Some(c) => return Err(bad(format!("[synthesis] cell_px = {c:?}: each side must be within 1..=8192"))),
+    };
+    let carrier = s.carrier_deg.unwrap_or([0.0, 0.0]);
+    if carrier.iter().any(|t| !(t.is_finite() && t.abs() < 90.0)) {
+        return Err(bad(format!("[synthesis] carrier_deg = {carrier:?} must be between -90 and 90")));
+    }
+    let lens = match s.lens_mm {
+        None => None,
+        Some(f) if f.is_finite() && f != 0.0 => Some(f * 1e-3),
+        Some(f) => return Err(bad(format!("[synthesis] lens_mm = {f} must be finite and non-zero"))),
+    };
+    Ok(IterativeSpec { geometry, iterations, seed: s.seed.unwrap_or(1), algorithm, quantize_last, stall_tolerance, cell_px, carrier: [carrier[0].to_radians(), carrier[1].to_radians()], lens })
+}
+
+/// Validates the mesh keys of an object.
+fn mesh_object(o: &RawObject, n: usize, bad: &dyn Fn(String) -> Error) -> Result<MeshObject> {
+    use crate::scene::mesh::{Placement, PlacementSize};
+    use crate::scene::sampling::{Density, Pattern, PhaseMode, Shading};
+    let size = match (o.scale, o.fit_mm) {
+        (_, Some(f)) if !(f.is_finite() && f > 0.0) => return Err(bad(format!("[[object]] #{n} fit_mm = {f} must be > 0"))),
+        (_, Some(f)) => PlacementSize::FitMm(f),
+        (s, None) => PlacementSize::Scale(s.unwrap_or(1.0)),
+    };
+    let placement = Placement { offset_mm: o.offset_mm.unwrap_or([0.0; 3]), rotation_deg: o.rotation_deg.unwrap_or([0.0; 3]), size };
+    placement.validate().map_err(|m| bad(format!("[[object]] #{n}: {m}")))?;
+    let density = match (o.emitters, o.spacing_um) {
+        (Some(_), Some(_)) => return Err(bad(format!("[[object]] #{n}: give emitters or spacing_um, not both"))),
+        (Some(c), None) if c >= 1 => Some(Density::Count(c as usize)),
+        (Some(c), None) => return Err(bad(format!("[[object]] #{n} emitters = {c} must be at least 1"))),
+        (None, Some(sp)) if sp.is_finite() && sp > 0.0 => Some(Density::SpacingM(sp * 1e-6)),
+        (None, Some(sp)) => return Err(bad(format!("[[object]] #{n} spacing_um = {sp} must be > 0"))),
+        (None, None) => None,
+    };
+    let pattern = match o.pattern.as_deref().unwrap_or("stratified") {
+        "stratified" => Pattern::Stratified,
+        "random" => Pattern::Random,
+        other => return Err(bad(format!("[[object]] #{n} pattern = \"{other}\" is not one of \"stratified\", \"random\""))),
+    };
+    let mut shading = Shading::default();
+    if let Some(l) = o.light_dir {
+        if l.iter().any(|v| !v.is_finite()) || l.iter().all(|&v| v == 0.0) {
+            return Err(bad(format!("[[object]] #{n} light_dir = {l:?} must be a finite, non-zero direction")));
+        }
+        shading.light_dir = l;
+    }
+    if let Some(a) = o.ambient {
+        if !(0.0..=1.0).contains(&a) {
+            return Err(bad(format!("[[object]] #{n} ambient = {a} must be within 0..=1")));
+        }
+        shading.ambient = a;
+    }
+    shading.smooth_normals = match o.normals.as_deref().unwrap_or("smooth") {
+        "smooth" => true,
+        "flat" => false,
+        other => return Err(bad(format!("[[object]] #{n} normals = \"{other}\" is not one of \"smooth\", \"flat\""))),
+    };
+    let phase = match o.phase.as_deref().unwrap_or("random") {
+        "random" => PhaseMode::Random,
+        "constant" => PhaseMode::Constant(0.0),
+        other => return Err(bad(format!("[[object]] #{n} phase = \"{other}\" is not one of \"random\", \"constant\""))),
+    };
+    let occlusion = match o.occlusion.as_deref().unwrap_or("tiles") {
+        "tiles" => Occlusion::Tiles,
+        "centre" | "center" => Occlusion::Centre,
+        "none" => Occlusion::None,
+        other => return Err(bad(format!("[[object]] #{n} occlusion = \"{other}\" is not one of \"tiles\", \"centre\", \"none\""))),
+    };
+    Ok(MeshObject { placement, density, pattern, seed: o.seed.unwrap_or(1), shading, phase, occlusion })
 }
 
 /// Lowercase hex of bytes.

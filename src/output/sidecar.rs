@@ -32,6 +32,8 @@ pub struct SidecarInput<'a> {
     pub unreachable: usize,
     /// Point-pixel updates done.
     pub updates: u64,
+    /// Method-specific record (iterative synthesis), stored under `iterative`.
+    pub extra: Option<Value>,
 }
 
 /// What a run wrote: one TIFF, or a set of field files with their manifest.
@@ -49,15 +51,17 @@ pub enum OutputRecord<'a> {
     },
 }
 
+fn reference_json(r: &Reference) -> Value {
+    match *r {
+        Reference::Plane { tilt } => json!({"kind": "plane", "tilt_deg": [tilt[0].to_degrees(), tilt[1].to_degrees()]}),
+        Reference::Spherical { position } => json!({"kind": "spherical", "position_mm": [position[0] * 1e3, position[1] * 1e3, position[2] * 1e3]}),
+    }
+}
+
 /// The sidecar as a JSON value.
 pub fn to_json(i: &SidecarInput) -> Value {
     let p = &i.spec.plate;
-    let reference = match i.spec.reference {
-        Reference::Plane { tilt } => json!({"kind": "plane", "tilt_deg": [tilt[0].to_degrees(), tilt[1].to_degrees()]}),
-        Reference::Spherical { position } => {
-            json!({"kind": "spherical", "position_mm": [position[0] * 1e3, position[1] * 1e3, position[2] * 1e3]})
-        }
-    };
+    let reference = reference_json(&i.spec.reference);
     let encoding = match *i.encoding {
         Encoding::Phase { levels } => json!({
             "kind": "phase", "levels": levels, "bits_per_sample": i.encoding.bits_per_sample(),
@@ -75,11 +79,28 @@ pub fn to_json(i: &SidecarInput) -> Value {
         .objects
         .iter()
         .map(|o| {
-            json!({
-                "points": o.points.file_name().map(|f| f.to_string_lossy().into_owned()),
-                "offset_mm": [o.offset[0] * 1e3, o.offset[1] * 1e3, o.offset[2] * 1e3],
-                "scale": o.scale, "gain": o.gain,
-            })
+            let file = o.points.file_name().map(|f| f.to_string_lossy().into_owned());
+            let mut v = match &o.source {
+                crate::job::spec::ObjectSource::Image { distance, shift_px } => json!({"image": file, "distance_mm": distance.map(|d| d * 1e3), "shift_px": shift_px}),
+                crate::job::spec::ObjectSource::Points => json!({"points": file, "offset_mm": [o.offset[0] * 1e3, o.offset[1] * 1e3, o.offset[2] * 1e3], "scale": o.scale}),
+                crate::job::spec::ObjectSource::Mesh(m) => json!({
+                    "mesh": file,
+                    "offset_mm": m.placement.offset_mm,
+                    "rotation_deg": m.placement.rotation_deg,
+                    "size": format!("{:?}", m.placement.size),
+                    "density": m.density.map(|d| format!("{d:?}")).unwrap_or_else(|| "replay cell lambda z / D".into()),
+                    "pattern": format!("{:?}", m.pattern),
+                    "seed": m.seed,
+                    "light_dir": m.shading.light_dir, "ambient": m.shading.ambient, "smooth_normals": m.shading.smooth_normals,
+                    "phase": format!("{:?}", m.phase),
+                    "occlusion": format!("{:?}", m.occlusion),
+                }),
+            };
+            v["gain"] = json!(o.gain);
+            if let Some(r) = o.reference {
+                v["reference"] = reference_json(&r);
+            }
+            v
         })
         .collect();
     let s = &i.spec.synthesis;
@@ -122,8 +143,9 @@ pub fn to_json(i: &SidecarInput) -> Value {
         },
         "reference": reference,
         "objects": objects,
+        "iterative": i.extra,
         "synthesis": {
-            "method": "point-sum",
+            "method": match i.spec.method { crate::job::spec::Method::PointSum => "point-sum", crate::job::spec::Method::Iterative(_) => "iterative" },
             "approximation": s.approximation.name(),
             "obliquity": s.obliquity,
             "anti_aliasing": "emitter j contributes where |(d_j - d_R)_x| <= lambda / (2 px) and likewise in y (d: local direction cosines)",

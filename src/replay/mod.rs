@@ -207,6 +207,12 @@ pub const MAX_WINDOW_SIDE: u32 = 8192;
 /// Replays the window at each distance (metres). The planner picks angular spectrum or single-FFT
 /// Fresnel per distance (physics.md: critical distance N p^2 / lambda) and reuses FFT plans.
 pub fn replay(pf: &PlateFile, win: Window, ill: Illumination, distances: &[f64]) -> Result<Vec<ReplayImage>> {
+    replay_planes(pf, win, ill, distances, None)
+}
+
+/// As [`replay`]; with `focal = Some(f)` the plate is replayed through a lens of focal length f
+/// onto its focal plane (Fourier geometry, pitch lambda f / (N p)) and `distances` is ignored.
+pub fn replay_planes(pf: &PlateFile, win: Window, ill: Illumination, distances: &[f64], focal: Option<f64>) -> Result<Vec<ReplayImage>> {
     if win.w > MAX_WINDOW_SIDE || win.h > MAX_WINDOW_SIDE {
         return Err(Error::job(
             &pf.tif,
@@ -219,6 +225,16 @@ pub fn replay(pf: &PlateFile, win: Window, ill: Illumination, distances: &[f64])
     let centre = [p.x_of_col(win.x as f64 + (win.w as f64 - 1.0) / 2.0), p.y_of_row(win.y as f64 + (win.h as f64 - 1.0) / 2.0)];
     let mut planner = PropagationPlanner::<f32>::new();
     let mut out = Vec::new();
+    if let Some(f) = focal {
+        if !(f.is_finite() && f > 0.0) {
+            return Err(Error::job(&pf.tif, format!("focal length {} mm must be > 0", f * 1e3)));
+        }
+        let prop = planner.plan_recipe(&grid, 0.0, crate::optics::propagation::PropagationRecipe::Fourier { focal: f });
+        let mut field = lit;
+        prop.propagate(&mut field);
+        out.push(ReplayImage { distance: f, grid: prop.output(), centre: [0.0, 0.0], intensity: field.iter().map(|c| c.norm_sqr()).collect() });
+        return Ok(out);
+    }
     for &d in distances {
         if !(d.is_finite() && d > 0.0) {
             return Err(Error::job(&pf.tif, format!("replay distance {} mm must be > 0", d * 1e3)));
@@ -259,6 +275,8 @@ pub struct ReconstructRequest {
     pub tif: PathBuf,
     /// Depths, metres.
     pub distances: Vec<f64>,
+    /// Replay through a lens of this focal length onto its focal plane instead (metres).
+    pub focal: Option<f64>,
     /// Window of the plate; None for the whole plate.
     pub window: Option<Window>,
     /// Lighting.
@@ -286,7 +304,7 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
         Some(t) => Some(metrics::read_png_grey(t)?),
         None => None,
     };
-    let images = replay(&pf, win, req.illumination, &req.distances)?;
+    let images = replay_planes(&pf, win, req.illumination, &req.distances, req.focal)?;
     let mut written = Vec::new();
     let mut planes = Vec::new();
     for img in &images {
@@ -324,7 +342,8 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
         };
         planes.push(serde_json::json!({
             "image": path.file_name().map(|f| f.to_string_lossy().into_owned()),
-            "distance_mm": img.distance * 1e3,
+            "distance_mm": if req.focal.is_some() { None } else { Some(img.distance * 1e3) },
+            "focal_mm": req.focal.map(|f| f * 1e3),
             "width_px": w, "height_px": h,
             "pitch_um": [img.grid.pitch[0] * 1e6, img.grid.pitch[1] * 1e6],
             "centre_mm": [img.centre[0] * 1e3, img.centre[1] * 1e3],
@@ -341,7 +360,7 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
             Illumination::Recorded => serde_json::json!("recorded reference"),
             Illumination::Plane(t) => serde_json::json!({"plane_tilt_deg": [t[0].to_degrees(), t[1].to_degrees()]}),
         },
-        "depth_convention": "distance D shows the plane z = D in front of the plate (field propagated by -D)",
+        "depth_convention": if req.focal.is_some() { "focal plane of a lens of focal length focal_mm behind the plate (Fourier geometry); centre_mm is the optical axis" } else { "distance D shows the plane z = D in front of the plate (field propagated by -D)" },
         "planes": planes,
     });
     let jp = req.out.with_extension("json");

@@ -1,0 +1,155 @@
+//! Iterative synthesis of a job: target images placed on their replay grids, the phase of one cell
+//! optimised (`synthesis::iterative`), and the cell laid over the plate (`synthesis::phase_cell`).
+//!
+//! Fourier geometry: the replay plane is the focal plane of a lens of focal length f, sampled at
+//! lambda f / (N p) for an N-pixel cell of pitch p; each target pixel is one sample, the image
+//! centred on the axis (moved by `shift_px`). Fresnel geometry: each image sits at its distance,
+//! on the grid of the propagator the planner picks for it (angular spectrum below N p^2 / lambda,
+//! pitch p; single-FFT Fresnel above, pitch lambda z / (N p)).
+
+use std::path::Path;
+use std::sync::Arc;
+
+use super::progress::{Progress, ProgressMode};
+use super::spec::{AlgorithmChoice, Geometry, IterativeSpec, JobSpec, ObjectSource, EncodingRequest};
+use crate::encoding::Encoding;
+use crate::error::{Error, Result};
+use crate::optics::propagation::{Grid, PropagationPlanner, PropagationRecipe};
+use crate::synthesis::iterative::{optimise, Algorithm, IterOptions, Plane};
+use crate::synthesis::phase_cell::PhaseCell;
+
+/// What the iteration produced, for the sidecar.
+#[derive(Clone, Debug)]
+pub struct IterationRecord {
+    /// Error per iteration.
+    pub errors: Vec<f64>,
+    /// Early stop.
+    pub stopped_early: bool,
+    /// Cell size.
+    pub cell: [usize; 2],
+    /// Replay-plane pitch per image, metres.
+    pub replay_pitch: Vec<[f64; 2]>,
+}
+
+/// Reads a target image as intensities: 8/16-bit grey PNG, or TIFF.
+pub fn read_target(path: &Path) -> Result<(usize, usize, Vec<f64>)> {
+    let ext = path.extension().map(|e| e.to_string_lossy().to_ascii_lowercase()).unwrap_or_default();
+    match ext.as_str() {
+        "png" => crate::replay::metrics::read_png_grey(path),
+        "tif" | "tiff" => {
+            let f = std::fs::File::open(path).map_err(|e| Error::io(path, e))?;
+            let bad = |e: tiff::TiffError| Error::input(path, format!("not a readable TIFF: {e}"));
+            let mut d = tiff::decoder::Decoder::new(std::io::BufReader::new(f)).map_err(bad)?;
+            let (w, h) = d.dimensions().map_err(bad)?;
+            let v: Vec<f64> = match d.read_image().map_err(bad)? {
+                tiff::decoder::DecodingResult::U8(b) if b.len() == (w * h) as usize => b.iter().map(|&x| x as f64 / 255.0).collect(),
+                tiff::decoder::DecodingResult::U16(b) if b.len() == (w * h) as usize => b.iter().map(|&x| x as f64 / 65535.0).collect(),
+                _ => return Err(Error::unsupported(path, "target TIFF must be 8- or 16-bit grey, one sample per pixel")),
+            };
+            Ok((w as usize, h as usize, v))
+        }
+        other => Err(Error::unsupported(path, format!("target image type '.{other}': use PNG or TIFF"))),
+    }
+}
+
+/// Places an image on an nx x ny canvas, centred and shifted by [right, up] pixels.
+fn place(path: &Path, img: (usize, usize, Vec<f64>), nx: usize, ny: usize, shift: [i64; 2]) -> Result<(Vec<f64>, [usize; 4])> {
+    let (w, h, v) = img;
+    let x0 = (nx as i64 - w as i64) / 2 + shift[0];
+    let y0 = (ny as i64 - h as i64) / 2 - shift[1];
+    if x0 < 0 || y0 < 0 || x0 + w as i64 > nx as i64 || y0 + h as i64 > ny as i64 {
+        return Err(Error::job(path, format!("the {w} x {h} px target, shifted by {shift:?}, does not fit the {nx} x {ny} replay grid of the cell")));
+    }
+    let mut t = vec![0.0; nx * ny];
+    for r in 0..h {
+        for c in 0..w {
+            t[(y0 as usize + r) * nx + x0 as usize + c] = v[r * w + c].max(0.0);
+        }
+    }
+    if t.iter().all(|&x| x == 0.0) {
+        return Err(Error::input(path, "the target image is black everywhere"));
+    }
+    Ok((t, [x0 as usize, y0 as usize, w, h]))
+}
+
+/// Runs the iteration and returns the cell laid over the plate.
+pub fn build_cell(spec: &JobSpec, it: &IterativeSpec, mode: ProgressMode) -> Result<(PhaseCell, IterationRecord)> {
+    let p = spec.plate;
+    let cell = it.cell_px.unwrap_or([p.width, p.height]);
+    let (nx, ny) = (cell[0].min(p.width) as usize, cell[1].min(p.height) as usize);
+    if nx > 8192 || ny > 8192 {
+        return Err(Error::job(&spec.path, format!("the iterated cell would be {nx} x {ny} px; set [synthesis] cell_px (at most 8192 x 8192) and let it repeat over the plate")));
+    }
+    let grid = Grid { nx, ny, pitch: p.pitch, wavelength: p.wavelength };
+    let mut planner = PropagationPlanner::<f32>::new();
+    let mut planes = Vec::new();
+    let mut windows = Vec::new();
+    let mut pitches = Vec::new();
+    for o in &spec.objects {
+        let ObjectSource::Image { distance, shift_px } = o.source else { continue };
+        let (fwd, back) = match it.geometry {
+            Geometry::Fourier(f) => (
+                planner.plan_recipe(&grid, 0.0, PropagationRecipe::Fourier { focal: f }),
+                planner.plan_recipe(&grid, 0.0, PropagationRecipe::Fourier { focal: -f }),
+            ),
+            Geometry::Fresnel => {
+                let z = distance.expect("validated: fresnel images carry a distance");
+                let recipe = planner.recipe(&grid, z);
+                let fwd = planner.plan_recipe(&grid, z, recipe);
+                let back = planner.plan_recipe(&fwd.output(), -z, recipe);
+                (fwd, back)
+            }
+        };
+        let img = read_target(&o.points)?;
+        let (target, win) = place(&o.points, img, nx, ny, shift_px)?;
+        pitches.push(fwd.output().pitch);
+        windows.push(win);
+        planes.push(Plane { target, propagator: fwd, back });
+    }
+    let levels = match spec.encoding {
+        EncodingRequest::Fixed(Encoding::Phase { levels }) => Some(levels),
+        EncodingRequest::Fixed(Encoding::BinaryPhase) => Some(2),
+        _ => None,
+    };
+    let algorithm = match it.algorithm {
+        AlgorithmChoice::Gs => Algorithm::GerchbergSaxton,
+        AlgorithmChoice::WeightedGs => Algorithm::WeightedGs,
+        AlgorithmChoice::MixedRegion(mix) => {
+            if windows.len() != 1 {
+                return Err(Error::job(&spec.path, "mixed-region takes one image (its window is the signal window)"));
+            }
+            Algorithm::MixedRegion { signal: windows[0], mix }
+        }
+    };
+    let opts = IterOptions { algorithm, iterations: it.iterations, seed: it.seed, levels, quantize_last: if levels.is_some() { it.quantize_last } else { 0 }, stall_tolerance: it.stall_tolerance };
+    let mut progress = Progress::new("iterations", it.iterations as f64, mode);
+    let mut last = 0usize;
+    let res = optimise(&planes, &grid, &opts, &mut |k, _err| {
+        progress.advance((k + 1).saturating_sub(last) as f64);
+        last = k + 1;
+    });
+    progress.finish();
+    let record = IterationRecord { errors: res.errors.clone(), stopped_early: res.stopped_early, cell: [nx, ny], replay_pitch: pitches };
+    Ok((PhaseCell::new(p, [nx, ny], res.phase, it.carrier, it.lens), record))
+}
+
+/// The sidecar section of an iterative run.
+pub fn sidecar_json(it: &IterativeSpec, rec: &IterationRecord) -> serde_json::Value {
+    serde_json::json!({
+        "geometry": match it.geometry { Geometry::Fourier(_) => "fourier", Geometry::Fresnel => "fresnel" },
+        "focal_mm": match it.geometry { Geometry::Fourier(f) => Some(f * 1e3), Geometry::Fresnel => None },
+        "algorithm": format!("{:?}", it.algorithm),
+        "iterations_run": rec.errors.len().saturating_sub(1),
+        "stopped_early": rec.stopped_early,
+        "error_per_iteration": rec.errors,
+        "cell_px": rec.cell,
+        "replay_pitch_um": rec.replay_pitch.iter().map(|p| [p[0] * 1e6, p[1] * 1e6]).collect::<Vec<_>>(),
+        "carrier_deg": [it.carrier[0].to_degrees(), it.carrier[1].to_degrees()],
+        "lens_mm": it.lens.map(|f| f * 1e3),
+        "seed": it.seed,
+        "quantize_last": it.quantize_last,
+    })
+}
+
+/// Shared handle so `Source` can hold the cell.
+pub type CellHandle = Arc<PhaseCell>;
