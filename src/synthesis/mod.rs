@@ -6,6 +6,7 @@
 
 pub mod iterative;
 pub mod kernels;
+pub mod phase_cell;
 pub mod point_sum;
 pub mod reference;
 pub mod support;
