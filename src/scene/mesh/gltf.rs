@@ -1,0 +1,1152 @@
+//! glTF 2.0 reader: binary `.glb` and JSON `.gltf` (told apart by the `glTF` magic).
+//!
+//! The whole default scene is read (the first scene when the file names none, every root node
+//! when it has no scene), with each node's transform — `matrix`, or `translation`, `rotation`,
+//! `scale` — composed down the hierarchy. Every primitive of mode `TRIANGLES`,
+//! `TRIANGLE_STRIP` or `TRIANGLE_FAN` becomes triangles, indexed or not (points and lines are
+//! skipped). A node whose transform mirrors (negative determinant) has its winding reversed,
+//! so that front faces stay front faces, as the specification asks.
+//!
+//! Read attributes: `POSITION` (millimetres), `NORMAL` (transformed by the inverse transpose),
+//! `COLOR_0` (linear RGB, alpha dropped) and the `TEXCOORD_n` set used by the base colour
+//! texture. Materials give `baseColorFactor`, `baseColorTexture` (PNG or JPEG, embedded in a
+//! buffer view, a `data:` URI, or a file beside the glTF file) with its sampler's filter and
+//! wrapping, and `doubleSided`. Sparse accessors and accessors without a buffer view are
+//! supported; morph targets, skins and animations are not applied (the mesh is read in its
+//! rest pose).
+//!
+//! The JSON is deserialized by the `gltf` crate's `json` module; everything after that —
+//! buffers, accessors, bounds, node graph — is checked here, so a malformed file gives an
+//! [`crate::Error::Input`] naming the JSON element (such as `accessors[3]`) and never a panic.
+//! `extensionsRequired` may only list `KHR_mesh_quantization` (its quantized attribute types
+//! are read); any other required extension, such as `KHR_draco_mesh_compression` or
+//! `EXT_meshopt_compression`, is [`crate::Error::Unsupported`] naming it.
+//!
+//! Allocation stays bounded: accessor data is read only where it lies inside a buffer that
+//! exists, accessors without a buffer view are limited relative to the input size, decoded
+//! images are limited to 16384 x 16384 texels and 256 MiB, and the scene may instance meshes up
+//! to [`MAX_VERTICES`] vertices and [`MAX_TRIANGLES`] triangles in total.
+
+use std::collections::HashMap;
+use std::path::{Path, PathBuf};
+use std::sync::Arc;
+
+use ::gltf::json;
+use json::accessor::{ComponentType, Type};
+use json::mesh::{Mode, Semantic};
+use json::texture::{MagFilter, WrappingMode};
+use json::validation::Checked;
+
+use super::{
+    complete_normals, input_error, one_line, shown, unsupported_error, Material, Mesh, Texture,
+    TextureFilter, TextureWrap,
+};
+use crate::error::{Error, Result};
+
+/// Most vertices a scene may hold after instancing.
+pub const MAX_VERTICES: usize = 1 << 25;
+/// Most triangles a scene may hold after instancing.
+pub const MAX_TRIANGLES: usize = 1 << 25;
+
+/// Most bytes all decoded images of one file may take together (RGBA8).
+pub const MAX_DECODED_IMAGE_BYTES: u64 = 1 << 30;
+/// Largest external image file read.
+const MAX_IMAGE_FILE_BYTES: u64 = 512 << 20;
+
+/// Required extensions this reader handles.
+const SUPPORTED_REQUIRED: &[&str] = &["KHR_mesh_quantization"];
+
+/// Reads a `.glb` or `.gltf` file.
+pub fn read(path: &Path) -> Result<Mesh> {
+    let data = std::fs::read(path).map_err(|e| Error::io(path, e))?;
+    parse(&data, path)
+}
+
+/// Parses glTF bytes; `path` names the source in messages, and its folder is where external
+/// buffers and images are looked up.
+pub fn parse(data: &[u8], path: &Path) -> Result<Mesh> {
+    let (json_bytes, bin) = split_container(data, path)?;
+    let json_bytes = json_bytes
+        .strip_prefix(b"\xEF\xBB\xBF")
+        .unwrap_or(json_bytes);
+    let root: json::Root = json::deserialize::from_slice(json_bytes)
+        .map_err(|e| input_error(path, format!("glTF JSON: {e}")))?;
+    for ext in &root.extensions_required {
+        if !SUPPORTED_REQUIRED.contains(&ext.as_str()) {
+            return Err(unsupported_error(
+                path,
+                format!(
+                    "glTF extension '{}' is required by the file but not supported{}",
+                    shown(ext),
+                    match ext.as_str() {
+                        "KHR_draco_mesh_compression" | "EXT_meshopt_compression" =>
+                            " (export the file without mesh compression)",
+                        _ => "",
+                    }
+                ),
+            ));
+        }
+    }
+    let mut reader = Reader {
+        root: &root,
+        path,
+        base: path.parent().map(Path::to_path_buf).unwrap_or_default(),
+        bin,
+        buffers: vec![None; root.buffers.len()],
+        input_bytes: data.len(),
+        textures: HashMap::new(),
+        decoded_bytes: 0,
+        materials: HashMap::new(),
+        out: Output::default(),
+    };
+    reader.read_scene()?;
+    reader.finish()
+}
+
+/// Splits a GLB container into its JSON chunk and optional BIN chunk; plain JSON passes
+/// through.
+fn split_container<'a>(data: &'a [u8], path: &Path) -> Result<(&'a [u8], Option<&'a [u8]>)> {
+    if !data.starts_with(b"glTF") {
+        return Ok((data, None));
+    }
+    let u32_at = |o: usize| -> Option<u32> {
+        data.get(o..o + 4)
+            .map(|b| u32::from_le_bytes(b.try_into().expect("4 bytes")))
+    };
+    let (Some(version), Some(length)) = (u32_at(4), u32_at(8)) else {
+        return Err(input_error(
+            path,
+            format!(
+                "GLB header: the file ends at byte {} inside the 12-byte header",
+                data.len()
+            ),
+        ));
+    };
+    if version != 2 {
+        return Err(unsupported_error(
+            path,
+            format!("GLB version {version} (only 2 is read)"),
+        ));
+    }
+    if length as usize != data.len() {
+        return Err(input_error(
+            path,
+            format!(
+                "GLB header: the file should be {length} bytes long but is {} (truncated?)",
+                data.len()
+            ),
+        ));
+    }
+    let mut pos = 12usize;
+    let mut json = None;
+    let mut bin = None;
+    while pos < data.len() {
+        let (Some(len), Some(kind)) = (u32_at(pos), data.get(pos + 4..pos + 8)) else {
+            return Err(input_error(
+                path,
+                format!("GLB chunk at byte offset {pos}: the file ends inside its 8-byte header"),
+            ));
+        };
+        let start = pos + 8;
+        let end = start as u64 + u64::from(len);
+        if end > data.len() as u64 {
+            return Err(input_error(
+                path,
+                format!(
+                    "GLB chunk at byte offset {pos}: its length {len} runs past the end of the \
+                     file ({} bytes)",
+                    data.len()
+                ),
+            ));
+        }
+        let chunk = &data[start..end as usize];
+        match (kind, json.is_none()) {
+            (b"JSON", true) => json = Some(chunk),
+            (_, true) => {
+                return Err(input_error(
+                    path,
+                    "GLB: the first chunk is not the JSON chunk",
+                ))
+            }
+            (b"BIN\0", false) if bin.is_none() => bin = Some(chunk),
+            // Unknown chunk types are skipped, as the specification asks.
+            _ => {}
+        }
+        pos = end as usize;
+    }
+    let json = json.ok_or_else(|| input_error(path, "GLB file has no JSON chunk"))?;
+    Ok((json, bin))
+}
+
+/// The mesh being assembled, in scene coordinates.
+#[derive(Default)]
+struct Output {
+    positions: Vec<[f64; 3]>,
+    normals: Vec<Option<[f64; 3]>>,
+    colors: Vec<[f32; 3]>,
+    any_color: bool,
+    uvs: Vec<[f32; 2]>,
+    any_uv: bool,
+    triangles: Vec<[u32; 3]>,
+    tri_material: Vec<u32>,
+    materials: Vec<Material>,
+}
+
+struct Reader<'a> {
+    root: &'a json::Root,
+    path: &'a Path,
+    base: PathBuf,
+    bin: Option<&'a [u8]>,
+    /// Loaded buffers, cut to their `byteLength`.
+    buffers: Vec<Option<Vec<u8>>>,
+    input_bytes: usize,
+    /// Decoded textures by image index and sampling rule.
+    textures: HashMap<(usize, TextureFilter, [TextureWrap; 2]), Arc<Texture>>,
+    /// Bytes of decoded images so far, limited to [`MAX_DECODED_IMAGE_BYTES`].
+    decoded_bytes: u64,
+    /// Output material index by glTF material index (`None`: the default material).
+    materials: HashMap<Option<usize>, u32>,
+    out: Output,
+}
+
+type Mat4 = [[f64; 4]; 4];
+
+const IDENTITY: Mat4 = [
+    [1.0, 0.0, 0.0, 0.0],
+    [0.0, 1.0, 0.0, 0.0],
+    [0.0, 0.0, 1.0, 0.0],
+    [0.0, 0.0, 0.0, 1.0],
+];
+
+fn mat4_mul(a: &Mat4, b: &Mat4) -> Mat4 {
+    let mut c = [[0.0; 4]; 4];
+    for (i, row) in c.iter_mut().enumerate() {
+        for (j, v) in row.iter_mut().enumerate() {
+            *v = (0..4).map(|k| a[i][k] * b[k][j]).sum();
+        }
+    }
+    c
+}
+
+/// The local transform of a node (row-major, acting on column vectors).
+fn node_matrix(node: &json::Node) -> Mat4 {
+    if let Some(m) = node.matrix {
+        // glTF stores matrices column by column.
+        let mut out = [[0.0; 4]; 4];
+        for (c, col) in m.chunks_exact(4).enumerate() {
+            for (r, v) in col.iter().enumerate() {
+                out[r][c] = f64::from(*v);
+            }
+        }
+        return out;
+    }
+    let t = node.translation.unwrap_or([0.0; 3]).map(f64::from);
+    let s = node.scale.unwrap_or([1.0; 3]).map(f64::from);
+    let q = node
+        .rotation
+        .as_ref()
+        .map(|q| q.0)
+        .unwrap_or([0.0, 0.0, 0.0, 1.0]);
+    let [x, y, z, w] = q.map(f64::from);
+    let n = (x * x + y * y + z * z + w * w).sqrt();
+    let (x, y, z, w) = if n > 0.0 {
+        (x / n, y / n, z / n, w / n)
+    } else {
+        (0.0, 0.0, 0.0, 1.0)
+    };
+    let r = [
+        [
+            1.0 - 2.0 * (y * y + z * z),
+            2.0 * (x * y - z * w),
+            2.0 * (x * z + y * w),
+        ],
+        [
+            2.0 * (x * y + z * w),
+            1.0 - 2.0 * (x * x + z * z),
+            2.0 * (y * z - x * w),
+        ],
+        [
+            2.0 * (x * z - y * w),
+            2.0 * (y * z + x * w),
+            1.0 - 2.0 * (x * x + y * y),
+        ],
+    ];
+    let mut out = IDENTITY;
+    for i in 0..3 {
+        for j in 0..3 {
+            out[i][j] = r[i][j] * s[j];
+        }
+        out[i][3] = t[i];
+    }
+    out
+}
+
+fn det3(m: &Mat4) -> f64 {
+    m[0][0] * (m[1][1] * m[2][2] - m[1][2] * m[2][1])
+        - m[0][1] * (m[1][0] * m[2][2] - m[1][2] * m[2][0])
+        + m[0][2] * (m[1][0] * m[2][1] - m[1][1] * m[2][0])
+}
+
+/// The inverse transpose of the upper 3 x 3 block (up to the factor 1/det, irrelevant for
+/// normals that are normalised afterwards): the cofactor matrix.
+fn normal_matrix(m: &Mat4) -> [[f64; 3]; 3] {
+    let a = |i: usize, j: usize| m[i][j];
+    let mut c = [[0.0; 3]; 3];
+    for (i, row) in c.iter_mut().enumerate() {
+        for (j, v) in row.iter_mut().enumerate() {
+            let (i1, i2) = ((i + 1) % 3, (i + 2) % 3);
+            let (j1, j2) = ((j + 1) % 3, (j + 2) % 3);
+            *v = a(i1, j1) * a(i2, j2) - a(i1, j2) * a(i2, j1);
+        }
+    }
+    c
+}
+
+impl<'a> Reader<'a> {
+    fn err(&self, msg: impl AsRef<str>) -> Error {
+        input_error(self.path, msg)
+    }
+
+    fn read_scene(&mut self) -> Result<()> {
+        let root = self.root;
+        let roots: Vec<usize> = match root.scene {
+            Some(s) => {
+                let scene = root.scenes.get(s.value()).ok_or_else(|| {
+                    self.err(format!(
+                        "'scene' {} does not exist ({} scenes)",
+                        s.value(),
+                        root.scenes.len()
+                    ))
+                })?;
+                scene.nodes.iter().map(|n| n.value()).collect()
+            }
+            None if !root.scenes.is_empty() => {
+                root.scenes[0].nodes.iter().map(|n| n.value()).collect()
+            }
+            None => {
+                let mut is_child = vec![false; root.nodes.len()];
+                for node in &root.nodes {
+                    for c in node.children.iter().flatten() {
+                        if let Some(flag) = is_child.get_mut(c.value()) {
+                            *flag = true;
+                        }
+                    }
+                }
+                (0..root.nodes.len()).filter(|&i| !is_child[i]).collect()
+            }
+        };
+        let mut visited = vec![false; root.nodes.len()];
+        let mut stack: Vec<(usize, Mat4, String)> = roots
+            .into_iter()
+            .rev()
+            .map(|n| (n, IDENTITY, "the scene".to_string()))
+            .collect();
+        while let Some((index, parent, from)) = stack.pop() {
+            let node = root.nodes.get(index).ok_or_else(|| {
+                self.err(format!(
+                    "{from} refers to node {index}, which does not exist ({} nodes)",
+                    root.nodes.len()
+                ))
+            })?;
+            if std::mem::replace(&mut visited[index], true) {
+                return Err(self.err(format!(
+                    "node {index} is reached twice in the scene (from {from}): the node graph \
+                     has a cycle or a shared child"
+                )));
+            }
+            let local = node_matrix(node);
+            if local.iter().flatten().any(|v| !v.is_finite()) {
+                return Err(self.err(format!("nodes[{index}]: transform is not finite")));
+            }
+            let world = mat4_mul(&parent, &local);
+            if let Some(mesh) = node.mesh {
+                self.read_mesh(mesh.value(), &world, index)?;
+            }
+            for c in node.children.iter().flatten().rev() {
+                stack.push((c.value(), world, format!("nodes[{index}]")));
+            }
+        }
+        Ok(())
+    }
+
+    fn read_mesh(&mut self, mesh_index: usize, world: &Mat4, node: usize) -> Result<()> {
+        let root = self.root;
+        let mesh = root.meshes.get(mesh_index).ok_or_else(|| {
+            self.err(format!(
+                "nodes[{node}]: mesh {mesh_index} does not exist ({} meshes)",
+                root.meshes.len()
+            ))
+        })?;
+        for (pi, prim) in mesh.primitives.iter().enumerate() {
+            let place = format!("meshes[{mesh_index}].primitives[{pi}]");
+            let mode = match &prim.mode {
+                Checked::Valid(m) => *m,
+                Checked::Invalid => return Err(self.err(format!("{place}: invalid mode"))),
+            };
+            if !matches!(
+                mode,
+                Mode::Triangles | Mode::TriangleStrip | Mode::TriangleFan
+            ) {
+                continue;
+            }
+            self.read_primitive(prim, mode, world, &place)?;
+        }
+        Ok(())
+    }
+
+    fn read_primitive(
+        &mut self,
+        prim: &json::mesh::Primitive,
+        mode: Mode,
+        world: &Mat4,
+        place: &str,
+    ) -> Result<()> {
+        let attr = |s: Semantic| prim.attributes.get(&Checked::Valid(s)).map(|i| i.value());
+        let pos_acc = attr(Semantic::Positions)
+            .ok_or_else(|| self.err(format!("{place}: no POSITION attribute")))?;
+        let positions = self.read_accessor(pos_acc, &[Type::Vec3], false)?;
+        let n = positions.len() / 3;
+        let same_count = |this: &Self, what: &str, vals: &[f64], comps: usize| -> Result<()> {
+            if vals.len() / comps != n {
+                return Err(this.err(format!(
+                    "{place}: {what} has {} elements but POSITION has {n}",
+                    vals.len() / comps
+                )));
+            }
+            Ok(())
+        };
+        let normals = match attr(Semantic::Normals) {
+            Some(a) => {
+                let v = self.read_accessor(a, &[Type::Vec3], false)?;
+                same_count(self, "NORMAL", &v, 3)?;
+                Some(v)
+            }
+            None => None,
+        };
+        let colors = match attr(Semantic::Colors(0)) {
+            Some(a) => {
+                let (v, comps) = self.read_accessor_any(a, &[Type::Vec3, Type::Vec4], true)?;
+                same_count(self, "COLOR_0", &v, comps)?;
+                Some((v, comps))
+            }
+            None => None,
+        };
+
+        // Material (and the texture coordinate set its texture uses).
+        let mat_index = prim.material.map(|m| m.value());
+        let (out_mat, uv_set) = self.material(mat_index, place)?;
+        let uvs = match uv_set {
+            Some(set) => {
+                let a = attr(Semantic::TexCoords(set)).ok_or_else(|| {
+                    self.err(format!(
+                        "{place}: the material has a base colour texture but the primitive has \
+                         no TEXCOORD_{set}"
+                    ))
+                })?;
+                let v = self.read_accessor(a, &[Type::Vec2], false)?;
+                same_count(self, &format!("TEXCOORD_{set}"), &v, 2)?;
+                Some(v)
+            }
+            None => None,
+        };
+
+        let indices: Vec<u32> = match prim.indices {
+            Some(a) => {
+                let v = self.read_index_accessor(a.value())?;
+                if let Some(bad) = v.iter().find(|&&i| i as usize >= n) {
+                    return Err(self.err(format!(
+                        "{place}: index {bad} is not one of the {n} vertices"
+                    )));
+                }
+                v
+            }
+            None => (0..n as u64).map(|i| i as u32).collect(),
+        };
+        let m = indices.len();
+        let mut local: Vec<[u32; 3]> = Vec::new();
+        match mode {
+            Mode::Triangles => {
+                if m % 3 != 0 {
+                    return Err(
+                        self.err(format!("{place}: {m} indices do not make whole triangles"))
+                    );
+                }
+                local.extend(indices.chunks_exact(3).map(|c| [c[0], c[1], c[2]]));
+            }
+            Mode::TriangleStrip => {
+                for i in 0..m.saturating_sub(2) {
+                    let (b, c) = if i % 2 == 0 {
+                        (i + 1, i + 2)
+                    } else {
+                        (i + 2, i + 1)
+                    };
+                    local.push([indices[i], indices[b], indices[c]]);
+                }
+            }
+            Mode::TriangleFan => {
+                for i in 0..m.saturating_sub(2) {
+                    local.push([indices[i + 1], indices[i + 2], indices[0]]);
+                }
+            }
+            _ => unreachable!("filtered by the caller"),
+        }
+
+        let base = self.out.positions.len();
+        if base + n > MAX_VERTICES || self.out.triangles.len() + local.len() > MAX_TRIANGLES {
+            return Err(unsupported_error(
+                self.path,
+                format!(
+                    "{place}: the scene holds more than {MAX_VERTICES} vertices or \
+                     {MAX_TRIANGLES} triangles after instancing"
+                ),
+            ));
+        }
+        let mirrored = det3(world) < 0.0;
+        let nm = normal_matrix(world);
+        for k in 0..n {
+            let p = [positions[3 * k], positions[3 * k + 1], positions[3 * k + 2]];
+            let q = [0, 1, 2].map(|i| {
+                world[i][0] * p[0] + world[i][1] * p[1] + world[i][2] * p[2] + world[i][3]
+            });
+            if !q.iter().all(|v| v.is_finite()) {
+                return Err(self.err(format!("{place}: POSITION {k} is not finite")));
+            }
+            self.out.positions.push(q);
+            self.out.normals.push(match &normals {
+                Some(v) => {
+                    let p = [v[3 * k], v[3 * k + 1], v[3 * k + 2]];
+                    let q = [0, 1, 2].map(|i| nm[i][0] * p[0] + nm[i][1] * p[1] + nm[i][2] * p[2]);
+                    if !q.iter().all(|v| v.is_finite()) {
+                        return Err(self.err(format!("{place}: NORMAL {k} is not finite")));
+                    }
+                    Some(q)
+                }
+                None => None,
+            });
+            self.out.colors.push(match &colors {
+                Some((v, comps)) => {
+                    let c = [v[comps * k], v[comps * k + 1], v[comps * k + 2]].map(|x| x as f32);
+                    if !c.iter().all(|x| x.is_finite()) {
+                        return Err(self.err(format!("{place}: COLOR_0 {k} is not finite")));
+                    }
+                    c
+                }
+                None => [1.0; 3],
+            });
+            self.out.uvs.push(match &uvs {
+                Some(v) => [v[2 * k] as f32, v[2 * k + 1] as f32],
+                None => [0.0; 2],
+            });
+        }
+        self.out.any_color |= colors.is_some();
+        self.out.any_uv |= uvs.is_some();
+        for t in local {
+            let t = t.map(|i| (i as usize + base) as u32);
+            self.out
+                .triangles
+                .push(if mirrored { [t[0], t[2], t[1]] } else { t });
+            self.out.tri_material.push(out_mat);
+        }
+        Ok(())
+    }
+
+    /// The output material for glTF material `index` (`None`: the default material), and the
+    /// texture coordinate set its base colour texture reads.
+    fn material(&mut self, index: Option<usize>, place: &str) -> Result<(u32, Option<u32>)> {
+        let root = self.root;
+        let (material, uv_set) = match index {
+            None => (Material::default(), None),
+            Some(i) => {
+                let m = root.materials.get(i).ok_or_else(|| {
+                    self.err(format!(
+                        "{place}: material {i} does not exist ({} materials)",
+                        root.materials.len()
+                    ))
+                })?;
+                let pbr = &m.pbr_metallic_roughness;
+                let base_color = pbr.base_color_factor.0;
+                if !base_color.iter().all(|v| v.is_finite()) {
+                    return Err(self.err(format!("materials[{i}]: baseColorFactor is not finite")));
+                }
+                let (texture, uv_set) = match &pbr.base_color_texture {
+                    Some(info) => (
+                        Some(self.texture(info.index.value(), i)?),
+                        Some(info.tex_coord),
+                    ),
+                    None => (None, None),
+                };
+                (
+                    Material {
+                        base_color,
+                        texture,
+                        double_sided: m.double_sided,
+                    },
+                    uv_set,
+                )
+            }
+        };
+        if let Some(&k) = self.materials.get(&index) {
+            return Ok((k, uv_set));
+        }
+        let k = self.out.materials.len() as u32;
+        self.out.materials.push(material);
+        self.materials.insert(index, k);
+        Ok((k, uv_set))
+    }
+
+    fn texture(&mut self, index: usize, material: usize) -> Result<Arc<Texture>> {
+        let root = self.root;
+        let tex = root.textures.get(index).ok_or_else(|| {
+            self.err(format!(
+                "materials[{material}]: texture {index} does not exist ({} textures)",
+                root.textures.len()
+            ))
+        })?;
+        let (mut filter, mut wrap) = (TextureFilter::Bilinear, [TextureWrap::Repeat; 2]);
+        if let Some(s) = tex.sampler {
+            let sampler = root.samplers.get(s.value()).ok_or_else(|| {
+                self.err(format!(
+                    "textures[{index}]: sampler {} does not exist",
+                    s.value()
+                ))
+            })?;
+            if let Some(Checked::Valid(MagFilter::Nearest)) = sampler.mag_filter {
+                filter = TextureFilter::Nearest;
+            }
+            let w = |m: &Checked<WrappingMode>| match m {
+                Checked::Valid(WrappingMode::ClampToEdge) => TextureWrap::ClampToEdge,
+                Checked::Valid(WrappingMode::MirroredRepeat) => TextureWrap::MirroredRepeat,
+                _ => TextureWrap::Repeat,
+            };
+            wrap = [w(&sampler.wrap_s), w(&sampler.wrap_t)];
+        }
+        let key = (tex.source.value(), filter, wrap);
+        if let Some(t) = self.textures.get(&key) {
+            return Ok(t.clone());
+        }
+        let (width, height, rgba) = self.image(key.0)?;
+        let t = Arc::new(Texture {
+            width,
+            height,
+            rgba,
+            filter,
+            wrap,
+        });
+        self.textures.insert(key, t.clone());
+        Ok(t)
+    }
+
+    /// Decodes image `index` to RGBA8.
+    fn image(&mut self, index: usize) -> Result<(u32, u32, Vec<u8>)> {
+        let root = self.root;
+        let place = format!("images[{index}]");
+        let img = root.images.get(index).ok_or_else(|| {
+            self.err(format!(
+                "{place} does not exist ({} images)",
+                root.images.len()
+            ))
+        })?;
+        let bytes: Vec<u8> = match (&img.uri, img.buffer_view) {
+            (Some(uri), _) => self.load_uri(uri, &place, MAX_IMAGE_FILE_BYTES, true)?,
+            (None, Some(v)) => {
+                let (buf, start, len) = self.view_range(v.value(), &place)?;
+                self.buffers[buf].as_ref().expect("loaded by view_range")[start..start + len]
+                    .to_vec()
+            }
+            (None, None) => {
+                return Err(self.err(format!("{place} has neither a uri nor a bufferView")))
+            }
+        };
+        use image::ImageFormat;
+        let format = match img.mime_type.as_ref().map(|m| m.0.as_str()) {
+            Some("image/png") => ImageFormat::Png,
+            Some("image/jpeg") => ImageFormat::Jpeg,
+            _ if bytes.starts_with(b"\x89PNG") => ImageFormat::Png,
+            _ if bytes.starts_with(&[0xFF, 0xD8, 0xFF]) => ImageFormat::Jpeg,
+            Some(other) => {
+                return Err(unsupported_error(
+                    self.path,
+                    format!(
+                        "{place}: image type '{}' (PNG and JPEG are read)",
+                        shown(other)
+                    ),
+                ))
+            }
+            None => {
+                return Err(unsupported_error(
+                    self.path,
+                    format!("{place}: the image is neither PNG nor JPEG"),
+                ))
+            }
+        };
+        let mut limits = image::Limits::default();
+        limits.max_image_width = Some(16384);
+        limits.max_image_height = Some(16384);
+        limits.max_alloc = Some(256 << 20);
+        let mut reader = image::ImageReader::with_format(std::io::Cursor::new(bytes), format);
+        reader.limits(limits);
+        let decoded = reader
+            .decode()
+            .map_err(|e| self.err(format!("{place}: cannot decode the image: {e}")))?;
+        let (w, h) = (decoded.width(), decoded.height());
+        if w == 0 || h == 0 {
+            return Err(self.err(format!("{place}: the image is empty")));
+        }
+        self.decoded_bytes += 4 * u64::from(w) * u64::from(h);
+        if self.decoded_bytes > MAX_DECODED_IMAGE_BYTES {
+            return Err(unsupported_error(
+                self.path,
+                format!(
+                    "{place}: the decoded images of this file exceed {} MiB",
+                    MAX_DECODED_IMAGE_BYTES >> 20
+                ),
+            ));
+        }
+        Ok((w, h, decoded.to_rgba8().into_raw()))
+    }
+
+    /// Reads the bytes of a `data:` URI or of a regular file relative to the glTF file: at
+    /// most `limit` bytes of it; a longer file is an error when `longer_is_error`, else cut.
+    fn load_uri(
+        &self,
+        uri: &str,
+        place: &str,
+        limit: u64,
+        longer_is_error: bool,
+    ) -> Result<Vec<u8>> {
+        if let Some(rest) = uri.strip_prefix("data:") {
+            let Some((_, payload)) = rest.split_once(";base64,") else {
+                return Err(unsupported_error(
+                    self.path,
+                    format!("{place}: data URI without base64 encoding"),
+                ));
+            };
+            return decode_base64(payload)
+                .ok_or_else(|| self.err(format!("{place}: the data URI is not valid base64")));
+        }
+        let scheme_end = uri.find(':');
+        let slash = uri.find('/');
+        if let Some(c) = scheme_end {
+            // A colon before any slash is a URI scheme (http:, file:...); not read.
+            if slash.map_or(true, |s| c < s) {
+                return Err(unsupported_error(
+                    self.path,
+                    format!(
+                        "{place}: URI '{}' (only data: URIs and relative file paths are read)",
+                        shown(uri)
+                    ),
+                ));
+            }
+        }
+        let decoded = percent_decode(uri)
+            .ok_or_else(|| self.err(format!("{place}: URI '{}' has a bad %-escape", shown(uri))))?;
+        let file = self.base.join(decoded);
+        let fail = |what: String| {
+            Error::input(
+                self.path,
+                one_line(&format!(
+                    "{place}: cannot read '{}': {what}",
+                    file.display()
+                )),
+            )
+        };
+        let f = std::fs::File::open(&file).map_err(|e| fail(e.to_string()))?;
+        let meta = f.metadata().map_err(|e| fail(e.to_string()))?;
+        if !meta.is_file() {
+            return Err(fail("not a regular file".into()));
+        }
+        if longer_is_error && meta.len() > limit {
+            return Err(fail(format!("larger than {} MiB", limit >> 20)));
+        }
+        let mut data = Vec::new();
+        std::io::Read::read_to_end(&mut std::io::Read::take(f, limit), &mut data)
+            .map_err(|e| fail(e.to_string()))?;
+        Ok(data)
+    }
+
+    /// Loads buffer `i` (once) and returns nothing; afterwards `self.buffers[i]` holds it.
+    fn load_buffer(&mut self, i: usize, place: &str) -> Result<()> {
+        if self.buffers.get(i).is_some_and(Option::is_some) {
+            return Ok(());
+        }
+        let root = self.root;
+        let buffer = root.buffers.get(i).ok_or_else(|| {
+            self.err(format!(
+                "{place} refers to buffer {i}, which does not exist ({} buffers)",
+                root.buffers.len()
+            ))
+        })?;
+        let bplace = format!("buffers[{i}]");
+        let mut data = match &buffer.uri {
+            Some(uri) => self.load_uri(uri, &bplace, buffer.byte_length.0, false)?,
+            None => self
+                .bin
+                .ok_or_else(|| {
+                    self.err(format!("{bplace} has no uri and the file has no BIN chunk"))
+                })?
+                .to_vec(),
+        };
+        let len = buffer.byte_length.0;
+        if (data.len() as u64) < len {
+            return Err(self.err(format!(
+                "{bplace}: byteLength is {len} but only {} bytes are there (truncated?)",
+                data.len()
+            )));
+        }
+        data.truncate(len as usize);
+        self.buffers[i] = Some(data);
+        Ok(())
+    }
+
+    /// Buffer index, start and length of buffer view `v`, after checking that it lies inside
+    /// its buffer (which is loaded).
+    fn view_range(&mut self, v: usize, place: &str) -> Result<(usize, usize, usize)> {
+        let root = self.root;
+        let view = root.buffer_views.get(v).ok_or_else(|| {
+            self.err(format!(
+                "{place} refers to bufferView {v}, which does not exist ({} views)",
+                root.buffer_views.len()
+            ))
+        })?;
+        let b = view.buffer.value();
+        self.load_buffer(b, &format!("bufferViews[{v}]"))?;
+        let buf_len = self.buffers[b].as_ref().expect("loaded").len() as u64;
+        let start = view.byte_offset.map(|o| o.0).unwrap_or(0);
+        let len = view.byte_length.0;
+        if start.checked_add(len).map_or(true, |end| end > buf_len) {
+            return Err(self.err(format!(
+                "bufferViews[{v}]: bytes {start}..{} lie outside buffer {b} ({buf_len} bytes)",
+                start.saturating_add(len)
+            )));
+        }
+        Ok((b, start as usize, len as usize))
+    }
+
+    /// Reads an accessor of one of the `types`, returning its values flattened.
+    fn read_accessor(
+        &mut self,
+        index: usize,
+        types: &[Type],
+        force_normalized: bool,
+    ) -> Result<Vec<f64>> {
+        Ok(self.read_accessor_any(index, types, force_normalized)?.0)
+    }
+
+    /// Reads an accessor of one of the `types`: values flattened, and the component count.
+    /// Integer components are mapped to `[0, 1]` or `[-1, 1]` when the accessor is normalized
+    /// or `force_normalized` is set (colours, whose integer forms are always normalized).
+    fn read_accessor_any(
+        &mut self,
+        index: usize,
+        types: &[Type],
+        force_normalized: bool,
+    ) -> Result<(Vec<f64>, usize)> {
+        let root = self.root;
+        let place = format!("accessors[{index}]");
+        let acc = root.accessors.get(index).ok_or_else(|| {
+            self.err(format!(
+                "accessor {index} does not exist ({} accessors)",
+                root.accessors.len()
+            ))
+        })?;
+        let ty = match &acc.type_ {
+            Checked::Valid(t) if types.contains(t) => *t,
+            _ => return Err(self.err(format!("{place}: type must be one of {types:?}"))),
+        };
+        let comps = match ty {
+            Type::Scalar => 1,
+            Type::Vec2 => 2,
+            Type::Vec3 => 3,
+            Type::Vec4 => 4,
+            _ => unreachable!("matrix types are never requested"),
+        };
+        let ct = match &acc.component_type {
+            Checked::Valid(c) => c.0,
+            Checked::Invalid => return Err(self.err(format!("{place}: invalid componentType"))),
+        };
+        let normalize = (acc.normalized || force_normalized) && ct != ComponentType::F32;
+        let count = acc.count.0;
+        let elem = comps * component_size(ct);
+        let mut values: Vec<f64>;
+        match acc.buffer_view {
+            Some(v) => {
+                let (b, start, len) = self.view_range(v.value(), &place)?;
+                let view = &root.buffer_views[v.value()];
+                let stride = view.byte_stride.map(|s| s.0).unwrap_or(elem);
+                if stride < elem {
+                    return Err(self.err(format!(
+                        "{place}: byteStride {stride} is smaller than an element ({elem} bytes)"
+                    )));
+                }
+                let off = acc.byte_offset.map(|o| o.0).unwrap_or(0);
+                if count > 0 {
+                    let need =
+                        u128::from(off) + stride as u128 * u128::from(count - 1) + elem as u128;
+                    if need > len as u128 {
+                        return Err(self.err(format!(
+                            "{place}: {count} elements from byte {off} need {need} bytes but \
+                             bufferView {} has {len}",
+                            v.value()
+                        )));
+                    }
+                }
+                // Bounded by the view length checked above.
+                let data = &self.buffers[b].as_ref().expect("loaded")[start..start + len];
+                values = Vec::with_capacity(count as usize * comps);
+                for k in 0..count as usize {
+                    let o = off as usize + k * stride;
+                    for c in 0..comps {
+                        values.push(component(data, o + c * component_size(ct), ct, normalize));
+                    }
+                }
+            }
+            None => {
+                let budget = (8 * self.input_bytes as u64).max(1 << 20);
+                if count.saturating_mul(comps as u64) > budget {
+                    return Err(self.err(format!(
+                        "{place}: {count} elements without a bufferView is implausibly many \
+                         for a file of {} bytes",
+                        self.input_bytes
+                    )));
+                }
+                values = vec![0.0; count as usize * comps];
+            }
+        }
+        if let Some(sparse) = &acc.sparse {
+            let sp = format!("{place}.sparse");
+            let n = sparse.count.0;
+            if n > count {
+                return Err(self.err(format!(
+                    "{sp}: count {n} exceeds the accessor count {count}"
+                )));
+            }
+            let ict = match &sparse.indices.component_type {
+                Checked::Valid(c) => c.0,
+                Checked::Invalid => {
+                    return Err(self.err(format!("{sp}.indices: invalid componentType")))
+                }
+            };
+            if !matches!(
+                ict,
+                ComponentType::U8 | ComponentType::U16 | ComponentType::U32
+            ) {
+                return Err(self.err(format!("{sp}.indices: componentType must be unsigned")));
+            }
+            let (ib, istart, ilen) = self.view_range(sparse.indices.buffer_view.value(), &sp)?;
+            let (vb, vstart, vlen) = self.view_range(sparse.values.buffer_view.value(), &sp)?;
+            let ioff = sparse.indices.byte_offset.0;
+            let voff = sparse.values.byte_offset.0;
+            let isz = component_size(ict) as u128;
+            if u128::from(ioff) + isz * u128::from(n) > ilen as u128
+                || u128::from(voff) + elem as u128 * u128::from(n) > vlen as u128
+            {
+                return Err(self.err(format!("{sp}: indices or values run past their bufferView")));
+            }
+            let idata = &self.buffers[ib].as_ref().expect("loaded")[istart..istart + ilen];
+            let vdata = &self.buffers[vb].as_ref().expect("loaded")[vstart..vstart + vlen];
+            for k in 0..n as usize {
+                let target = component(idata, ioff as usize + k * isz as usize, ict, false);
+                if target >= count as f64 {
+                    return Err(self.err(format!(
+                        "{sp}: index {target} is not below the accessor count {count}"
+                    )));
+                }
+                for c in 0..comps {
+                    let o = voff as usize + k * elem + c * component_size(ct);
+                    values[target as usize * comps + c] = component(vdata, o, ct, normalize);
+                }
+            }
+        }
+        Ok((values, comps))
+    }
+
+    fn read_index_accessor(&mut self, index: usize) -> Result<Vec<u32>> {
+        let root = self.root;
+        if let Some(Checked::Valid(ct)) = root.accessors.get(index).map(|a| &a.component_type) {
+            if !matches!(
+                ct.0,
+                ComponentType::U8 | ComponentType::U16 | ComponentType::U32
+            ) {
+                return Err(self.err(format!(
+                    "accessors[{index}]: indices must be unsigned bytes, shorts or ints"
+                )));
+            }
+        }
+        let v = self.read_accessor(index, &[Type::Scalar], false)?;
+        Ok(v.into_iter().map(|x| x as u32).collect())
+    }
+
+    fn finish(self) -> Result<Mesh> {
+        let out = self.out;
+        if out.triangles.is_empty() {
+            return Err(input_error(
+                self.path,
+                "the glTF scene has no triangles (no mesh with a triangle primitive is reachable \
+                 from its nodes)",
+            ));
+        }
+        let normals = complete_normals(&out.positions, &out.triangles, out.normals);
+        Ok(Mesh {
+            positions: out.positions,
+            triangles: out.triangles,
+            normals,
+            colors: out.any_color.then_some(out.colors),
+            uvs: out.any_uv.then_some(out.uvs),
+            tri_material: out.tri_material,
+            materials: out.materials,
+            source: self.path.to_path_buf(),
+        })
+    }
+}
+
+fn component_size(ct: ComponentType) -> usize {
+    match ct {
+        ComponentType::I8 | ComponentType::U8 => 1,
+        ComponentType::I16 | ComponentType::U16 => 2,
+        ComponentType::U32 | ComponentType::F32 => 4,
+    }
+}
+
+/// Decodes one little-endian component at `o` (in bounds, checked by the caller).
+fn component(data: &[u8], o: usize, ct: ComponentType, normalize: bool) -> f64 {
+    let b = &data[o..o + component_size(ct)];
+    match ct {
+        ComponentType::I8 => {
+            let v = f64::from(b[0] as i8);
+            if normalize {
+                (v / 127.0).max(-1.0)
+            } else {
+                v
+            }
+        }
+        ComponentType::U8 => {
+            let v = f64::from(b[0]);
+            if normalize {
+                v / 255.0
+            } else {
+                v
+            }
+        }
+        ComponentType::I16 => {
+            let v = f64::from(i16::from_le_bytes([b[0], b[1]]));
+            if normalize {
+                (v / 32767.0).max(-1.0)
+            } else {
+                v
+            }
+        }
+        ComponentType::U16 => {
+            let v = f64::from(u16::from_le_bytes([b[0], b[1]]));
+            if normalize {
+                v / 65535.0
+            } else {
+                v
+            }
+        }
+        ComponentType::U32 => {
+            let v = f64::from(u32::from_le_bytes([b[0], b[1], b[2], b[3]]));
+            if normalize {
+                v / 4294967295.0
+            } else {
+                v
+            }
+        }
+        ComponentType::F32 => f64::from(f32::from_le_bytes([b[0], b[1], b[2], b[3]])),
+    }
+}
+
+/// Decodes standard or URL-safe base64, with optional `=` padding; `None` when malformed.
+fn decode_base64(text: &str) -> Option<Vec<u8>> {
+    let text = text.trim_end_matches('=');
+    let mut out = Vec::with_capacity(text.len() / 4 * 3 + 3);
+    let (mut acc, mut bits) = (0u32, 0u32);
+    for c in text.bytes() {
+        let v = match c {
+            b'A'..=b'Z' => c - b'A',
+            b'a'..=b'z' => c - b'a' + 26,
+            b'0'..=b'9' => c - b'0' + 52,
+            b'+' | b'-' => 62,
+            b'/' | b'_' => 63,
+            _ => return None,
+        };
+        acc = (acc << 6) | u32::from(v);
+        bits += 6;
+        if bits >= 8 {
+            bits -= 8;
+            out.push((acc >> bits) as u8);
+            acc &= (1 << bits) - 1;
+        }
+    }
+    // A single leftover character (6 bits) cannot end valid base64.
+    (bits < 6).then_some(out)
+}
+
+/// Decodes `%XX` escapes of a relative URI into a path string; `None` for a bad escape or
+/// invalid UTF-8.
+fn percent_decode(uri: &str) -> Option<String> {
+    let b = uri.as_bytes();
+    let mut out = Vec::with_capacity(b.len());
+    let mut i = 0;
+    while i < b.len() {
+        if b[i] == b'%' {
+            let hex = std::str::from_utf8(b.get(i + 1..i + 3)?).ok()?;
+            out.push(u8::from_str_radix(hex, 16).ok()?);
+            i += 3;
+        } else {
+            out.push(b[i]);
+            i += 1;
+        }
+    }
+    String::from_utf8(out).ok()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn base64_round_values() {
+        // RFC 4648, section 10 test vectors.
+        for (plain, enc) in [
+            ("", ""),
+            ("f", "Zg=="),
+            ("fo", "Zm8="),
+            ("foo", "Zm9v"),
+            ("foob", "Zm9vYg=="),
+            ("fooba", "Zm9vYmE="),
+            ("foobar", "Zm9vYmFy"),
+        ] {
+            assert_eq!(
+                decode_base64(enc).as_deref(),
+                Some(plain.as_bytes()),
+                "{enc}"
+            );
+        }
+        assert_eq!(decode_base64("Zm9v!"), None);
+        assert_eq!(decode_base64("Z"), None);
+    }
+
+    #[test]
+    fn percent_escapes() {
+        assert_eq!(percent_decode("a%20b.bin").as_deref(), Some("a b.bin"));
+        assert_eq!(percent_decode("a%2"), None);
+        assert_eq!(percent_decode("a%zz"), None);
+    }
+
+    #[test]
+    fn trs_matches_hand_composed_matrix() {
+        // 90 degrees about z: quaternion (0, 0, sin 45, cos 45).
+        let h = std::f32::consts::FRAC_1_SQRT_2;
+        let json = format!(r#"{{"translation":[1,2,3],"rotation":[0,0,{h},{h}],"scale":[2,3,4]}}"#);
+        let node: json::Node = json::deserialize::from_str(&json).unwrap();
+        let m = node_matrix(&node);
+        // x -> 2 * (0, 1, 0) + t; y -> 3 * (-1, 0, 0) + t.
+        let apply = |p: [f64; 3]| {
+            [0, 1, 2].map(|i| m[i][0] * p[0] + m[i][1] * p[1] + m[i][2] * p[2] + m[i][3])
+        };
+        let close = |a: [f64; 3], b: [f64; 3]| a.iter().zip(b).all(|(x, y)| (x - y).abs() < 1e-6);
+        assert!(close(apply([1.0, 0.0, 0.0]), [1.0, 4.0, 3.0]));
+        assert!(close(apply([0.0, 1.0, 0.0]), [-2.0, 2.0, 3.0]));
+        assert!(close(apply([0.0, 0.0, 1.0]), [1.0, 2.0, 7.0]));
+    }
+}
