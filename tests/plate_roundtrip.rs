@@ -116,3 +116,65 @@ fn resolution_tags_give_physical_size() {
         assert!((px_per_cm * pitch_cm - 1.0).abs() < 1e-9);
     }
 }
+
+/// A modulator calibration table: the identity table (phase 2 pi s / 256 for grey s) leaves the plate
+/// unchanged; a non-linear one writes, for every pixel, the grey value whose measured phase is
+/// nearest (mod 2 pi) to the pixel's level phase 2 pi g / N (computed here independently).
+#[test]
+fn calibration_table_is_applied_exactly() {
+    let two_pi = 2.0 * std::f64::consts::PI;
+    let dir = tempfile::tempdir().unwrap();
+    let plain = {
+        let job = write_job(dir.path(), "kind = \"phase\"\nlevels = 16", "");
+        let spec = JobSpec::load(&job).unwrap();
+        decode(&run_job(&spec, &RunOptions::new(ProgressMode::Quiet)).unwrap().tiff).2
+    };
+    let mut ident = String::from("grey,phase_rad\n");
+    for s in 0..256 {
+        ident += &format!("{s},{}\n", two_pi * s as f64 / 256.0);
+    }
+    std::fs::write(dir.path().join("ident.csv"), ident).unwrap();
+    let job = write_job(dir.path(), "kind = \"phase\"\nlevels = 16\ncalibration = \"ident.csv\"", "");
+    let spec = JobSpec::load(&job).unwrap();
+    let with_ident = decode(&run_job(&spec, &RunOptions::new(ProgressMode::Quiet)).unwrap().tiff).2;
+    assert!(with_ident == plain, "identity calibration changed the plate");
+    // A gamma-like response reaching 2.2 pi at grey 255, sampled every 3 grey values.
+    let response = |s: u32| 2.2 * std::f64::consts::PI * (s as f64 / 255.0).powf(1.6);
+    let mut table = String::from("# measured response\ngrey,phase_rad\n");
+    for s in (0..256).step_by(3) {
+        table += &format!("{s},{}\n", response(s));
+    }
+    std::fs::write(dir.path().join("lut.csv"), table).unwrap();
+    let job = write_job(dir.path(), "kind = \"phase\"\nlevels = 16\ncalibration = \"lut.csv\"", "");
+    let spec = JobSpec::load(&job).unwrap();
+    let out = decode(&run_job(&spec, &RunOptions::new(ProgressMode::Quiet)).unwrap().tiff).2;
+    let nearest = |g: u32| {
+        let want = two_pi * g as f64 / 16.0;
+        (0..256u32)
+            .step_by(3)
+            .map(|s| {
+                let d = (response(s) - want).rem_euclid(two_pi);
+                (d.min(two_pi - d), s)
+            })
+            .min_by(|a, b| a.0.total_cmp(&b.0).then(a.1.cmp(&b.1)))
+            .unwrap()
+            .1 as u16
+    };
+    let emitters = fringemill::job::build_emitters(&spec).unwrap();
+    for i in 0..41u32 {
+        for j in 0..53u32 {
+            let f = fringe_at(&spec.plate, &spec.reference, &emitters, &spec.synthesis, i, j);
+            let mut phi = f.im.atan2(f.re);
+            if phi < 0.0 {
+                phi += two_pi;
+            }
+            let g = ((16.0 * phi / two_pi).round() as u32) % 16;
+            assert_eq!(out[(i * 53 + j) as usize], nearest(g), "pixel ({i}, {j}) level {g}");
+        }
+    }
+    // A malformed table is a one-line error naming the file and line.
+    std::fs::write(dir.path().join("bad.csv"), "grey,phase_rad\n3,x\n").unwrap();
+    let job = write_job(dir.path(), "kind = \"phase\"\nlevels = 16\ncalibration = \"bad.csv\"", "");
+    let e = JobSpec::load(&job).unwrap_err().to_string();
+    assert!(e.contains("bad.csv") && e.contains("line 2"), "{e}");
+}

@@ -12,13 +12,71 @@
 
 use num_complex::Complex64;
 
+/// A modulator's measured grey-to-phase response, applied when writing N-level phase:
+/// level g (phase 2 pi g / N) is written as the grey value whose measured phase is nearest to it
+/// modulo 2 pi (phase wrap 2 pi).
+#[derive(Clone, Debug, PartialEq)]
+pub struct Calibration {
+    /// Bits of the stored grey values (8 or 16).
+    pub bits: u8,
+    /// Measured (grey, phase in radians) pairs, as given.
+    pub table: Vec<(u16, f64)>,
+    /// Grey value written for each level g = 0..N.
+    pub level_to_grey: Vec<u16>,
+}
+
+impl Calibration {
+    /// Builds the level -> grey map for `levels` levels from measured pairs.
+    ///
+    /// # Errors
+    /// A message when the table is empty or a grey value exceeds the bit depth.
+    pub fn new(table: Vec<(u16, f64)>, levels: u32, bits: u8) -> Result<Calibration, String> {
+        if table.is_empty() {
+            return Err("the calibration table is empty".into());
+        }
+        let max = if bits == 8 { 255 } else { 65535 };
+        if let Some(&(g, _)) = table.iter().find(|&&(g, _)| g as u32 > max) {
+            return Err(format!("grey value {g} exceeds the {bits}-bit range of {levels} levels"));
+        }
+        let two_pi = 2.0 * std::f64::consts::PI;
+        let level_to_grey = (0..levels)
+            .map(|g| {
+                let want = two_pi * g as f64 / levels as f64;
+                let mut best = (f64::INFINITY, 0u16);
+                for &(grey, ph) in &table {
+                    let d = (ph - want).rem_euclid(two_pi);
+                    let d = d.min(two_pi - d);
+                    // Nearest phase; ties go to the lower grey value.
+                    if d < best.0 || (d == best.0 && grey < best.1) {
+                        best = (d, grey);
+                    }
+                }
+                best.1
+            })
+            .collect();
+        Ok(Calibration { bits, table, level_to_grey })
+    }
+
+    /// Measured phase of a grey value (the nearest tabulated grey if it is not in the table).
+    pub fn phase_of(&self, grey: u16) -> f64 {
+        self.table.iter().min_by_key(|&&(g, _)| (g as i64 - grey as i64).abs()).map(|&(_, p)| p).unwrap_or(0.0)
+    }
+}
+
 /// A hologram encoding with its parameters resolved.
-#[derive(Clone, Copy, Debug, PartialEq)]
+#[derive(Clone, Debug, PartialEq)]
 pub enum Encoding {
     /// N-level phase (kinoform), 2 <= levels <= 65536.
     Phase {
         /// N.
         levels: u32,
+    },
+    /// N-level phase written through a modulator's calibration table.
+    CalibratedPhase {
+        /// N.
+        levels: u32,
+        /// The measured response.
+        calibration: std::sync::Arc<Calibration>,
     },
     /// Two phase levels, 0 and pi.
     BinaryPhase,
@@ -37,7 +95,7 @@ impl Encoding {
     /// The job-file spelling of the kind.
     pub fn kind_name(&self) -> &'static str {
         match self {
-            Encoding::Phase { .. } => "phase",
+            Encoding::Phase { .. } | Encoding::CalibratedPhase { .. } => "phase",
             Encoding::BinaryPhase => "binary-phase",
             Encoding::BinaryAmplitude => "binary-amplitude",
             Encoding::Amplitude { .. } => "amplitude",
@@ -47,7 +105,7 @@ impl Encoding {
     /// Bits per stored sample: 1, 8 or 16.
     pub fn bits_per_sample(&self) -> u8 {
         match *self {
-            Encoding::Phase { levels } => {
+            Encoding::Phase { levels } | Encoding::CalibratedPhase { levels, .. } => {
                 if levels <= 256 {
                     8
                 } else {
@@ -73,6 +131,7 @@ impl Encoding {
     pub fn sample(&self, f: Complex64) -> u16 {
         match *self {
             Encoding::Phase { levels } => phase_sample(f, levels),
+            Encoding::CalibratedPhase { levels, ref calibration } => calibration.level_to_grey[phase_level(f, levels) as usize],
             Encoding::BinaryPhase => (f.re < 0.0) as u16,
             Encoding::BinaryAmplitude => (f.re >= 0.0) as u16,
             Encoding::Amplitude { bits, scale } => amplitude_sample(f.re, scale, bits),
@@ -111,6 +170,7 @@ impl Encoding {
     /// (amplitude encodings): what a replay rebuilds from the file.
     pub fn transmittance(&self, s: u16) -> Complex64 {
         match *self {
+            Encoding::CalibratedPhase { ref calibration, .. } => Complex64::from_polar(1.0, calibration.phase_of(s)),
             Encoding::Phase { levels } => {
                 let b = if levels <= 256 { 8 } else { 16 };
                 Complex64::from_polar(1.0, 2.0 * std::f64::consts::PI * s as f64 / (1u32 << b) as f64)

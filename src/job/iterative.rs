@@ -106,8 +106,8 @@ pub fn build_cell(spec: &JobSpec, it: &IterativeSpec, mode: ProgressMode) -> Res
         windows.push(win);
         planes.push(Plane { target, propagator: fwd, back });
     }
-    let levels = match spec.encoding {
-        EncodingRequest::Fixed(Encoding::Phase { levels }) => Some(levels),
+    let levels = match &spec.encoding {
+        EncodingRequest::Fixed(Encoding::Phase { levels }) | EncodingRequest::Fixed(Encoding::CalibratedPhase { levels, .. }) => Some(*levels),
         EncodingRequest::Fixed(Encoding::BinaryPhase) => Some(2),
         _ => None,
     };

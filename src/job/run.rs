@@ -275,9 +275,9 @@ fn prepare(spec: &JobSpec, mode: ProgressMode) -> Result<Prepared> {
             (Source::Cell(cell, rec, it.clone()), 0)
         }
     };
-    let encoding = match spec.encoding {
-        EncodingRequest::Fixed(e) => e,
-        EncodingRequest::AmplitudeAuto { bits } => Encoding::Amplitude { bits, scale: measure_bipolar_scale(&sum) },
+    let encoding = match &spec.encoding {
+        EncodingRequest::Fixed(e) => e.clone(),
+        EncodingRequest::AmplitudeAuto { bits } => Encoding::Amplitude { bits: *bits, scale: measure_bipolar_scale(&sum) },
     };
     let mut layout = tiff_layout(spec, &encoding);
     let (fields, blocks, rps, unit_rows) = match spec.field_px {
@@ -519,7 +519,7 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
                 return Err(e);
             }
             let _ = std::fs::remove_file(&journal);
-            Ok(RunSummary { tiff: finished.path, sidecar, emitters: prep.emitters, updates, encoding: prep.encoding })
+            Ok(RunSummary { tiff: finished.path, sidecar, emitters: prep.emitters, updates, encoding: prep.encoding.clone() })
         }
         Sink::Part { mut file, path } => {
             file.flush().and_then(|_| file.get_ref().sync_all()).map_err(|e| Error::io(&path, e))?;
@@ -530,7 +530,7 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
             std::fs::rename(&path, &final_part).map_err(|e| Error::io(&final_part, e))?;
             write_atomically(&part_meta_path(&final_part), &serde_json::to_vec_pretty(&meta).expect("plain data"))?;
             let _ = std::fs::remove_file(&journal);
-            Ok(RunSummary { tiff: final_part.clone(), sidecar: part_meta_path(&final_part), emitters: prep.emitters, updates, encoding: prep.encoding })
+            Ok(RunSummary { tiff: final_part.clone(), sidecar: part_meta_path(&final_part), emitters: prep.emitters, updates, encoding: prep.encoding.clone() })
         }
         Sink::Fields(mut f) => {
             f.finish_row()?;
@@ -543,7 +543,7 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
                     let meta = PartMeta { format: FORMAT.into(), job_sha256: spec.sha256.clone(), shard: [sh.index, sh.count], rows: [first_row, end_row], updates, row_bytes: row_bytes as u64, fields: entries };
                     write_atomically(&rec, &serde_json::to_vec_pretty(&meta).expect("plain data"))?;
                     let _ = std::fs::remove_file(&journal);
-                    Ok(RunSummary { tiff: rec.clone(), sidecar: rec, emitters: prep.emitters, updates, encoding: prep.encoding })
+                    Ok(RunSummary { tiff: rec.clone(), sidecar: rec, emitters: prep.emitters, updates, encoding: prep.encoding.clone() })
                 }
                 None => {
                     let summary = finish_fields(spec, &prep, &grid, &entries, updates)?;
@@ -572,7 +572,7 @@ fn finish_fields(spec: &JobSpec, prep: &Prepared, grid: &FieldGrid, entries: &[F
         extra: prep.source.sidecar_extra(),
     };
     sidecar::write(&sidecar, &input)?;
-    Ok(RunSummary { tiff: manifest, sidecar, emitters: prep.emitters, updates, encoding: prep.encoding })
+    Ok(RunSummary { tiff: manifest, sidecar, emitters: prep.emitters, updates, encoding: prep.encoding.clone() })
 }
 
 /// Part file of a shard: `NAME.tif.part-K-of-N` (1-based K).
@@ -636,7 +636,7 @@ fn stream_rows(ctx: &StreamCtx, sink: &mut Sink, opts: &RunOptions) -> Result<u6
     let mut updates = ctx.updates_before;
     let mut rows_done = ctx.rows_before;
     let mut last_checkpoint = Instant::now();
-    let encoding = prep.encoding;
+    let encoding = &prep.encoding;
     for chunk in bands.chunks(wave) {
         let done: Vec<(usize, usize, Vec<Vec<u8>>, u64)> = chunk
             .par_iter()
@@ -763,7 +763,7 @@ pub fn assemble(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
         let _ = std::fs::remove_file(part);
         let _ = std::fs::remove_file(mp);
     }
-    Ok(RunSummary { tiff: finished.path, sidecar, emitters: prep.emitters, updates, encoding: prep.encoding })
+    Ok(RunSummary { tiff: finished.path, sidecar, emitters: prep.emitters, updates, encoding: prep.encoding.clone() })
 }
 
 /// Field runs: the shards wrote complete field files; merge their records into the manifest.
@@ -830,9 +830,9 @@ fn plan_iterative(spec: &JobSpec, it: &IterativeSpec) -> Result<PlanReport> {
         let (w, h, _) = super::iterative::read_target(&o.points)?;
         lines.push(format!("target {}: {} x {} px", o.points.display(), w, h));
     }
-    let layout = tiff_layout(spec, &match spec.encoding {
-        EncodingRequest::Fixed(e) => e,
-        EncodingRequest::AmplitudeAuto { bits } => Encoding::Amplitude { bits, scale: 1.0 },
+    let layout = tiff_layout(spec, &match &spec.encoding {
+        EncodingRequest::Fixed(e) => e.clone(),
+        EncodingRequest::AmplitudeAuto { bits } => Encoding::Amplitude { bits: *bits, scale: 1.0 },
     });
     let bytes = layout.estimated_file_bytes();
     lines.push(format!("output: {} ({:.3} MB)", spec.output.display(), bytes as f64 / 1e6));
@@ -914,9 +914,9 @@ pub fn plan(spec: &JobSpec) -> Result<PlanReport> {
     }
     let updates = sum.estimate_updates(256);
     lines.push(format!("work: about {:.3e} point-pixel updates ({:.1} per pixel on average)", updates, updates / p.pixels() as f64));
-    let encoding = match spec.encoding {
-        EncodingRequest::Fixed(e) => e,
-        EncodingRequest::AmplitudeAuto { bits } => Encoding::Amplitude { bits, scale: 1.0 },
+    let encoding = match &spec.encoding {
+        EncodingRequest::Fixed(e) => e.clone(),
+        EncodingRequest::AmplitudeAuto { bits } => Encoding::Amplitude { bits: *bits, scale: 1.0 },
     };
     let layout = tiff_layout(spec, &encoding);
     let bytes = layout.estimated_file_bytes();

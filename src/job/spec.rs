@@ -132,6 +132,8 @@ pub struct RawEncoding {
     pub bits: Option<i64>,
     /// Amplitude encoding: B0; default measured before streaming (3 x RMS of Re F on a probe grid).
     pub bipolar_scale: Option<f64>,
+    /// Phase encoding: a modulator's measured grey-to-phase table (CSV `grey,phase_rad`).
+    pub calibration: Option<String>,
 }
 
 /// `[output]`
@@ -163,7 +165,7 @@ pub struct RawJob {
 }
 
 /// Encoding as asked for in the job; the amplitude scale may still be open.
-#[derive(Clone, Copy, Debug, PartialEq)]
+#[derive(Clone, Debug, PartialEq)]
 pub enum EncodingRequest {
     /// Fully known.
     Fixed(Encoding),
@@ -515,15 +517,26 @@ impl JobSpec {
                 if !(2..=65536).contains(&levels) {
                     return Err(bad(format!("[encoding] levels = {levels} is outside 2..=65536")));
                 }
-                EncodingRequest::Fixed(Encoding::Phase { levels: levels as u32 })
+                match &e.calibration {
+                    None => EncodingRequest::Fixed(Encoding::Phase { levels: levels as u32 }),
+                    Some(c) => {
+                        let path = dir.join(c);
+                        let table = read_calibration(&path)?;
+                        let bits = if levels <= 256 { 8 } else { 16 };
+                        let cal = crate::encoding::Calibration::new(table, levels as u32, bits).map_err(|m| Error::input(&path, m))?;
+                        EncodingRequest::Fixed(Encoding::CalibratedPhase { levels: levels as u32, calibration: std::sync::Arc::new(cal) })
+                    }
+                }
             }
             "binary-phase" | "binary-amplitude" => {
+                only("calibration", e.calibration.is_some(), "\"phase\"")?;
                 only("levels", e.levels.is_some(), "\"phase\"")?;
                 only("bits", e.bits.is_some(), "\"amplitude\"")?;
                 only("bipolar_scale", e.bipolar_scale.is_some(), "\"amplitude\"")?;
                 EncodingRequest::Fixed(if e.kind == "binary-phase" { Encoding::BinaryPhase } else { Encoding::BinaryAmplitude })
             }
             "amplitude" => {
+                only("calibration", e.calibration.is_some(), "\"phase\"")?;
                 only("levels", e.levels.is_some(), "\"phase\"")?;
                 let bits = match e.bits.unwrap_or(8) {
                     8 => 8u8,
@@ -755,6 +768,37 @@ fn mesh_object(o: &RawObject, n: usize, bad: &dyn Fn(String) -> Error) -> Result
         other => return Err(bad(format!("[[object]] #{n} occlusion = \"{other}\" is not one of \"tiles\", \"centre\", \"none\""))),
     };
     Ok(MeshObject { placement, density, pattern, seed: o.seed.unwrap_or(1), shading, phase, occlusion })
+}
+
+/// Reads a calibration table: a header line, then `grey,phase_rad` rows (`#` comments allowed).
+pub fn read_calibration(path: &Path) -> Result<Vec<(u16, f64)>> {
+    let text = std::fs::read_to_string(path).map_err(|e| Error::io(path, e))?;
+    let mut rows = Vec::new();
+    let mut header = true;
+    for (i, line) in text.lines().enumerate() {
+        let l = line.trim();
+        if l.is_empty() || l.starts_with('#') {
+            continue;
+        }
+        if header {
+            header = false;
+            if l.replace(' ', "") != "grey,phase_rad" {
+                return Err(Error::input(path, format!("line {}: expected the header 'grey,phase_rad'", i + 1)));
+            }
+            continue;
+        }
+        let mut it = l.split(',').map(str::trim);
+        let (Some(g), Some(p), None) = (it.next(), it.next(), it.next()) else {
+            return Err(Error::input(path, format!("line {}: expected two fields, grey,phase_rad", i + 1)));
+        };
+        let g: u16 = g.parse().map_err(|_| Error::input(path, format!("line {}: grey '{g}' is not a whole number 0..=65535", i + 1)))?;
+        let p: f64 = p.parse().ok().filter(|v: &f64| v.is_finite()).ok_or_else(|| Error::input(path, format!("line {}: phase '{p}' is not a finite number", i + 1)))?;
+        rows.push((g, p));
+    }
+    if rows.is_empty() {
+        return Err(Error::input(path, "no calibration rows"));
+    }
+    Ok(rows)
 }
 
 /// Lowercase hex of bytes.

@@ -63,6 +63,11 @@ pub fn to_json(i: &SidecarInput) -> Value {
     let p = &i.spec.plate;
     let reference = reference_json(&i.spec.reference);
     let encoding = match *i.encoding {
+        Encoding::CalibratedPhase { levels, ref calibration } => json!({
+            "kind": "phase", "levels": levels, "bits_per_sample": i.encoding.bits_per_sample(),
+            "stored_value": "the grey value of the calibration table whose measured phase is nearest (mod 2 pi) to 2 pi g / N, g = round(N arg(F) / 2 pi) mod N",
+            "calibration": {"table": calibration.table, "level_to_grey": calibration.level_to_grey},
+        }),
         Encoding::Phase { levels } => json!({
             "kind": "phase", "levels": levels, "bits_per_sample": i.encoding.bits_per_sample(),
             "stored_value": "s = round(g 2^b / N), g = round(N arg(F) / 2 pi) mod N; displayed phase 2 pi s / 2^b"

@@ -97,7 +97,22 @@ impl PlateFile {
         };
         let e = &v["encoding"];
         let encoding = match e["kind"].as_str() {
-            Some("phase") => Encoding::Phase { levels: num(&e["levels"], &sc, "encoding.levels")? as u32 },
+            Some("phase") => {
+                let levels = num(&e["levels"], &sc, "encoding.levels")? as u32;
+                match e["calibration"]["table"].as_array() {
+                    None => Encoding::Phase { levels },
+                    Some(rows) => {
+                        let table = rows
+                            .iter()
+                            .map(|r| Some((r[0].as_u64()? as u16, r[1].as_f64()?)))
+                            .collect::<Option<Vec<_>>>()
+                            .ok_or_else(|| Error::input(&sc, "encoding.calibration.table is malformed"))?;
+                        let bits = if levels <= 256 { 8 } else { 16 };
+                        let calibration = crate::encoding::Calibration::new(table, levels, bits).map_err(|m| Error::input(&sc, m))?;
+                        Encoding::CalibratedPhase { levels, calibration: std::sync::Arc::new(calibration) }
+                    }
+                }
+            }
             Some("binary-phase") => Encoding::BinaryPhase,
             Some("binary-amplitude") => Encoding::BinaryAmplitude,
             Some("amplitude") => Encoding::Amplitude { bits: num(&e["bits_per_sample"], &sc, "encoding.bits_per_sample")? as u8, scale: num(&e["bipolar_scale"], &sc, "encoding.bipolar_scale")? },
