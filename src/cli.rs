@@ -65,7 +65,12 @@ pub enum Command {
         #[arg(value_name = "PLATE.tif")]
         plate: PathBuf,
         /// Depth in front of the plate, mm: D, or a stack A:B:STEP.
-        #[arg(long, value_name = "D|A:B:STEP", required_unless_present = "focal_mm", conflicts_with = "focal_mm")]
+        #[arg(
+            long,
+            value_name = "D|A:B:STEP",
+            required_unless_present = "focal_mm",
+            conflicts_with = "focal_mm"
+        )]
         distance_mm: Option<String>,
         /// Replay through a lens of this focal length (mm) onto its focal plane (Fourier geometry).
         #[arg(long, value_name = "F")]
@@ -118,7 +123,16 @@ mod tests {
 
     #[test]
     fn parses_run_with_several_jobs_and_threads() {
-        let c = Cli::try_parse_from(["fringemill", "run", "a.toml", "b.toml", "--threads", "2", "-q"]).unwrap();
+        let c = Cli::try_parse_from([
+            "fringemill",
+            "run",
+            "a.toml",
+            "b.toml",
+            "--threads",
+            "2",
+            "-q",
+        ])
+        .unwrap();
         assert!(c.common.quiet);
         assert_eq!(c.common.threads, Some(2));
         match c.command {

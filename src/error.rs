@@ -25,7 +25,10 @@ pub enum Error {
     Unsupported { path: PathBuf, message: String },
     /// An operating-system error on a file.
     #[error("{}: {source}", path.display())]
-    Io { path: PathBuf, source: std::io::Error },
+    Io {
+        path: PathBuf,
+        source: std::io::Error,
+    },
     /// The run was interrupted on request (Ctrl-C); the message says how to continue.
     #[error("{0}")]
     Interrupted(String),
@@ -34,18 +37,30 @@ pub enum Error {
 impl Error {
     /// Malformed input at `path`.
     pub fn input(path: impl AsRef<Path>, message: impl Into<String>) -> Self {
-        Error::Input { path: path.as_ref().to_path_buf(), message: message.into() }
+        Error::Input {
+            path: path.as_ref().to_path_buf(),
+            message: message.into(),
+        }
     }
     /// Impossible job at `path`.
     pub fn job(path: impl AsRef<Path>, message: impl Into<String>) -> Self {
-        Error::Job { path: path.as_ref().to_path_buf(), message: message.into() }
+        Error::Job {
+            path: path.as_ref().to_path_buf(),
+            message: message.into(),
+        }
     }
     /// Valid but unsupported input at `path`.
     pub fn unsupported(path: impl AsRef<Path>, message: impl Into<String>) -> Self {
-        Error::Unsupported { path: path.as_ref().to_path_buf(), message: message.into() }
+        Error::Unsupported {
+            path: path.as_ref().to_path_buf(),
+            message: message.into(),
+        }
     }
     /// I/O failure on `path`.
     pub fn io(path: impl AsRef<Path>, source: std::io::Error) -> Self {
-        Error::Io { path: path.as_ref().to_path_buf(), source }
+        Error::Io {
+            path: path.as_ref().to_path_buf(),
+            source,
+        }
     }
 }

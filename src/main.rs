@@ -19,7 +19,11 @@ fn job_files(args: &[PathBuf]) -> Vec<PathBuf> {
     for a in args {
         if a.is_dir() {
             let mut found: Vec<PathBuf> = std::fs::read_dir(a)
-                .map(|rd| rd.filter_map(|e| e.ok().map(|e| e.path())).filter(|p| p.extension().is_some_and(|x| x == "toml")).collect())
+                .map(|rd| {
+                    rd.filter_map(|e| e.ok().map(|e| e.path()))
+                        .filter(|p| p.extension().is_some_and(|x| x == "toml"))
+                        .collect()
+                })
                 .unwrap_or_default();
             found.sort();
             if found.is_empty() {
@@ -36,7 +40,10 @@ fn job_files(args: &[PathBuf]) -> Vec<PathBuf> {
 
 fn run_one(path: &Path, opts: &RunOptions) -> fringemill::Result<job::RunSummary> {
     if path.is_dir() {
-        return Err(fringemill::Error::input(path, "folder holds no .toml job file"));
+        return Err(fringemill::Error::input(
+            path,
+            "folder holds no .toml job file",
+        ));
     }
     let spec = JobSpec::load(path)?;
     job::run_job(&spec, opts)
@@ -56,7 +63,10 @@ fn main() -> ExitCode {
             eprintln!("fringemill: error: --threads must be at least 1");
             return ExitCode::from(2);
         }
-        if let Err(e) = rayon::ThreadPoolBuilder::new().num_threads(n).build_global() {
+        if let Err(e) = rayon::ThreadPoolBuilder::new()
+            .num_threads(n)
+            .build_global()
+        {
             eprintln!("fringemill: error: thread pool: {e}");
             return ExitCode::from(2);
         }
@@ -76,11 +86,18 @@ fn main() -> ExitCode {
             if stop.swap(true, Ordering::SeqCst) {
                 std::process::exit(130);
             }
-            eprintln!("fringemill: stopping after the band in flight (Ctrl-C again to quit at once)");
+            eprintln!(
+                "fringemill: stopping after the band in flight (Ctrl-C again to quit at once)"
+            );
         });
     }
     match cli.command {
-        cli::Command::Run { jobs, restart, shard, checkpoint_secs } => {
+        cli::Command::Run {
+            jobs,
+            restart,
+            shard,
+            checkpoint_secs,
+        } => {
             let shard = match shard.as_deref().map(Shard::parse).transpose() {
                 Ok(s) => s,
                 Err(e) => {
@@ -109,7 +126,12 @@ fn main() -> ExitCode {
                 report(f, res, &cli.common, t0, &mut failed, &mut interrupted);
             }
             if files.len() > 1 {
-                eprintln!("fringemill: {} job(s): {} succeeded, {} failed", files.len(), files.len() - failed, failed);
+                eprintln!(
+                    "fringemill: {} job(s): {} succeeded, {} failed",
+                    files.len(),
+                    files.len() - failed,
+                    failed
+                );
             }
             if interrupted {
                 ExitCode::from(130)
@@ -132,8 +154,32 @@ fn main() -> ExitCode {
                 ExitCode::SUCCESS
             }
         }
-        cli::Command::Reconstruct { plate, distance_mm, focal_mm, window, illumination, out, scale, bits, region, target, peaks } => {
-            match reconstruct_request(plate, distance_mm.as_deref(), focal_mm, window, illumination, out, &scale, bits, region, target, peaks) {
+        cli::Command::Reconstruct {
+            plate,
+            distance_mm,
+            focal_mm,
+            window,
+            illumination,
+            out,
+            scale,
+            bits,
+            region,
+            target,
+            peaks,
+        } => {
+            match reconstruct_request(
+                plate,
+                distance_mm.as_deref(),
+                focal_mm,
+                window,
+                illumination,
+                out,
+                &scale,
+                bits,
+                region,
+                target,
+                peaks,
+            ) {
                 Err(m) => {
                     eprintln!("fringemill: error: {m}");
                     ExitCode::from(2)
@@ -152,7 +198,10 @@ fn main() -> ExitCode {
                 },
             }
         }
-        cli::Command::Sample { job, out } => match JobSpec::load(&job).and_then(|s| job::scene::build_scene(&s)).and_then(|sc| job::scene::write_emitters_ply(&out, &sc).map(|_| sc.normals.len())) {
+        cli::Command::Sample { job, out } => match JobSpec::load(&job)
+            .and_then(|s| job::scene::build_scene(&s))
+            .and_then(|sc| job::scene::write_emitters_ply(&out, &sc).map(|_| sc.normals.len()))
+        {
             Ok(n) => {
                 eprintln!("fringemill: wrote {n} emitters to {}", out.display());
                 println!("{}", out.display());
@@ -201,13 +250,23 @@ fn reconstruct_request(
         Some(f) => return Err(format!("--focal-mm {f}: must be > 0")),
         None => None,
     };
-    let window = window.as_deref().map(replay::Window::parse).transpose().map_err(|m| format!("--window {m}"))?;
+    let window = window
+        .as_deref()
+        .map(replay::Window::parse)
+        .transpose()
+        .map_err(|m| format!("--window {m}"))?;
     let illumination = match illumination {
         None => replay::Illumination::Recorded,
         Some(s) => {
-            let v: Vec<f64> = s.split(',').map(|t| t.trim().parse::<f64>()).collect::<Result<_, _>>().map_err(|_| format!("--illumination '{s}': expected TX,TY in degrees"))?;
+            let v: Vec<f64> = s
+                .split(',')
+                .map(|t| t.trim().parse::<f64>())
+                .collect::<Result<_, _>>()
+                .map_err(|_| format!("--illumination '{s}': expected TX,TY in degrees"))?;
             if v.len() != 2 || v.iter().any(|t| !t.is_finite() || t.abs() >= 90.0) {
-                return Err(format!("--illumination '{s}': expected TX,TY in degrees, each between -90 and 90"));
+                return Err(format!(
+                    "--illumination '{s}': expected TX,TY in degrees, each between -90 and 90"
+                ));
             }
             replay::Illumination::Plane([v[0].to_radians(), v[1].to_radians()])
         }
@@ -224,18 +283,42 @@ fn reconstruct_request(
     }
     let scale = replay::metrics::ToneScale::parse(scale).map_err(|m| format!("--scale {m}"))?;
     let out = out.unwrap_or_else(|| {
-        let stem = plate.file_stem().map(|s| s.to_string_lossy().into_owned()).unwrap_or_else(|| "plate".into());
+        let stem = plate
+            .file_stem()
+            .map(|s| s.to_string_lossy().into_owned())
+            .unwrap_or_else(|| "plate".into());
         plate.with_file_name(format!("{stem}-replay.png"))
     });
-    Ok(replay::ReconstructRequest { tif: plate, distances, focal, window, illumination, out, scale, bits, region, target, peaks })
+    Ok(replay::ReconstructRequest {
+        tif: plate,
+        distances,
+        focal,
+        window,
+        illumination,
+        out,
+        scale,
+        bits,
+        region,
+        target,
+        peaks,
+    })
 }
 
-fn report(f: &Path, res: fringemill::Result<job::RunSummary>, common: &cli::Common, t0: std::time::Instant, failed: &mut usize, interrupted: &mut bool) {
+fn report(
+    f: &Path,
+    res: fringemill::Result<job::RunSummary>,
+    common: &cli::Common,
+    t0: std::time::Instant,
+    failed: &mut usize,
+    interrupted: &mut bool,
+) {
     match res {
         Ok(s) => {
             if common.stats {
                 let el = t0.elapsed().as_secs_f64();
-                let peak = job::progress::peak_rss_bytes().map(|b| format!("{:.1} MiB", b as f64 / 1048576.0)).unwrap_or_else(|| "unknown".into());
+                let peak = job::progress::peak_rss_bytes()
+                    .map(|b| format!("{:.1} MiB", b as f64 / 1048576.0))
+                    .unwrap_or_else(|| "unknown".into());
                 eprintln!(
                     "fringemill: stats: {}: {:.3} s, {} point-pixel updates, {:.3} G updates/s, peak memory {}",
                     f.display(),
@@ -246,7 +329,14 @@ fn report(f: &Path, res: fringemill::Result<job::RunSummary>, common: &cli::Comm
                 );
             }
             if !common.quiet {
-                eprintln!("fringemill: {}: wrote {} and {} ({} emitters, {} point-pixel updates)", f.display(), s.tiff.display(), s.sidecar.display(), s.emitters, s.updates);
+                eprintln!(
+                    "fringemill: {}: wrote {} and {} ({} emitters, {} point-pixel updates)",
+                    f.display(),
+                    s.tiff.display(),
+                    s.sidecar.display(),
+                    s.emitters,
+                    s.updates
+                );
             }
             println!("{}", s.tiff.display());
         }

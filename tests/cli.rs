@@ -12,7 +12,8 @@ fn run(args: &[&str]) -> Output {
     bin().args(args).output().expect("spawn fringemill")
 }
 
-const POINTS_CSV: &str = "x_mm,y_mm,z_mm,amplitude,phase_rad\n0,0,5,1,0\n0.05,-0.02,6,0.8,1.0\n-0.03,0.04,5.5,0.6,2.0\n";
+const POINTS_CSV: &str =
+    "x_mm,y_mm,z_mm,amplitude,phase_rad\n0,0,5,1,0\n0.05,-0.02,6,0.8,1.0\n-0.03,0.04,5.5,0.6,2.0\n";
 
 fn job_text(encoding: &str, output: &str) -> String {
     format!(
@@ -79,7 +80,8 @@ fn runs_a_small_job_and_writes_tiff_and_sidecar() {
     let o = run(&["run", "-q", j.to_str().unwrap()]);
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
     let tif = d.path().join("out/plate.tif");
-    let side: serde_json::Value = serde_json::from_slice(&std::fs::read(d.path().join("out/plate.json")).unwrap()).unwrap();
+    let side: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(d.path().join("out/plate.json")).unwrap()).unwrap();
     assert_eq!(side["hologram"]["width_px"], 96);
     assert_eq!(side["encoding"]["levels"], 16);
     assert_eq!(side["synthesis"]["emitters"], 3);
@@ -97,28 +99,81 @@ fn bad_inputs_fail_cleanly() {
     let good_enc = "kind = \"binary-amplitude\"";
     let cases: Vec<(&str, String, &str)> = vec![
         ("malformed toml", "[hologram\nwidth_px = 3".into(), "line"),
-        ("unknown key", job_text(good_enc, "o.tif").replace("wavelength_nm = 633", "wavelength_nm = 633\ncolour = 3"), "colour"),
-        ("zero pitch", job_text(good_enc, "o.tif").replace("pitch_um = 2.0", "pitch_um = 0"), "pitch_um"),
-        ("negative pitch", job_text(good_enc, "o.tif").replace("pitch_um = 2.0", "pitch_um = [2.0, -1]"), "pitch_um"),
-        ("zero wavelength", job_text(good_enc, "o.tif").replace("wavelength_nm = 633", "wavelength_nm = 0"), "wavelength_nm"),
-        ("nan wavelength", job_text(good_enc, "o.tif").replace("wavelength_nm = 633", "wavelength_nm = nan"), "wavelength_nm"),
-        ("levels too low", job_text("kind = \"phase\"\nlevels = 1", "o.tif"), "levels"),
-        ("levels too high", job_text("kind = \"phase\"\nlevels = 65537", "o.tif"), "levels"),
-        ("missing points file", job_text(good_enc, "o.tif").replace("pts.csv", "nope.csv"), "nope.csv"),
-        ("z behind plate", job_text(good_enc, "o.tif").replace("offset_mm = [0, 0, 0]", "offset_mm = [0, 0, -5.8]"), "z ="),
-        ("unknown encoding", job_text("kind = \"holo\"", "o.tif"), "kind"),
-        ("absurd size", job_text(good_enc, "o.tif").replace("width_px = 96", "width_px = 100000000000"), "width_px"),
+        (
+            "unknown key",
+            job_text(good_enc, "o.tif")
+                .replace("wavelength_nm = 633", "wavelength_nm = 633\ncolour = 3"),
+            "colour",
+        ),
+        (
+            "zero pitch",
+            job_text(good_enc, "o.tif").replace("pitch_um = 2.0", "pitch_um = 0"),
+            "pitch_um",
+        ),
+        (
+            "negative pitch",
+            job_text(good_enc, "o.tif").replace("pitch_um = 2.0", "pitch_um = [2.0, -1]"),
+            "pitch_um",
+        ),
+        (
+            "zero wavelength",
+            job_text(good_enc, "o.tif").replace("wavelength_nm = 633", "wavelength_nm = 0"),
+            "wavelength_nm",
+        ),
+        (
+            "nan wavelength",
+            job_text(good_enc, "o.tif").replace("wavelength_nm = 633", "wavelength_nm = nan"),
+            "wavelength_nm",
+        ),
+        (
+            "levels too low",
+            job_text("kind = \"phase\"\nlevels = 1", "o.tif"),
+            "levels",
+        ),
+        (
+            "levels too high",
+            job_text("kind = \"phase\"\nlevels = 65537", "o.tif"),
+            "levels",
+        ),
+        (
+            "missing points file",
+            job_text(good_enc, "o.tif").replace("pts.csv", "nope.csv"),
+            "nope.csv",
+        ),
+        (
+            "z behind plate",
+            job_text(good_enc, "o.tif")
+                .replace("offset_mm = [0, 0, 0]", "offset_mm = [0, 0, -5.8]"),
+            "z =",
+        ),
+        (
+            "unknown encoding",
+            job_text("kind = \"holo\"", "o.tif"),
+            "kind",
+        ),
+        (
+            "absurd size",
+            job_text(good_enc, "o.tif").replace("width_px = 96", "width_px = 100000000000"),
+            "width_px",
+        ),
     ];
     for (name, text, needle) in cases {
         let (d, j) = setup(&text);
         let o = run(&["run", "-q", j.to_str().unwrap()]);
         let err = String::from_utf8_lossy(&o.stderr);
         assert!(!o.status.success(), "{name}: exit 0");
-        assert_eq!(err.trim_end().lines().count(), 1, "{name}: stderr not one line: {err}");
+        assert_eq!(
+            err.trim_end().lines().count(),
+            1,
+            "{name}: stderr not one line: {err}"
+        );
         assert!(err.contains(needle), "{name}: '{needle}' not in: {err}");
         assert!(!err.contains("panicked"), "{name}: {err}");
         let files = files_in(d.path());
-        assert!(files.iter().all(|f| f == "pts.csv" || f == "job.toml"), "{name}: left {files:?}");
+        assert!(
+            files.iter().all(|f| f == "pts.csv" || f == "job.toml"),
+            "{name}: left {files:?}"
+        );
     }
 }
 
@@ -147,13 +202,17 @@ fn nan_coordinate_in_points_fails_cleanly() {
 
 #[test]
 fn unknown_key_names_key_and_line() {
-    let text = job_text("kind = \"binary-phase\"", "o.tif").replace("[output]\n", "[output]\nspeed = 3\n");
+    let text =
+        job_text("kind = \"binary-phase\"", "o.tif").replace("[output]\n", "[output]\nspeed = 3\n");
     let line = text.lines().position(|l| l.starts_with("speed")).unwrap() + 1;
     let (_d, j) = setup(&text);
     let o = run(&["plan", j.to_str().unwrap()]);
     let err = String::from_utf8_lossy(&o.stderr);
     assert!(!o.status.success());
-    assert!(err.contains("speed") && err.contains(&format!("line {line}")), "{err}");
+    assert!(
+        err.contains("speed") && err.contains(&format!("line {line}")),
+        "{err}"
+    );
 }
 
 #[test]
@@ -181,8 +240,16 @@ fn batch_goes_on_after_a_failure() {
 }
 
 fn peak_mib(stderr: &str) -> f64 {
-    let l = stderr.lines().find(|l| l.contains("peak memory")).unwrap_or_else(|| panic!("no stats in {stderr}"));
-    l.split("peak memory ").nth(1).unwrap().trim_end_matches(" MiB").parse().unwrap()
+    let l = stderr
+        .lines()
+        .find(|l| l.contains("peak memory"))
+        .unwrap_or_else(|| panic!("no stats in {stderr}"));
+    l.split("peak memory ")
+        .nth(1)
+        .unwrap()
+        .trim_end_matches(" MiB")
+        .parse()
+        .unwrap()
 }
 
 /// Peak memory is set by the band, not the plate: 32 times more rows (1.9 GB of complex field if held
@@ -194,11 +261,18 @@ fn peak_memory_flat_as_plate_grows() {
     }
     let mut peaks = Vec::new();
     for h in [512, 16384] {
-        let text = job_text("kind = \"binary-amplitude\"", "o.tif").replace("width_px = 96", "width_px = 8192").replace("height_px = 64", &format!("height_px = {h}"));
+        let text = job_text("kind = \"binary-amplitude\"", "o.tif")
+            .replace("width_px = 96", "width_px = 8192")
+            .replace("height_px = 64", &format!("height_px = {h}"));
         let (_d, j) = setup(&text);
         let o = run(&["run", "-q", "--stats", j.to_str().unwrap()]);
         assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
         peaks.push(peak_mib(&String::from_utf8_lossy(&o.stderr)));
     }
-    assert!(peaks[1] - peaks[0] < 8.0, "peak memory grew from {} to {} MiB", peaks[0], peaks[1]);
+    assert!(
+        peaks[1] - peaks[0] < 8.0,
+        "peak memory grew from {} to {} MiB",
+        peaks[0],
+        peaks[1]
+    );
 }

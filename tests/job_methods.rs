@@ -29,18 +29,41 @@ fn mesh_job_with_a_second_channel() {
          [encoding]\nkind = \"binary-phase\"\n[output]\npath = \"out/m.tif\"\n",
     )
     .unwrap();
-    let o = std::process::Command::new(BIN).args(["plan", job.to_str().unwrap()]).output().unwrap();
+    let o = std::process::Command::new(BIN)
+        .args(["plan", job.to_str().unwrap()])
+        .output()
+        .unwrap();
     let plan = String::from_utf8_lossy(&o.stdout);
-    assert!(o.status.success() && plan.contains("301 from 2 object(s) in 2 channel(s)") && plan.contains("placed in x"), "{plan}");
+    assert!(
+        o.status.success()
+            && plan.contains("301 from 2 object(s) in 2 channel(s)")
+            && plan.contains("placed in x"),
+        "{plan}"
+    );
     let spec = JobSpec::load(&job).unwrap();
     let s = run_job(&spec, &RunOptions::new(ProgressMode::Quiet)).unwrap();
     assert_eq!(s.emitters, 301);
-    let side: serde_json::Value = serde_json::from_slice(&std::fs::read(&s.sidecar).unwrap()).unwrap();
+    let side: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(&s.sidecar).unwrap()).unwrap();
     assert_eq!(side["objects"][0]["mesh"], "lantern.glb");
-    assert_eq!(side["objects"][1]["reference"]["tilt_deg"][0].as_f64().unwrap().round(), 6.0);
+    assert_eq!(
+        side["objects"][1]["reference"]["tilt_deg"][0]
+            .as_f64()
+            .unwrap()
+            .round(),
+        6.0
+    );
     // The emitters as a point cloud: 301 vertices with normals, readable by the project's PLY reader.
     let ply = d.path().join("em.ply");
-    let o = std::process::Command::new(BIN).args(["sample", job.to_str().unwrap(), "--out", ply.to_str().unwrap()]).output().unwrap();
+    let o = std::process::Command::new(BIN)
+        .args([
+            "sample",
+            job.to_str().unwrap(),
+            "--out",
+            ply.to_str().unwrap(),
+        ])
+        .output()
+        .unwrap();
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
     let pts = fringemill::scene::points::read_points(&ply).unwrap();
     assert_eq!(pts.len(), 301);
@@ -65,11 +88,24 @@ fn iterative_image_replays_its_target() {
     .unwrap();
     let spec = JobSpec::load(&job).unwrap();
     let s = run_job(&spec, &RunOptions::new(ProgressMode::Quiet)).unwrap();
-    let side: serde_json::Value = serde_json::from_slice(&std::fs::read(&s.sidecar).unwrap()).unwrap();
+    let side: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(&s.sidecar).unwrap()).unwrap();
     let errs = side["iterative"]["error_per_iteration"].as_array().unwrap();
     assert!(errs.len() >= 2 && errs.last().unwrap().as_f64().unwrap() < errs[0].as_f64().unwrap());
     let pf = PlateFile::open(&s.tiff).unwrap();
-    let img = &replay_planes(&pf, Window { x: 0, y: 0, w: 1024, h: 1024 }, Illumination::Recorded, &[], Some(0.2)).unwrap()[0];
+    let img = &replay_planes(
+        &pf,
+        Window {
+            x: 0,
+            y: 0,
+            w: 1024,
+            h: 1024,
+        },
+        Illumination::Recorded,
+        &[],
+        Some(0.2),
+    )
+    .unwrap()[0];
     // The target, centred on the 1024 x 1024 replay grid.
     let (tw, th, t) = metrics::read_png_grey(&d.path().join("t.png")).unwrap();
     let (x0, y0) = ((1024 - tw) / 2, (1024 - th) / 2);
@@ -83,7 +119,11 @@ fn iterative_image_replays_its_target() {
     let cmp = metrics::compare(1024, 1024, &img.intensity, &canvas, Some(win));
     let stats = metrics::region_stats(1024, 1024, &img.intensity, win).unwrap();
     assert!(cmp.correlation >= 0.9, "correlation {}", cmp.correlation);
-    assert!(stats.power_fraction >= 0.8, "power in window {}", stats.power_fraction);
+    assert!(
+        stats.power_fraction >= 0.8,
+        "power in window {}",
+        stats.power_fraction
+    );
 }
 
 /// A cell repeated over a writer-sized plate: the plate is periodic with the cell size, and the
@@ -107,10 +147,15 @@ fn cell_repeats_over_the_plate() {
     assert_eq!((w, h), (700, 600));
     for r in 0..h as usize {
         for c in 0..w as usize {
-            assert_eq!(px[r * 700 + c], px[(r % 256) * 700 + c % 256], "pixel ({r}, {c})");
+            assert_eq!(
+                px[r * 700 + c],
+                px[(r % 256) * 700 + c % 256],
+                "pixel ({r}, {c})"
+            );
         }
     }
-    let side: serde_json::Value = serde_json::from_slice(&std::fs::read(&s.sidecar).unwrap()).unwrap();
+    let side: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(&s.sidecar).unwrap()).unwrap();
     assert_eq!(side["iterative"]["cell_px"], serde_json::json!([256, 256]));
 }
 
@@ -120,15 +165,33 @@ fn iterative_job_errors_are_one_line() {
     std::fs::copy(samples().join("tern_target.png"), d.path().join("t.png")).unwrap();
     let base = "[hologram]\nwidth_px = 64\nheight_px = 64\npitch_um = 8.0\nwavelength_nm = 532\n[reference]\nkind = \"plane\"\n[[object]]\nimage = \"t.png\"\n[synthesis]\nmethod = \"iterative\"\ngeometry = \"fourier\"\nfocal_mm = 200\n[encoding]\nkind = \"phase\"\n[output]\npath = \"x.tif\"\n";
     for (name, text, needle) in [
-        ("target larger than the cell", base.to_string(), "does not fit"),
-        ("no geometry", base.replace("geometry = \"fourier\"\n", ""), "geometry"),
-        ("points with iterative", base.replace("image = \"t.png\"", "points = \"t.csv\""), "image objects only"),
+        (
+            "target larger than the cell",
+            base.to_string(),
+            "does not fit",
+        ),
+        (
+            "no geometry",
+            base.replace("geometry = \"fourier\"\n", ""),
+            "geometry",
+        ),
+        (
+            "points with iterative",
+            base.replace("image = \"t.png\"", "points = \"t.csv\""),
+            "image objects only",
+        ),
     ] {
         let job = d.path().join("j.toml");
         std::fs::write(&job, text).unwrap();
-        let o = std::process::Command::new(BIN).args(["run", "-q", job.to_str().unwrap()]).output().unwrap();
+        let o = std::process::Command::new(BIN)
+            .args(["run", "-q", job.to_str().unwrap()])
+            .output()
+            .unwrap();
         let err = String::from_utf8_lossy(&o.stderr);
-        assert!(!o.status.success() && err.trim_end().lines().count() == 1 && err.contains(needle), "{name}: {err}");
+        assert!(
+            !o.status.success() && err.trim_end().lines().count() == 1 && err.contains(needle),
+            "{name}: {err}"
+        );
         assert!(!d.path().join("x.tif").exists());
     }
 }

@@ -55,27 +55,74 @@ fn expected(kind: &str, levels: u32, bits: u32, b0: f64, f: Complex64) -> u16 {
 fn every_encoding_pixel_by_pixel() {
     let cases = [
         ("phase", "kind = \"phase\"\nlevels = 16", 16, 8, 0.0, ""),
-        ("phase", "kind = \"phase\"\nlevels = 3", 3, 8, 0.0, "compression = \"deflate\""),
-        ("phase", "kind = \"phase\"\nlevels = 4096", 4096, 16, 0.0, "bigtiff = true"),
+        (
+            "phase",
+            "kind = \"phase\"\nlevels = 3",
+            3,
+            8,
+            0.0,
+            "compression = \"deflate\"",
+        ),
+        (
+            "phase",
+            "kind = \"phase\"\nlevels = 4096",
+            4096,
+            16,
+            0.0,
+            "bigtiff = true",
+        ),
         ("binary-phase", "kind = \"binary-phase\"", 0, 1, 0.0, ""),
-        ("binary-amplitude", "kind = \"binary-amplitude\"", 0, 1, 0.0, "bigtiff = true\ncompression = \"deflate\"\nrows_per_strip = 7"),
-        ("amplitude", "kind = \"amplitude\"\nbits = 8\nbipolar_scale = 900.0", 0, 8, 900.0, ""),
-        ("amplitude", "kind = \"amplitude\"\nbits = 16\nbipolar_scale = 1500.0", 0, 16, 1500.0, "bigtiff = false"),
+        (
+            "binary-amplitude",
+            "kind = \"binary-amplitude\"",
+            0,
+            1,
+            0.0,
+            "bigtiff = true\ncompression = \"deflate\"\nrows_per_strip = 7",
+        ),
+        (
+            "amplitude",
+            "kind = \"amplitude\"\nbits = 8\nbipolar_scale = 900.0",
+            0,
+            8,
+            900.0,
+            "",
+        ),
+        (
+            "amplitude",
+            "kind = \"amplitude\"\nbits = 16\nbipolar_scale = 1500.0",
+            0,
+            16,
+            1500.0,
+            "bigtiff = false",
+        ),
     ];
     for (kind, enc, levels, bits, b0, extra) in cases {
         let dir = tempfile::tempdir().unwrap();
         let job = write_job(dir.path(), enc, extra);
         let spec = JobSpec::load(&job).unwrap();
         let summary = run_job(&spec, &RunOptions::new(ProgressMode::Quiet)).unwrap();
-        let side: serde_json::Value = serde_json::from_slice(&std::fs::read(&summary.sidecar).unwrap()).unwrap();
-        assert_eq!(side["output"]["bigtiff"].as_bool().unwrap(), extra.contains("bigtiff = true"), "{enc}");
+        let side: serde_json::Value =
+            serde_json::from_slice(&std::fs::read(&summary.sidecar).unwrap()).unwrap();
+        assert_eq!(
+            side["output"]["bigtiff"].as_bool().unwrap(),
+            extra.contains("bigtiff = true"),
+            "{enc}"
+        );
         let (w, h, samples) = decode(&summary.tiff);
         assert_eq!((w, h), (53, 41));
         let emitters: Vec<Emitter> = fringemill::job::build_emitters(&spec).unwrap();
         let mut mismatches = 0;
         for i in 0..h {
             for j in 0..w {
-                let f = fringe_at(&spec.plate, &spec.reference, &emitters, &spec.synthesis, i, j);
+                let f = fringe_at(
+                    &spec.plate,
+                    &spec.reference,
+                    &emitters,
+                    &spec.synthesis,
+                    i,
+                    j,
+                );
                 let e = expected(kind, levels, bits, b0, f);
                 if samples[(i * w + j) as usize] != e {
                     mismatches += 1;
@@ -91,8 +138,18 @@ fn every_encoding_pixel_by_pixel() {
         if kind == "phase" {
             let distinct: std::collections::BTreeSet<u16> = samples.iter().copied().collect();
             // Every stored value is one of the N levels, and the plate uses many of them.
-            assert!(distinct.iter().all(|&v| (0..levels).any(|g| expected("phase", levels, bits, 0.0, Complex64::from_polar(1.0, 2.0 * std::f64::consts::PI * g as f64 / levels as f64)) == v)));
-            assert!(distinct.len() as u32 >= levels.min(500), "{enc}: {} levels used", distinct.len());
+            assert!(distinct.iter().all(|&v| (0..levels).any(|g| expected(
+                "phase",
+                levels,
+                bits,
+                0.0,
+                Complex64::from_polar(1.0, 2.0 * std::f64::consts::PI * g as f64 / levels as f64)
+            ) == v)));
+            assert!(
+                distinct.len() as u32 >= levels.min(500),
+                "{enc}: {} levels used",
+                distinct.len()
+            );
         }
     }
 }
@@ -107,7 +164,10 @@ fn resolution_tags_give_physical_size() {
     let mut d = Decoder::new(std::fs::File::open(&s.tiff).unwrap()).unwrap();
     let unit = d.get_tag_u32(tiff::tags::Tag::ResolutionUnit).unwrap();
     assert_eq!(unit, 3);
-    for (tag, pitch_cm) in [(tiff::tags::Tag::XResolution, 1.0e-4), (tiff::tags::Tag::YResolution, 1.2e-4)] {
+    for (tag, pitch_cm) in [
+        (tiff::tags::Tag::XResolution, 1.0e-4),
+        (tiff::tags::Tag::YResolution, 1.2e-4),
+    ] {
         let v = d.get_tag(tag).unwrap();
         let px_per_cm = match v {
             tiff::decoder::ifd::Value::Rational(n, dd) => n as f64 / dd as f64,
@@ -127,17 +187,34 @@ fn calibration_table_is_applied_exactly() {
     let plain = {
         let job = write_job(dir.path(), "kind = \"phase\"\nlevels = 16", "");
         let spec = JobSpec::load(&job).unwrap();
-        decode(&run_job(&spec, &RunOptions::new(ProgressMode::Quiet)).unwrap().tiff).2
+        decode(
+            &run_job(&spec, &RunOptions::new(ProgressMode::Quiet))
+                .unwrap()
+                .tiff,
+        )
+        .2
     };
     let mut ident = String::from("grey,phase_rad\n");
     for s in 0..256 {
         ident += &format!("{s},{}\n", two_pi * s as f64 / 256.0);
     }
     std::fs::write(dir.path().join("ident.csv"), ident).unwrap();
-    let job = write_job(dir.path(), "kind = \"phase\"\nlevels = 16\ncalibration = \"ident.csv\"", "");
+    let job = write_job(
+        dir.path(),
+        "kind = \"phase\"\nlevels = 16\ncalibration = \"ident.csv\"",
+        "",
+    );
     let spec = JobSpec::load(&job).unwrap();
-    let with_ident = decode(&run_job(&spec, &RunOptions::new(ProgressMode::Quiet)).unwrap().tiff).2;
-    assert!(with_ident == plain, "identity calibration changed the plate");
+    let with_ident = decode(
+        &run_job(&spec, &RunOptions::new(ProgressMode::Quiet))
+            .unwrap()
+            .tiff,
+    )
+    .2;
+    assert!(
+        with_ident == plain,
+        "identity calibration changed the plate"
+    );
     // A gamma-like response reaching 2.2 pi at grey 255, sampled every 3 grey values.
     let response = |s: u32| 2.2 * std::f64::consts::PI * (s as f64 / 255.0).powf(1.6);
     let mut table = String::from("# measured response\ngrey,phase_rad\n");
@@ -145,9 +222,18 @@ fn calibration_table_is_applied_exactly() {
         table += &format!("{s},{}\n", response(s));
     }
     std::fs::write(dir.path().join("lut.csv"), table).unwrap();
-    let job = write_job(dir.path(), "kind = \"phase\"\nlevels = 16\ncalibration = \"lut.csv\"", "");
+    let job = write_job(
+        dir.path(),
+        "kind = \"phase\"\nlevels = 16\ncalibration = \"lut.csv\"",
+        "",
+    );
     let spec = JobSpec::load(&job).unwrap();
-    let out = decode(&run_job(&spec, &RunOptions::new(ProgressMode::Quiet)).unwrap().tiff).2;
+    let out = decode(
+        &run_job(&spec, &RunOptions::new(ProgressMode::Quiet))
+            .unwrap()
+            .tiff,
+    )
+    .2;
     let nearest = |g: u32| {
         let want = two_pi * g as f64 / 16.0;
         (0..256u32)
@@ -163,18 +249,33 @@ fn calibration_table_is_applied_exactly() {
     let emitters = fringemill::job::build_emitters(&spec).unwrap();
     for i in 0..41u32 {
         for j in 0..53u32 {
-            let f = fringe_at(&spec.plate, &spec.reference, &emitters, &spec.synthesis, i, j);
+            let f = fringe_at(
+                &spec.plate,
+                &spec.reference,
+                &emitters,
+                &spec.synthesis,
+                i,
+                j,
+            );
             let mut phi = f.im.atan2(f.re);
             if phi < 0.0 {
                 phi += two_pi;
             }
             let g = ((16.0 * phi / two_pi).round() as u32) % 16;
-            assert_eq!(out[(i * 53 + j) as usize], nearest(g), "pixel ({i}, {j}) level {g}");
+            assert_eq!(
+                out[(i * 53 + j) as usize],
+                nearest(g),
+                "pixel ({i}, {j}) level {g}"
+            );
         }
     }
     // A malformed table is a one-line error naming the file and line.
     std::fs::write(dir.path().join("bad.csv"), "grey,phase_rad\n3,x\n").unwrap();
-    let job = write_job(dir.path(), "kind = \"phase\"\nlevels = 16\ncalibration = \"bad.csv\"", "");
+    let job = write_job(
+        dir.path(),
+        "kind = \"phase\"\nlevels = 16\ncalibration = \"bad.csv\"",
+        "",
+    );
     let e = JobSpec::load(&job).unwrap_err().to_string();
     assert!(e.contains("bad.csv") && e.contains("line 2"), "{e}");
 }

@@ -58,7 +58,12 @@ fn kill_9_then_resume_is_byte_identical() {
     let tif = d.path().join("out/plate.tif");
     let mut kills = 0;
     for ms in delays(0x9e3779b9, 4, 900) {
-        let mut child = Command::new(BIN).args(["run", "-q", "--checkpoint-secs", "0", j.to_str().unwrap()]).stdout(Stdio::null()).stderr(Stdio::null()).spawn().unwrap();
+        let mut child = Command::new(BIN)
+            .args(["run", "-q", "--checkpoint-secs", "0", j.to_str().unwrap()])
+            .stdout(Stdio::null())
+            .stderr(Stdio::null())
+            .spawn()
+            .unwrap();
         std::thread::sleep(Duration::from_millis(ms));
         if child.try_wait().unwrap().is_none() {
             child.kill().unwrap(); // SIGKILL
@@ -73,8 +78,14 @@ fn kill_9_then_resume_is_byte_identical() {
     }
     let o = run(&["run", "-q", j.to_str().unwrap()]);
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
-    assert!(kills > 0, "the run finished before any kill: make the job heavier");
-    assert!(std::fs::read(&tif).unwrap() == reference, "resumed plate differs");
+    assert!(
+        kills > 0,
+        "the run finished before any kill: make the job heavier"
+    );
+    assert!(
+        std::fs::read(&tif).unwrap() == reference,
+        "resumed plate differs"
+    );
     assert!(!d.path().join("out/plate.tif.partial.journal").exists());
 }
 
@@ -82,7 +93,12 @@ fn kill_9_then_resume_is_byte_identical() {
 /// first (a fast machine), so the test does not depend on the machine's speed.
 fn interrupt_run(dir: &Path, j: &Path) -> std::process::Output {
     for ms in [400, 120, 40, 10] {
-        let child = Command::new(BIN).args(["run", "-q", "--checkpoint-secs", "0", j.to_str().unwrap()]).stdout(Stdio::null()).stderr(Stdio::piped()).spawn().unwrap();
+        let child = Command::new(BIN)
+            .args(["run", "-q", "--checkpoint-secs", "0", j.to_str().unwrap()])
+            .stdout(Stdio::null())
+            .stderr(Stdio::piped())
+            .spawn()
+            .unwrap();
         std::thread::sleep(Duration::from_millis(ms));
         // SAFETY: plain kill(2) on our own child's pid.
         unsafe { libc::kill(child.id() as i32, libc::SIGINT) };
@@ -120,21 +136,40 @@ fn threads_and_shards_are_byte_identical() {
     for threads in ["1", "2"] {
         let d = tempfile::tempdir().unwrap();
         let j = job(d.path(), enc);
-        assert!(run(&["run", "-q", "--threads", threads, j.to_str().unwrap()]).status.success());
-        assert!(std::fs::read(d.path().join("out/plate.tif")).unwrap() == reference, "threads {threads}");
+        assert!(
+            run(&["run", "-q", "--threads", threads, j.to_str().unwrap()])
+                .status
+                .success()
+        );
+        assert!(
+            std::fs::read(d.path().join("out/plate.tif")).unwrap() == reference,
+            "threads {threads}"
+        );
     }
     for n in [1u32, 2, 3, 5] {
         let d = tempfile::tempdir().unwrap();
         let j = job(d.path(), enc);
         // Shards in reverse order, as a scheduler may run them.
         for k in (1..=n).rev() {
-            let o = run(&["run", "-q", "--shard", &format!("{k}/{n}"), j.to_str().unwrap()]);
+            let o = run(&[
+                "run",
+                "-q",
+                "--shard",
+                &format!("{k}/{n}"),
+                j.to_str().unwrap(),
+            ]);
             assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
         }
         let o = run(&["assemble", "-q", j.to_str().unwrap()]);
         assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
-        assert!(std::fs::read(d.path().join("out/plate.tif")).unwrap() == reference, "{n} shards");
-        let left: Vec<_> = std::fs::read_dir(d.path().join("out")).unwrap().map(|e| e.unwrap().file_name()).collect();
+        assert!(
+            std::fs::read(d.path().join("out/plate.tif")).unwrap() == reference,
+            "{n} shards"
+        );
+        let left: Vec<_> = std::fs::read_dir(d.path().join("out"))
+            .unwrap()
+            .map(|e| e.unwrap().file_name())
+            .collect();
         assert_eq!(left.len(), 2, "parts left behind: {left:?}");
     }
     // The Slurm environment selects the shard.
@@ -149,7 +184,9 @@ fn threads_and_shards_are_byte_identical() {
             .unwrap();
         assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
     }
-    assert!(run(&["assemble", "-q", j.to_str().unwrap()]).status.success());
+    assert!(run(&["assemble", "-q", j.to_str().unwrap()])
+        .status
+        .success());
     assert!(std::fs::read(d.path().join("out/plate.tif")).unwrap() == reference);
 }
 
@@ -164,7 +201,10 @@ fn disk_full_mid_run_then_resume() {
     // bash counts ulimit -f in 1024-byte blocks; SIGXFSZ ignored so write(2) fails with EFBIG.
     let o = Command::new("bash")
         .arg("-c")
-        .arg(format!("trap '' XFSZ; ulimit -f 250; exec '{BIN}' run -q --checkpoint-secs 0 '{}'", j.display()))
+        .arg(format!(
+            "trap '' XFSZ; ulimit -f 250; exec '{BIN}' run -q --checkpoint-secs 0 '{}'",
+            j.display()
+        ))
         .output()
         .unwrap();
     let err = String::from_utf8_lossy(&o.stderr);
@@ -177,7 +217,9 @@ fn disk_full_mid_run_then_resume() {
     let rows = jv["rows_done"].as_u64().unwrap();
     assert!(rows > 0 && rows < 640 && rows % 16 == 0, "rows_done {rows}");
     // The journal never claims more than the file holds.
-    let len = std::fs::metadata(d.path().join("out/plate.tif.partial")).unwrap().len();
+    let len = std::fs::metadata(d.path().join("out/plate.tif.partial"))
+        .unwrap()
+        .len();
     assert!(jv["writer"]["file_len"].as_u64().unwrap() <= len);
     let o = run(&["run", "-q", j.to_str().unwrap()]);
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
@@ -189,12 +231,17 @@ fn edited_job_refuses_to_resume_and_names_the_change() {
     let d = tempfile::tempdir().unwrap();
     let j = job(d.path(), "kind = \"binary-phase\"");
     interrupt_run(d.path(), &j);
-    let text = std::fs::read_to_string(&j).unwrap().replace("wavelength_nm = 532", "wavelength_nm = 633");
+    let text = std::fs::read_to_string(&j)
+        .unwrap()
+        .replace("wavelength_nm = 532", "wavelength_nm = 633");
     std::fs::write(&j, text).unwrap();
     let o = run(&["run", "-q", j.to_str().unwrap()]);
     let err = String::from_utf8_lossy(&o.stderr);
     assert!(!o.status.success());
-    assert!(err.contains("hologram.wavelength_nm: 532 -> 633") && err.contains("--restart"), "{err}");
+    assert!(
+        err.contains("hologram.wavelength_nm: 532 -> 633") && err.contains("--restart"),
+        "{err}"
+    );
     let o = run(&["run", "-q", "--restart", j.to_str().unwrap()]);
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
     assert!(d.path().join("out/plate.tif").exists());
@@ -204,7 +251,10 @@ fn edited_job_refuses_to_resume_and_names_the_change() {
 /// origins match the pixel geometry, and sharded or resumed field runs give the same files.
 #[test]
 fn fields_tile_the_plate_exactly() {
-    for enc in ["kind = \"binary-amplitude\"", "kind = \"phase\"\nlevels = 4096"] {
+    for enc in [
+        "kind = \"binary-amplitude\"",
+        "kind = \"phase\"\nlevels = 4096",
+    ] {
         let single = tempfile::tempdir().unwrap();
         let j = job(single.path(), enc);
         assert!(run(&["run", "-q", j.to_str().unwrap()]).status.success());
@@ -216,31 +266,58 @@ fn fields_tile_the_plate_exactly() {
         std::fs::write(&j, text).unwrap();
         let o = run(&["run", "-q", j.to_str().unwrap()]);
         assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
-        let m: serde_json::Value = serde_json::from_slice(&std::fs::read(d.path().join("out/plate.fields.json")).unwrap()).unwrap();
+        let m: serde_json::Value =
+            serde_json::from_slice(&std::fs::read(d.path().join("out/plate.fields.json")).unwrap())
+                .unwrap();
         let fields = m["fields"].as_array().unwrap();
-        assert_eq!(fields.len(), 3 * 4, "768 / 300 -> 3 columns, 640 / 208 -> 4 rows");
+        assert_eq!(
+            fields.len(),
+            3 * 4,
+            "768 / 300 -> 3 columns, 640 / 208 -> 4 rows"
+        );
         let mut tiled = vec![u16::MAX; (w * h) as usize];
         for f in fields {
-            let (fw, fh, px) = common::decode(&d.path().join("out").join(f["file"].as_str().unwrap()));
-            let [c0, r0] = [f["first_px"][0].as_u64().unwrap() as u32, f["first_px"][1].as_u64().unwrap() as u32];
-            assert_eq!([fw as u64, fh as u64], [f["size_px"][0].as_u64().unwrap(), f["size_px"][1].as_u64().unwrap()]);
+            let (fw, fh, px) =
+                common::decode(&d.path().join("out").join(f["file"].as_str().unwrap()));
+            let [c0, r0] = [
+                f["first_px"][0].as_u64().unwrap() as u32,
+                f["first_px"][1].as_u64().unwrap() as u32,
+            ];
+            assert_eq!(
+                [fw as u64, fh as u64],
+                [
+                    f["size_px"][0].as_u64().unwrap(),
+                    f["size_px"][1].as_u64().unwrap()
+                ]
+            );
             // Origin = top-left pixel edge: x = (c0 - W/2) p, y = (H/2 - r0) p with p = 2 um (physics.md pixel centres).
             let x = (c0 as f64 - w as f64 / 2.0) * 2e-3;
             let y = (h as f64 / 2.0 - r0 as f64) * 2e-3;
-            assert!((f["origin_mm"][0].as_f64().unwrap() - x).abs() < 1e-9 && (f["origin_mm"][1].as_f64().unwrap() - y).abs() < 1e-9);
+            assert!(
+                (f["origin_mm"][0].as_f64().unwrap() - x).abs() < 1e-9
+                    && (f["origin_mm"][1].as_f64().unwrap() - y).abs() < 1e-9
+            );
             for r in 0..fh {
                 for c in 0..fw {
                     tiled[((r0 + r) * w + c0 + c) as usize] = px[(r * fw + c) as usize];
                 }
             }
         }
-        assert!(tiled == plate, "{enc}: fields differ from the single-file plate");
+        assert!(
+            tiled == plate,
+            "{enc}: fields differ from the single-file plate"
+        );
         let hashes = |dir: &Path| -> Vec<(String, Vec<u8>)> {
             let mut v: Vec<(String, Vec<u8>)> = std::fs::read_dir(dir.join("out"))
                 .unwrap()
                 .map(|e| e.unwrap().path())
                 .filter(|p| p.extension().is_some_and(|x| x == "tif"))
-                .map(|p| (p.file_name().unwrap().to_string_lossy().into_owned(), std::fs::read(&p).unwrap()))
+                .map(|p| {
+                    (
+                        p.file_name().unwrap().to_string_lossy().into_owned(),
+                        std::fs::read(&p).unwrap(),
+                    )
+                })
                 .collect();
             v.sort();
             v
@@ -251,10 +328,23 @@ fn fields_tile_the_plate_exactly() {
         let js = job(s.path(), enc);
         std::fs::write(&js, std::fs::read_to_string(&j).unwrap()).unwrap();
         for k in [2, 1] {
-            assert!(run(&["run", "-q", "--shard", &format!("{k}/2"), js.to_str().unwrap()]).status.success());
+            assert!(run(&[
+                "run",
+                "-q",
+                "--shard",
+                &format!("{k}/2"),
+                js.to_str().unwrap()
+            ])
+            .status
+            .success());
         }
-        assert!(run(&["assemble", "-q", js.to_str().unwrap()]).status.success());
-        assert!(hashes(s.path()) == reference, "{enc}: sharded fields differ");
+        assert!(run(&["assemble", "-q", js.to_str().unwrap()])
+            .status
+            .success());
+        assert!(
+            hashes(s.path()) == reference,
+            "{enc}: sharded fields differ"
+        );
         assert!(s.path().join("out/plate.fields.json").exists());
     }
 }
@@ -264,7 +354,11 @@ fn fields_resume_after_kill_9() {
     let enc = "kind = \"phase\"\nlevels = 256";
     let mk = |dir: &Path| {
         let j = job(dir, enc);
-        std::fs::write(&j, std::fs::read_to_string(&j).unwrap() + "field_px = [256, 160]\n").unwrap();
+        std::fs::write(
+            &j,
+            std::fs::read_to_string(&j).unwrap() + "field_px = [256, 160]\n",
+        )
+        .unwrap();
         j
     };
     let clean = tempfile::tempdir().unwrap();
@@ -275,7 +369,12 @@ fn fields_resume_after_kill_9() {
     let manifest = d.path().join("out/plate.fields.json");
     let mut kills = 0;
     for ms in delays(0x51ed, 4, 700) {
-        let mut child = Command::new(BIN).args(["run", "-q", "--checkpoint-secs", "0", j.to_str().unwrap()]).stdout(Stdio::null()).stderr(Stdio::null()).spawn().unwrap();
+        let mut child = Command::new(BIN)
+            .args(["run", "-q", "--checkpoint-secs", "0", j.to_str().unwrap()])
+            .stdout(Stdio::null())
+            .stderr(Stdio::null())
+            .spawn()
+            .unwrap();
         std::thread::sleep(Duration::from_millis(ms));
         if child.try_wait().unwrap().is_none() {
             child.kill().unwrap();
@@ -292,9 +391,17 @@ fn fields_resume_after_kill_9() {
     for r in 0..4 {
         for c in 0..3 {
             let name = format!("out/plate_r{r:03}_c{c:03}.tif");
-            assert!(std::fs::read(d.path().join(&name)).unwrap() == std::fs::read(clean.path().join(&name)).unwrap(), "{name}");
+            assert!(
+                std::fs::read(d.path().join(&name)).unwrap()
+                    == std::fs::read(clean.path().join(&name)).unwrap(),
+                "{name}"
+            );
         }
     }
-    let left: Vec<_> = std::fs::read_dir(d.path().join("out")).unwrap().map(|e| e.unwrap().file_name().to_string_lossy().into_owned()).filter(|n| n.contains("partial")).collect();
+    let left: Vec<_> = std::fs::read_dir(d.path().join("out"))
+        .unwrap()
+        .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+        .filter(|n| n.contains("partial"))
+        .collect();
     assert!(left.is_empty(), "{left:?}");
 }

@@ -26,7 +26,11 @@ fn random_scene(rng: &mut Rng, n: usize, plate: &Plate, z: [f64; 2]) -> Vec<Emit
     let s = plate.size();
     (0..n)
         .map(|_| Emitter {
-            pos: [rng.range(-0.8, 0.8) * s[0], rng.range(-0.8, 0.8) * s[1], rng.range(z[0], z[1])],
+            pos: [
+                rng.range(-0.8, 0.8) * s[0],
+                rng.range(-0.8, 0.8) * s[1],
+                rng.range(z[0], z[1]),
+            ],
             amplitude: rng.range(0.2, 1.0),
             phase: rng.range(0.0, 6.3),
         })
@@ -55,19 +59,33 @@ fn whole_plate(sum: &PointSum, band: usize) -> Vec<Complex64> {
 #[test]
 fn point_sum_matches_reference_sum() {
     let mut rng = Rng(0x5eed_1234);
-    let plate = Plate { width: 37, height: 29, pitch: [1.1e-6, 0.9e-6], wavelength: 532e-9 };
+    let plate = Plate {
+        width: 37,
+        height: 29,
+        pitch: [1.1e-6, 0.9e-6],
+        wavelength: 532e-9,
+    };
     let refs = [
         Reference::Plane { tilt: [0.0, 0.0] },
-        Reference::Plane { tilt: [12f64.to_radians(), -5f64.to_radians()] },
-        Reference::Spherical { position: [3e-3, -2e-3, 40e-3] },
+        Reference::Plane {
+            tilt: [12f64.to_radians(), -5f64.to_radians()],
+        },
+        Reference::Spherical {
+            position: [3e-3, -2e-3, 40e-3],
+        },
     ];
     for reference in refs {
         for approximation in [Approximation::Exact, Approximation::Fresnel] {
             for obliquity in [false, true] {
                 let emitters = random_scene(&mut rng, 40, &plate, [20e-6, 300e-6]);
-                let opts = PointSumOptions { approximation, obliquity, anti_alias: true };
+                let opts = PointSumOptions {
+                    approximation,
+                    obliquity,
+                    anti_alias: true,
+                };
                 let sum = PointSum::new(plate, reference, emitters.clone(), opts);
-                let portable = PointSum::new(plate, reference, emitters.clone(), opts).with_isa(KernelIsa::Portable);
+                let portable = PointSum::new(plate, reference, emitters.clone(), opts)
+                    .with_isa(KernelIsa::Portable);
                 let mut maxref = 0.0f64;
                 let reference_field: Vec<Complex64> = (0..plate.height)
                     .flat_map(|i| (0..plate.width).map(move |j| (i, j)))
@@ -94,10 +112,24 @@ fn point_sum_matches_reference_sum() {
 /// come from such pixels, and a pixel right under the point is always included.
 #[test]
 fn support_counts_follow_nyquist_limit() {
-    let plate = Plate { width: 101, height: 101, pitch: [4e-6, 4e-6], wavelength: 633e-9 };
+    let plate = Plate {
+        width: 101,
+        height: 101,
+        pitch: [4e-6, 4e-6],
+        wavelength: 633e-9,
+    };
     let z = 200e-6;
-    let e = Emitter { pos: [0.0, 0.0, z], amplitude: 1.0, phase: 0.0 };
-    let sum = PointSum::new(plate, Reference::Plane { tilt: [0.0, 0.0] }, vec![e], PointSumOptions::default());
+    let e = Emitter {
+        pos: [0.0, 0.0, z],
+        amplitude: 1.0,
+        phase: 0.0,
+    };
+    let sum = PointSum::new(
+        plate,
+        Reference::Plane { tilt: [0.0, 0.0] },
+        vec![e],
+        PointSumOptions::default(),
+    );
     let mut f = vec![Complex64::new(0.0, 0.0); 101 * 101];
     let n = sum.compute_band(0, 101, &mut f, &mut BandScratch::default());
     // Brute-force count from the definition (physics.md, Sampling limits).
@@ -109,7 +141,8 @@ fn support_counts_follow_nyquist_limit() {
             let r = (x * x + y * y + z * z).sqrt();
             let fx = x / (plate.wavelength * r);
             let fy = y / (plate.wavelength * r);
-            if fx.abs() <= 1.0 / (2.0 * plate.pitch[0]) && fy.abs() <= 1.0 / (2.0 * plate.pitch[1]) {
+            if fx.abs() <= 1.0 / (2.0 * plate.pitch[0]) && fy.abs() <= 1.0 / (2.0 * plate.pitch[1])
+            {
                 expect += 1;
             } else {
                 assert_eq!(f[(i * 101 + j) as usize], Complex64::new(0.0, 0.0));
@@ -120,7 +153,9 @@ fn support_counts_follow_nyquist_limit() {
     assert!(expect < 101 * 101 && expect > 0);
     // Square support of half-width z tan(asin(lambda/2p)) on the axes (physics.md).
     let half = z * (plate.wavelength / (2.0 * plate.pitch[0])).asin().tan();
-    let cols_on_axis = (0..101).filter(|&j| f[50 * 101 + j] != Complex64::new(0.0, 0.0)).count();
+    let cols_on_axis = (0..101)
+        .filter(|&j| f[50 * 101 + j] != Complex64::new(0.0, 0.0))
+        .count();
     let expect_cols = 2 * (half / plate.pitch[0]).floor() as usize + 1;
     assert_eq!(cols_on_axis, expect_cols);
 }
@@ -129,13 +164,28 @@ fn support_counts_follow_nyquist_limit() {
 #[test]
 fn bands_are_bit_identical() {
     let mut rng = Rng(77);
-    let plate = Plate { width: 64, height: 48, pitch: [1e-6, 1e-6], wavelength: 633e-9 };
+    let plate = Plate {
+        width: 64,
+        height: 48,
+        pitch: [1e-6, 1e-6],
+        wavelength: 633e-9,
+    };
     let emitters = random_scene(&mut rng, 60, &plate, [30e-6, 200e-6]);
-    let sum = PointSum::new(plate, Reference::Plane { tilt: [3f64.to_radians(), 0.0] }, emitters, PointSumOptions::default());
+    let sum = PointSum::new(
+        plate,
+        Reference::Plane {
+            tilt: [3f64.to_radians(), 0.0],
+        },
+        emitters,
+        PointSumOptions::default(),
+    );
     let a = whole_plate(&sum, 48);
     for band in [1, 5, 16] {
         let b = whole_plate(&sum, band);
-        assert!(a.iter().zip(&b).all(|(x, y)| x.re.to_bits() == y.re.to_bits() && x.im.to_bits() == y.im.to_bits()));
+        assert!(a
+            .iter()
+            .zip(&b)
+            .all(|(x, y)| x.re.to_bits() == y.re.to_bits() && x.im.to_bits() == y.im.to_bits()));
     }
 }
 
@@ -149,11 +199,25 @@ fn zone_plate_ring_edges() {
     let p = 1e-6;
     let z = 2e-3; // support radius z tan(asin(0.3165)) = 0.67 mm, wider than the 0.5 mm row walked
     let w = 1001u32;
-    let plate = Plate { width: w, height: 1, pitch: [p, p], wavelength: lambda };
+    let plate = Plate {
+        width: w,
+        height: 1,
+        pitch: [p, p],
+        wavelength: lambda,
+    };
     // Phase k z of the point removed so zone n starts at rho_n (phi_j = -k z mod 2 pi).
     let k = 2.0 * std::f64::consts::PI / lambda;
-    let e = Emitter { pos: [0.0, 0.0, z], amplitude: 1.0, phase: -(k * z) % (2.0 * std::f64::consts::PI) };
-    let sum = PointSum::new(plate, Reference::Plane { tilt: [0.0, 0.0] }, vec![e], PointSumOptions::default());
+    let e = Emitter {
+        pos: [0.0, 0.0, z],
+        amplitude: 1.0,
+        phase: -(k * z) % (2.0 * std::f64::consts::PI),
+    };
+    let sum = PointSum::new(
+        plate,
+        Reference::Plane { tilt: [0.0, 0.0] },
+        vec![e],
+        PointSumOptions::default(),
+    );
     let mut f = vec![Complex64::new(0.0, 0.0); w as usize];
     sum.compute_band(0, 1, &mut f, &mut BandScratch::default());
     // Binary amplitude edges along the row, right half (x >= 0).
@@ -172,7 +236,10 @@ fn zone_plate_ring_edges() {
         let n = m as f64 + 0.5;
         let rho_expect = (n * lambda * z + n * n * lambda * lambda / 4.0).sqrt();
         // The measured edge is the midpoint between two pixel centres: within half a pixel.
-        assert!((rho - rho_expect).abs() <= p / 2.0 + 1e-12, "edge {m}: {rho} vs {rho_expect}");
+        assert!(
+            (rho - rho_expect).abs() <= p / 2.0 + 1e-12,
+            "edge {m}: {rho} vs {rho_expect}"
+        );
         if m > 0 {
             // Successive edges lambda / 2 apart in sqrt(rho^2 + z^2), up to the pixel quantization.
             let step = (rho * rho + z * z).sqrt() - (edges[m - 1].powi(2) + z * z).sqrt();
@@ -189,9 +256,23 @@ fn tilted_reference_fringe_period() {
     let p = 0.5e-6;
     let t = 10f64.to_radians();
     let w = 2001u32;
-    let plate = Plate { width: w, height: 1, pitch: [p, p], wavelength: lambda };
-    let e = Emitter { pos: [0.0, 0.0, 2.0], amplitude: 1.0, phase: 0.0 };
-    let sum = PointSum::new(plate, Reference::Plane { tilt: [t, 0.0] }, vec![e], PointSumOptions::default());
+    let plate = Plate {
+        width: w,
+        height: 1,
+        pitch: [p, p],
+        wavelength: lambda,
+    };
+    let e = Emitter {
+        pos: [0.0, 0.0, 2.0],
+        amplitude: 1.0,
+        phase: 0.0,
+    };
+    let sum = PointSum::new(
+        plate,
+        Reference::Plane { tilt: [t, 0.0] },
+        vec![e],
+        PointSumOptions::default(),
+    );
     let mut f = vec![Complex64::new(0.0, 0.0); w as usize];
     sum.compute_band(0, 1, &mut f, &mut BandScratch::default());
     let mut crossings = Vec::new();
@@ -207,7 +288,10 @@ fn tilted_reference_fringe_period() {
     assert!(n > 10);
     let period_px = 2.0 * (crossings[n - 1] - crossings[0]) / (n - 1) as f64;
     let expect = lambda / t.sin() / p;
-    assert!((period_px / expect - 1.0).abs() < 0.01, "period {period_px} px vs {expect} px");
+    assert!(
+        (period_px / expect - 1.0).abs() < 0.01,
+        "period {period_px} px vs {expect} px"
+    );
 }
 
 /// Angle multiplexing: a plate with two channels is the sum of each channel's F with its own
@@ -215,18 +299,29 @@ fn tilted_reference_fringe_period() {
 #[test]
 fn channels_add_their_fringe_terms() {
     let mut rng = Rng(4242);
-    let plate = Plate { width: 41, height: 23, pitch: [1e-6, 1e-6], wavelength: 633e-9 };
+    let plate = Plate {
+        width: 41,
+        height: 23,
+        pitch: [1e-6, 1e-6],
+        wavelength: 633e-9,
+    };
     let a = random_scene(&mut rng, 20, &plate, [50e-6, 200e-6]);
     let b = random_scene(&mut rng, 15, &plate, [50e-6, 200e-6]);
-    let ra = Reference::Plane { tilt: [8f64.to_radians(), 0.0] };
-    let rb = Reference::Plane { tilt: [-6f64.to_radians(), 4f64.to_radians()] };
+    let ra = Reference::Plane {
+        tilt: [8f64.to_radians(), 0.0],
+    };
+    let rb = Reference::Plane {
+        tilt: [-6f64.to_radians(), 4f64.to_radians()],
+    };
     let opts = PointSumOptions::default();
     let sum = PointSum::with_channels(plate, vec![(ra, a.clone()), (rb, b.clone())], opts);
     let f = whole_plate(&sum, 5);
     let mut maxref = 0.0f64;
     let expect: Vec<Complex64> = (0..plate.height)
         .flat_map(|i| (0..plate.width).map(move |j| (i, j)))
-        .map(|(i, j)| fringe_at(&plate, &ra, &a, &opts, i, j) + fringe_at(&plate, &rb, &b, &opts, i, j))
+        .map(|(i, j)| {
+            fringe_at(&plate, &ra, &a, &opts, i, j) + fringe_at(&plate, &rb, &b, &opts, i, j)
+        })
         .inspect(|v| maxref = maxref.max(v.norm()))
         .collect();
     for (x, y) in f.iter().zip(&expect) {
@@ -245,13 +340,24 @@ fn hidden_emitters_contribute_nothing() {
         }
     }
     let mut rng = Rng(99);
-    let plate = Plate { width: 70, height: 30, pitch: [1e-6, 1e-6], wavelength: 633e-9 };
+    let plate = Plate {
+        width: 70,
+        height: 30,
+        pitch: [1e-6, 1e-6],
+        wavelength: 633e-9,
+    };
     let all = random_scene(&mut rng, 30, &plate, [50e-6, 200e-6]);
     let even: Vec<Emitter> = all.iter().step_by(2).copied().collect();
-    let r = Reference::Plane { tilt: [2f64.to_radians(), 0.0] };
-    let with_hook = PointSum::new(plate, r, all, PointSumOptions::default()).with_visibility(std::sync::Arc::new(HideOdd), 16);
+    let r = Reference::Plane {
+        tilt: [2f64.to_radians(), 0.0],
+    };
+    let with_hook = PointSum::new(plate, r, all, PointSumOptions::default())
+        .with_visibility(std::sync::Arc::new(HideOdd), 16);
     let plain = PointSum::new(plate, r, even, PointSumOptions::default());
     let a = whole_plate(&with_hook, 7);
     let b = whole_plate(&plain, 7);
-    assert!(a.iter().zip(&b).all(|(x, y)| x.re.to_bits() == y.re.to_bits() && x.im.to_bits() == y.im.to_bits()));
+    assert!(a
+        .iter()
+        .zip(&b)
+        .all(|(x, y)| x.re.to_bits() == y.re.to_bits() && x.im.to_bits() == y.im.to_bits()));
 }

@@ -36,7 +36,9 @@ impl Calibration {
         }
         let max = if bits == 8 { 255 } else { 65535 };
         if let Some(&(g, _)) = table.iter().find(|&&(g, _)| g as u32 > max) {
-            return Err(format!("grey value {g} exceeds the {bits}-bit range of {levels} levels"));
+            return Err(format!(
+                "grey value {g} exceeds the {bits}-bit range of {levels} levels"
+            ));
         }
         let two_pi = 2.0 * std::f64::consts::PI;
         let level_to_grey = (0..levels)
@@ -54,12 +56,20 @@ impl Calibration {
                 best.1
             })
             .collect();
-        Ok(Calibration { bits, table, level_to_grey })
+        Ok(Calibration {
+            bits,
+            table,
+            level_to_grey,
+        })
     }
 
     /// Measured phase of a grey value (the nearest tabulated grey if it is not in the table).
     pub fn phase_of(&self, grey: u16) -> f64 {
-        self.table.iter().min_by_key(|&&(g, _)| (g as i64 - grey as i64).abs()).map(|&(_, p)| p).unwrap_or(0.0)
+        self.table
+            .iter()
+            .min_by_key(|&&(g, _)| (g as i64 - grey as i64).abs())
+            .map(|&(_, p)| p)
+            .unwrap_or(0.0)
     }
 }
 
@@ -131,7 +141,10 @@ impl Encoding {
     pub fn sample(&self, f: Complex64) -> u16 {
         match *self {
             Encoding::Phase { levels } => phase_sample(f, levels),
-            Encoding::CalibratedPhase { levels, ref calibration } => calibration.level_to_grey[phase_level(f, levels) as usize],
+            Encoding::CalibratedPhase {
+                levels,
+                ref calibration,
+            } => calibration.level_to_grey[phase_level(f, levels) as usize],
             Encoding::BinaryPhase => (f.re < 0.0) as u16,
             Encoding::BinaryAmplitude => (f.re >= 0.0) as u16,
             Encoding::Amplitude { bits, scale } => amplitude_sample(f.re, scale, bits),
@@ -170,14 +183,21 @@ impl Encoding {
     /// (amplitude encodings): what a replay rebuilds from the file.
     pub fn transmittance(&self, s: u16) -> Complex64 {
         match *self {
-            Encoding::CalibratedPhase { ref calibration, .. } => Complex64::from_polar(1.0, calibration.phase_of(s)),
+            Encoding::CalibratedPhase {
+                ref calibration, ..
+            } => Complex64::from_polar(1.0, calibration.phase_of(s)),
             Encoding::Phase { levels } => {
                 let b = if levels <= 256 { 8 } else { 16 };
-                Complex64::from_polar(1.0, 2.0 * std::f64::consts::PI * s as f64 / (1u32 << b) as f64)
+                Complex64::from_polar(
+                    1.0,
+                    2.0 * std::f64::consts::PI * s as f64 / (1u32 << b) as f64,
+                )
             }
             Encoding::BinaryPhase => Complex64::new(if s != 0 { -1.0 } else { 1.0 }, 0.0),
             Encoding::BinaryAmplitude => Complex64::new(if s != 0 { 1.0 } else { 0.0 }, 0.0),
-            Encoding::Amplitude { bits, .. } => Complex64::new(s as f64 / ((1u32 << bits) - 1) as f64, 0.0),
+            Encoding::Amplitude { bits, .. } => {
+                Complex64::new(s as f64 / ((1u32 << bits) - 1) as f64, 0.0)
+            }
         }
     }
 }
@@ -242,7 +262,8 @@ mod unit_tests {
         assert_eq!(Encoding::BinaryAmplitude.sample(neg), 0);
         assert_eq!(Encoding::BinaryAmplitude.sample(pos), 1);
         let mut out = [0u8; 2];
-        Encoding::BinaryAmplitude.encode_row(&[pos, neg, pos, neg, neg, neg, neg, neg, pos], &mut out);
+        Encoding::BinaryAmplitude
+            .encode_row(&[pos, neg, pos, neg, neg, neg, neg, neg, pos], &mut out);
         assert_eq!(out, [0b1010_0000, 0b1000_0000]);
     }
 

@@ -61,23 +61,46 @@ pub struct FieldGrid {
 impl FieldGrid {
     /// Number of field columns and rows.
     pub fn counts(&self) -> [u32; 2] {
-        [self.plate.width.div_ceil(self.field[0]), self.plate.height.div_ceil(self.field[1])]
+        [
+            self.plate.width.div_ceil(self.field[0]),
+            self.plate.height.div_ceil(self.field[1]),
+        ]
     }
     /// Column ranges [c0, c1) of the field columns.
     pub fn column_blocks(&self) -> Vec<(usize, usize)> {
-        (0..self.counts()[0]).map(|c| ((c * self.field[0]) as usize, ((c + 1) * self.field[0]).min(self.plate.width) as usize)).collect()
+        (0..self.counts()[0])
+            .map(|c| {
+                (
+                    (c * self.field[0]) as usize,
+                    ((c + 1) * self.field[0]).min(self.plate.width) as usize,
+                )
+            })
+            .collect()
     }
     /// Path of field (row, col).
     pub fn path(&self, row: u32, col: u32) -> PathBuf {
         let n = self.counts();
         let digits = n[0].max(n[1]).saturating_sub(1).to_string().len().max(3);
-        let stem = self.output.file_stem().map(|s| s.to_string_lossy().into_owned()).unwrap_or_default();
-        let ext = self.output.extension().map(|s| s.to_string_lossy().into_owned()).unwrap_or_else(|| "tif".into());
-        self.output.with_file_name(format!("{stem}_r{row:0digits$}_c{col:0digits$}.{ext}"))
+        let stem = self
+            .output
+            .file_stem()
+            .map(|s| s.to_string_lossy().into_owned())
+            .unwrap_or_default();
+        let ext = self
+            .output
+            .extension()
+            .map(|s| s.to_string_lossy().into_owned())
+            .unwrap_or_else(|| "tif".into());
+        self.output
+            .with_file_name(format!("{stem}_r{row:0digits$}_c{col:0digits$}.{ext}"))
     }
     /// Manifest path NAME.fields.json.
     pub fn manifest_path(&self) -> PathBuf {
-        let stem = self.output.file_stem().map(|s| s.to_string_lossy().into_owned()).unwrap_or_default();
+        let stem = self
+            .output
+            .file_stem()
+            .map(|s| s.to_string_lossy().into_owned())
+            .unwrap_or_default();
         self.output.with_file_name(format!("{stem}.fields.json"))
     }
     fn layout(&self, row: u32, col: u32) -> TiffLayout {
@@ -92,13 +115,22 @@ impl FieldGrid {
         let p = &self.plate;
         let (c0, r0) = (col * self.field[0], row * self.field[1]);
         FieldEntry {
-            file: path.file_name().map(|f| f.to_string_lossy().into_owned()).unwrap_or_default(),
+            file: path
+                .file_name()
+                .map(|f| f.to_string_lossy().into_owned())
+                .unwrap_or_default(),
             row,
             col,
             first_px: [c0, r0],
             size_px: [l.width, l.height],
-            origin_mm: [(p.x_of_col(c0 as f64) - p.pitch[0] / 2.0) * 1e3, (p.y_of_row(r0 as f64) + p.pitch[1] / 2.0) * 1e3],
-            size_mm: [l.width as f64 * p.pitch[0] * 1e3, l.height as f64 * p.pitch[1] * 1e3],
+            origin_mm: [
+                (p.x_of_col(c0 as f64) - p.pitch[0] / 2.0) * 1e3,
+                (p.y_of_row(r0 as f64) + p.pitch[1] / 2.0) * 1e3,
+            ],
+            size_mm: [
+                l.width as f64 * p.pitch[0] * 1e3,
+                l.height as f64 * p.pitch[1] * 1e3,
+            ],
             bytes,
             sha256,
         }
@@ -124,10 +156,19 @@ impl FieldSink {
         if !state.writers.is_empty() {
             for (col, ws) in state.writers.into_iter().enumerate() {
                 let col = col as u32;
-                writers.push(StripWriter::resume(&grid.path(row, col), grid.layout(row, col), ws)?);
+                writers.push(StripWriter::resume(
+                    &grid.path(row, col),
+                    grid.layout(row, col),
+                    ws,
+                )?);
             }
         }
-        Ok(FieldSink { grid, row, writers, done: state.done })
+        Ok(FieldSink {
+            grid,
+            row,
+            writers,
+            done: state.done,
+        })
     }
 
     /// Appends the band starting at plate row `row0`: one block of encoded rows per field column.
@@ -138,7 +179,10 @@ impl FieldSink {
             self.finish_row()?;
             self.row = fr;
             for col in 0..self.grid.counts()[0] {
-                self.writers.push(StripWriter::create(&self.grid.path(fr, col), self.grid.layout(fr, col))?);
+                self.writers.push(StripWriter::create(
+                    &self.grid.path(fr, col),
+                    self.grid.layout(fr, col),
+                )?);
             }
         }
         for (w, b) in self.writers.iter_mut().zip(blocks) {
@@ -164,7 +208,10 @@ impl FieldSink {
         for w in &mut self.writers {
             ws.push(w.checkpoint()?);
         }
-        Ok(FieldsState { done: self.done.clone(), writers: ws })
+        Ok(FieldsState {
+            done: self.done.clone(),
+            writers: ws,
+        })
     }
 
     /// Removes the partial files of the current row (failure before any checkpoint).
@@ -181,7 +228,11 @@ impl FieldSink {
 }
 
 /// The manifest JSON of a finished field set.
-pub fn manifest_json(grid: &FieldGrid, entries: &[FieldEntry], job_sha256: &str) -> serde_json::Value {
+pub fn manifest_json(
+    grid: &FieldGrid,
+    entries: &[FieldEntry],
+    job_sha256: &str,
+) -> serde_json::Value {
     let n = grid.counts();
     serde_json::json!({
         "format": "fringemill-fields",
@@ -199,7 +250,10 @@ pub fn manifest_json(grid: &FieldGrid, entries: &[FieldEntry], job_sha256: &str)
 /// Checks a field size against the plate: each side at least 1.
 pub fn validate(field: [i64; 2], path: &Path) -> Result<[u32; 2]> {
     if field.iter().any(|&v| v < 1 || v > u32::MAX as i64) {
-        return Err(Error::job(path, format!("[output] field_px = {field:?}: each side must be at least 1 pixel")));
+        return Err(Error::job(
+            path,
+            format!("[output] field_px = {field:?}: each side must be at least 1 pixel"),
+        ));
     }
     Ok([field[0] as u32, field[1] as u32])
 }

@@ -11,7 +11,9 @@ use std::path::Path;
 use std::sync::Arc;
 
 use super::progress::{Progress, ProgressMode};
-use super::spec::{AlgorithmChoice, Geometry, IterativeSpec, JobSpec, ObjectSource, EncodingRequest};
+use super::spec::{
+    AlgorithmChoice, EncodingRequest, Geometry, IterativeSpec, JobSpec, ObjectSource,
+};
 use crate::encoding::Encoding;
 use crate::error::{Error, Result};
 use crate::optics::propagation::{Grid, PropagationPlanner, PropagationRecipe};
@@ -33,7 +35,10 @@ pub struct IterationRecord {
 
 /// Reads a target image as intensities: 8/16-bit grey PNG, or TIFF.
 pub fn read_target(path: &Path) -> Result<(usize, usize, Vec<f64>)> {
-    let ext = path.extension().map(|e| e.to_string_lossy().to_ascii_lowercase()).unwrap_or_default();
+    let ext = path
+        .extension()
+        .map(|e| e.to_string_lossy().to_ascii_lowercase())
+        .unwrap_or_default();
     match ext.as_str() {
         "png" => crate::replay::metrics::read_png_grey(path),
         "tif" | "tiff" => {
@@ -42,18 +47,36 @@ pub fn read_target(path: &Path) -> Result<(usize, usize, Vec<f64>)> {
             let mut d = tiff::decoder::Decoder::new(std::io::BufReader::new(f)).map_err(bad)?;
             let (w, h) = d.dimensions().map_err(bad)?;
             let v: Vec<f64> = match d.read_image().map_err(bad)? {
-                tiff::decoder::DecodingResult::U8(b) if b.len() == (w * h) as usize => b.iter().map(|&x| x as f64 / 255.0).collect(),
-                tiff::decoder::DecodingResult::U16(b) if b.len() == (w * h) as usize => b.iter().map(|&x| x as f64 / 65535.0).collect(),
-                _ => return Err(Error::unsupported(path, "target TIFF must be 8- or 16-bit grey, one sample per pixel")),
+                tiff::decoder::DecodingResult::U8(b) if b.len() == (w * h) as usize => {
+                    b.iter().map(|&x| x as f64 / 255.0).collect()
+                }
+                tiff::decoder::DecodingResult::U16(b) if b.len() == (w * h) as usize => {
+                    b.iter().map(|&x| x as f64 / 65535.0).collect()
+                }
+                _ => {
+                    return Err(Error::unsupported(
+                        path,
+                        "target TIFF must be 8- or 16-bit grey, one sample per pixel",
+                    ))
+                }
             };
             Ok((w as usize, h as usize, v))
         }
-        other => Err(Error::unsupported(path, format!("target image type '.{other}': use PNG or TIFF"))),
+        other => Err(Error::unsupported(
+            path,
+            format!("target image type '.{other}': use PNG or TIFF"),
+        )),
     }
 }
 
 /// Places an image on an nx x ny canvas, centred and shifted by [right, up] pixels.
-fn place(path: &Path, img: (usize, usize, Vec<f64>), nx: usize, ny: usize, shift: [i64; 2]) -> Result<(Vec<f64>, [usize; 4])> {
+fn place(
+    path: &Path,
+    img: (usize, usize, Vec<f64>),
+    nx: usize,
+    ny: usize,
+    shift: [i64; 2],
+) -> Result<(Vec<f64>, [usize; 4])> {
     let (w, h, v) = img;
     let x0 = (nx as i64 - w as i64) / 2 + shift[0];
     let y0 = (ny as i64 - h as i64) / 2 - shift[1];
@@ -73,20 +96,34 @@ fn place(path: &Path, img: (usize, usize, Vec<f64>), nx: usize, ny: usize, shift
 }
 
 /// Runs the iteration and returns the cell laid over the plate.
-pub fn build_cell(spec: &JobSpec, it: &IterativeSpec, mode: ProgressMode) -> Result<(PhaseCell, IterationRecord)> {
+pub fn build_cell(
+    spec: &JobSpec,
+    it: &IterativeSpec,
+    mode: ProgressMode,
+) -> Result<(PhaseCell, IterationRecord)> {
     let p = spec.plate;
     let cell = it.cell_px.unwrap_or([p.width, p.height]);
-    let (nx, ny) = (cell[0].min(p.width) as usize, cell[1].min(p.height) as usize);
+    let (nx, ny) = (
+        cell[0].min(p.width) as usize,
+        cell[1].min(p.height) as usize,
+    );
     if nx > 8192 || ny > 8192 {
         return Err(Error::job(&spec.path, format!("the iterated cell would be {nx} x {ny} px; set [synthesis] cell_px (at most 8192 x 8192) and let it repeat over the plate")));
     }
-    let grid = Grid { nx, ny, pitch: p.pitch, wavelength: p.wavelength };
+    let grid = Grid {
+        nx,
+        ny,
+        pitch: p.pitch,
+        wavelength: p.wavelength,
+    };
     let mut planner = PropagationPlanner::<f32>::new();
     let mut planes = Vec::new();
     let mut windows = Vec::new();
     let mut pitches = Vec::new();
     for o in &spec.objects {
-        let ObjectSource::Image { distance, shift_px } = o.source else { continue };
+        let ObjectSource::Image { distance, shift_px } = o.source else {
+            continue;
+        };
         let (fwd, back) = match it.geometry {
             Geometry::Fourier(f) => (
                 planner.plan_recipe(&grid, 0.0, PropagationRecipe::Fourier { focal: f }),
@@ -104,10 +141,15 @@ pub fn build_cell(spec: &JobSpec, it: &IterativeSpec, mode: ProgressMode) -> Res
         let (target, win) = place(&o.points, img, nx, ny, shift_px)?;
         pitches.push(fwd.output().pitch);
         windows.push(win);
-        planes.push(Plane { target, propagator: fwd, back });
+        planes.push(Plane {
+            target,
+            propagator: fwd,
+            back,
+        });
     }
     let levels = match &spec.encoding {
-        EncodingRequest::Fixed(Encoding::Phase { levels }) | EncodingRequest::Fixed(Encoding::CalibratedPhase { levels, .. }) => Some(*levels),
+        EncodingRequest::Fixed(Encoding::Phase { levels })
+        | EncodingRequest::Fixed(Encoding::CalibratedPhase { levels, .. }) => Some(*levels),
         EncodingRequest::Fixed(Encoding::BinaryPhase) => Some(2),
         _ => None,
     };
@@ -116,12 +158,29 @@ pub fn build_cell(spec: &JobSpec, it: &IterativeSpec, mode: ProgressMode) -> Res
         AlgorithmChoice::WeightedGs => Algorithm::WeightedGs,
         AlgorithmChoice::MixedRegion(mix) => {
             if windows.len() != 1 {
-                return Err(Error::job(&spec.path, "mixed-region takes one image (its window is the signal window)"));
+                return Err(Error::job(
+                    &spec.path,
+                    "mixed-region takes one image (its window is the signal window)",
+                ));
             }
-            Algorithm::MixedRegion { signal: windows[0], mix }
+            Algorithm::MixedRegion {
+                signal: windows[0],
+                mix,
+            }
         }
     };
-    let opts = IterOptions { algorithm, iterations: it.iterations, seed: it.seed, levels, quantize_last: if levels.is_some() { it.quantize_last } else { 0 }, stall_tolerance: it.stall_tolerance };
+    let opts = IterOptions {
+        algorithm,
+        iterations: it.iterations,
+        seed: it.seed,
+        levels,
+        quantize_last: if levels.is_some() {
+            it.quantize_last
+        } else {
+            0
+        },
+        stall_tolerance: it.stall_tolerance,
+    };
     let mut progress = Progress::new("iterations", it.iterations as f64, mode);
     let mut last = 0usize;
     let res = optimise(&planes, &grid, &opts, &mut |k, _err| {
@@ -129,8 +188,16 @@ pub fn build_cell(spec: &JobSpec, it: &IterativeSpec, mode: ProgressMode) -> Res
         last = k + 1;
     });
     progress.finish();
-    let record = IterationRecord { errors: res.errors.clone(), stopped_early: res.stopped_early, cell: [nx, ny], replay_pitch: pitches };
-    Ok((PhaseCell::new(p, [nx, ny], res.phase, it.carrier, it.lens), record))
+    let record = IterationRecord {
+        errors: res.errors.clone(),
+        stopped_early: res.stopped_early,
+        cell: [nx, ny],
+        replay_pitch: pitches,
+    };
+    Ok((
+        PhaseCell::new(p, [nx, ny], res.phase, it.carrier, it.lens),
+        record,
+    ))
 }
 
 /// The sidecar section of an iterative run.

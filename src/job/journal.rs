@@ -50,7 +50,12 @@ impl Journal {
     pub fn read(path: &Path) -> Result<Option<Journal>> {
         match std::fs::read(path) {
             Ok(b) => {
-                let j: Journal = serde_json::from_slice(&b).map_err(|e| Error::input(path, format!("damaged journal ({e}); delete it or run with --restart")))?;
+                let j: Journal = serde_json::from_slice(&b).map_err(|e| {
+                    Error::input(
+                        path,
+                        format!("damaged journal ({e}); delete it or run with --restart"),
+                    )
+                })?;
                 if j.format != FORMAT {
                     return Err(Error::input(path, "not a fringemill journal"));
                 }
@@ -73,11 +78,18 @@ pub fn changed_key(old: &str, new: &str) -> String {
     let (Ok(a), Ok(b)) = (old.parse::<toml::Table>(), new.parse::<toml::Table>()) else {
         return "the job file".into();
     };
-    diff(&toml::Value::Table(a), &toml::Value::Table(b), "").unwrap_or_else(|| "formatting or comments only".into())
+    diff(&toml::Value::Table(a), &toml::Value::Table(b), "")
+        .unwrap_or_else(|| "formatting or comments only".into())
 }
 
 fn diff(a: &toml::Value, b: &toml::Value, at: &str) -> Option<String> {
-    let join = |k: &str| if at.is_empty() { k.to_string() } else { format!("{at}.{k}") };
+    let join = |k: &str| {
+        if at.is_empty() {
+            k.to_string()
+        } else {
+            format!("{at}.{k}")
+        }
+    };
     match (a, b) {
         (toml::Value::Table(x), toml::Value::Table(y)) => {
             let mut keys: Vec<&String> = x.keys().chain(y.keys()).collect();
@@ -97,9 +109,11 @@ fn diff(a: &toml::Value, b: &toml::Value, at: &str) -> Option<String> {
             }
             None
         }
-        (toml::Value::Array(x), toml::Value::Array(y)) if x.len() == y.len() => {
-            x.iter().zip(y).enumerate().find_map(|(i, (u, v))| diff(u, v, &format!("{at}[{i}]")))
-        }
+        (toml::Value::Array(x), toml::Value::Array(y)) if x.len() == y.len() => x
+            .iter()
+            .zip(y)
+            .enumerate()
+            .find_map(|(i, (u, v))| diff(u, v, &format!("{at}[{i}]"))),
         _ => (a != b).then(|| format!("{at}: {a} -> {b}")),
     }
 }
@@ -114,7 +128,13 @@ mod unit_tests {
         let b = "[hologram]\nwidth_px = 12\n[[object]]\npoints = \"a.csv\"\n";
         assert_eq!(changed_key(a, b), "hologram.width_px: 10 -> 12");
         let c = "[hologram]\nwidth_px = 10\n[[object]]\npoints = \"b.csv\"\n";
-        assert_eq!(changed_key(a, c), "object[0].points: \"a.csv\" -> \"b.csv\"");
-        assert_eq!(changed_key(a, &format!("# note\n{a}")), "formatting or comments only");
+        assert_eq!(
+            changed_key(a, c),
+            "object[0].points: \"a.csv\" -> \"b.csv\""
+        );
+        assert_eq!(
+            changed_key(a, &format!("# note\n{a}")),
+            "formatting or comments only"
+        );
     }
 }

@@ -47,7 +47,8 @@ impl Progress {
         let (bar, log) = match mode {
             ProgressMode::Quiet => (None, false),
             ProgressMode::Auto if tty => {
-                let bar = ProgressBar::with_draw_target(Some(1_000_000), ProgressDrawTarget::stderr());
+                let bar =
+                    ProgressBar::with_draw_target(Some(1_000_000), ProgressDrawTarget::stderr());
                 bar.set_style(
                     ProgressStyle::with_template("{msg} [{bar:40}] {percent:>3}% elapsed {elapsed_precise} eta {eta_precise}")
                         .expect("static template")
@@ -59,7 +60,16 @@ impl Progress {
             _ => (None, true),
         };
         let now = Instant::now();
-        Progress { label: label.to_string(), total: total.max(1.0), done: 0.0, start: now, last_log: now, log_every: Duration::from_secs(10), bar, log }
+        Progress {
+            label: label.to_string(),
+            total: total.max(1.0),
+            done: 0.0,
+            start: now,
+            last_log: now,
+            log_every: Duration::from_secs(10),
+            bar,
+            log,
+        }
     }
 
     /// Interval between plain log lines (default 10 s).
@@ -83,7 +93,11 @@ impl Progress {
                 self.label,
                 100.0 * frac,
                 fmt_secs(el),
-                if eta.is_finite() { fmt_secs(eta) } else { "?".into() }
+                if eta.is_finite() {
+                    fmt_secs(eta)
+                } else {
+                    "?".into()
+                }
             );
         }
     }
@@ -101,7 +115,11 @@ impl Progress {
             bar.finish_and_clear();
         }
         if self.log {
-            eprintln!("fringemill: {}: done in {}", self.label, fmt_secs(self.start.elapsed().as_secs_f64()));
+            eprintln!(
+                "fringemill: {}: done in {}",
+                self.label,
+                fmt_secs(self.start.elapsed().as_secs_f64())
+            );
         }
     }
 }

@@ -13,16 +13,16 @@ use num_complex::Complex64;
 use rayon::prelude::*;
 
 use super::fields::{manifest_json, FieldEntry, FieldGrid, FieldSink, FieldsState};
+use super::iterative::{build_cell, sidecar_json as iterative_sidecar, IterationRecord};
 use super::journal::{changed_key, journal_path, Journal, FORMAT};
 use super::progress::{Progress, ProgressMode};
+use super::scene::{build_scene, Scene};
 use super::spec::{EncodingRequest, JobSpec};
+use super::spec::{IterativeSpec, Method};
 use crate::encoding::Encoding;
 use crate::error::{Error, Result};
 use crate::output::sidecar::{self, write_atomically, OutputRecord, SidecarInput};
 use crate::output::tiff::{partial_path, StripWriter, TiffLayout};
-use super::iterative::{build_cell, sidecar_json as iterative_sidecar, IterationRecord};
-use super::scene::{build_scene, Scene};
-use super::spec::{IterativeSpec, Method};
 use crate::synthesis::phase_cell::PhaseCell;
 use crate::synthesis::point_sum::{BandScratch, PointSum};
 use crate::synthesis::Emitter;
@@ -42,13 +42,24 @@ impl Shard {
         if text == "slurm" {
             return Self::from_slurm(|k| std::env::var(k).ok());
         }
-        let (k, n) = text.split_once('/').ok_or_else(|| format!("--shard {text}: expected K/N, e.g. 2/4, or 'slurm'"))?;
-        let k: u32 = k.trim().parse().map_err(|_| format!("--shard {text}: K is not a whole number"))?;
-        let n: u32 = n.trim().parse().map_err(|_| format!("--shard {text}: N is not a whole number"))?;
+        let (k, n) = text
+            .split_once('/')
+            .ok_or_else(|| format!("--shard {text}: expected K/N, e.g. 2/4, or 'slurm'"))?;
+        let k: u32 = k
+            .trim()
+            .parse()
+            .map_err(|_| format!("--shard {text}: K is not a whole number"))?;
+        let n: u32 = n
+            .trim()
+            .parse()
+            .map_err(|_| format!("--shard {text}: N is not a whole number"))?;
         if n == 0 || k == 0 || k > n {
             return Err(format!("--shard {text}: need 1 <= K <= N"));
         }
-        Ok(Shard { index: k - 1, count: n })
+        Ok(Shard {
+            index: k - 1,
+            count: n,
+        })
     }
 
     /// The shard of a Slurm array task: index = SLURM_ARRAY_TASK_ID - SLURM_ARRAY_TASK_MIN (0 if
@@ -57,19 +68,30 @@ impl Shard {
         let num = |k: &str| -> std::result::Result<Option<u32>, String> {
             match get(k) {
                 None => Ok(None),
-                Some(v) => v.trim().parse().map(Some).map_err(|_| format!("{k}={v} is not a whole number")),
+                Some(v) => v
+                    .trim()
+                    .parse()
+                    .map(Some)
+                    .map_err(|_| format!("{k}={v} is not a whole number")),
             }
         };
-        let id = num("SLURM_ARRAY_TASK_ID")?.ok_or("--shard slurm: SLURM_ARRAY_TASK_ID is not set (not inside a job array?)")?;
+        let id = num("SLURM_ARRAY_TASK_ID")?
+            .ok_or("--shard slurm: SLURM_ARRAY_TASK_ID is not set (not inside a job array?)")?;
         let min = num("SLURM_ARRAY_TASK_MIN")?.unwrap_or(0);
         let count = match num("SLURM_ARRAY_TASK_COUNT")? {
             Some(c) => c,
             None => {
-                let max = num("SLURM_ARRAY_TASK_MAX")?.ok_or("--shard slurm: neither SLURM_ARRAY_TASK_COUNT nor SLURM_ARRAY_TASK_MAX is set")?;
-                max.checked_sub(min).ok_or("--shard slurm: SLURM_ARRAY_TASK_MAX < MIN")? + 1
+                let max = num("SLURM_ARRAY_TASK_MAX")?.ok_or(
+                    "--shard slurm: neither SLURM_ARRAY_TASK_COUNT nor SLURM_ARRAY_TASK_MAX is set",
+                )?;
+                max.checked_sub(min)
+                    .ok_or("--shard slurm: SLURM_ARRAY_TASK_MAX < MIN")?
+                    + 1
             }
         };
-        let index = id.checked_sub(min).ok_or("--shard slurm: task id below SLURM_ARRAY_TASK_MIN")?;
+        let index = id
+            .checked_sub(min)
+            .ok_or("--shard slurm: task id below SLURM_ARRAY_TASK_MIN")?;
         if count == 0 || index >= count {
             return Err(format!("--shard slurm: task {id} is outside an array of {count} tasks starting at {min} (array ids must be contiguous)"));
         }
@@ -95,7 +117,13 @@ pub struct RunOptions {
 impl RunOptions {
     /// Defaults: checkpoints every 30 s, no shard, progress as given.
     pub fn new(progress: ProgressMode) -> RunOptions {
-        RunOptions { progress, restart: false, shard: None, checkpoint_every: Duration::from_secs(30), stop: Arc::new(AtomicBool::new(false)) }
+        RunOptions {
+            progress,
+            restart: false,
+            shard: None,
+            checkpoint_every: Duration::from_secs(30),
+            stop: Arc::new(AtomicBool::new(false)),
+        }
     }
 }
 
@@ -145,7 +173,13 @@ impl Source {
         }
     }
     /// F for a band; returns the work done (point-pixel updates, or pixels).
-    pub fn compute_band(&self, r0: usize, n: usize, out: &mut [Complex64], scratch: &mut BandScratch) -> u64 {
+    pub fn compute_band(
+        &self,
+        r0: usize,
+        n: usize,
+        out: &mut [Complex64],
+        scratch: &mut BandScratch,
+    ) -> u64 {
         match self {
             Source::Points(s) => s.compute_band(r0, n, out, scratch),
             Source::Cell(c, ..) => c.compute_band(r0, n, out),
@@ -173,7 +207,11 @@ impl Source {
                 sum.candidates(r0, n, cands);
                 let mid = r0 + n / 2;
                 // Span lengths on the middle row, plus a per-pixel cost for the reference and encoding.
-                let spans: usize = cands.iter().filter_map(|&j| sum.row_span(j as usize, mid)).map(|(a, b)| b - a).sum();
+                let spans: usize = cands
+                    .iter()
+                    .filter_map(|&j| sum.row_span(j as usize, mid))
+                    .map(|(a, b)| b - a)
+                    .sum();
                 (spans as f64 + 0.05 * w) * n as f64
             }
             Source::Cell(..) => w * n as f64,
@@ -226,10 +264,15 @@ pub fn tiff_layout(spec: &JobSpec, encoding: &Encoding) -> TiffLayout {
         height: spec.plate.height,
         bits_per_sample: bits,
         compression: spec.compression,
-        rows_per_strip: spec.rows_per_strip.unwrap_or_else(|| TiffLayout::default_rows_per_strip(spec.plate.width, bits)),
+        rows_per_strip: spec
+            .rows_per_strip
+            .unwrap_or_else(|| TiffLayout::default_rows_per_strip(spec.plate.width, bits)),
         pixel_pitch_m: (spec.plate.pitch[0], spec.plate.pitch[1]),
         software: format!("fringemill {}", env!("CARGO_PKG_VERSION")),
-        description: Some(format!("fringe pattern, {} encoding; parameters in the JSON sidecar", encoding.kind_name())),
+        description: Some(format!(
+            "fringe pattern, {} encoding; parameters in the JSON sidecar",
+            encoding.kind_name()
+        )),
         bigtiff: spec.bigtiff,
     }
 }
@@ -242,8 +285,15 @@ pub fn sidecar_path(tiff: &Path) -> PathBuf {
 /// Rows per band: the largest divisor of the strip height not above [`default_band_rows`], so
 /// that strips (the unit of checkpoints and shards) are whole numbers of bands.
 fn band_rows_for(spec: &JobSpec, rows_per_strip: u32) -> usize {
-    let target = spec.band_rows.unwrap_or_else(|| default_band_rows(spec.plate.width)).min(rows_per_strip as usize).max(1);
-    (1..=target).rev().find(|b| rows_per_strip as usize % b == 0).unwrap_or(1)
+    let target = spec
+        .band_rows
+        .unwrap_or_else(|| default_band_rows(spec.plate.width))
+        .min(rows_per_strip as usize)
+        .max(1);
+    (1..=target)
+        .rev()
+        .find(|b| rows_per_strip as usize % b == 0)
+        .unwrap_or(1)
 }
 
 /// Everything a run of one job needs, prepared once.
@@ -277,7 +327,10 @@ fn prepare(spec: &JobSpec, mode: ProgressMode) -> Result<Prepared> {
     };
     let encoding = match &spec.encoding {
         EncodingRequest::Fixed(e) => e.clone(),
-        EncodingRequest::AmplitudeAuto { bits } => Encoding::Amplitude { bits: *bits, scale: measure_bipolar_scale(&sum) },
+        EncodingRequest::AmplitudeAuto { bits } => Encoding::Amplitude {
+            bits: *bits,
+            scale: measure_bipolar_scale(&sum),
+        },
     };
     let mut layout = tiff_layout(spec, &encoding);
     let (fields, blocks, rps, unit_rows) = match spec.field_px {
@@ -287,16 +340,36 @@ fn prepare(spec: &JobSpec, mode: ProgressMode) -> Result<Prepared> {
         }
         Some([fw, fh]) => {
             // Strips must tile each field row exactly.
-            let target = spec.rows_per_strip.unwrap_or_else(|| TiffLayout::default_rows_per_strip(fw, encoding.bits_per_sample())).min(fh);
+            let target = spec
+                .rows_per_strip
+                .unwrap_or_else(|| {
+                    TiffLayout::default_rows_per_strip(fw, encoding.bits_per_sample())
+                })
+                .min(fh);
             let rps = (1..=target).rev().find(|r| fh % r == 0).unwrap_or(1);
             layout.rows_per_strip = rps;
-            let grid = FieldGrid { field: [fw, fh], plate: spec.plate, output: spec.output.clone(), layout: layout.clone() };
+            let grid = FieldGrid {
+                field: [fw, fh],
+                plate: spec.plate,
+                output: spec.output.clone(),
+                layout: layout.clone(),
+            };
             let blocks = grid.column_blocks();
             (Some(grid), blocks, rps, fh)
         }
     };
     let band_rows = band_rows_for(spec, rps);
-    Ok(Prepared { source: sum, encoding, layout, emitters: n, rps, band_rows, fields, blocks, unit_rows })
+    Ok(Prepared {
+        source: sum,
+        encoding,
+        layout,
+        emitters: n,
+        rps,
+        band_rows,
+        fields,
+        blocks,
+        unit_rows,
+    })
 }
 
 /// Number of shard units (strips, or field rows) of the plate.
@@ -338,19 +411,27 @@ pub fn shard_strips(sum: &Source, rps: u32, count: u32) -> Vec<(u32, u32)> {
 /// single-file plate) or field files.
 enum Sink {
     Tiff(StripWriter),
-    Part { file: std::io::BufWriter<File>, path: PathBuf },
+    Part {
+        file: std::io::BufWriter<File>,
+        path: PathBuf,
+    },
     Fields(FieldSink),
 }
 
 /// What a checkpoint of a sink records in the journal.
-type SinkState = (Option<crate::output::tiff::WriterState>, Option<FieldsState>);
+type SinkState = (
+    Option<crate::output::tiff::WriterState>,
+    Option<FieldsState>,
+);
 
 impl Sink {
     /// Appends a band starting at plate row `row0`, one block of encoded rows per column block.
     fn write_band(&mut self, row0: u32, blocks: &[Vec<u8>]) -> Result<()> {
         match self {
             Sink::Tiff(w) => w.write_rows(&blocks[0]),
-            Sink::Part { file, path } => file.write_all(&blocks[0]).map_err(|e| Error::io(&*path, e)),
+            Sink::Part { file, path } => {
+                file.write_all(&blocks[0]).map_err(|e| Error::io(&*path, e))
+            }
             Sink::Fields(f) => f.write_band(row0, blocks),
         }
     }
@@ -359,7 +440,9 @@ impl Sink {
         match self {
             Sink::Tiff(w) => Ok((Some(w.checkpoint()?), None)),
             Sink::Part { file, path } => {
-                file.flush().and_then(|_| file.get_ref().sync_data()).map_err(|e| Error::io(&*path, e))?;
+                file.flush()
+                    .and_then(|_| file.get_ref().sync_data())
+                    .map_err(|e| Error::io(&*path, e))?;
                 Ok((None, None))
             }
             Sink::Fields(f) => Ok((None, Some(f.checkpoint()?))),
@@ -390,13 +473,21 @@ pub fn free_bytes(dir: &Path) -> Option<u64> {
 
 /// Refuses to start when the file system holding `dir` has less than `needed` bytes (plus slack) free.
 pub fn check_space(dir: &Path, needed: u64) -> Result<()> {
-    let dir = if dir.as_os_str().is_empty() { Path::new(".") } else { dir };
+    let dir = if dir.as_os_str().is_empty() {
+        Path::new(".")
+    } else {
+        dir
+    };
     if let Some(free) = free_bytes(dir) {
         let needed = needed + (1 << 20); // journal, sidecar and slack
         if free < needed {
             return Err(Error::io(
                 dir,
-                std::io::Error::other(format!("not enough free space: the output needs about {:.1} MB, {:.1} MB are free", needed as f64 / 1e6, free as f64 / 1e6)),
+                std::io::Error::other(format!(
+                    "not enough free space: the output needs about {:.1} MB, {:.1} MB are free",
+                    needed as f64 / 1e6,
+                    free as f64 / 1e6
+                )),
             ));
         }
     }
@@ -414,8 +505,16 @@ fn ensure_parent(path: &Path) -> Result<()> {
 
 /// Looks for an interrupted run of this output. Ok(Some(journal)) to continue; Ok(None) to start
 /// afresh (no journal, or --restart); Err when the job changed and --restart was not given.
-fn find_resume(spec: &JobSpec, data: &Path, journal: &Path, shard: Option<[u32; 2]>, restart: bool) -> Result<Option<Journal>> {
-    let Some(j) = Journal::read(journal)? else { return Ok(None) };
+fn find_resume(
+    spec: &JobSpec,
+    data: &Path,
+    journal: &Path,
+    shard: Option<[u32; 2]>,
+    restart: bool,
+) -> Result<Option<Journal>> {
+    let Some(j) = Journal::read(journal)? else {
+        return Ok(None);
+    };
     if restart {
         let _ = std::fs::remove_file(data);
         let _ = std::fs::remove_file(journal);
@@ -432,7 +531,13 @@ fn find_resume(spec: &JobSpec, data: &Path, journal: &Path, shard: Option<[u32; 
         ));
     }
     if j.shard != shard {
-        return Err(Error::job(&spec.path, format!("{} belongs to another shard split; run with --restart", journal.display())));
+        return Err(Error::job(
+            &spec.path,
+            format!(
+                "{} belongs to another shard split; run with --restart",
+                journal.display()
+            ),
+        ));
     }
     if j.fields.is_none() && !data.exists() {
         let _ = std::fs::remove_file(journal);
@@ -464,28 +569,65 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
     let resume = find_resume(spec, &data_path, &journal, shard_tag, opts.restart)?;
     let first_row = first_unit * prep.unit_rows;
     let end_row = (end_unit * prep.unit_rows).min(spec.plate.height);
-    let (rows_done, updates0) = resume.as_ref().map(|j| (j.rows_done, j.updates)).unwrap_or((0, 0));
+    let (rows_done, updates0) = resume
+        .as_ref()
+        .map(|j| (j.rows_done, j.updates))
+        .unwrap_or((0, 0));
     // Room on disk for what remains.
     let remaining = match (&prep.fields, opts.shard) {
-        (None, None) => prep.layout.estimated_file_bytes().saturating_sub(resume.as_ref().and_then(|j| j.writer.as_ref()).map(|w| w.file_len).unwrap_or(0)),
+        (None, None) => prep.layout.estimated_file_bytes().saturating_sub(
+            resume
+                .as_ref()
+                .and_then(|j| j.writer.as_ref())
+                .map(|w| w.file_len)
+                .unwrap_or(0),
+        ),
         _ => (end_row - first_row - rows_done) as u64 * row_bytes as u64,
     };
     check_space(data_path.parent().unwrap_or(Path::new(".")), remaining)?;
     let mut sink = match (&prep.fields, &opts.shard, resume) {
-        (Some(g), _, resumed) => Sink::Fields(FieldSink::new(g.clone(), first_row + rows_done, resumed.and_then(|j| j.fields))?),
+        (Some(g), _, resumed) => Sink::Fields(FieldSink::new(
+            g.clone(),
+            first_row + rows_done,
+            resumed.and_then(|j| j.fields),
+        )?),
         (None, None, Some(j)) => {
-            let state = j.writer.ok_or_else(|| Error::input(&journal, "journal without writer state; run with --restart"))?;
-            Sink::Tiff(StripWriter::resume(&spec.output, prep.layout.clone(), state)?)
+            let state = j.writer.ok_or_else(|| {
+                Error::input(&journal, "journal without writer state; run with --restart")
+            })?;
+            Sink::Tiff(StripWriter::resume(
+                &spec.output,
+                prep.layout.clone(),
+                state,
+            )?)
         }
         (None, None, None) => Sink::Tiff(StripWriter::create(&spec.output, prep.layout.clone())?),
         (None, Some(_), resumed) => {
-            let mut f = OpenOptions::new().create(true).write(true).truncate(resumed.is_none()).open(&data_path).map_err(|e| Error::io(&data_path, e))?;
+            let mut f = OpenOptions::new()
+                .create(true)
+                .write(true)
+                .truncate(resumed.is_none())
+                .open(&data_path)
+                .map_err(|e| Error::io(&data_path, e))?;
             let keep = rows_done as u64 * row_bytes as u64;
-            f.set_len(keep).and_then(|_| f.seek(SeekFrom::Start(keep)).map(|_| ())).map_err(|e| Error::io(&data_path, e))?;
-            Sink::Part { file: std::io::BufWriter::with_capacity(1 << 20, f), path: data_path.clone() }
+            f.set_len(keep)
+                .and_then(|_| f.seek(SeekFrom::Start(keep)).map(|_| ()))
+                .map_err(|e| Error::io(&data_path, e))?;
+            Sink::Part {
+                file: std::io::BufWriter::with_capacity(1 << 20, f),
+                path: data_path.clone(),
+            }
         }
     };
-    let ctx = StreamCtx { spec, prep: &prep, journal: &journal, shard: shard_tag, rows: (first_row + rows_done, end_row), rows_before: rows_done, updates_before: updates0 };
+    let ctx = StreamCtx {
+        spec,
+        prep: &prep,
+        journal: &journal,
+        shard: shard_tag,
+        rows: (first_row + rows_done, end_row),
+        rows_before: rows_done,
+        updates_before: updates0,
+    };
     let streamed = stream_rows(&ctx, &mut sink, opts);
     let updates = match streamed {
         Ok(u) => u,
@@ -511,26 +653,39 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
     };
     match sink {
         Sink::Tiff(w) => {
-            let finished = w.finish()?;
-            let sidecar = sidecar_path(&spec.output);
-            let input = SidecarInput { spec, encoding: &prep.encoding, layout: &prep.layout, output: OutputRecord::Tiff(&finished), emitters: prep.emitters, unreachable: prep.source.unreachable(), updates, extra: prep.source.sidecar_extra() };
-            if let Err(e) = sidecar::write(&sidecar, &input) {
-                let _ = std::fs::remove_file(&finished.path);
-                return Err(e);
-            }
+            let summary = finish_plate(spec, &prep, w, updates)?;
             let _ = std::fs::remove_file(&journal);
-            Ok(RunSummary { tiff: finished.path, sidecar, emitters: prep.emitters, updates, encoding: prep.encoding.clone() })
+            Ok(summary)
         }
         Sink::Part { mut file, path } => {
-            file.flush().and_then(|_| file.get_ref().sync_all()).map_err(|e| Error::io(&path, e))?;
+            file.flush()
+                .and_then(|_| file.get_ref().sync_all())
+                .map_err(|e| Error::io(&path, e))?;
             drop(file);
             let sh = opts.shard.expect("part sink only for shards");
             let final_part = part_path(&spec.output, sh);
-            let meta = PartMeta { format: FORMAT.into(), job_sha256: spec.sha256.clone(), shard: [sh.index, sh.count], rows: [first_row, end_row], updates, row_bytes: row_bytes as u64, fields: Vec::new() };
+            let meta = PartMeta {
+                format: FORMAT.into(),
+                job_sha256: spec.sha256.clone(),
+                shard: [sh.index, sh.count],
+                rows: [first_row, end_row],
+                updates,
+                row_bytes: row_bytes as u64,
+                fields: Vec::new(),
+            };
             std::fs::rename(&path, &final_part).map_err(|e| Error::io(&final_part, e))?;
-            write_atomically(&part_meta_path(&final_part), &serde_json::to_vec_pretty(&meta).expect("plain data"))?;
+            write_atomically(
+                &part_meta_path(&final_part),
+                &serde_json::to_vec_pretty(&meta).expect("plain data"),
+            )?;
             let _ = std::fs::remove_file(&journal);
-            Ok(RunSummary { tiff: final_part.clone(), sidecar: part_meta_path(&final_part), emitters: prep.emitters, updates, encoding: prep.encoding.clone() })
+            Ok(RunSummary {
+                tiff: final_part.clone(),
+                sidecar: part_meta_path(&final_part),
+                emitters: prep.emitters,
+                updates,
+                encoding: prep.encoding.clone(),
+            })
         }
         Sink::Fields(mut f) => {
             f.finish_row()?;
@@ -540,10 +695,24 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
                 Some(sh) => {
                     // A shard's fields are complete files already; its record lists them for assemble.
                     let rec = part_path(&grid.manifest_path(), sh);
-                    let meta = PartMeta { format: FORMAT.into(), job_sha256: spec.sha256.clone(), shard: [sh.index, sh.count], rows: [first_row, end_row], updates, row_bytes: row_bytes as u64, fields: entries };
+                    let meta = PartMeta {
+                        format: FORMAT.into(),
+                        job_sha256: spec.sha256.clone(),
+                        shard: [sh.index, sh.count],
+                        rows: [first_row, end_row],
+                        updates,
+                        row_bytes: row_bytes as u64,
+                        fields: entries,
+                    };
                     write_atomically(&rec, &serde_json::to_vec_pretty(&meta).expect("plain data"))?;
                     let _ = std::fs::remove_file(&journal);
-                    Ok(RunSummary { tiff: rec.clone(), sidecar: rec, emitters: prep.emitters, updates, encoding: prep.encoding.clone() })
+                    Ok(RunSummary {
+                        tiff: rec.clone(),
+                        sidecar: rec,
+                        emitters: prep.emitters,
+                        updates,
+                        encoding: prep.encoding.clone(),
+                    })
                 }
                 None => {
                     let summary = finish_fields(spec, &prep, &grid, &entries, updates)?;
@@ -555,24 +724,75 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
     }
 }
 
+/// Finishes the single-file TIFF and writes its sidecar; if the sidecar fails, the TIFF is removed
+/// too, so no plate stands without its record.
+fn finish_plate(
+    spec: &JobSpec,
+    prep: &Prepared,
+    writer: StripWriter,
+    updates: u64,
+) -> Result<RunSummary> {
+    let finished = writer.finish()?;
+    let sidecar = sidecar_path(&spec.output);
+    let input = SidecarInput {
+        spec,
+        encoding: &prep.encoding,
+        layout: &prep.layout,
+        output: OutputRecord::Tiff(&finished),
+        emitters: prep.emitters,
+        unreachable: prep.source.unreachable(),
+        updates,
+        extra: prep.source.sidecar_extra(),
+    };
+    if let Err(e) = sidecar::write(&sidecar, &input) {
+        let _ = std::fs::remove_file(&finished.path);
+        return Err(e);
+    }
+    Ok(RunSummary {
+        tiff: finished.path,
+        sidecar,
+        emitters: prep.emitters,
+        updates,
+        encoding: prep.encoding.clone(),
+    })
+}
+
 /// Writes the field manifest and the plate's sidecar.
-fn finish_fields(spec: &JobSpec, prep: &Prepared, grid: &FieldGrid, entries: &[FieldEntry], updates: u64) -> Result<RunSummary> {
+fn finish_fields(
+    spec: &JobSpec,
+    prep: &Prepared,
+    grid: &FieldGrid,
+    entries: &[FieldEntry],
+    updates: u64,
+) -> Result<RunSummary> {
     let manifest = grid.manifest_path();
-    let text = serde_json::to_string_pretty(&manifest_json(grid, entries, &spec.sha256)).expect("plain data") + "\n";
+    let text = serde_json::to_string_pretty(&manifest_json(grid, entries, &spec.sha256))
+        .expect("plain data")
+        + "\n";
     write_atomically(&manifest, text.as_bytes())?;
     let sidecar = sidecar_path(&spec.output);
     let input = SidecarInput {
         spec,
         encoding: &prep.encoding,
         layout: &prep.layout,
-        output: OutputRecord::Fields { manifest: &manifest, count: entries.len(), field_px: grid.field },
+        output: OutputRecord::Fields {
+            manifest: &manifest,
+            count: entries.len(),
+            field_px: grid.field,
+        },
         emitters: prep.emitters,
         unreachable: prep.source.unreachable(),
         updates,
         extra: prep.source.sidecar_extra(),
     };
     sidecar::write(&sidecar, &input)?;
-    Ok(RunSummary { tiff: manifest, sidecar, emitters: prep.emitters, updates, encoding: prep.encoding.clone() })
+    Ok(RunSummary {
+        tiff: manifest,
+        sidecar,
+        emitters: prep.emitters,
+        updates,
+        encoding: prep.encoding.clone(),
+    })
 }
 
 /// Part file of a shard: `NAME.tif.part-K-of-N` (1-based K).
@@ -621,9 +841,14 @@ fn stream_rows(ctx: &StreamCtx, sink: &mut Sink, opts: &RunOptions) -> Result<u6
     let w = plate.width as usize;
     let (start, end) = ctx.rows;
     let band = prep.band_rows;
-    let bands: Vec<(usize, usize)> = (start as usize..end as usize).step_by(band).map(|r| (r, band.min(end as usize - r))).collect();
+    let bands: Vec<(usize, usize)> = (start as usize..end as usize)
+        .step_by(band)
+        .map(|r| (r, band.min(end as usize - r)))
+        .collect();
     let bands_per_strip = (prep.rps as usize).div_ceil(band);
-    let strips_per_wave = (4 * rayon::current_num_threads()).div_ceil(bands_per_strip).max(1);
+    let strips_per_wave = (4 * rayon::current_num_threads())
+        .div_ceil(bands_per_strip)
+        .max(1);
     let wave = strips_per_wave * bands_per_strip;
     let total = prep.source.estimate_updates(64).max(1.0);
     let label = match ctx.shard {
@@ -670,7 +895,17 @@ fn stream_rows(ctx: &StreamCtx, sink: &mut Sink, opts: &RunOptions) -> Result<u6
         let finished = start - ctx.rows_before + rows_done >= end;
         if (stop || last_checkpoint.elapsed() >= opts.checkpoint_every) && !finished {
             let (writer, fields) = sink.sync()?;
-            Journal { format: FORMAT.into(), job_sha256: ctx.spec.sha256.clone(), job_toml: ctx.spec.text.clone(), shard: ctx.shard, rows_done, updates, writer, fields }.write(ctx.journal)?;
+            Journal {
+                format: FORMAT.into(),
+                job_sha256: ctx.spec.sha256.clone(),
+                job_toml: ctx.spec.text.clone(),
+                shard: ctx.shard,
+                rows_done,
+                updates,
+                writer,
+                fields,
+            }
+            .write(ctx.journal)?;
             last_checkpoint = Instant::now();
             if stop {
                 progress.abandon();
@@ -692,14 +927,32 @@ pub fn assemble(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
     if let Some(grid) = prep.fields.clone() {
         return assemble_fields(spec, &prep, &grid);
     }
-    let dir = spec.output.parent().map(Path::to_path_buf).unwrap_or_default();
-    let dir_read = if dir.as_os_str().is_empty() { PathBuf::from(".") } else { dir.clone() };
-    let name = spec.output.file_name().map(|f| f.to_string_lossy().into_owned()).unwrap_or_default();
+    let dir = spec
+        .output
+        .parent()
+        .map(Path::to_path_buf)
+        .unwrap_or_default();
+    let dir_read = if dir.as_os_str().is_empty() {
+        PathBuf::from(".")
+    } else {
+        dir.clone()
+    };
+    let name = spec
+        .output
+        .file_name()
+        .map(|f| f.to_string_lossy().into_owned())
+        .unwrap_or_default();
     // Find the split: any NAME.part-K-of-N.json present.
     let mut count = None;
-    for e in std::fs::read_dir(&dir_read).map_err(|e| Error::io(&dir_read, e))?.flatten() {
+    for e in std::fs::read_dir(&dir_read)
+        .map_err(|e| Error::io(&dir_read, e))?
+        .flatten()
+    {
         let f = e.file_name().to_string_lossy().into_owned();
-        if let Some(rest) = f.strip_prefix(&format!("{name}.part-")).and_then(|r| r.strip_suffix(".json")) {
+        if let Some(rest) = f
+            .strip_prefix(&format!("{name}.part-"))
+            .and_then(|r| r.strip_suffix(".json"))
+        {
             if let Some((_, n)) = rest.split_once("-of-") {
                 if let Ok(n) = n.parse::<u32>() {
                     count = Some(count.map_or(n, |c: u32| c.max(n)));
@@ -707,30 +960,72 @@ pub fn assemble(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
             }
         }
     }
-    let count = count.ok_or_else(|| Error::job(&spec.path, format!("no finished shard parts of {} found in {}", name, dir_read.display())))?;
+    let count = count.ok_or_else(|| {
+        Error::job(
+            &spec.path,
+            format!(
+                "no finished shard parts of {} found in {}",
+                name,
+                dir_read.display()
+            ),
+        )
+    })?;
     let row_bytes = prep.encoding.row_bytes(spec.plate.width as usize) as u64;
     let mut metas = Vec::new();
     let mut next_row = 0u32;
     for k in 0..count {
         let part = part_path(&spec.output, Shard { index: k, count });
         let mp = part_meta_path(&part);
-        let bytes = std::fs::read(&mp).map_err(|_| Error::job(&spec.path, format!("shard {}/{count} is not finished: {} is missing", k + 1, mp.display())))?;
-        let m: PartMeta = serde_json::from_slice(&bytes).map_err(|e| Error::input(&mp, format!("damaged shard record: {e}")))?;
+        let bytes = std::fs::read(&mp).map_err(|_| {
+            Error::job(
+                &spec.path,
+                format!(
+                    "shard {}/{count} is not finished: {} is missing",
+                    k + 1,
+                    mp.display()
+                ),
+            )
+        })?;
+        let m: PartMeta = serde_json::from_slice(&bytes)
+            .map_err(|e| Error::input(&mp, format!("damaged shard record: {e}")))?;
         if m.job_sha256 != spec.sha256 {
-            return Err(Error::job(&spec.path, format!("{} was computed from another version of the job; run that shard again", part.display())));
+            return Err(Error::job(
+                &spec.path,
+                format!(
+                    "{} was computed from another version of the job; run that shard again",
+                    part.display()
+                ),
+            ));
         }
         if m.rows[0] != next_row || m.row_bytes != row_bytes {
-            return Err(Error::input(&mp, format!("rows {:?} do not continue at row {next_row}", m.rows)));
+            return Err(Error::input(
+                &mp,
+                format!("rows {:?} do not continue at row {next_row}", m.rows),
+            ));
         }
-        let len = std::fs::metadata(&part).map_err(|e| Error::io(&part, e))?.len();
+        let len = std::fs::metadata(&part)
+            .map_err(|e| Error::io(&part, e))?
+            .len();
         if len != (m.rows[1] - m.rows[0]) as u64 * row_bytes {
-            return Err(Error::input(&part, format!("holds {len} bytes, expected {}", (m.rows[1] - m.rows[0]) as u64 * row_bytes)));
+            return Err(Error::input(
+                &part,
+                format!(
+                    "holds {len} bytes, expected {}",
+                    (m.rows[1] - m.rows[0]) as u64 * row_bytes
+                ),
+            ));
         }
         next_row = m.rows[1];
         metas.push((part, mp, m));
     }
     if next_row != spec.plate.height {
-        return Err(Error::job(&spec.path, format!("the shards cover rows 0..{next_row} of {}", spec.plate.height)));
+        return Err(Error::job(
+            &spec.path,
+            format!(
+                "the shards cover rows 0..{next_row} of {}",
+                spec.plate.height
+            ),
+        ));
     }
     check_space(&dir_read, prep.layout.estimated_file_bytes())?;
     let mut writer = StripWriter::create(&spec.output, prep.layout.clone())?;
@@ -752,27 +1047,34 @@ pub fn assemble(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
         updates += m.updates;
     }
     progress.finish();
-    let finished = writer.finish()?;
-    let sidecar = sidecar_path(&spec.output);
-    let input = SidecarInput { spec, encoding: &prep.encoding, layout: &prep.layout, output: OutputRecord::Tiff(&finished), emitters: prep.emitters, unreachable: prep.source.unreachable(), updates, extra: prep.source.sidecar_extra() };
-    if let Err(e) = sidecar::write(&sidecar, &input) {
-        let _ = std::fs::remove_file(&finished.path);
-        return Err(e);
-    }
+    let summary = finish_plate(spec, &prep, writer, updates)?;
     for (part, mp, _) in &metas {
         let _ = std::fs::remove_file(part);
         let _ = std::fs::remove_file(mp);
     }
-    Ok(RunSummary { tiff: finished.path, sidecar, emitters: prep.emitters, updates, encoding: prep.encoding.clone() })
+    Ok(summary)
 }
 
 /// Field runs: the shards wrote complete field files; merge their records into the manifest.
 fn assemble_fields(spec: &JobSpec, prep: &Prepared, grid: &FieldGrid) -> Result<RunSummary> {
     let manifest = grid.manifest_path();
-    let dir = manifest.parent().filter(|d| !d.as_os_str().is_empty()).map(Path::to_path_buf).unwrap_or_else(|| PathBuf::from("."));
-    let prefix = format!("{}.part-", manifest.file_name().map(|f| f.to_string_lossy().into_owned()).unwrap_or_default());
+    let dir = manifest
+        .parent()
+        .filter(|d| !d.as_os_str().is_empty())
+        .map(Path::to_path_buf)
+        .unwrap_or_else(|| PathBuf::from("."));
+    let prefix = format!(
+        "{}.part-",
+        manifest
+            .file_name()
+            .map(|f| f.to_string_lossy().into_owned())
+            .unwrap_or_default()
+    );
     let mut count = None;
-    for e in std::fs::read_dir(&dir).map_err(|e| Error::io(&dir, e))?.flatten() {
+    for e in std::fs::read_dir(&dir)
+        .map_err(|e| Error::io(&dir, e))?
+        .flatten()
+    {
         let f = e.file_name().to_string_lossy().into_owned();
         if let Some((_, n)) = f.strip_prefix(&prefix).and_then(|r| r.split_once("-of-")) {
             if let Ok(n) = n.parse::<u32>() {
@@ -780,17 +1082,45 @@ fn assemble_fields(spec: &JobSpec, prep: &Prepared, grid: &FieldGrid) -> Result<
             }
         }
     }
-    let count = count.ok_or_else(|| Error::job(&spec.path, format!("no finished shard records of {} found in {}", manifest.display(), dir.display())))?;
+    let count = count.ok_or_else(|| {
+        Error::job(
+            &spec.path,
+            format!(
+                "no finished shard records of {} found in {}",
+                manifest.display(),
+                dir.display()
+            ),
+        )
+    })?;
     let (mut entries, mut updates, mut next_row, mut recs) = (Vec::new(), 0u64, 0u32, Vec::new());
     for k in 0..count {
         let rec = part_path(&manifest, Shard { index: k, count });
-        let bytes = std::fs::read(&rec).map_err(|_| Error::job(&spec.path, format!("shard {}/{count} is not finished: {} is missing", k + 1, rec.display())))?;
-        let m: PartMeta = serde_json::from_slice(&bytes).map_err(|e| Error::input(&rec, format!("damaged shard record: {e}")))?;
+        let bytes = std::fs::read(&rec).map_err(|_| {
+            Error::job(
+                &spec.path,
+                format!(
+                    "shard {}/{count} is not finished: {} is missing",
+                    k + 1,
+                    rec.display()
+                ),
+            )
+        })?;
+        let m: PartMeta = serde_json::from_slice(&bytes)
+            .map_err(|e| Error::input(&rec, format!("damaged shard record: {e}")))?;
         if m.job_sha256 != spec.sha256 {
-            return Err(Error::job(&spec.path, format!("{} was computed from another version of the job; run that shard again", rec.display())));
+            return Err(Error::job(
+                &spec.path,
+                format!(
+                    "{} was computed from another version of the job; run that shard again",
+                    rec.display()
+                ),
+            ));
         }
         if m.rows[0] != next_row {
-            return Err(Error::input(&rec, format!("rows {:?} do not continue at row {next_row}", m.rows)));
+            return Err(Error::input(
+                &rec,
+                format!("rows {:?} do not continue at row {next_row}", m.rows),
+            ));
         }
         next_row = m.rows[1];
         updates += m.updates;
@@ -798,7 +1128,13 @@ fn assemble_fields(spec: &JobSpec, prep: &Prepared, grid: &FieldGrid) -> Result<
         recs.push(rec);
     }
     if next_row != spec.plate.height {
-        return Err(Error::job(&spec.path, format!("the shards cover rows 0..{next_row} of {}", spec.plate.height)));
+        return Err(Error::job(
+            &spec.path,
+            format!(
+                "the shards cover rows 0..{next_row} of {}",
+                spec.plate.height
+            ),
+        ));
     }
     let summary = finish_fields(spec, prep, grid, &entries, updates)?;
     for r in recs {
@@ -830,13 +1166,28 @@ fn plan_iterative(spec: &JobSpec, it: &IterativeSpec) -> Result<PlanReport> {
         let (w, h, _) = super::iterative::read_target(&o.points)?;
         lines.push(format!("target {}: {} x {} px", o.points.display(), w, h));
     }
-    let layout = tiff_layout(spec, &match &spec.encoding {
-        EncodingRequest::Fixed(e) => e.clone(),
-        EncodingRequest::AmplitudeAuto { bits } => Encoding::Amplitude { bits: *bits, scale: 1.0 },
-    });
+    let layout = tiff_layout(
+        spec,
+        &match &spec.encoding {
+            EncodingRequest::Fixed(e) => e.clone(),
+            EncodingRequest::AmplitudeAuto { bits } => Encoding::Amplitude {
+                bits: *bits,
+                scale: 1.0,
+            },
+        },
+    );
     let bytes = layout.estimated_file_bytes();
-    lines.push(format!("output: {} ({:.3} MB)", spec.output.display(), bytes as f64 / 1e6));
-    Ok(PlanReport { lines, unreachable: 0, updates: p.pixels() as f64, bytes })
+    lines.push(format!(
+        "output: {} ({:.3} MB)",
+        spec.output.display(),
+        bytes as f64 / 1e6
+    ));
+    Ok(PlanReport {
+        lines,
+        unreachable: 0,
+        updates: p.pixels() as f64,
+        bytes,
+    })
 }
 
 /// What `plan` reports.
@@ -875,7 +1226,11 @@ pub fn plan(spec: &JobSpec) -> Result<PlanReport> {
         p.wavelength * 1e9
     ));
     let th = p.max_half_angle();
-    lines.push(format!("largest diffraction half-angle asin(lambda / 2p): {:.3} deg in x, {:.3} deg in y", th[0].to_degrees(), th[1].to_degrees()));
+    lines.push(format!(
+        "largest diffraction half-angle asin(lambda / 2p): {:.3} deg in x, {:.3} deg in y",
+        th[0].to_degrees(),
+        th[1].to_degrees()
+    ));
     lines.push(format!("reference: {:?}", spec.reference));
     if let crate::optics::Reference::Plane { tilt } = spec.reference {
         for (axis, t, m) in [("x", tilt[0], th[0]), ("y", tilt[1], th[1])] {
@@ -889,15 +1244,32 @@ pub fn plan(spec: &JobSpec) -> Result<PlanReport> {
         z.sort_by(f64::total_cmp);
         z
     };
-    lines.push(format!("emitters: {} from {} object(s) in {} channel(s)", emitters.len(), spec.objects.len(), scene.channels.len()));
+    lines.push(format!(
+        "emitters: {} from {} object(s) in {} channel(s)",
+        emitters.len(),
+        spec.objects.len(),
+        scene.channels.len()
+    ));
     lines.extend(scene.notes.iter().cloned());
     let sum = point_sum(spec, scene);
     if !zs.is_empty() {
-        for (name, z) in [("nearest", zs[0]), ("median", zs[zs.len() / 2]), ("farthest", zs[zs.len() - 1])] {
+        for (name, z) in [
+            ("nearest", zs[0]),
+            ("median", zs[zs.len() / 2]),
+            ("farthest", zs[zs.len() - 1]),
+        ] {
             // Support half-widths on the foot row for a point on the axis at this depth.
             let b = p.nyquist_cosines();
-            let rx = if b[0] >= 1.0 { f64::INFINITY } else { z * b[0] / (1.0 - b[0] * b[0]).sqrt() };
-            let ry = if b[1] >= 1.0 { f64::INFINITY } else { z * b[1] / (1.0 - b[1] * b[1]).sqrt() };
+            let rx = if b[0] >= 1.0 {
+                f64::INFINITY
+            } else {
+                z * b[0] / (1.0 - b[0] * b[0]).sqrt()
+            };
+            let ry = if b[1] >= 1.0 {
+                f64::INFINITY
+            } else {
+                z * b[1] / (1.0 - b[1] * b[1]).sqrt()
+            };
             lines.push(format!(
                 "support radius at {name} depth z = {:.3} mm: {:.3} mm in x, {:.3} mm in y (z tan theta_max, before the reference shifts it)",
                 z * 1e3,
@@ -913,10 +1285,17 @@ pub fn plan(spec: &JobSpec) -> Result<PlanReport> {
         lines.push("every emitter reaches the plate".into());
     }
     let updates = sum.estimate_updates(256);
-    lines.push(format!("work: about {:.3e} point-pixel updates ({:.1} per pixel on average)", updates, updates / p.pixels() as f64));
+    lines.push(format!(
+        "work: about {:.3e} point-pixel updates ({:.1} per pixel on average)",
+        updates,
+        updates / p.pixels() as f64
+    ));
     let encoding = match &spec.encoding {
         EncodingRequest::Fixed(e) => e.clone(),
-        EncodingRequest::AmplitudeAuto { bits } => Encoding::Amplitude { bits: *bits, scale: 1.0 },
+        EncodingRequest::AmplitudeAuto { bits } => Encoding::Amplitude {
+            bits: *bits,
+            scale: 1.0,
+        },
     };
     let layout = tiff_layout(spec, &encoding);
     let bytes = layout.estimated_file_bytes();
@@ -930,11 +1309,24 @@ pub fn plan(spec: &JobSpec) -> Result<PlanReport> {
             crate::output::tiff::Compression::Deflate => "deflate",
         },
         bytes as f64 / 1e6,
-        if matches!(spec.compression, crate::output::tiff::Compression::Deflate) { " at most" } else { "" },
-        if layout.uses_bigtiff() { ", BigTIFF" } else { "" }
+        if matches!(spec.compression, crate::output::tiff::Compression::Deflate) {
+            " at most"
+        } else {
+            ""
+        },
+        if layout.uses_bigtiff() {
+            ", BigTIFF"
+        } else {
+            ""
+        }
     ));
     lines.push(format!("sidecar: {}", sidecar_path(&spec.output).display()));
-    Ok(PlanReport { lines, unreachable, updates, bytes })
+    Ok(PlanReport {
+        lines,
+        unreachable,
+        updates,
+        bytes,
+    })
 }
 
 #[cfg(test)]
@@ -943,16 +1335,38 @@ mod unit_tests {
 
     #[test]
     fn shard_from_slurm_environment() {
-        let env = |pairs: &'static [(&'static str, &'static str)]| move |k: &str| pairs.iter().find(|p| p.0 == k).map(|p| p.1.to_string());
-        assert_eq!(Shard::from_slurm(env(&[("SLURM_ARRAY_TASK_ID", "2"), ("SLURM_ARRAY_TASK_COUNT", "4")])).unwrap(), Shard { index: 2, count: 4 });
+        let env = |pairs: &'static [(&'static str, &'static str)]| {
+            move |k: &str| pairs.iter().find(|p| p.0 == k).map(|p| p.1.to_string())
+        };
         assert_eq!(
-            Shard::from_slurm(env(&[("SLURM_ARRAY_TASK_ID", "5"), ("SLURM_ARRAY_TASK_MIN", "3"), ("SLURM_ARRAY_TASK_MAX", "6")])).unwrap(),
+            Shard::from_slurm(env(&[
+                ("SLURM_ARRAY_TASK_ID", "2"),
+                ("SLURM_ARRAY_TASK_COUNT", "4")
+            ]))
+            .unwrap(),
+            Shard { index: 2, count: 4 }
+        );
+        assert_eq!(
+            Shard::from_slurm(env(&[
+                ("SLURM_ARRAY_TASK_ID", "5"),
+                ("SLURM_ARRAY_TASK_MIN", "3"),
+                ("SLURM_ARRAY_TASK_MAX", "6")
+            ]))
+            .unwrap(),
             Shard { index: 2, count: 4 }
         );
         assert!(Shard::from_slurm(env(&[])).is_err());
-        assert!(Shard::from_slurm(env(&[("SLURM_ARRAY_TASK_ID", "9"), ("SLURM_ARRAY_TASK_COUNT", "4")])).is_err());
+        assert!(Shard::from_slurm(env(&[
+            ("SLURM_ARRAY_TASK_ID", "9"),
+            ("SLURM_ARRAY_TASK_COUNT", "4")
+        ]))
+        .is_err());
         assert_eq!(Shard::parse("2/4").unwrap(), Shard { index: 1, count: 4 });
-        assert!(Shard::parse("5/4").is_err() && Shard::parse("0/4").is_err() && Shard::parse("x").is_err());
+        assert!(
+            Shard::parse("5/4").is_err()
+                && Shard::parse("0/4").is_err()
+                && Shard::parse("x").is_err()
+        );
     }
 
     #[test]

@@ -31,7 +31,10 @@ pub struct Scene {
 impl Scene {
     /// All emitters in summation order.
     pub fn emitters(&self) -> Vec<Emitter> {
-        self.channels.iter().flat_map(|c| c.1.iter().copied()).collect()
+        self.channels
+            .iter()
+            .flat_map(|c| c.1.iter().copied())
+            .collect()
     }
 }
 
@@ -50,7 +53,9 @@ struct MeshVisibility(Vec<Occluded>);
 impl Visibility for MeshVisibility {
     fn visible(&self, j: usize, eye: [f64; 3]) -> bool {
         match self.0.iter().find(|o| j >= o.start && j < o.end) {
-            Some(o) => !o.bvh.occluded(o.pos[j - o.start], eye, Some(o.tri[j - o.start])),
+            Some(o) => !o
+                .bvh
+                .occluded(o.pos[j - o.start], eye, Some(o.tri[j - o.start])),
             None => true,
         }
     }
@@ -78,7 +83,11 @@ pub fn build_scene(spec: &JobSpec) -> Result<Scene> {
                 let pts = read_points(&o.points)?;
                 let mut em = Vec::with_capacity(pts.len());
                 for (k, q) in pts.iter().enumerate() {
-                    let pos = [q.x_mm * 1e-3 * o.scale + o.offset[0], q.y_mm * 1e-3 * o.scale + o.offset[1], q.z_mm * 1e-3 * o.scale + o.offset[2]];
+                    let pos = [
+                        q.x_mm * 1e-3 * o.scale + o.offset[0],
+                        q.y_mm * 1e-3 * o.scale + o.offset[1],
+                        q.z_mm * 1e-3 * o.scale + o.offset[2],
+                    ];
                     if !(pos[2] > 0.0) {
                         return Err(Error::job(
                             &spec.path,
@@ -89,10 +98,22 @@ pub fn build_scene(spec: &JobSpec) -> Result<Scene> {
                             ),
                         ));
                     }
-                    em.push(Emitter { pos, amplitude: q.amplitude * o.gain, phase: q.phase_rad });
+                    em.push(Emitter {
+                        pos,
+                        amplitude: q.amplitude * o.gain,
+                        phase: q.phase_rad,
+                    });
                 }
-                notes.push(format!("object #{n}: {} points from {}", em.len(), o.points.display()));
-                per_object.push(ObjectEmitters { normals: vec![None; em.len()], emitters: em, occluder: None });
+                notes.push(format!(
+                    "object #{n}: {} points from {}",
+                    em.len(),
+                    o.points.display()
+                ));
+                per_object.push(ObjectEmitters {
+                    normals: vec![None; em.len()],
+                    emitters: em,
+                    occluder: None,
+                });
             }
             ObjectSource::Mesh(m) => {
                 let mesh = load_mesh(&o.points)?.placed(&m.placement);
@@ -113,9 +134,19 @@ pub fn build_scene(spec: &JobSpec) -> Result<Scene> {
                     let d = p.size()[0].max(p.size()[1]);
                     Density::SpacingM(p.wavelength * zc / d)
                 });
-                let opts = SamplingOptions { density, pattern: m.pattern, seed: m.seed, shading: m.shading, phase: m.phase, max_emitters: 20_000_000 };
+                let opts = SamplingOptions {
+                    density,
+                    pattern: m.pattern,
+                    seed: m.seed,
+                    shading: m.shading,
+                    phase: m.phase,
+                    max_emitters: 20_000_000,
+                };
                 let mut samples = sample_surface(&mesh, &opts).map_err(|e| match e {
-                    Error::Job { message, .. } => Error::job(&spec.path, format!("[[object]] #{n} ({}): {message}", o.points.display())),
+                    Error::Job { message, .. } => Error::job(
+                        &spec.path,
+                        format!("[[object]] #{n} ({}): {message}", o.points.display()),
+                    ),
                     other => other,
                 })?;
                 let mut occluder = None;
@@ -128,7 +159,10 @@ pub fn build_scene(spec: &JobSpec) -> Result<Scene> {
                         samples.retain(|_| *it.next().expect("one flag per sample"));
                     }
                     Occlusion::Tiles => {
-                        occluder = Some((Arc::new(Bvh::build(&mesh)), samples.iter().map(|s| s.triangle).collect()));
+                        occluder = Some((
+                            Arc::new(Bvh::build(&mesh)),
+                            samples.iter().map(|s| s.triangle).collect(),
+                        ));
                     }
                 }
                 notes.push(format!(
@@ -143,8 +177,19 @@ pub fn build_scene(spec: &JobSpec) -> Result<Scene> {
                     hi[2] * 1e3,
                     samples.len()
                 ));
-                let em = samples.iter().map(|s| Emitter { pos: s.pos, amplitude: s.amplitude * o.gain, phase: s.phase }).collect();
-                per_object.push(ObjectEmitters { normals: samples.iter().map(|s| Some(s.normal)).collect(), emitters: em, occluder });
+                let em = samples
+                    .iter()
+                    .map(|s| Emitter {
+                        pos: s.pos,
+                        amplitude: s.amplitude * o.gain,
+                        phase: s.phase,
+                    })
+                    .collect();
+                per_object.push(ObjectEmitters {
+                    normals: samples.iter().map(|s| Some(s.normal)).collect(),
+                    emitters: em,
+                    occluder,
+                });
             }
         }
     }
@@ -169,15 +214,30 @@ pub fn build_scene(spec: &JobSpec) -> Result<Scene> {
             let start = next;
             next += oe.emitters.len();
             if let Some((bvh, tri)) = oe.occluder {
-                occluded.push(Occluded { start, end: next, bvh, pos: oe.emitters.iter().map(|e| e.pos).collect(), tri });
+                occluded.push(Occluded {
+                    start,
+                    end: next,
+                    bvh,
+                    pos: oe.emitters.iter().map(|e| e.pos).collect(),
+                    tri,
+                });
             }
             normals.extend(oe.normals);
             em.extend(oe.emitters);
         }
         channels.push((r, em));
     }
-    let visibility: Option<Arc<dyn Visibility>> = if occluded.is_empty() { None } else { Some(Arc::new(MeshVisibility(occluded))) };
-    Ok(Scene { channels, normals, visibility, notes })
+    let visibility: Option<Arc<dyn Visibility>> = if occluded.is_empty() {
+        None
+    } else {
+        Some(Arc::new(MeshVisibility(occluded)))
+    };
+    Ok(Scene {
+        channels,
+        normals,
+        visibility,
+        notes,
+    })
 }
 
 /// Writes a scene's emitters as an ASCII PLY for point-cloud viewers: x y z in mm, amplitude, phase
@@ -195,7 +255,19 @@ pub fn write_emitters_ply(path: &std::path::Path, scene: &Scene) -> Result<()> {
         for e in em {
             let nrm = scene.normals[k].unwrap_or([0.0; 3]);
             k += 1;
-            let _ = writeln!(t, "{} {} {} {} {} {} {} {} {}", e.pos[0] * 1e3, e.pos[1] * 1e3, e.pos[2] * 1e3, e.amplitude, e.phase, nrm[0] as f32, nrm[1] as f32, nrm[2] as f32, c.min(255));
+            let _ = writeln!(
+                t,
+                "{} {} {} {} {} {} {} {} {}",
+                e.pos[0] * 1e3,
+                e.pos[1] * 1e3,
+                e.pos[2] * 1e3,
+                e.amplitude,
+                e.phase,
+                nrm[0] as f32,
+                nrm[1] as f32,
+                nrm[2] as f32,
+                c.min(255)
+            );
         }
     }
     crate::output::sidecar::write_atomically(path, t.as_bytes())

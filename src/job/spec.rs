@@ -331,14 +331,23 @@ pub const MAX_SIDE_PX: i64 = 1 << 24;
 
 /// 1-based line of a byte offset.
 fn line_of(text: &str, offset: usize) -> usize {
-    text.as_bytes()[..offset.min(text.len())].iter().filter(|&&b| b == b'\n').count() + 1
+    text.as_bytes()[..offset.min(text.len())]
+        .iter()
+        .filter(|&&b| b == b'\n')
+        .count()
+        + 1
 }
 
 impl JobSpec {
     /// Reads and validates a job file.
     pub fn load(path: &Path) -> Result<JobSpec> {
         let bytes = std::fs::read(path).map_err(|e| Error::io(path, e))?;
-        let text = String::from_utf8(bytes.clone()).map_err(|e| Error::input(path, format!("not UTF-8 text (byte {})", e.utf8_error().valid_up_to())))?;
+        let text = String::from_utf8(bytes.clone()).map_err(|e| {
+            Error::input(
+                path,
+                format!("not UTF-8 text (byte {})", e.utf8_error().valid_up_to()),
+            )
+        })?;
         let raw: RawJob = toml::from_str(&text).map_err(|e| {
             let msg = e.message().trim().replace('\n', " ");
             match e.span() {
@@ -364,7 +373,10 @@ impl JobSpec {
             }
         };
         let h = &raw.hologram;
-        for (name, v) in [("[hologram] width_px", h.width_px), ("[hologram] height_px", h.height_px)] {
+        for (name, v) in [
+            ("[hologram] width_px", h.width_px),
+            ("[hologram] height_px", h.height_px),
+        ] {
             if v < 1 || v > MAX_SIDE_PX {
                 return Err(bad(format!("{name} = {v} is outside 1..={MAX_SIDE_PX}")));
             }
@@ -382,7 +394,12 @@ impl JobSpec {
         if wl <= 0.0 {
             return Err(bad(format!("[hologram] wavelength_nm = {wl} must be > 0")));
         }
-        let plate = Plate { width: h.width_px as u32, height: h.height_px as u32, pitch: [pitch_um[0] * 1e-6, pitch_um[1] * 1e-6], wavelength: wl * 1e-9 };
+        let plate = Plate {
+            width: h.width_px as u32,
+            height: h.height_px as u32,
+            pitch: [pitch_um[0] * 1e-6, pitch_um[1] * 1e-6],
+            wavelength: wl * 1e-9,
+        };
 
         let reference = parse_reference(&raw.reference, "[reference]", &bad)?;
 
@@ -405,10 +422,15 @@ impl JobSpec {
                 ("phase", o.phase.is_some()),
                 ("occlusion", o.occlusion.is_some()),
             ];
-            let img_keys = [("distance_mm", o.distance_mm.is_some()), ("shift_px", o.shift_px.is_some())];
+            let img_keys = [
+                ("distance_mm", o.distance_mm.is_some()),
+                ("shift_px", o.shift_px.is_some()),
+            ];
             if o.image.is_none() {
                 if let Some((k, _)) = img_keys.iter().find(|k| k.1) {
-                    return Err(bad(format!("[[object]] #{n}: {k} applies to image objects")));
+                    return Err(bad(format!(
+                        "[[object]] #{n}: {k} applies to image objects"
+                    )));
                 }
             }
             let (points, source) = match (&o.points, &o.mesh) {
@@ -435,7 +457,11 @@ impl JobSpec {
                 (None, None) => return Err(bad(format!("[[object]] #{n} needs points = \"file.ply\" or \"file.csv\", or mesh = \"file.glb\""))),
             };
             let own_reference = match &o.reference {
-                Some(r) => Some(parse_reference(r, &format!("[[object]] #{n} reference"), &bad)?),
+                Some(r) => Some(parse_reference(
+                    r,
+                    &format!("[[object]] #{n} reference"),
+                    &bad,
+                )?),
                 None => None,
             };
             let off = o.offset_mm.unwrap_or([0.0; 3]);
@@ -451,9 +477,18 @@ impl JobSpec {
                 return Err(bad(format!("[[object]] #{n} gain = {gain} must be >= 0")));
             }
             if o.fit_mm.is_some() && o.scale.is_some() {
-                return Err(bad(format!("[[object]] #{n}: give scale or fit_mm, not both")));
+                return Err(bad(format!(
+                    "[[object]] #{n}: give scale or fit_mm, not both"
+                )));
             }
-            objects.push(ObjectSpec { points: dir.join(points), source, offset: [off[0] * 1e-3, off[1] * 1e-3, off[2] * 1e-3], scale, gain, reference: own_reference });
+            objects.push(ObjectSpec {
+                points: dir.join(points),
+                source,
+                offset: [off[0] * 1e-3, off[1] * 1e-3, off[2] * 1e-3],
+                scale,
+                gain,
+                reference: own_reference,
+            });
         }
 
         let s = &raw.synthesis;
@@ -470,41 +505,64 @@ impl JobSpec {
             ("carrier_deg", s.carrier_deg.is_some()),
             ("lens_mm", s.lens_mm.is_some()),
         ];
-        let images = objects.iter().filter(|o| matches!(o.source, ObjectSource::Image { .. })).count();
-        let method = match s.method.as_deref().unwrap_or("point-sum") {
-            "point-sum" => {
-                if let Some((k, _)) = iter_keys.iter().find(|k| k.1) {
-                    return Err(bad(format!("[synthesis] {k} applies to method = \"iterative\"")));
+        let images = objects
+            .iter()
+            .filter(|o| matches!(o.source, ObjectSource::Image { .. }))
+            .count();
+        let method =
+            match s.method.as_deref().unwrap_or("point-sum") {
+                "point-sum" => {
+                    if let Some((k, _)) = iter_keys.iter().find(|k| k.1) {
+                        return Err(bad(format!(
+                            "[synthesis] {k} applies to method = \"iterative\""
+                        )));
+                    }
+                    if images > 0 {
+                        return Err(bad(
+                            "image objects need [synthesis] method = \"iterative\"".into()
+                        ));
+                    }
+                    Method::PointSum
                 }
-                if images > 0 {
-                    return Err(bad("image objects need [synthesis] method = \"iterative\"".into()));
+                "iterative" => {
+                    if images != objects.len() {
+                        return Err(bad(
+                            "method = \"iterative\" takes image objects only (no points or meshes)"
+                                .into(),
+                        ));
+                    }
+                    Method::Iterative(iterative_spec(s, &objects, &bad)?)
                 }
-                Method::PointSum
-            }
-            "iterative" => {
-                if images != objects.len() {
-                    return Err(bad("method = \"iterative\" takes image objects only (no points or meshes)".into()));
-                }
-                Method::Iterative(iterative_spec(s, &objects, &bad)?)
-            }
-            other => return Err(bad(format!("[synthesis] method = \"{other}\" is not one of \"point-sum\", \"iterative\""))),
-        };
+                other => return Err(bad(format!(
+                    "[synthesis] method = \"{other}\" is not one of \"point-sum\", \"iterative\""
+                ))),
+            };
 
-        let approximation = match s.approximation.as_deref().unwrap_or("exact") {
-            "exact" => Approximation::Exact,
-            "fresnel" => Approximation::Fresnel,
-            other => return Err(bad(format!("[synthesis] approximation = \"{other}\" is not one of \"exact\", \"fresnel\""))),
-        };
+        let approximation =
+            match s.approximation.as_deref().unwrap_or("exact") {
+                "exact" => Approximation::Exact,
+                "fresnel" => Approximation::Fresnel,
+                other => return Err(bad(format!(
+                    "[synthesis] approximation = \"{other}\" is not one of \"exact\", \"fresnel\""
+                ))),
+            };
         let band_rows = match s.band_rows {
             None => None,
             Some(b) if (1..=65536).contains(&b) => Some(b as usize),
-            Some(b) => return Err(bad(format!("[synthesis] band_rows = {b} is outside 1..=65536"))),
+            Some(b) => {
+                return Err(bad(format!(
+                    "[synthesis] band_rows = {b} is outside 1..=65536"
+                )))
+            }
         };
 
         let e = &raw.encoding;
         let only = |key: &str, present: bool, kinds: &str| -> Result<()> {
             if present {
-                Err(bad(format!("[encoding] {key} does not apply to kind = \"{}\" (only {kinds})", e.kind)))
+                Err(bad(format!(
+                    "[encoding] {key} does not apply to kind = \"{}\" (only {kinds})",
+                    e.kind
+                )))
             } else {
                 Ok(())
             }
@@ -564,12 +622,20 @@ impl JobSpec {
         let compression = match o.compression.as_deref().unwrap_or("none") {
             "none" => Compression::None,
             "deflate" => Compression::Deflate,
-            other => return Err(bad(format!("[output] compression = \"{other}\" is not one of \"none\", \"deflate\""))),
+            other => {
+                return Err(bad(format!(
+                    "[output] compression = \"{other}\" is not one of \"none\", \"deflate\""
+                )))
+            }
         };
         let rows_per_strip = match o.rows_per_strip {
             None => None,
             Some(r) if r >= 1 && r <= h.height_px => Some(r as u32),
-            Some(r) => return Err(bad(format!("[output] rows_per_strip = {r} is outside 1..=height_px"))),
+            Some(r) => {
+                return Err(bad(format!(
+                    "[output] rows_per_strip = {r} is outside 1..=height_px"
+                )))
+            }
         };
 
         Ok(JobSpec {
@@ -579,7 +645,11 @@ impl JobSpec {
             plate,
             reference,
             objects,
-            synthesis: PointSumOptions { approximation, obliquity: s.obliquity.unwrap_or(false), anti_alias: true },
+            synthesis: PointSumOptions {
+                approximation,
+                obliquity: s.obliquity.unwrap_or(false),
+                anti_alias: true,
+            },
             method,
             band_rows,
             encoding,
@@ -593,7 +663,10 @@ impl JobSpec {
                     let f = super::fields::validate(f, path)?;
                     if let Some(r) = rows_per_strip {
                         if f[1] % r != 0 {
-                            return Err(bad(format!("[output] rows_per_strip = {r} must divide the field height {}", f[1])));
+                            return Err(bad(format!(
+                                "[output] rows_per_strip = {r} must divide the field height {}",
+                                f[1]
+                            )));
                         }
                     }
                     Some([f[0].min(plate.width), f[1].min(plate.height)])
@@ -604,7 +677,11 @@ impl JobSpec {
 }
 
 /// Validates a reference table (`what` names it in messages).
-fn parse_reference(r: &RawReference, what: &str, bad: &dyn Fn(String) -> Error) -> Result<Reference> {
+fn parse_reference(
+    r: &RawReference,
+    what: &str,
+    bad: &dyn Fn(String) -> Error,
+) -> Result<Reference> {
     let finite = |name: &str, v: f64| -> Result<f64> {
         if v.is_finite() {
             Ok(v)
@@ -615,64 +692,119 @@ fn parse_reference(r: &RawReference, what: &str, bad: &dyn Fn(String) -> Error) 
     match r.kind.as_str() {
         "plane" => {
             if r.position_mm.is_some() {
-                return Err(bad(format!("{what} position_mm belongs to kind = \"spherical\", not \"plane\"")));
+                return Err(bad(format!(
+                    "{what} position_mm belongs to kind = \"spherical\", not \"plane\""
+                )));
             }
             let t = r.tilt_deg.unwrap_or([0.0, 0.0]);
             for v in t {
                 if !(finite("tilt_deg", v)?.abs() < 90.0) {
-                    return Err(bad(format!("{what} tilt_deg = {v} must be between -90 and 90")));
+                    return Err(bad(format!(
+                        "{what} tilt_deg = {v} must be between -90 and 90"
+                    )));
                 }
             }
-            Ok(Reference::Plane { tilt: [t[0].to_radians(), t[1].to_radians()] })
+            Ok(Reference::Plane {
+                tilt: [t[0].to_radians(), t[1].to_radians()],
+            })
         }
         "spherical" => {
             if r.tilt_deg.is_some() {
-                return Err(bad(format!("{what} tilt_deg belongs to kind = \"plane\", not \"spherical\"")));
+                return Err(bad(format!(
+                    "{what} tilt_deg belongs to kind = \"plane\", not \"spherical\""
+                )));
             }
-            let p = r.position_mm.ok_or_else(|| bad(format!("{what} kind = \"spherical\" needs position_mm = [x, y, z]")))?;
+            let p = r.position_mm.ok_or_else(|| {
+                bad(format!(
+                    "{what} kind = \"spherical\" needs position_mm = [x, y, z]"
+                ))
+            })?;
             for v in p {
                 finite("position_mm", v)?;
             }
             if p[2] == 0.0 {
-                return Err(bad(format!("{what} position_mm: z must not be 0 (the source cannot sit on the plate)")));
+                return Err(bad(format!(
+                    "{what} position_mm: z must not be 0 (the source cannot sit on the plate)"
+                )));
             }
-            Ok(Reference::Spherical { position: [p[0] * 1e-3, p[1] * 1e-3, p[2] * 1e-3] })
+            Ok(Reference::Spherical {
+                position: [p[0] * 1e-3, p[1] * 1e-3, p[2] * 1e-3],
+            })
         }
-        other => Err(bad(format!("{what} kind = \"{other}\" is not one of \"plane\", \"spherical\""))),
+        other => Err(bad(format!(
+            "{what} kind = \"{other}\" is not one of \"plane\", \"spherical\""
+        ))),
     }
 }
 
 /// Validates the iterative keys of `[synthesis]`.
-fn iterative_spec(s: &RawSynthesis, objects: &[ObjectSpec], bad: &dyn Fn(String) -> Error) -> Result<IterativeSpec> {
+fn iterative_spec(
+    s: &RawSynthesis,
+    objects: &[ObjectSpec],
+    bad: &dyn Fn(String) -> Error,
+) -> Result<IterativeSpec> {
     let geometry = match s.geometry.as_deref() {
         Some("fourier") => {
-            let f = s.focal_mm.ok_or_else(|| bad("[synthesis] geometry = \"fourier\" needs focal_mm".into()))?;
+            let f = s
+                .focal_mm
+                .ok_or_else(|| bad("[synthesis] geometry = \"fourier\" needs focal_mm".into()))?;
             if !(f.is_finite() && f > 0.0) {
                 return Err(bad(format!("[synthesis] focal_mm = {f} must be > 0")));
             }
-            if objects.iter().any(|o| matches!(o.source, ObjectSource::Image { distance: Some(_), .. })) {
+            if objects.iter().any(|o| {
+                matches!(
+                    o.source,
+                    ObjectSource::Image {
+                        distance: Some(_),
+                        ..
+                    }
+                )
+            }) {
                 return Err(bad("distance_mm does not apply in fourier geometry (the image plane is the lens's focal plane)".into()));
             }
             if objects.len() > 1 {
-                return Err(bad("fourier geometry has one image plane: give one image object".into()));
+                return Err(bad(
+                    "fourier geometry has one image plane: give one image object".into(),
+                ));
             }
             Geometry::Fourier(f * 1e-3)
         }
         Some("fresnel") => {
             if s.focal_mm.is_some() {
-                return Err(bad("[synthesis] focal_mm applies to geometry = \"fourier\"".into()));
+                return Err(bad(
+                    "[synthesis] focal_mm applies to geometry = \"fourier\"".into(),
+                ));
             }
-            if let Some(i) = objects.iter().position(|o| matches!(o.source, ObjectSource::Image { distance: None, .. })) {
-                return Err(bad(format!("[[object]] #{} needs distance_mm in fresnel geometry", i + 1)));
+            if let Some(i) = objects
+                .iter()
+                .position(|o| matches!(o.source, ObjectSource::Image { distance: None, .. }))
+            {
+                return Err(bad(format!(
+                    "[[object]] #{} needs distance_mm in fresnel geometry",
+                    i + 1
+                )));
             }
             Geometry::Fresnel
         }
-        Some(other) => return Err(bad(format!("[synthesis] geometry = \"{other}\" is not one of \"fourier\", \"fresnel\""))),
-        None => return Err(bad("[synthesis] method = \"iterative\" needs geometry = \"fourier\" or \"fresnel\"".into())),
+        Some(other) => {
+            return Err(bad(format!(
+                "[synthesis] geometry = \"{other}\" is not one of \"fourier\", \"fresnel\""
+            )))
+        }
+        None => {
+            return Err(bad(
+                "[synthesis] method = \"iterative\" needs geometry = \"fourier\" or \"fresnel\""
+                    .into(),
+            ))
+        }
     };
     let iterations = match s.iterations.unwrap_or(50) {
         i if (1..=100_000).contains(&i) => i as usize,
-        i => return Err(bad(format!("[synthesis] iterations = {i} is outside 1..=100000"))),
+        i => {
+            return Err(bad(format!(
+                "[synthesis] iterations = {i} is outside 1..=100000"
+            )))
+        }
     };
     let algorithm = match s.algorithm.as_deref().unwrap_or("gs") {
         "gs" => AlgorithmChoice::Gs,
@@ -687,31 +819,59 @@ fn iterative_spec(s: &RawSynthesis, objects: &[ObjectSpec], bad: &dyn Fn(String)
         other => return Err(bad(format!("[synthesis] algorithm = \"{other}\" is not one of \"gs\", \"weighted-gs\", \"mixed-region\""))),
     };
     if s.mix.is_some() && !matches!(algorithm, AlgorithmChoice::MixedRegion(_)) {
-        return Err(bad("[synthesis] mix applies to algorithm = \"mixed-region\"".into()));
+        return Err(bad(
+            "[synthesis] mix applies to algorithm = \"mixed-region\"".into(),
+        ));
     }
     let quantize_last = match s.quantize_last.unwrap_or(5) {
         q if q >= 0 && q as usize <= iterations => q as usize,
-        q => return Err(bad(format!("[synthesis] quantize_last = {q} must be within 0..=iterations"))),
+        q => {
+            return Err(bad(format!(
+                "[synthesis] quantize_last = {q} must be within 0..=iterations"
+            )))
+        }
     };
     let stall_tolerance = s.stall_tolerance.unwrap_or(1e-5);
     if !(stall_tolerance.is_finite() && stall_tolerance >= 0.0) {
-        return Err(bad(format!("[synthesis] stall_tolerance = {stall_tolerance} must be >= 0")));
+        return Err(bad(format!(
+            "[synthesis] stall_tolerance = {stall_tolerance} must be >= 0"
+        )));
     }
     let cell_px = match s.cell_px {
         None => None,
         Some(c) if c.iter().all(|&v| (1..=8192).contains(&v)) => Some([c[0] as u32, c[1] as u32]),
-        Some(c) => return Err(bad(format!("[synthesis] cell_px = {c:?}: each side must be within 1..=8192"))),
+        Some(c) => {
+            return Err(bad(format!(
+                "[synthesis] cell_px = {c:?}: each side must be within 1..=8192"
+            )))
+        }
     };
     let carrier = s.carrier_deg.unwrap_or([0.0, 0.0]);
     if carrier.iter().any(|t| !(t.is_finite() && t.abs() < 90.0)) {
-        return Err(bad(format!("[synthesis] carrier_deg = {carrier:?} must be between -90 and 90")));
+        return Err(bad(format!(
+            "[synthesis] carrier_deg = {carrier:?} must be between -90 and 90"
+        )));
     }
     let lens = match s.lens_mm {
         None => None,
         Some(f) if f.is_finite() && f != 0.0 => Some(f * 1e-3),
-        Some(f) => return Err(bad(format!("[synthesis] lens_mm = {f} must be finite and non-zero"))),
+        Some(f) => {
+            return Err(bad(format!(
+                "[synthesis] lens_mm = {f} must be finite and non-zero"
+            )))
+        }
     };
-    Ok(IterativeSpec { geometry, iterations, seed: s.seed.unwrap_or(1), algorithm, quantize_last, stall_tolerance, cell_px, carrier: [carrier[0].to_radians(), carrier[1].to_radians()], lens })
+    Ok(IterativeSpec {
+        geometry,
+        iterations,
+        seed: s.seed.unwrap_or(1),
+        algorithm,
+        quantize_last,
+        stall_tolerance,
+        cell_px,
+        carrier: [carrier[0].to_radians(), carrier[1].to_radians()],
+        lens,
+    })
 }
 
 /// Validates the mesh keys of an object.
@@ -719,55 +879,100 @@ fn mesh_object(o: &RawObject, n: usize, bad: &dyn Fn(String) -> Error) -> Result
     use crate::scene::mesh::{Placement, PlacementSize};
     use crate::scene::sampling::{Density, Pattern, PhaseMode, Shading};
     let size = match (o.scale, o.fit_mm) {
-        (_, Some(f)) if !(f.is_finite() && f > 0.0) => return Err(bad(format!("[[object]] #{n} fit_mm = {f} must be > 0"))),
+        (_, Some(f)) if !(f.is_finite() && f > 0.0) => {
+            return Err(bad(format!("[[object]] #{n} fit_mm = {f} must be > 0")))
+        }
         (_, Some(f)) => PlacementSize::FitMm(f),
         (s, None) => PlacementSize::Scale(s.unwrap_or(1.0)),
     };
-    let placement = Placement { offset_mm: o.offset_mm.unwrap_or([0.0; 3]), rotation_deg: o.rotation_deg.unwrap_or([0.0; 3]), size };
-    placement.validate().map_err(|m| bad(format!("[[object]] #{n}: {m}")))?;
+    let placement = Placement {
+        offset_mm: o.offset_mm.unwrap_or([0.0; 3]),
+        rotation_deg: o.rotation_deg.unwrap_or([0.0; 3]),
+        size,
+    };
+    placement
+        .validate()
+        .map_err(|m| bad(format!("[[object]] #{n}: {m}")))?;
     let density = match (o.emitters, o.spacing_um) {
-        (Some(_), Some(_)) => return Err(bad(format!("[[object]] #{n}: give emitters or spacing_um, not both"))),
+        (Some(_), Some(_)) => {
+            return Err(bad(format!(
+                "[[object]] #{n}: give emitters or spacing_um, not both"
+            )))
+        }
         (Some(c), None) if c >= 1 => Some(Density::Count(c as usize)),
-        (Some(c), None) => return Err(bad(format!("[[object]] #{n} emitters = {c} must be at least 1"))),
+        (Some(c), None) => {
+            return Err(bad(format!(
+                "[[object]] #{n} emitters = {c} must be at least 1"
+            )))
+        }
         (None, Some(sp)) if sp.is_finite() && sp > 0.0 => Some(Density::SpacingM(sp * 1e-6)),
-        (None, Some(sp)) => return Err(bad(format!("[[object]] #{n} spacing_um = {sp} must be > 0"))),
+        (None, Some(sp)) => {
+            return Err(bad(format!(
+                "[[object]] #{n} spacing_um = {sp} must be > 0"
+            )))
+        }
         (None, None) => None,
     };
-    let pattern = match o.pattern.as_deref().unwrap_or("stratified") {
-        "stratified" => Pattern::Stratified,
-        "random" => Pattern::Random,
-        other => return Err(bad(format!("[[object]] #{n} pattern = \"{other}\" is not one of \"stratified\", \"random\""))),
-    };
+    let pattern =
+        match o.pattern.as_deref().unwrap_or("stratified") {
+            "stratified" => Pattern::Stratified,
+            "random" => Pattern::Random,
+            other => return Err(bad(format!(
+                "[[object]] #{n} pattern = \"{other}\" is not one of \"stratified\", \"random\""
+            ))),
+        };
     let mut shading = Shading::default();
     if let Some(l) = o.light_dir {
         if l.iter().any(|v| !v.is_finite()) || l.iter().all(|&v| v == 0.0) {
-            return Err(bad(format!("[[object]] #{n} light_dir = {l:?} must be a finite, non-zero direction")));
+            return Err(bad(format!(
+                "[[object]] #{n} light_dir = {l:?} must be a finite, non-zero direction"
+            )));
         }
         shading.light_dir = l;
     }
     if let Some(a) = o.ambient {
         if !(0.0..=1.0).contains(&a) {
-            return Err(bad(format!("[[object]] #{n} ambient = {a} must be within 0..=1")));
+            return Err(bad(format!(
+                "[[object]] #{n} ambient = {a} must be within 0..=1"
+            )));
         }
         shading.ambient = a;
     }
     shading.smooth_normals = match o.normals.as_deref().unwrap_or("smooth") {
         "smooth" => true,
         "flat" => false,
-        other => return Err(bad(format!("[[object]] #{n} normals = \"{other}\" is not one of \"smooth\", \"flat\""))),
+        other => {
+            return Err(bad(format!(
+                "[[object]] #{n} normals = \"{other}\" is not one of \"smooth\", \"flat\""
+            )))
+        }
     };
     let phase = match o.phase.as_deref().unwrap_or("random") {
         "random" => PhaseMode::Random,
         "constant" => PhaseMode::Constant(0.0),
-        other => return Err(bad(format!("[[object]] #{n} phase = \"{other}\" is not one of \"random\", \"constant\""))),
+        other => {
+            return Err(bad(format!(
+                "[[object]] #{n} phase = \"{other}\" is not one of \"random\", \"constant\""
+            )))
+        }
     };
     let occlusion = match o.occlusion.as_deref().unwrap_or("tiles") {
         "tiles" => Occlusion::Tiles,
         "centre" | "center" => Occlusion::Centre,
         "none" => Occlusion::None,
-        other => return Err(bad(format!("[[object]] #{n} occlusion = \"{other}\" is not one of \"tiles\", \"centre\", \"none\""))),
+        other => return Err(bad(format!(
+            "[[object]] #{n} occlusion = \"{other}\" is not one of \"tiles\", \"centre\", \"none\""
+        ))),
     };
-    Ok(MeshObject { placement, density, pattern, seed: o.seed.unwrap_or(1), shading, phase, occlusion })
+    Ok(MeshObject {
+        placement,
+        density,
+        pattern,
+        seed: o.seed.unwrap_or(1),
+        shading,
+        phase,
+        occlusion,
+    })
 }
 
 /// Reads a calibration table: a header line, then `grey,phase_rad` rows (`#` comments allowed).
@@ -783,16 +988,36 @@ pub fn read_calibration(path: &Path) -> Result<Vec<(u16, f64)>> {
         if header {
             header = false;
             if l.replace(' ', "") != "grey,phase_rad" {
-                return Err(Error::input(path, format!("line {}: expected the header 'grey,phase_rad'", i + 1)));
+                return Err(Error::input(
+                    path,
+                    format!("line {}: expected the header 'grey,phase_rad'", i + 1),
+                ));
             }
             continue;
         }
         let mut it = l.split(',').map(str::trim);
         let (Some(g), Some(p), None) = (it.next(), it.next(), it.next()) else {
-            return Err(Error::input(path, format!("line {}: expected two fields, grey,phase_rad", i + 1)));
+            return Err(Error::input(
+                path,
+                format!("line {}: expected two fields, grey,phase_rad", i + 1),
+            ));
         };
-        let g: u16 = g.parse().map_err(|_| Error::input(path, format!("line {}: grey '{g}' is not a whole number 0..=65535", i + 1)))?;
-        let p: f64 = p.parse().ok().filter(|v: &f64| v.is_finite()).ok_or_else(|| Error::input(path, format!("line {}: phase '{p}' is not a finite number", i + 1)))?;
+        let g: u16 = g.parse().map_err(|_| {
+            Error::input(
+                path,
+                format!("line {}: grey '{g}' is not a whole number 0..=65535", i + 1),
+            )
+        })?;
+        let p: f64 = p
+            .parse()
+            .ok()
+            .filter(|v: &f64| v.is_finite())
+            .ok_or_else(|| {
+                Error::input(
+                    path,
+                    format!("line {}: phase '{p}' is not a finite number", i + 1),
+                )
+            })?;
         rows.push((g, p));
     }
     if rows.is_empty() {

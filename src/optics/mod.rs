@@ -53,7 +53,10 @@ impl Plate {
     /// Half the band the pixel grid can hold, as direction cosines: lambda / (2 p) per axis.
     /// A fringe whose local frequency f satisfies |f| <= 1 / (2 p) has |lambda f| <= this.
     pub fn nyquist_cosines(&self) -> [f64; 2] {
-        [self.wavelength / (2.0 * self.pitch[0]), self.wavelength / (2.0 * self.pitch[1])]
+        [
+            self.wavelength / (2.0 * self.pitch[0]),
+            self.wavelength / (2.0 * self.pitch[1]),
+        ]
     }
     /// Largest diffraction half-angle asin(lambda / 2p) per axis, radians (pi/2 when lambda >= 2p).
     pub fn max_half_angle(&self) -> [f64; 2] {
@@ -62,7 +65,10 @@ impl Plate {
     }
     /// Physical size (width x pitch, height x pitch), metres.
     pub fn size(&self) -> [f64; 2] {
-        [self.width as f64 * self.pitch[0], self.height as f64 * self.pitch[1]]
+        [
+            self.width as f64 * self.pitch[0],
+            self.height as f64 * self.pitch[1],
+        ]
     }
     /// Number of pixels.
     pub fn pixels(&self) -> u64 {

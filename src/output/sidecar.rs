@@ -53,8 +53,12 @@ pub enum OutputRecord<'a> {
 
 fn reference_json(r: &Reference) -> Value {
     match *r {
-        Reference::Plane { tilt } => json!({"kind": "plane", "tilt_deg": [tilt[0].to_degrees(), tilt[1].to_degrees()]}),
-        Reference::Spherical { position } => json!({"kind": "spherical", "position_mm": [position[0] * 1e3, position[1] * 1e3, position[2] * 1e3]}),
+        Reference::Plane { tilt } => {
+            json!({"kind": "plane", "tilt_deg": [tilt[0].to_degrees(), tilt[1].to_degrees()]})
+        }
+        Reference::Spherical { position } => {
+            json!({"kind": "spherical", "position_mm": [position[0] * 1e3, position[1] * 1e3, position[2] * 1e3]})
+        }
     }
 }
 
@@ -63,7 +67,10 @@ pub fn to_json(i: &SidecarInput) -> Value {
     let p = &i.spec.plate;
     let reference = reference_json(&i.spec.reference);
     let encoding = match *i.encoding {
-        Encoding::CalibratedPhase { levels, ref calibration } => json!({
+        Encoding::CalibratedPhase {
+            levels,
+            ref calibration,
+        } => json!({
             "kind": "phase", "levels": levels, "bits_per_sample": i.encoding.bits_per_sample(),
             "stored_value": "the grey value of the calibration table whose measured phase is nearest (mod 2 pi) to 2 pi g / N, g = round(N arg(F) / 2 pi) mod N",
             "calibration": {"table": calibration.table, "level_to_grey": calibration.level_to_grey},
@@ -72,8 +79,12 @@ pub fn to_json(i: &SidecarInput) -> Value {
             "kind": "phase", "levels": levels, "bits_per_sample": i.encoding.bits_per_sample(),
             "stored_value": "s = round(g 2^b / N), g = round(N arg(F) / 2 pi) mod N; displayed phase 2 pi s / 2^b"
         }),
-        Encoding::BinaryPhase => json!({"kind": "binary-phase", "bits_per_sample": 1, "stored_value": "1 (phase pi) where Re F < 0, else 0"}),
-        Encoding::BinaryAmplitude => json!({"kind": "binary-amplitude", "bits_per_sample": 1, "stored_value": "1 (clear) where Re F >= 0, else 0 (opaque)"}),
+        Encoding::BinaryPhase => {
+            json!({"kind": "binary-phase", "bits_per_sample": 1, "stored_value": "1 (phase pi) where Re F < 0, else 0"})
+        }
+        Encoding::BinaryAmplitude => {
+            json!({"kind": "binary-amplitude", "bits_per_sample": 1, "stored_value": "1 (clear) where Re F >= 0, else 0 (opaque)"})
+        }
         Encoding::Amplitude { bits, scale } => json!({
             "kind": "amplitude", "bits_per_sample": bits, "bipolar_scale": scale,
             "stored_value": "s = round((1 + Re F / bipolar_scale) / 2 (2^b - 1)), clipped"
@@ -124,7 +135,11 @@ pub fn to_json(i: &SidecarInput) -> Value {
             "strips": t.strips,
             "photometric": "min-is-black",
         }),
-        OutputRecord::Fields { manifest, count, field_px } => json!({
+        OutputRecord::Fields {
+            manifest,
+            count,
+            field_px,
+        } => json!({
             "fields_manifest": manifest.file_name().map(|f| f.to_string_lossy().into_owned()),
             "fields": count,
             "field_px": field_px,

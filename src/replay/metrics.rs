@@ -31,8 +31,19 @@ impl ToneScale {
 }
 
 /// Writes an intensity image as an 8- or 16-bit grey PNG (through a temporary name).
-pub fn write_png(path: &Path, w: usize, h: usize, intensity: &[f32], scale: ToneScale, bits: u8) -> Result<()> {
-    let max = intensity.iter().cloned().fold(0.0f32, f32::max).max(f32::MIN_POSITIVE) as f64;
+pub fn write_png(
+    path: &Path,
+    w: usize,
+    h: usize,
+    intensity: &[f32],
+    scale: ToneScale,
+    bits: u8,
+) -> Result<()> {
+    let max = intensity
+        .iter()
+        .cloned()
+        .fold(0.0f32, f32::max)
+        .max(f32::MIN_POSITIVE) as f64;
     let top = if bits == 16 { 65535.0 } else { 255.0 };
     let v = |i: f32| {
         let x = i as f64 / max;
@@ -43,14 +54,28 @@ pub fn write_png(path: &Path, w: usize, h: usize, intensity: &[f32], scale: Tone
         };
         (y.clamp(0.0, 1.0) * top).round()
     };
-    let data: Vec<u8> = if bits == 16 { intensity.iter().flat_map(|&i| (v(i) as u16).to_be_bytes()).collect() } else { intensity.iter().map(|&i| v(i) as u8).collect() };
+    let data: Vec<u8> = if bits == 16 {
+        intensity
+            .iter()
+            .flat_map(|&i| (v(i) as u16).to_be_bytes())
+            .collect()
+    } else {
+        intensity.iter().map(|&i| v(i) as u8).collect()
+    };
     let mut buf = Vec::new();
     {
         let mut enc = png::Encoder::new(&mut buf, w as u32, h as u32);
         enc.set_color(png::ColorType::Grayscale);
-        enc.set_depth(if bits == 16 { png::BitDepth::Sixteen } else { png::BitDepth::Eight });
-        let mut wr = enc.write_header().map_err(|e| Error::input(path, e.to_string()))?;
-        wr.write_image_data(&data).map_err(|e| Error::input(path, e.to_string()))?;
+        enc.set_depth(if bits == 16 {
+            png::BitDepth::Sixteen
+        } else {
+            png::BitDepth::Eight
+        });
+        let mut wr = enc
+            .write_header()
+            .map_err(|e| Error::input(path, e.to_string()))?;
+        wr.write_image_data(&data)
+            .map_err(|e| Error::input(path, e.to_string()))?;
     }
     crate::output::sidecar::write_atomically(path, &buf)
 }
@@ -60,19 +85,33 @@ pub fn read_png_grey(path: &Path) -> Result<(usize, usize, Vec<f64>)> {
     let f = std::fs::File::open(path).map_err(|e| Error::io(path, e))?;
     let mut dec = png::Decoder::new(std::io::BufReader::new(f));
     dec.set_transformations(png::Transformations::EXPAND);
-    let mut r = dec.read_info().map_err(|e| Error::input(path, format!("not a readable PNG: {e}")))?;
-    let size = r.output_buffer_size().ok_or_else(|| Error::input(path, "image too large"))?;
+    let mut r = dec
+        .read_info()
+        .map_err(|e| Error::input(path, format!("not a readable PNG: {e}")))?;
+    let size = r
+        .output_buffer_size()
+        .ok_or_else(|| Error::input(path, "image too large"))?;
     let mut buf = vec![0u8; size];
-    let info = r.next_frame(&mut buf).map_err(|e| Error::input(path, format!("damaged PNG: {e}")))?;
+    let info = r
+        .next_frame(&mut buf)
+        .map_err(|e| Error::input(path, format!("damaged PNG: {e}")))?;
     let (w, h) = (info.width as usize, info.height as usize);
     let ch = info.color_type.samples();
     let wide = info.bit_depth == png::BitDepth::Sixteen;
-    let sample = |i: usize| if wide { u16::from_be_bytes([buf[2 * i], buf[2 * i + 1]]) as f64 / 65535.0 } else { buf[i] as f64 / 255.0 };
+    let sample = |i: usize| {
+        if wide {
+            u16::from_be_bytes([buf[2 * i], buf[2 * i + 1]]) as f64 / 65535.0
+        } else {
+            buf[i] as f64 / 255.0
+        }
+    };
     let mut out = Vec::with_capacity(w * h);
     for p in 0..w * h {
         let v = match ch {
             1 | 2 => sample(p * ch),
-            _ => 0.2126 * sample(p * ch) + 0.7152 * sample(p * ch + 1) + 0.0722 * sample(p * ch + 2),
+            _ => {
+                0.2126 * sample(p * ch) + 0.7152 * sample(p * ch + 1) + 0.0722 * sample(p * ch + 2)
+            }
         };
         out.push(v);
     }
@@ -121,7 +160,13 @@ pub struct TargetStats {
 
 /// Local maxima (strictly above their 8 neighbours' maximum or equal to it and first), at least
 /// `min_relative` of the brightest pixel, brightest first, at most `n`.
-pub fn peaks(w: usize, h: usize, i: &[f32], n: usize, min_relative: f64) -> Vec<(usize, usize, f64)> {
+pub fn peaks(
+    w: usize,
+    h: usize,
+    i: &[f32],
+    n: usize,
+    min_relative: f64,
+) -> Vec<(usize, usize, f64)> {
     let max = i.iter().cloned().fold(0.0f32, f32::max) as f64;
     if max <= 0.0 {
         return Vec::new();
@@ -162,10 +207,17 @@ pub fn peaks(w: usize, h: usize, i: &[f32], n: usize, min_relative: f64) -> Vec<
 }
 
 /// Power fraction, min/max and speckle contrast inside `region`.
-pub fn region_stats(w: usize, h: usize, i: &[f32], region: Region) -> std::result::Result<RegionStats, String> {
+pub fn region_stats(
+    w: usize,
+    h: usize,
+    i: &[f32],
+    region: Region,
+) -> std::result::Result<RegionStats, String> {
     let [x, y, rw, rh] = region;
     if rw == 0 || rh == 0 || x + rw > w || y + rh > h {
-        return Err(format!("region {x},{y},{rw},{rh} leaves the {w} x {h} replay image"));
+        return Err(format!(
+            "region {x},{y},{rw},{rh} leaves the {w} x {h} replay image"
+        ));
     }
     let total: f64 = i.iter().map(|&v| v as f64).sum();
     let (mut s, mut s2, mut mn, mut mx) = (0.0f64, 0.0f64, f64::INFINITY, 0.0f64);
@@ -190,7 +242,13 @@ pub fn region_stats(w: usize, h: usize, i: &[f32], region: Region) -> std::resul
 }
 
 /// Correlation and RMSE of `i` against `target` (same size), over `region` or the whole image.
-pub fn compare(w: usize, h: usize, i: &[f32], target: &[f64], region: Option<Region>) -> TargetStats {
+pub fn compare(
+    w: usize,
+    h: usize,
+    i: &[f32],
+    target: &[f64],
+    region: Option<Region>,
+) -> TargetStats {
     let [x, y, rw, rh] = region.unwrap_or([0, 0, w, h]);
     let mut a = Vec::with_capacity(rw * rh);
     let mut b = Vec::with_capacity(rw * rh);
@@ -212,7 +270,14 @@ pub fn compare(w: usize, h: usize, i: &[f32], target: &[f64], region: Option<Reg
         }
     }
     let _ = h;
-    TargetStats { correlation: if saa > 0.0 && sbb > 0.0 { sab / (saa * sbb).sqrt() } else { 0.0 }, rmse: (se / n).sqrt() }
+    TargetStats {
+        correlation: if saa > 0.0 && sbb > 0.0 {
+            sab / (saa * sbb).sqrt()
+        } else {
+            0.0
+        },
+        rmse: (se / n).sqrt(),
+    }
 }
 
 #[cfg(test)]

@@ -53,16 +53,30 @@ pub struct Window {
 impl Window {
     /// Parses `X,Y,W,H`.
     pub fn parse(s: &str) -> std::result::Result<Window, String> {
-        let v: Vec<u32> = s.split(',').map(|t| t.trim().parse::<u32>()).collect::<std::result::Result<_, _>>().map_err(|_| format!("'{s}': expected X,Y,W,H in whole pixels"))?;
+        let v: Vec<u32> = s
+            .split(',')
+            .map(|t| t.trim().parse::<u32>())
+            .collect::<std::result::Result<_, _>>()
+            .map_err(|_| format!("'{s}': expected X,Y,W,H in whole pixels"))?;
         if v.len() != 4 || v[2] == 0 || v[3] == 0 {
             return Err(format!("'{s}': expected X,Y,W,H with W, H > 0"));
         }
-        Ok(Window { x: v[0], y: v[1], w: v[2], h: v[3] })
+        Ok(Window {
+            x: v[0],
+            y: v[1],
+            w: v[2],
+            h: v[3],
+        })
     }
 }
 
 fn num(v: &serde_json::Value, path: &Path, key: &str) -> Result<f64> {
-    v.as_f64().filter(|x| x.is_finite()).ok_or_else(|| Error::input(path, format!("sidecar field {key} is missing or not a number")))
+    v.as_f64().filter(|x| x.is_finite()).ok_or_else(|| {
+        Error::input(
+            path,
+            format!("sidecar field {key} is missing or not a number"),
+        )
+    })
 }
 
 /// Sidecar path of a TIFF (`NAME.json`).
@@ -75,7 +89,8 @@ impl PlateFile {
     pub fn open(tif: &Path) -> Result<PlateFile> {
         let sc = sidecar_of(tif);
         let bytes = std::fs::read(&sc).map_err(|e| Error::io(&sc, e))?;
-        let v: serde_json::Value = serde_json::from_slice(&bytes).map_err(|e| Error::input(&sc, format!("not JSON: {e}")))?;
+        let v: serde_json::Value = serde_json::from_slice(&bytes)
+            .map_err(|e| Error::input(&sc, format!("not JSON: {e}")))?;
         if v["format"] != "fringemill-sidecar" {
             return Err(Error::input(&sc, "not a fringemill sidecar (format field)"));
         }
@@ -83,17 +98,34 @@ impl PlateFile {
         let plate = Plate {
             width: num(&h["width_px"], &sc, "hologram.width_px")? as u32,
             height: num(&h["height_px"], &sc, "hologram.height_px")? as u32,
-            pitch: [num(&h["pitch_um"][0], &sc, "hologram.pitch_um")? * 1e-6, num(&h["pitch_um"][1], &sc, "hologram.pitch_um")? * 1e-6],
+            pitch: [
+                num(&h["pitch_um"][0], &sc, "hologram.pitch_um")? * 1e-6,
+                num(&h["pitch_um"][1], &sc, "hologram.pitch_um")? * 1e-6,
+            ],
             wavelength: num(&h["wavelength_nm"], &sc, "hologram.wavelength_nm")? * 1e-9,
         };
         let r = &v["reference"];
         let reference = match r["kind"].as_str() {
-            Some("plane") => Reference::Plane { tilt: [num(&r["tilt_deg"][0], &sc, "reference.tilt_deg")?.to_radians(), num(&r["tilt_deg"][1], &sc, "reference.tilt_deg")?.to_radians()] },
+            Some("plane") => Reference::Plane {
+                tilt: [
+                    num(&r["tilt_deg"][0], &sc, "reference.tilt_deg")?.to_radians(),
+                    num(&r["tilt_deg"][1], &sc, "reference.tilt_deg")?.to_radians(),
+                ],
+            },
             Some("spherical") => {
-                let p = |i: usize| num(&r["position_mm"][i], &sc, "reference.position_mm").map(|x| x * 1e-3);
-                Reference::Spherical { position: [p(0)?, p(1)?, p(2)?] }
+                let p = |i: usize| {
+                    num(&r["position_mm"][i], &sc, "reference.position_mm").map(|x| x * 1e-3)
+                };
+                Reference::Spherical {
+                    position: [p(0)?, p(1)?, p(2)?],
+                }
             }
-            _ => return Err(Error::input(&sc, "reference.kind is not plane or spherical")),
+            _ => {
+                return Err(Error::input(
+                    &sc,
+                    "reference.kind is not plane or spherical",
+                ))
+            }
         };
         let e = &v["encoding"];
         let encoding = match e["kind"].as_str() {
@@ -106,35 +138,72 @@ impl PlateFile {
                             .iter()
                             .map(|r| Some((r[0].as_u64()? as u16, r[1].as_f64()?)))
                             .collect::<Option<Vec<_>>>()
-                            .ok_or_else(|| Error::input(&sc, "encoding.calibration.table is malformed"))?;
+                            .ok_or_else(|| {
+                                Error::input(&sc, "encoding.calibration.table is malformed")
+                            })?;
                         let bits = if levels <= 256 { 8 } else { 16 };
-                        let calibration = crate::encoding::Calibration::new(table, levels, bits).map_err(|m| Error::input(&sc, m))?;
-                        Encoding::CalibratedPhase { levels, calibration: std::sync::Arc::new(calibration) }
+                        let calibration = crate::encoding::Calibration::new(table, levels, bits)
+                            .map_err(|m| Error::input(&sc, m))?;
+                        Encoding::CalibratedPhase {
+                            levels,
+                            calibration: std::sync::Arc::new(calibration),
+                        }
                     }
                 }
             }
             Some("binary-phase") => Encoding::BinaryPhase,
             Some("binary-amplitude") => Encoding::BinaryAmplitude,
-            Some("amplitude") => Encoding::Amplitude { bits: num(&e["bits_per_sample"], &sc, "encoding.bits_per_sample")? as u8, scale: num(&e["bipolar_scale"], &sc, "encoding.bipolar_scale")? },
-            _ => return Err(Error::input(&sc, "encoding.kind is not one this tool writes")),
+            Some("amplitude") => Encoding::Amplitude {
+                bits: num(&e["bits_per_sample"], &sc, "encoding.bits_per_sample")? as u8,
+                scale: num(&e["bipolar_scale"], &sc, "encoding.bipolar_scale")?,
+            },
+            _ => {
+                return Err(Error::input(
+                    &sc,
+                    "encoding.kind is not one this tool writes",
+                ))
+            }
         };
         let f = std::fs::File::open(tif).map_err(|e| Error::io(tif, e))?;
-        let mut d = Decoder::new(std::io::BufReader::new(f)).map_err(|e| Error::input(tif, format!("not a readable TIFF: {e}")))?;
-        let (w, hh) = d.dimensions().map_err(|e| Error::input(tif, e.to_string()))?;
+        let mut d = Decoder::new(std::io::BufReader::new(f))
+            .map_err(|e| Error::input(tif, format!("not a readable TIFF: {e}")))?;
+        let (w, hh) = d
+            .dimensions()
+            .map_err(|e| Error::input(tif, e.to_string()))?;
         if (w, hh) != (plate.width, plate.height) {
-            return Err(Error::input(tif, format!("is {w} x {hh} px but its sidecar says {} x {}", plate.width, plate.height)));
+            return Err(Error::input(
+                tif,
+                format!(
+                    "is {w} x {hh} px but its sidecar says {} x {}",
+                    plate.width, plate.height
+                ),
+            ));
         }
-        Ok(PlateFile { tif: tif.to_path_buf(), plate, reference, encoding })
+        Ok(PlateFile {
+            tif: tif.to_path_buf(),
+            plate,
+            reference,
+            encoding,
+        })
     }
 
     /// Stored samples of a window, row-major; reads only the strips that overlap it.
     pub fn read_window(&self, win: Window) -> Result<Vec<u16>> {
         let p = &self.plate;
-        if win.x as u64 + win.w as u64 > p.width as u64 || win.y as u64 + win.h as u64 > p.height as u64 {
-            return Err(Error::job(&self.tif, format!("window {},{},{},{} leaves the {} x {} plate", win.x, win.y, win.w, win.h, p.width, p.height)));
+        if win.x as u64 + win.w as u64 > p.width as u64
+            || win.y as u64 + win.h as u64 > p.height as u64
+        {
+            return Err(Error::job(
+                &self.tif,
+                format!(
+                    "window {},{},{},{} leaves the {} x {} plate",
+                    win.x, win.y, win.w, win.h, p.width, p.height
+                ),
+            ));
         }
         let f = std::fs::File::open(&self.tif).map_err(|e| Error::io(&self.tif, e))?;
-        let mut d = Decoder::new(std::io::BufReader::new(f)).map_err(|e| Error::input(&self.tif, e.to_string()))?;
+        let mut d = Decoder::new(std::io::BufReader::new(f))
+            .map_err(|e| Error::input(&self.tif, e.to_string()))?;
         let (_, rps) = d.chunk_dimensions();
         let rps = rps.max(1);
         let bad = |e: tiff::TiffError| Error::input(&self.tif, format!("cannot read strip: {e}"));
@@ -163,7 +232,14 @@ impl PlateFile {
                         let base = r as usize * cw as usize;
                         out.extend(cols.map(|c| b[base + c]));
                     }
-                    _ => return Err(Error::input(&self.tif, format!("sample type does not match the {bits}-bit encoding of its sidecar"))),
+                    _ => {
+                        return Err(Error::input(
+                            &self.tif,
+                            format!(
+                                "sample type does not match the {bits}-bit encoding of its sidecar"
+                            ),
+                        ))
+                    }
                 }
             }
         }
@@ -200,7 +276,9 @@ pub fn lit_window(pf: &PlateFile, win: Window, ill: Illumination) -> Result<Vec<
     let mut field = Vec::with_capacity(samples.len());
     // Transmittance per stored value, tabulated (at most 65536 entries).
     let levels = 1usize << pf.encoding.bits_per_sample();
-    let table: Vec<Complex<f64>> = (0..levels).map(|s| pf.encoding.transmittance(s as u16)).collect();
+    let table: Vec<Complex<f64>> = (0..levels)
+        .map(|s| pf.encoding.transmittance(s as u16))
+        .collect();
     for (i, row) in samples.chunks_exact(win.w as usize).enumerate() {
         let y = p.y_of_row((win.y as usize + i) as f64);
         for (j, &s) in row.iter().enumerate() {
@@ -209,7 +287,8 @@ pub fn lit_window(pf: &PlateFile, win: Window, ill: Illumination) -> Result<Vec<
                 Illumination::Recorded => pf.reference.phase(x, y, k),
                 Illumination::Plane(t) => k * (x * t[0].sin() + y * t[1].sin()),
             };
-            let t = table[s as usize] * Complex::from_polar(1.0, phase.rem_euclid(2.0 * std::f64::consts::PI));
+            let t = table[s as usize]
+                * Complex::from_polar(1.0, phase.rem_euclid(2.0 * std::f64::consts::PI));
             field.push(Complex::new(t.re as f32, t.im as f32));
         }
     }
@@ -221,13 +300,24 @@ pub const MAX_WINDOW_SIDE: u32 = 8192;
 
 /// Replays the window at each distance (metres). The planner picks angular spectrum or single-FFT
 /// Fresnel per distance (physics.md: critical distance N p^2 / lambda) and reuses FFT plans.
-pub fn replay(pf: &PlateFile, win: Window, ill: Illumination, distances: &[f64]) -> Result<Vec<ReplayImage>> {
+pub fn replay(
+    pf: &PlateFile,
+    win: Window,
+    ill: Illumination,
+    distances: &[f64],
+) -> Result<Vec<ReplayImage>> {
     replay_planes(pf, win, ill, distances, None)
 }
 
 /// As [`replay`]; with `focal = Some(f)` the plate is replayed through a lens of focal length f
 /// onto its focal plane (Fourier geometry, pitch lambda f / (N p)) and `distances` is ignored.
-pub fn replay_planes(pf: &PlateFile, win: Window, ill: Illumination, distances: &[f64], focal: Option<f64>) -> Result<Vec<ReplayImage>> {
+pub fn replay_planes(
+    pf: &PlateFile,
+    win: Window,
+    ill: Illumination,
+    distances: &[f64],
+    focal: Option<f64>,
+) -> Result<Vec<ReplayImage>> {
     if win.w > MAX_WINDOW_SIDE || win.h > MAX_WINDOW_SIDE {
         return Err(Error::job(
             &pf.tif,
@@ -236,28 +326,56 @@ pub fn replay_planes(pf: &PlateFile, win: Window, ill: Illumination, distances: 
     }
     let lit = lit_window(pf, win, ill)?;
     let p = &pf.plate;
-    let grid = Grid { nx: win.w as usize, ny: win.h as usize, pitch: p.pitch, wavelength: p.wavelength };
-    let centre = [p.x_of_col(win.x as f64 + (win.w as f64 - 1.0) / 2.0), p.y_of_row(win.y as f64 + (win.h as f64 - 1.0) / 2.0)];
+    let grid = Grid {
+        nx: win.w as usize,
+        ny: win.h as usize,
+        pitch: p.pitch,
+        wavelength: p.wavelength,
+    };
+    let centre = [
+        p.x_of_col(win.x as f64 + (win.w as f64 - 1.0) / 2.0),
+        p.y_of_row(win.y as f64 + (win.h as f64 - 1.0) / 2.0),
+    ];
     let mut planner = PropagationPlanner::<f32>::new();
     let mut out = Vec::new();
     if let Some(f) = focal {
         if !(f.is_finite() && f > 0.0) {
-            return Err(Error::job(&pf.tif, format!("focal length {} mm must be > 0", f * 1e3)));
+            return Err(Error::job(
+                &pf.tif,
+                format!("focal length {} mm must be > 0", f * 1e3),
+            ));
         }
-        let prop = planner.plan_recipe(&grid, 0.0, crate::optics::propagation::PropagationRecipe::Fourier { focal: f });
+        let prop = planner.plan_recipe(
+            &grid,
+            0.0,
+            crate::optics::propagation::PropagationRecipe::Fourier { focal: f },
+        );
         let mut field = lit;
         prop.propagate(&mut field);
-        out.push(ReplayImage { distance: f, grid: prop.output(), centre: [0.0, 0.0], intensity: field.iter().map(|c| c.norm_sqr()).collect() });
+        out.push(ReplayImage {
+            distance: f,
+            grid: prop.output(),
+            centre: [0.0, 0.0],
+            intensity: field.iter().map(|c| c.norm_sqr()).collect(),
+        });
         return Ok(out);
     }
     for &d in distances {
         if !(d.is_finite() && d > 0.0) {
-            return Err(Error::job(&pf.tif, format!("replay distance {} mm must be > 0", d * 1e3)));
+            return Err(Error::job(
+                &pf.tif,
+                format!("replay distance {} mm must be > 0", d * 1e3),
+            ));
         }
         let prop = planner.plan(&grid, -d);
         let mut field = lit.clone();
         prop.propagate(&mut field);
-        out.push(ReplayImage { distance: d, grid: prop.output(), centre, intensity: field.iter().map(|c| c.norm_sqr()).collect() });
+        out.push(ReplayImage {
+            distance: d,
+            grid: prop.output(),
+            centre,
+            intensity: field.iter().map(|c| c.norm_sqr()).collect(),
+        });
     }
     Ok(out)
 }
@@ -265,13 +383,21 @@ pub fn replay_planes(pf: &PlateFile, win: Window, ill: Illumination, distances: 
 /// Distances from `D` or a stack `A:B:S` (millimetres, inclusive of B when it falls on the grid).
 pub fn parse_distances_mm(s: &str) -> std::result::Result<Vec<f64>, String> {
     let parts: Vec<&str> = s.split(':').collect();
-    let p = |t: &str| t.trim().parse::<f64>().ok().filter(|v| v.is_finite() && *v > 0.0).ok_or_else(|| format!("'{s}': distances are positive millimetres, D or A:B:STEP"));
+    let p = |t: &str| {
+        t.trim()
+            .parse::<f64>()
+            .ok()
+            .filter(|v| v.is_finite() && *v > 0.0)
+            .ok_or_else(|| format!("'{s}': distances are positive millimetres, D or A:B:STEP"))
+    };
     match parts.len() {
         1 => Ok(vec![p(parts[0])? * 1e-3]),
         3 => {
             let (a, b, st) = (p(parts[0])?, p(parts[1])?, p(parts[2])?);
             if b < a {
-                return Err(format!("'{s}': the stack must run from near to far (A <= B)"));
+                return Err(format!(
+                    "'{s}': the stack must run from near to far (A <= B)"
+                ));
             }
             let n = ((b - a) / st + 1e-9).floor() as usize + 1;
             if n > 1000 {
@@ -314,7 +440,12 @@ pub struct ReconstructRequest {
 /// Returns the files written.
 pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
     let pf = PlateFile::open(&req.tif)?;
-    let win = req.window.unwrap_or(Window { x: 0, y: 0, w: pf.plate.width, h: pf.plate.height });
+    let win = req.window.unwrap_or(Window {
+        x: 0,
+        y: 0,
+        w: pf.plate.width,
+        h: pf.plate.height,
+    });
     let target = match &req.target {
         Some(t) => Some(metrics::read_png_grey(t)?),
         None => None,
@@ -327,8 +458,13 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
         let path = if images.len() == 1 {
             req.out.clone()
         } else {
-            let stem = req.out.file_stem().map(|s| s.to_string_lossy().into_owned()).unwrap_or_else(|| "replay".into());
-            req.out.with_file_name(format!("{stem}-z{:.3}mm.png", img.distance * 1e3))
+            let stem = req
+                .out
+                .file_stem()
+                .map(|s| s.to_string_lossy().into_owned())
+                .unwrap_or_else(|| "replay".into());
+            req.out
+                .with_file_name(format!("{stem}-z{:.3}mm.png", img.distance * 1e3))
         };
         metrics::write_png(&path, w, h, &img.intensity, req.scale, req.bits)?;
         written.push(path.clone());
@@ -343,13 +479,19 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
             })
             .collect();
         let region = match req.region {
-            Some(rg) => Some(metrics::region_stats(w, h, &img.intensity, rg).map_err(|m| Error::job(&req.tif, m))?),
+            Some(rg) => Some(
+                metrics::region_stats(w, h, &img.intensity, rg)
+                    .map_err(|m| Error::job(&req.tif, m))?,
+            ),
             None => None,
         };
         let cmp = match &target {
             Some((tw, th, t)) => {
                 if (*tw, *th) != (w, h) {
-                    return Err(Error::input(req.target.as_ref().unwrap(), format!("is {tw} x {th} px; the replay image is {w} x {h}")));
+                    return Err(Error::input(
+                        req.target.as_ref().unwrap(),
+                        format!("is {tw} x {th} px; the replay image is {w} x {h}"),
+                    ));
                 }
                 Some(metrics::compare(w, h, &img.intensity, t, req.region))
             }
@@ -379,7 +521,10 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
         "planes": planes,
     });
     let jp = req.out.with_extension("json");
-    crate::output::sidecar::write_atomically(&jp, (serde_json::to_string_pretty(&json).expect("plain data") + "\n").as_bytes())?;
+    crate::output::sidecar::write_atomically(
+        &jp,
+        (serde_json::to_string_pretty(&json).expect("plain data") + "\n").as_bytes(),
+    )?;
     written.push(jp);
     Ok(written)
 }

@@ -1,5 +1,5 @@
 //! Scenes: what the plate records. Point clouds read from PLY or CSV.
-pub mod points;
-pub mod mesh;
-pub mod sampling;
 pub mod bvh;
+pub mod mesh;
+pub mod points;
+pub mod sampling;

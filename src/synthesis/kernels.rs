@@ -72,12 +72,20 @@ pub fn sincos_cycles(t: f64) -> (f64, f64) {
                 + a2 * (-1.0 / 720.0
                     + a2 * (1.0 / 40320.0
                         + a2 * (-1.0 / 3628800.0
-                            + a2 * (1.0 / 479001600.0 + a2 * (-1.0 / 87178291200.0 + a2 * (1.0 / 20922789888000.0))))))));
+                            + a2 * (1.0 / 479001600.0
+                                + a2 * (-1.0 / 87178291200.0 + a2 * (1.0 / 20922789888000.0))))))));
     (2.0 * s * c, 1.0 - 2.0 * s * s)
 }
 
 #[inline(always)]
-fn exact_generic(ri: &RowInputs, e: &EmitterRow, c0: usize, c1: usize, re: &mut [f64], im: &mut [f64]) -> u64 {
+fn exact_generic(
+    ri: &RowInputs,
+    e: &EmitterRow,
+    c0: usize,
+    c1: usize,
+    re: &mut [f64],
+    im: &mut [f64],
+) -> u64 {
     let (xs, rdx, rdy) = (&ri.xs[c0..c1], &ri.rdx[c0..c1], &ri.rdy[c0..c1]);
     let (re, im) = (&mut re[c0..c1], &mut im[c0..c1]);
     let c2 = e.dy * e.dy + e.z * e.z;
@@ -89,7 +97,11 @@ fn exact_generic(ri: &RowInputs, e: &EmitterRow, c0: usize, c1: usize, re: &mut 
         let inv_r = 1.0 / r;
         let inside = ((dx * inv_r - rdx[i]).abs() <= bx) & ((e.dy * inv_r - rdy[i]).abs() <= by);
         let w = if inside { 1.0 } else { 0.0 };
-        let amp = if e.obliquity { e.amplitude * e.z * inv_r * inv_r } else { e.amplitude * inv_r };
+        let amp = if e.obliquity {
+            e.amplitude * e.z * inv_r * inv_r
+        } else {
+            e.amplitude * inv_r
+        };
         let (s, c) = sincos_cycles(r * ri.inv_lambda + e.phase_cycles);
         let a = w * amp;
         re[i] += a * c;
@@ -100,7 +112,14 @@ fn exact_generic(ri: &RowInputs, e: &EmitterRow, c0: usize, c1: usize, re: &mut 
 }
 
 #[inline(always)]
-fn fresnel_generic(ri: &RowInputs, e: &EmitterRow, c0: usize, c1: usize, re: &mut [f64], im: &mut [f64]) -> u64 {
+fn fresnel_generic(
+    ri: &RowInputs,
+    e: &EmitterRow,
+    c0: usize,
+    c1: usize,
+    re: &mut [f64],
+    im: &mut [f64],
+) -> u64 {
     let (xs, rdx, rdy) = (&ri.xs[c0..c1], &ri.rdx[c0..c1], &ri.rdy[c0..c1]);
     let (re, im) = (&mut re[c0..c1], &mut im[c0..c1]);
     let inv_z = 1.0 / e.z;
@@ -144,7 +163,10 @@ unsafe fn conj_reference_avx2(t: &[f64], re: &[f64], im: &[f64], out: &mut [Comp
 /// # Panics
 /// If the slices differ in length.
 pub fn conj_reference(isa: KernelIsa, t: &[f64], re: &[f64], im: &[f64], out: &mut [Complex64]) {
-    assert!(t.len() == out.len() && re.len() == out.len() && im.len() == out.len(), "row length");
+    assert!(
+        t.len() == out.len() && re.len() == out.len() && im.len() == out.len(),
+        "row length"
+    );
     match isa {
         #[cfg(target_arch = "x86_64")]
         // SAFETY: as in `accumulate_exact`.
@@ -155,13 +177,27 @@ pub fn conj_reference(isa: KernelIsa, t: &[f64], re: &[f64], im: &[f64], out: &m
 
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx2")]
-unsafe fn exact_avx2(ri: &RowInputs, e: &EmitterRow, c0: usize, c1: usize, re: &mut [f64], im: &mut [f64]) -> u64 {
+unsafe fn exact_avx2(
+    ri: &RowInputs,
+    e: &EmitterRow,
+    c0: usize,
+    c1: usize,
+    re: &mut [f64],
+    im: &mut [f64],
+) -> u64 {
     exact_generic(ri, e, c0, c1, re, im)
 }
 
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx2")]
-unsafe fn fresnel_avx2(ri: &RowInputs, e: &EmitterRow, c0: usize, c1: usize, re: &mut [f64], im: &mut [f64]) -> u64 {
+unsafe fn fresnel_avx2(
+    ri: &RowInputs,
+    e: &EmitterRow,
+    c0: usize,
+    c1: usize,
+    re: &mut [f64],
+    im: &mut [f64],
+) -> u64 {
     fresnel_generic(ri, e, c0, c1, re, im)
 }
 
@@ -190,7 +226,15 @@ pub fn detect() -> KernelIsa {
 
 /// Adds one emitter's exact spherical wave over columns [c0, c1) into `re`, `im`.
 /// Returns the number of pixels that passed the support test.
-pub fn accumulate_exact(isa: KernelIsa, ri: &RowInputs, e: &EmitterRow, c0: usize, c1: usize, re: &mut [f64], im: &mut [f64]) -> u64 {
+pub fn accumulate_exact(
+    isa: KernelIsa,
+    ri: &RowInputs,
+    e: &EmitterRow,
+    c0: usize,
+    c1: usize,
+    re: &mut [f64],
+    im: &mut [f64],
+) -> u64 {
     match isa {
         #[cfg(target_arch = "x86_64")]
         // SAFETY: `KernelIsa::Avx2` is only produced by `detect` after the CPU reported AVX2
@@ -201,7 +245,15 @@ pub fn accumulate_exact(isa: KernelIsa, ri: &RowInputs, e: &EmitterRow, c0: usiz
 }
 
 /// Adds one emitter's Fresnel wave over columns [c0, c1) into `re`, `im`.
-pub fn accumulate_fresnel(isa: KernelIsa, ri: &RowInputs, e: &EmitterRow, c0: usize, c1: usize, re: &mut [f64], im: &mut [f64]) -> u64 {
+pub fn accumulate_fresnel(
+    isa: KernelIsa,
+    ri: &RowInputs,
+    e: &EmitterRow,
+    c0: usize,
+    c1: usize,
+    re: &mut [f64],
+    im: &mut [f64],
+) -> u64 {
     match isa {
         #[cfg(target_arch = "x86_64")]
         // SAFETY: as in `accumulate_exact`.
@@ -243,19 +295,42 @@ mod unit_tests {
         let xs: Vec<f64> = (0..n).map(|i| (i as f64 - 51.0) * 1.3e-6).collect();
         let rdx: Vec<f64> = (0..n).map(|i| 0.05 + 1e-4 * i as f64).collect();
         let rdy = vec![-0.02; n];
-        let ri = RowInputs { xs: &xs, rdx: &rdx, rdy: &rdy, half_band: [0.2, 0.2], inv_lambda: 1.0 / 633e-9 };
+        let ri = RowInputs {
+            xs: &xs,
+            rdx: &rdx,
+            rdy: &rdy,
+            half_band: [0.2, 0.2],
+            inv_lambda: 1.0 / 633e-9,
+        };
         for obliquity in [false, true] {
-            let e = EmitterRow { xj: 3e-6, dy: -7e-6, z: 90e-6, amplitude: 0.7, phase_cycles: 0.3, obliquity };
+            let e = EmitterRow {
+                xj: 3e-6,
+                dy: -7e-6,
+                z: 90e-6,
+                amplitude: 0.7,
+                phase_cycles: 0.3,
+                obliquity,
+            };
             let mut a = (vec![0.1; n], vec![0.2; n]);
             let mut b = a.clone();
             let na = accumulate_exact(KernelIsa::Portable, &ri, &e, 3, n - 2, &mut a.0, &mut a.1);
             let nb = accumulate_exact(KernelIsa::Avx2, &ri, &e, 3, n - 2, &mut b.0, &mut b.1);
             assert_eq!(na, nb);
-            assert!(a.0.iter().zip(&b.0).chain(a.1.iter().zip(&b.1)).all(|(x, y)| x.to_bits() == y.to_bits()));
+            assert!(a
+                .0
+                .iter()
+                .zip(&b.0)
+                .chain(a.1.iter().zip(&b.1))
+                .all(|(x, y)| x.to_bits() == y.to_bits()));
             let na = accumulate_fresnel(KernelIsa::Portable, &ri, &e, 0, n, &mut a.0, &mut a.1);
             let nb = accumulate_fresnel(KernelIsa::Avx2, &ri, &e, 0, n, &mut b.0, &mut b.1);
             assert_eq!(na, nb);
-            assert!(a.0.iter().zip(&b.0).chain(a.1.iter().zip(&b.1)).all(|(x, y)| x.to_bits() == y.to_bits()));
+            assert!(a
+                .0
+                .iter()
+                .zip(&b.0)
+                .chain(a.1.iter().zip(&b.1))
+                .all(|(x, y)| x.to_bits() == y.to_bits()));
         }
     }
 }

@@ -56,6 +56,10 @@ pub struct PointSumOptions {
 
 impl Default for PointSumOptions {
     fn default() -> Self {
-        PointSumOptions { approximation: Approximation::Exact, obliquity: false, anti_alias: true }
+        PointSumOptions {
+            approximation: Approximation::Exact,
+            obliquity: false,
+            anti_alias: true,
+        }
     }
 }

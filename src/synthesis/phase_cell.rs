@@ -26,9 +26,21 @@ impl PhaseCell {
     ///
     /// # Panics
     /// If the phase does not have `cell[0] * cell[1]` values.
-    pub fn new(plate: Plate, cell: [usize; 2], phase: Vec<f64>, carrier: [f64; 2], lens: Option<f64>) -> Self {
+    pub fn new(
+        plate: Plate,
+        cell: [usize; 2],
+        phase: Vec<f64>,
+        carrier: [f64; 2],
+        lens: Option<f64>,
+    ) -> Self {
         assert_eq!(phase.len(), cell[0] * cell[1], "cell phase size");
-        PhaseCell { plate, cell, phase, carrier, lens }
+        PhaseCell {
+            plate,
+            cell,
+            phase,
+            carrier,
+            lens,
+        }
     }
 
     /// The plate.
@@ -60,7 +72,10 @@ impl PhaseCell {
                     t -= (x * x + y * y) / (2.0 * fl) * inv_lambda;
                 }
                 let t = t - t.floor();
-                *f = Complex64::from_polar(1.0, crow[c % self.cell[0]] + 2.0 * std::f64::consts::PI * t);
+                *f = Complex64::from_polar(
+                    1.0,
+                    crow[c % self.cell[0]] + 2.0 * std::f64::consts::PI * t,
+                );
             }
         }
         (rows * w) as u64

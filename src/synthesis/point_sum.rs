@@ -12,8 +12,8 @@
 
 use num_complex::Complex64;
 
-use super::support::{direction_window, plate_rows, row_columns};
 use super::kernels::{self, EmitterRow, KernelIsa, RowInputs};
+use super::support::{direction_window, plate_rows, row_columns};
 use super::{Approximation, Emitter, PointSumOptions};
 use crate::optics::{Plate, Reference};
 
@@ -71,30 +71,65 @@ pub struct BandScratch {
 
 impl PointSum {
     /// Prepares the summation with one reference: computes each emitter's conservative row range.
-    pub fn new(plate: Plate, reference: Reference, emitters: Vec<Emitter>, opts: PointSumOptions) -> Self {
+    pub fn new(
+        plate: Plate,
+        reference: Reference,
+        emitters: Vec<Emitter>,
+        opts: PointSumOptions,
+    ) -> Self {
         Self::with_channels(plate, vec![(reference, emitters)], opts)
     }
 
     /// Several scenes, each recorded with its own reference: F = sum over channels of O_c conj(R_c).
     /// Emitters are summed channel by channel, in order.
-    pub fn with_channels(plate: Plate, channels: Vec<(Reference, Vec<Emitter>)>, opts: PointSumOptions) -> Self {
-        let half_band = if opts.anti_alias { plate.nyquist_cosines() } else { [f64::INFINITY; 2] };
+    pub fn with_channels(
+        plate: Plate,
+        channels: Vec<(Reference, Vec<Emitter>)>,
+        opts: PointSumOptions,
+    ) -> Self {
+        let half_band = if opts.anti_alias {
+            plate.nyquist_cosines()
+        } else {
+            [f64::INFINITY; 2]
+        };
         let size = plate.size();
         let mut all = Vec::new();
         let mut rows = Vec::new();
         let mut chans = Vec::new();
         for (reference, emitters) in channels {
-            let (sx, sy) = reference.direction_range([-size[0] / 2.0, size[0] / 2.0], [-size[1] / 2.0, size[1] / 2.0]);
+            let (sx, sy) = reference.direction_range(
+                [-size[0] / 2.0, size[0] / 2.0],
+                [-size[1] / 2.0, size[1] / 2.0],
+            );
             let (wx, wy) = direction_window(sx, sy, half_band);
             let start = all.len();
             for e in emitters {
-                rows.push(if opts.anti_alias { plate_rows(&plate, &e, wx, wy, opts.approximation) } else { Some((0, plate.height as usize)) });
+                rows.push(if opts.anti_alias {
+                    plate_rows(&plate, &e, wx, wy, opts.approximation)
+                } else {
+                    Some((0, plate.height as usize))
+                });
                 all.push(e);
             }
-            chans.push(Channel { reference, start, end: all.len() });
+            chans.push(Channel {
+                reference,
+                start,
+                end: all.len(),
+            });
         }
         let xs = (0..plate.width).map(|c| plate.x_of_col(c as f64)).collect();
-        PointSum { plate, channels: chans, emitters: all, opts, rows, half_band, xs, isa: kernels::detect(), visibility: None, tile_cols: 512 }
+        PointSum {
+            plate,
+            channels: chans,
+            emitters: all,
+            opts,
+            rows,
+            half_band,
+            xs,
+            isa: kernels::detect(),
+            visibility: None,
+            tile_cols: 512,
+        }
     }
 
     /// Forces one copy of the inner loops (tests compare them).
@@ -131,7 +166,10 @@ impl PointSum {
     }
 
     fn channel_of(&self, j: usize) -> &Channel {
-        self.channels.iter().find(|c| j < c.end).expect("emitter index in range")
+        self.channels
+            .iter()
+            .find(|c| j < c.end)
+            .expect("emitter index in range")
     }
 
     /// Direction window (emitter directions that may pass the test) on the row at height y.
@@ -169,13 +207,28 @@ impl PointSum {
     ///
     /// # Panics
     /// If `out` has the wrong length or the rows leave the plate (a bug in the caller).
-    pub fn compute_band(&self, row0: usize, rows: usize, out: &mut [Complex64], scratch: &mut BandScratch) -> u64 {
+    pub fn compute_band(
+        &self,
+        row0: usize,
+        rows: usize,
+        out: &mut [Complex64],
+        scratch: &mut BandScratch,
+    ) -> u64 {
         let w = self.plate.width as usize;
-        assert!(out.len() == rows * w && row0 + rows <= self.plate.height as usize, "band buffer mismatch");
+        assert!(
+            out.len() == rows * w && row0 + rows <= self.plate.height as usize,
+            "band buffer mismatch"
+        );
         let inv_lambda = 1.0 / self.plate.wavelength;
         let mut cands = std::mem::take(&mut scratch.candidates);
         self.candidates(row0, rows, &mut cands);
-        for v in [&mut scratch.ref_dir_x, &mut scratch.ref_dir_y, &mut scratch.re, &mut scratch.im, &mut scratch.ref_cycles] {
+        for v in [
+            &mut scratch.ref_dir_x,
+            &mut scratch.ref_dir_y,
+            &mut scratch.re,
+            &mut scratch.im,
+            &mut scratch.ref_cycles,
+        ] {
             v.resize(w, 0.0);
         }
         // Occlusion per tile, from the tile's centre on the plate.
@@ -221,7 +274,13 @@ impl PointSum {
                     }
                 }
                 let (wx, wy) = self.row_window(&ch.reference, y);
-                let inputs = RowInputs { xs: &self.xs, rdx: &scratch.ref_dir_x, rdy: &scratch.ref_dir_y, half_band: self.half_band, inv_lambda };
+                let inputs = RowInputs {
+                    xs: &self.xs,
+                    rdx: &scratch.ref_dir_x,
+                    rdy: &scratch.ref_dir_y,
+                    half_band: self.half_band,
+                    inv_lambda,
+                };
                 let k0 = cands.partition_point(|&j| (j as usize) < ch.start);
                 let k1 = cands.partition_point(|&j| (j as usize) < ch.end);
                 for (k, &j) in cands.iter().enumerate().take(k1).skip(k0) {
@@ -243,13 +302,32 @@ impl PointSum {
                         obliquity: self.opts.obliquity,
                     };
                     let mut add = |a: usize, b: usize| match self.opts.approximation {
-                        Approximation::Exact => kernels::accumulate_exact(self.isa, &inputs, &er, a, b, &mut scratch.re, &mut scratch.im),
-                        Approximation::Fresnel => kernels::accumulate_fresnel(self.isa, &inputs, &er, a, b, &mut scratch.re, &mut scratch.im),
+                        Approximation::Exact => kernels::accumulate_exact(
+                            self.isa,
+                            &inputs,
+                            &er,
+                            a,
+                            b,
+                            &mut scratch.re,
+                            &mut scratch.im,
+                        ),
+                        Approximation::Fresnel => kernels::accumulate_fresnel(
+                            self.isa,
+                            &inputs,
+                            &er,
+                            a,
+                            b,
+                            &mut scratch.re,
+                            &mut scratch.im,
+                        ),
                     };
                     if self.visibility.is_some() {
                         for t in c0 / self.tile_cols..=(c1 - 1) / self.tile_cols {
                             if scratch.visible[k * tiles + t] {
-                                updates += add(c0.max(t * self.tile_cols), c1.min((t + 1) * self.tile_cols));
+                                updates += add(
+                                    c0.max(t * self.tile_cols),
+                                    c1.min((t + 1) * self.tile_cols),
+                                );
                             }
                         }
                     } else {
@@ -271,9 +349,21 @@ impl PointSum {
                     }
                 }
                 if single {
-                    kernels::conj_reference(self.isa, &scratch.ref_cycles, &scratch.re, &scratch.im, orow);
+                    kernels::conj_reference(
+                        self.isa,
+                        &scratch.ref_cycles,
+                        &scratch.re,
+                        &scratch.im,
+                        orow,
+                    );
                 } else {
-                    kernels::conj_reference(self.isa, &scratch.ref_cycles, &scratch.re, &scratch.im, &mut scratch.sum_row);
+                    kernels::conj_reference(
+                        self.isa,
+                        &scratch.ref_cycles,
+                        &scratch.re,
+                        &scratch.im,
+                        &mut scratch.sum_row,
+                    );
                     for (o, v) in orow.iter_mut().zip(&scratch.sum_row) {
                         *o += *v;
                     }

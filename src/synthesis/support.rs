@@ -23,7 +23,11 @@ pub fn in_support(dir: [f64; 2], dref: [f64; 2], half_band: [f64; 2]) -> bool {
 
 /// The window of emitter directions that pass the test somewhere in a region where the reference
 /// directions lie in `sx_ref` x `sy_ref`: `([lo, hi], [lo, hi])`.
-pub fn direction_window(sx_ref: [f64; 2], sy_ref: [f64; 2], half_band: [f64; 2]) -> ([f64; 2], [f64; 2]) {
+pub fn direction_window(
+    sx_ref: [f64; 2],
+    sy_ref: [f64; 2],
+    half_band: [f64; 2],
+) -> ([f64; 2], [f64; 2]) {
     (
         [sx_ref[0] - half_band[0], sx_ref[1] + half_band[0]],
         [sy_ref[0] - half_band[1], sy_ref[1] + half_band[1]],
@@ -32,9 +36,16 @@ pub fn direction_window(sx_ref: [f64; 2], sy_ref: [f64; 2], half_band: [f64; 2])
 
 /// Conservative range of v = y - y_j (metres) over which an emitter at depth z can pass the test,
 /// given the direction window. Returns None when no direction of the window is possible.
-pub fn y_offset_extent(z: f64, wx: [f64; 2], wy: [f64; 2], approx: Approximation) -> Option<[f64; 2]> {
+pub fn y_offset_extent(
+    z: f64,
+    wx: [f64; 2],
+    wy: [f64; 2],
+    approx: Approximation,
+) -> Option<[f64; 2]> {
     match approx {
-        Approximation::Fresnel => (wx[0] <= wx[1] && wy[0] <= wy[1]).then(|| [z * wy[0], z * wy[1]]),
+        Approximation::Fresnel => {
+            (wx[0] <= wx[1] && wy[0] <= wy[1]).then(|| [z * wy[0], z * wy[1]])
+        }
         Approximation::Exact => {
             // Directions of a real wave lie in the unit disc; v = z sy / sqrt(1 - sx^2 - sy^2).
             let (ax, bx) = (wx[0].max(-1.0), wx[1].min(1.0));
@@ -43,7 +54,11 @@ pub fn y_offset_extent(z: f64, wx: [f64; 2], wy: [f64; 2], approx: Approximation
                 return None;
             }
             let sx2_max = (ax * ax).max(bx * bx);
-            let sx2_min = if ax <= 0.0 && bx >= 0.0 { 0.0 } else { (ax * ax).min(bx * bx) };
+            let sx2_min = if ax <= 0.0 && bx >= 0.0 {
+                0.0
+            } else {
+                (ax * ax).min(bx * bx)
+            };
             // v is increasing in sy; at fixed sy its magnitude grows with sx^2.
             let v_at = |sy: f64, sx2: f64, unbounded: f64| {
                 let den = 1.0 - sx2 - sy * sy;
@@ -54,7 +69,11 @@ pub fn y_offset_extent(z: f64, wx: [f64; 2], wy: [f64; 2], approx: Approximation
                 }
             };
             let vmax = v_at(by, if by > 0.0 { sx2_max } else { sx2_min }, f64::INFINITY);
-            let vmin = v_at(ay, if ay < 0.0 { sx2_max } else { sx2_min }, f64::NEG_INFINITY);
+            let vmin = v_at(
+                ay,
+                if ay < 0.0 { sx2_max } else { sx2_min },
+                f64::NEG_INFINITY,
+            );
             Some([vmin, vmax])
         }
     }
@@ -62,7 +81,13 @@ pub fn y_offset_extent(z: f64, wx: [f64; 2], wy: [f64; 2], approx: Approximation
 
 /// Conservative range of u = x - x_j (metres) on a row at offset `dy` = y - y_j where the emitter
 /// can pass the test, given the direction window. None when empty.
-pub fn row_offset_span(dy: f64, z: f64, wx: [f64; 2], wy: [f64; 2], approx: Approximation) -> Option<[f64; 2]> {
+pub fn row_offset_span(
+    dy: f64,
+    z: f64,
+    wx: [f64; 2],
+    wy: [f64; 2],
+    approx: Approximation,
+) -> Option<[f64; 2]> {
     match approx {
         Approximation::Fresnel => {
             let sy = dy / z;
@@ -149,7 +174,13 @@ pub fn row_columns(
 }
 
 /// Rows [start, end) of `plate` that may hold the emitter's support anywhere, with one row of slack.
-pub fn plate_rows(plate: &Plate, e: &Emitter, wx: [f64; 2], wy: [f64; 2], approx: Approximation) -> Option<(usize, usize)> {
+pub fn plate_rows(
+    plate: &Plate,
+    e: &Emitter,
+    wx: [f64; 2],
+    wy: [f64; 2],
+    approx: Approximation,
+) -> Option<(usize, usize)> {
     let [vlo, vhi] = y_offset_extent(e.pos[2], wx, wy, approx)?;
     // Row index decreases as y grows.
     let r0 = (plate.row_of_y(e.pos[1] + vhi).ceil() - 1.0).max(0.0);
@@ -194,12 +225,21 @@ mod unit_tests {
                     for iu in -300..=300 {
                         let u = iu as f64 * 0.01;
                         let d = dir(u, v, z, approx);
-                        let inside = d[0] >= wx[0] && d[0] <= wx[1] && d[1] >= wy[0] && d[1] <= wy[1];
+                        let inside =
+                            d[0] >= wx[0] && d[0] <= wx[1] && d[1] >= wy[0] && d[1] <= wy[1];
                         if inside {
-                            let s = span.unwrap_or_else(|| panic!("{approx:?} {wx:?} {wy:?} u={u} v={v}: no span"));
-                            assert!(u >= s[0] - 1e-9 && u <= s[1] + 1e-9, "{approx:?} u={u} v={v} span {s:?}");
+                            let s = span.unwrap_or_else(|| {
+                                panic!("{approx:?} {wx:?} {wy:?} u={u} v={v}: no span")
+                            });
+                            assert!(
+                                u >= s[0] - 1e-9 && u <= s[1] + 1e-9,
+                                "{approx:?} u={u} v={v} span {s:?}"
+                            );
                             let e = ext.unwrap();
-                            assert!(v >= e[0] - 1e-9 && v <= e[1] + 1e-9, "{approx:?} v={v} extent {e:?}");
+                            assert!(
+                                v >= e[0] - 1e-9 && v <= e[1] + 1e-9,
+                                "{approx:?} v={v} extent {e:?}"
+                            );
                         }
                     }
                 }

@@ -26,7 +26,10 @@ pub fn decode(path: &Path) -> (u32, u32, Vec<u16>) {
             }
         }
         DecodingResult::U16(v) => v,
-        other => panic!("unexpected sample type {:?}", std::mem::discriminant(&other)),
+        other => panic!(
+            "unexpected sample type {:?}",
+            std::mem::discriminant(&other)
+        ),
     };
     (w, h, v)
 }

@@ -34,7 +34,12 @@ const BAND_ROWS: usize = 32;
 const POINTS_SIDE: usize = 8;
 
 fn bench_plate() -> Plate {
-    Plate { width: PLATE_W, height: PLATE_W, pitch: [0.4e-6; 2], wavelength: 633e-9 }
+    Plate {
+        width: PLATE_W,
+        height: PLATE_W,
+        pitch: [0.4e-6; 2],
+        wavelength: 633e-9,
+    }
 }
 
 /// Deterministic scene: points on a 0.1 mm grid around the axis, depths 2.0 .. 2.1 mm,
@@ -65,25 +70,43 @@ fn point_sum(c: &mut Criterion) {
     let w = PLATE_W as usize;
     let work = (emitters.len() * BAND_ROWS * w) as u64;
     let mut g = c.benchmark_group("point_sum");
-    g.sample_size(10).measurement_time(Duration::from_secs(3)).warm_up_time(Duration::from_secs(1));
+    g.sample_size(10)
+        .measurement_time(Duration::from_secs(3))
+        .warm_up_time(Duration::from_secs(1));
     g.throughput(Throughput::Elements(work));
     let mut isas = vec![("portable", KernelIsa::Portable)];
     #[cfg(target_arch = "x86_64")]
     if std::arch::is_x86_feature_detected!("avx2") {
         isas.insert(0, ("avx2", KernelIsa::Avx2));
     }
-    for (aname, approximation) in [("exact", Approximation::Exact), ("fresnel", Approximation::Fresnel)] {
+    for (aname, approximation) in [
+        ("exact", Approximation::Exact),
+        ("fresnel", Approximation::Fresnel),
+    ] {
         for &(iname, isa) in &isas {
-            let opts = PointSumOptions { approximation, ..PointSumOptions::default() };
-            let ps = PointSum::new(plate, Reference::Plane { tilt: [0.0, 0.0] }, emitters.clone(), opts)
-                .with_isa(isa);
+            let opts = PointSumOptions {
+                approximation,
+                ..PointSumOptions::default()
+            };
+            let ps = PointSum::new(
+                plate,
+                Reference::Plane { tilt: [0.0, 0.0] },
+                emitters.clone(),
+                opts,
+            )
+            .with_isa(isa);
             let mut out = vec![Complex64::new(0.0, 0.0); BAND_ROWS * w];
             let mut scratch = BandScratch::default();
             // The bench only means what it says if every point reached every pixel.
             let done = ps.compute_band(row0, BAND_ROWS, &mut out, &mut scratch);
-            assert_eq!(done, work, "support does not cover the whole band ({aname}, {iname})");
+            assert_eq!(
+                done, work,
+                "support does not cover the whole band ({aname}, {iname})"
+            );
             g.bench_function(BenchmarkId::new(aname, iname), |b| {
-                b.iter(|| black_box(ps.compute_band(row0, BAND_ROWS, black_box(&mut out), &mut scratch)))
+                b.iter(|| {
+                    black_box(ps.compute_band(row0, BAND_ROWS, black_box(&mut out), &mut scratch))
+                })
             });
         }
     }
@@ -93,11 +116,14 @@ fn point_sum(c: &mut Criterion) {
 fn fft(c: &mut Criterion) {
     let n = 2048;
     let fft = Fft2d::<f32>::new(n, n);
-    let mut data: Vec<Complex32> =
-        (0..n * n).map(|i| Complex32::new(((i * 7919) % 1013) as f32 / 1013.0, 0.0)).collect();
+    let mut data: Vec<Complex32> = (0..n * n)
+        .map(|i| Complex32::new(((i * 7919) % 1013) as f32 / 1013.0, 0.0))
+        .collect();
     let mut scratch = vec![Complex32::new(0.0, 0.0); fft.scratch_len()];
     let mut g = c.benchmark_group("fft2d");
-    g.sample_size(10).measurement_time(Duration::from_secs(3)).warm_up_time(Duration::from_secs(1));
+    g.sample_size(10)
+        .measurement_time(Duration::from_secs(3))
+        .warm_up_time(Duration::from_secs(1));
     g.throughput(Throughput::Elements((n * n) as u64));
     g.bench_function(BenchmarkId::from_parameter(n), |b| {
         b.iter(|| fft.process_with_scratch(black_box(&mut data), &mut scratch))
@@ -106,7 +132,12 @@ fn fft(c: &mut Criterion) {
 }
 
 fn grid(n: usize) -> Grid {
-    Grid { nx: n, ny: n, pitch: [2e-6; 2], wavelength: 532e-9 }
+    Grid {
+        nx: n,
+        ny: n,
+        pitch: [2e-6; 2],
+        wavelength: 532e-9,
+    }
 }
 
 fn propagation(c: &mut Criterion) {
@@ -114,42 +145,86 @@ fn propagation(c: &mut Criterion) {
     let g0 = grid(n);
     let mut planner = PropagationPlanner::<f32>::new();
     // 5 mm is below z_c = N p^2 / lambda = 15.4 mm: the planner's own choice is this recipe too.
-    let prop = planner.plan_recipe(&g0, 5e-3, PropagationRecipe::AngularSpectrum { band_limited: true, pad: 2 });
-    let mut field: Vec<Complex32> =
-        (0..n * n).map(|i| if (i / n + i % n) % 64 < 32 { Complex32::new(1.0, 0.0) } else { Complex32::new(0.0, 0.0) }).collect();
+    let prop = planner.plan_recipe(
+        &g0,
+        5e-3,
+        PropagationRecipe::AngularSpectrum {
+            band_limited: true,
+            pad: 2,
+        },
+    );
+    let mut field: Vec<Complex32> = (0..n * n)
+        .map(|i| {
+            if (i / n + i % n) % 64 < 32 {
+                Complex32::new(1.0, 0.0)
+            } else {
+                Complex32::new(0.0, 0.0)
+            }
+        })
+        .collect();
     let mut scratch = vec![Complex32::new(0.0, 0.0); prop.scratch_len()];
     let mut g = c.benchmark_group("propagation");
-    g.sample_size(10).measurement_time(Duration::from_secs(3)).warm_up_time(Duration::from_secs(1));
+    g.sample_size(10)
+        .measurement_time(Duration::from_secs(3))
+        .warm_up_time(Duration::from_secs(1));
     g.throughput(Throughput::Elements((n * n) as u64));
-    g.bench_function("asm_2048", |b| b.iter(|| prop.propagate_with_scratch(black_box(&mut field), &mut scratch)));
+    g.bench_function("asm_2048", |b| {
+        b.iter(|| prop.propagate_with_scratch(black_box(&mut field), &mut scratch))
+    });
     g.finish();
 }
 
 fn gs_equiv(c: &mut Criterion) {
     let mut g = c.benchmark_group("gs_equiv");
-    g.sample_size(10).measurement_time(Duration::from_secs(3)).warm_up_time(Duration::from_secs(1));
+    g.sample_size(10)
+        .measurement_time(Duration::from_secs(3))
+        .warm_up_time(Duration::from_secs(1));
     for n in [2048usize, 4096] {
         let g0 = grid(n);
         let mut planner = PropagationPlanner::<f32>::new();
         let focal = 0.1;
         let fwd = planner.plan_recipe(&g0, 0.0, PropagationRecipe::Fourier { focal });
-        let inv = planner.plan_recipe(&fwd.output(), 0.0, PropagationRecipe::Fourier { focal: -focal });
-        let target: Vec<f32> = (0..n * n).map(|i| if (i / n / 64 + i % n / 64) % 2 == 0 { 1.0 } else { 0.0 }).collect();
-        let mut field: Vec<Complex32> =
-            (0..n * n).map(|i| Complex32::from_polar(1.0, ((i * 2654435761usize) % 6283) as f32 * 1e-3)).collect();
+        let inv = planner.plan_recipe(
+            &fwd.output(),
+            0.0,
+            PropagationRecipe::Fourier { focal: -focal },
+        );
+        let target: Vec<f32> = (0..n * n)
+            .map(|i| {
+                if (i / n / 64 + i % n / 64) % 2 == 0 {
+                    1.0
+                } else {
+                    0.0
+                }
+            })
+            .collect();
+        let mut field: Vec<Complex32> = (0..n * n)
+            .map(|i| Complex32::from_polar(1.0, ((i * 2654435761usize) % 6283) as f32 * 1e-3))
+            .collect();
         let mut scratch = vec![Complex32::new(0.0, 0.0); fwd.scratch_len().max(inv.scratch_len())];
         g.throughput(Throughput::Elements((n * n) as u64));
         g.bench_function(BenchmarkId::from_parameter(n), |b| {
             b.iter(|| {
                 fwd.propagate_with_scratch(&mut field, &mut scratch);
-                field.par_iter_mut().zip(target.par_iter()).for_each(|(v, &a)| {
-                    let m = v.norm();
-                    *v = if m > 0.0 { *v * (a / m) } else { Complex32::new(a, 0.0) };
-                });
+                field
+                    .par_iter_mut()
+                    .zip(target.par_iter())
+                    .for_each(|(v, &a)| {
+                        let m = v.norm();
+                        *v = if m > 0.0 {
+                            *v * (a / m)
+                        } else {
+                            Complex32::new(a, 0.0)
+                        };
+                    });
                 inv.propagate_with_scratch(&mut field, &mut scratch);
                 field.par_iter_mut().for_each(|v| {
                     let m = v.norm();
-                    *v = if m > 0.0 { *v / m } else { Complex32::new(1.0, 0.0) };
+                    *v = if m > 0.0 {
+                        *v / m
+                    } else {
+                        Complex32::new(1.0, 0.0)
+                    };
                 });
                 black_box(&field);
             })
