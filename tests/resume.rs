@@ -128,12 +128,12 @@ fn sigint_stops_cleanly_and_resumes_byte_identical() {
     assert!(std::fs::read(d.path().join("out/plate.tif")).unwrap() == reference);
 }
 
-/// 1 and 2 threads, and shard splits 1/1, 2/2, 3/3 and 5/5 (assembled), all byte-identical.
+/// 1, 2 and 4 threads, and shard splits 1/1, 2/2, 3/3 and 5/5 (assembled), all byte-identical.
 #[test]
 fn threads_and_shards_are_byte_identical() {
     let enc = "kind = \"phase\"\nlevels = 16";
     let reference = clean_plate(enc);
-    for threads in ["1", "2"] {
+    for threads in ["1", "2", "4"] {
         let d = tempfile::tempdir().unwrap();
         let j = job(d.path(), enc);
         assert!(
