@@ -56,7 +56,7 @@ fn bench_emitters() -> Vec<Emitter> {
                     2.0e-3 + 0.1e-3 * ((n * 0.618_033_988_7).fract()),
                 ],
                 amplitude: 0.5 + 0.5 * ((n * 0.754_877_666).fract()),
-                phase: 6.283_185_307 * ((n * 0.569_840_291).fract()),
+                phase: std::f64::consts::TAU * ((n * 0.569_840_291).fract()),
             });
         }
     }
