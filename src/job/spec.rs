@@ -509,43 +509,45 @@ impl JobSpec {
             .iter()
             .filter(|o| matches!(o.source, ObjectSource::Image { .. }))
             .count();
-        let method =
-            match s.method.as_deref().unwrap_or("point-sum") {
-                "point-sum" => {
-                    if let Some((k, _)) = iter_keys.iter().find(|k| k.1) {
-                        return Err(bad(format!(
-                            "[synthesis] {k} applies to method = \"iterative\""
-                        )));
-                    }
-                    if images > 0 {
-                        return Err(bad(
-                            "image objects need [synthesis] method = \"iterative\"".into()
-                        ));
-                    }
-                    Method::PointSum
+        let method = match s.method.as_deref().unwrap_or("point-sum") {
+            "point-sum" => {
+                if let Some((k, _)) = iter_keys.iter().find(|k| k.1) {
+                    return Err(bad(format!(
+                        "[synthesis] {k} applies to method = \"iterative\""
+                    )));
                 }
-                "iterative" => {
-                    if images != objects.len() {
-                        return Err(bad(
-                            "method = \"iterative\" takes image objects only (no points or meshes)"
-                                .into(),
-                        ));
-                    }
-                    Method::Iterative(iterative_spec(s, &objects, &bad)?)
+                if images > 0 {
+                    return Err(bad(
+                        "image objects need [synthesis] method = \"iterative\"".into()
+                    ));
                 }
-                other => return Err(bad(format!(
+                Method::PointSum
+            }
+            "iterative" => {
+                if images != objects.len() {
+                    return Err(bad(
+                        "method = \"iterative\" takes image objects only (no points or meshes)"
+                            .into(),
+                    ));
+                }
+                Method::Iterative(iterative_spec(s, &objects, &bad)?)
+            }
+            other => {
+                return Err(bad(format!(
                     "[synthesis] method = \"{other}\" is not one of \"point-sum\", \"iterative\""
-                ))),
-            };
+                )))
+            }
+        };
 
-        let approximation =
-            match s.approximation.as_deref().unwrap_or("exact") {
-                "exact" => Approximation::Exact,
-                "fresnel" => Approximation::Fresnel,
-                other => return Err(bad(format!(
+        let approximation = match s.approximation.as_deref().unwrap_or("exact") {
+            "exact" => Approximation::Exact,
+            "fresnel" => Approximation::Fresnel,
+            other => {
+                return Err(bad(format!(
                     "[synthesis] approximation = \"{other}\" is not one of \"exact\", \"fresnel\""
-                ))),
-            };
+                )))
+            }
+        };
         let band_rows = match s.band_rows {
             None => None,
             Some(b) if (1..=65536).contains(&b) => Some(b as usize),
@@ -913,14 +915,15 @@ fn mesh_object(o: &RawObject, n: usize, bad: &dyn Fn(String) -> Error) -> Result
         }
         (None, None) => None,
     };
-    let pattern =
-        match o.pattern.as_deref().unwrap_or("stratified") {
-            "stratified" => Pattern::Stratified,
-            "random" => Pattern::Random,
-            other => return Err(bad(format!(
+    let pattern = match o.pattern.as_deref().unwrap_or("stratified") {
+        "stratified" => Pattern::Stratified,
+        "random" => Pattern::Random,
+        other => {
+            return Err(bad(format!(
                 "[[object]] #{n} pattern = \"{other}\" is not one of \"stratified\", \"random\""
-            ))),
-        };
+            )))
+        }
+    };
     let mut shading = Shading::default();
     if let Some(l) = o.light_dir {
         if l.iter().any(|v| !v.is_finite()) || l.iter().all(|&v| v == 0.0) {
@@ -960,9 +963,11 @@ fn mesh_object(o: &RawObject, n: usize, bad: &dyn Fn(String) -> Error) -> Result
         "tiles" => Occlusion::Tiles,
         "centre" | "center" => Occlusion::Centre,
         "none" => Occlusion::None,
-        other => return Err(bad(format!(
+        other => {
+            return Err(bad(format!(
             "[[object]] #{n} occlusion = \"{other}\" is not one of \"tiles\", \"centre\", \"none\""
-        ))),
+        )))
+        }
     };
     Ok(MeshObject {
         placement,

@@ -143,6 +143,122 @@ fn fresnel_generic(
     n
 }
 
+/// Fresnel column factor of one emitter over columns [c0, c1): u = w a/z exp(i 2 pi dx^2 / (2 z lambda)),
+/// w the 0/1 support weight in x (the x half of the test, as in `fresnel_generic`). Returns the
+/// number of columns inside. With a plane reference the Fresnel phase separates into this factor and
+/// a row factor, so a band needs one phasor per column and emitter instead of one per pixel.
+#[allow(clippy::too_many_arguments)]
+#[inline(always)]
+fn fresnel_columns_generic(
+    ri: &RowInputs,
+    xj: f64,
+    z: f64,
+    amplitude: f64,
+    c0: usize,
+    c1: usize,
+    ure: &mut [f64],
+    uim: &mut [f64],
+) -> u64 {
+    let (xs, rdx) = (&ri.xs[c0..c1], &ri.rdx[c0..c1]);
+    let inv_z = 1.0 / z;
+    let amp = amplitude * inv_z;
+    let q = 0.5 * inv_z * ri.inv_lambda;
+    let bx = ri.half_band[0];
+    let mut n = 0u64;
+    for i in 0..xs.len() {
+        let dx = xs[i] - xj;
+        let inside = (dx * inv_z - rdx[i]).abs() <= bx;
+        let w = if inside { amp } else { 0.0 };
+        let (s, c) = sincos_cycles(dx * dx * q);
+        ure[i] = w * c;
+        uim[i] = w * s;
+        n += inside as u64;
+    }
+    n
+}
+
+/// re + i im += (cr + i ci) (ure + i uim), element by element.
+#[inline(always)]
+fn mac_generic(cr: f64, ci: f64, ure: &[f64], uim: &[f64], re: &mut [f64], im: &mut [f64]) {
+    for i in 0..ure.len() {
+        re[i] += cr * ure[i] - ci * uim[i];
+        im[i] += cr * uim[i] + ci * ure[i];
+    }
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+#[allow(clippy::too_many_arguments)]
+unsafe fn fresnel_columns_avx2(
+    ri: &RowInputs,
+    xj: f64,
+    z: f64,
+    amplitude: f64,
+    c0: usize,
+    c1: usize,
+    ure: &mut [f64],
+    uim: &mut [f64],
+) -> u64 {
+    fresnel_columns_generic(ri, xj, z, amplitude, c0, c1, ure, uim)
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+unsafe fn mac_avx2(cr: f64, ci: f64, ure: &[f64], uim: &[f64], re: &mut [f64], im: &mut [f64]) {
+    mac_generic(cr, ci, ure, uim, re, im)
+}
+
+/// Fills the Fresnel column factor of one emitter (see `fresnel_columns_generic`); `ure`, `uim`
+/// hold `c1 - c0` values. Returns the columns inside the x support.
+#[allow(clippy::too_many_arguments)]
+pub fn fresnel_columns(
+    isa: KernelIsa,
+    ri: &RowInputs,
+    xj: f64,
+    z: f64,
+    amplitude: f64,
+    c0: usize,
+    c1: usize,
+    ure: &mut [f64],
+    uim: &mut [f64],
+) -> u64 {
+    assert!(
+        ure.len() == c1 - c0 && uim.len() == c1 - c0,
+        "column factor length"
+    );
+    match isa {
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: as in `accumulate_exact`.
+        KernelIsa::Avx2 => unsafe { fresnel_columns_avx2(ri, xj, z, amplitude, c0, c1, ure, uim) },
+        _ => fresnel_columns_generic(ri, xj, z, amplitude, c0, c1, ure, uim),
+    }
+}
+
+/// re + i im += (cr + i ci) (ure + i uim).
+///
+/// # Panics
+/// If the slices differ in length.
+pub fn mac(
+    isa: KernelIsa,
+    cr: f64,
+    ci: f64,
+    ure: &[f64],
+    uim: &[f64],
+    re: &mut [f64],
+    im: &mut [f64],
+) {
+    assert!(
+        uim.len() == ure.len() && re.len() == ure.len() && im.len() == ure.len(),
+        "mac length"
+    );
+    match isa {
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: as in `accumulate_exact`.
+        KernelIsa::Avx2 => unsafe { mac_avx2(cr, ci, ure, uim, re, im) },
+        _ => mac_generic(cr, ci, ure, uim, re, im),
+    }
+}
+
 /// out = (re + i im) exp(-i 2 pi t) per pixel: the sum times conj(R), R's phase given in cycles.
 #[inline(always)]
 fn conj_reference_generic(t: &[f64], re: &[f64], im: &[f64], out: &mut [Complex64]) {

@@ -53,6 +53,8 @@ pub struct PointSum {
     /// Occlusion tested from the centre of each tile (band x `tile_cols` columns), if any.
     visibility: Option<std::sync::Arc<dyn Visibility>>,
     tile_cols: usize,
+    /// Use the separable Fresnel path where it applies (plane reference, one channel, no occlusion).
+    separable: bool,
 }
 
 /// Scratch buffers a worker reuses from band to band.
@@ -65,6 +67,10 @@ pub struct BandScratch {
     im: Vec<f64>,
     ref_cycles: Vec<f64>,
     sum_row: Vec<Complex64>,
+    band_re: Vec<f64>,
+    band_im: Vec<f64>,
+    col_re: Vec<f64>,
+    col_im: Vec<f64>,
     /// visible[k * tiles + t]: candidate k seen from tile t's centre.
     visible: Vec<bool>,
 }
@@ -129,6 +135,7 @@ impl PointSum {
             isa: kernels::detect(),
             visibility: None,
             tile_cols: 512,
+            separable: true,
         }
     }
 
@@ -144,6 +151,12 @@ impl PointSum {
     pub fn with_visibility(mut self, v: std::sync::Arc<dyn Visibility>, tile_cols: usize) -> Self {
         self.visibility = Some(v);
         self.tile_cols = tile_cols.max(1);
+        self
+    }
+
+    /// Turns the separable Fresnel path off (tests compare it with the per-pixel path).
+    pub fn with_separable(mut self, on: bool) -> Self {
+        self.separable = on;
         self
     }
 
@@ -222,6 +235,17 @@ impl PointSum {
         let inv_lambda = 1.0 / self.plate.wavelength;
         let mut cands = std::mem::take(&mut scratch.candidates);
         self.candidates(row0, rows, &mut cands);
+        if self.separable
+            && self.opts.anti_alias
+            && self.opts.approximation == Approximation::Fresnel
+            && self.visibility.is_none()
+            && self.channels.len() == 1
+            && matches!(self.channels[0].reference, Reference::Plane { .. })
+        {
+            let n = self.fresnel_band(row0, rows, out, scratch, &cands);
+            scratch.candidates = cands;
+            return n;
+        }
         for v in [
             &mut scratch.ref_dir_x,
             &mut scratch.ref_dir_y,
@@ -371,6 +395,108 @@ impl PointSum {
             }
         }
         scratch.candidates = cands;
+        updates
+    }
+
+    /// Fresnel waves with a plane reference: exp(i 2 pi (t_row + dx^2 q)) separates into a row
+    /// factor and a column factor, and the support test into an x part (columns) and a y part
+    /// (whole rows). Per emitter, the column factor is computed once per band and each row adds it
+    /// times its row factor. Emitters are still added to every pixel in input order.
+    fn fresnel_band(
+        &self,
+        row0: usize,
+        rows: usize,
+        out: &mut [Complex64],
+        scratch: &mut BandScratch,
+        cands: &[u32],
+    ) -> u64 {
+        let w = self.plate.width as usize;
+        let reference = self.channels[0].reference;
+        let inv_lambda = 1.0 / self.plate.wavelength;
+        let d = reference.direction(0.0, 0.0);
+        scratch.ref_dir_x.clear();
+        scratch.ref_dir_x.resize(w, d[0]);
+        scratch.ref_dir_y.clear();
+        scratch.ref_dir_y.resize(w, d[1]);
+        scratch.ref_cycles.resize(w, 0.0);
+        scratch.band_re.clear();
+        scratch.band_re.resize(rows * w, 0.0);
+        scratch.band_im.clear();
+        scratch.band_im.resize(rows * w, 0.0);
+        let inputs = RowInputs {
+            xs: &self.xs,
+            rdx: &scratch.ref_dir_x,
+            rdy: &scratch.ref_dir_y,
+            half_band: self.half_band,
+            inv_lambda,
+        };
+        let (wx, _) = direction_window([d[0], d[0]], [d[1], d[1]], self.half_band);
+        let mut updates = 0u64;
+        for &j in cands {
+            let e = &self.emitters[j as usize];
+            let z = e.pos[2];
+            // Columns of the x support (u = z sx for sx in the window), one pixel of slack.
+            let c0 = (self.plate.col_of_x(e.pos[0] + z * wx[0]).ceil() - 1.0).max(0.0);
+            let c1 = (self.plate.col_of_x(e.pos[0] + z * wx[1]).floor() + 1.0).min(w as f64 - 1.0);
+            if !(c0 <= c1) {
+                continue;
+            }
+            let (c0, c1) = (c0 as usize, c1 as usize + 1);
+            scratch.col_re.resize(c1 - c0, 0.0);
+            scratch.col_im.resize(c1 - c0, 0.0);
+            let nx = kernels::fresnel_columns(
+                self.isa,
+                &inputs,
+                e.pos[0],
+                z,
+                e.amplitude,
+                c0,
+                c1,
+                &mut scratch.col_re,
+                &mut scratch.col_im,
+            );
+            if nx == 0 {
+                continue;
+            }
+            let inv_z = 1.0 / z;
+            let phase_cycles = reduced_cycles(e.phase);
+            for r in 0..rows {
+                let y = self.plate.y_of_row((row0 + r) as f64);
+                let dy = y - e.pos[1];
+                // The y half of the support test, the same expression as the per-pixel kernel's.
+                if (dy * inv_z - d[1]).abs() > self.half_band[1] {
+                    continue;
+                }
+                let t_row = (z + dy * dy * 0.5 * inv_z) * inv_lambda + phase_cycles;
+                let (s, c) = kernels::sincos_cycles(t_row - t_row.floor());
+                let base = r * w;
+                kernels::mac(
+                    self.isa,
+                    c,
+                    s,
+                    &scratch.col_re,
+                    &scratch.col_im,
+                    &mut scratch.band_re[base + c0..base + c1],
+                    &mut scratch.band_im[base + c0..base + c1],
+                );
+                updates += nx;
+            }
+        }
+        let (ax, ay) = (d[0] * inv_lambda, d[1] * inv_lambda);
+        for (r, orow) in out.chunks_exact_mut(w).enumerate() {
+            let y = self.plate.y_of_row((row0 + r) as f64);
+            let ty = y * ay;
+            for (t, &x) in scratch.ref_cycles.iter_mut().zip(&self.xs) {
+                *t = x * ax + ty;
+            }
+            kernels::conj_reference(
+                self.isa,
+                &scratch.ref_cycles,
+                &scratch.band_re[r * w..(r + 1) * w],
+                &scratch.band_im[r * w..(r + 1) * w],
+                orow,
+            );
+        }
         updates
     }
 
