@@ -8,7 +8,6 @@
 //! pitch p; single-FFT Fresnel above, pitch lambda z / (N p)).
 
 use std::path::Path;
-use std::sync::Arc;
 
 use super::progress::{Progress, ProgressMode};
 use super::spec::{
@@ -217,6 +216,3 @@ pub fn sidecar_json(it: &IterativeSpec, rec: &IterationRecord) -> serde_json::Va
         "quantize_last": it.quantize_last,
     })
 }
-
-/// Shared handle so `Source` can hold the cell.
-pub type CellHandle = Arc<PhaseCell>;

@@ -512,14 +512,15 @@ fn find_resume(
     shard: Option<[u32; 2]>,
     restart: bool,
 ) -> Result<Option<Journal>> {
-    let Some(j) = Journal::read(journal)? else {
-        return Ok(None);
-    };
     if restart {
+        // Also when the journal itself is damaged: --restart is the way out.
         let _ = std::fs::remove_file(data);
         let _ = std::fs::remove_file(journal);
         return Ok(None);
     }
+    let Some(j) = Journal::read(journal)? else {
+        return Ok(None);
+    };
     if j.job_sha256 != spec.sha256 {
         return Err(Error::job(
             &spec.path,

@@ -269,7 +269,6 @@ pub fn compare(
             se += (u / ma - v / mb).powi(2);
         }
     }
-    let _ = h;
     TargetStats {
         correlation: if saa > 0.0 && sbb > 0.0 {
             sab / (saa * sbb).sqrt()
