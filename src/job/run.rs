@@ -977,31 +977,11 @@ pub fn assemble(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
     for k in 0..count {
         let part = part_path(&spec.output, Shard { index: k, count });
         let mp = part_meta_path(&part);
-        let bytes = std::fs::read(&mp).map_err(|_| {
-            Error::job(
-                &spec.path,
-                format!(
-                    "shard {}/{count} is not finished: {} is missing",
-                    k + 1,
-                    mp.display()
-                ),
-            )
-        })?;
-        let m: PartMeta = serde_json::from_slice(&bytes)
-            .map_err(|e| Error::input(&mp, format!("damaged shard record: {e}")))?;
-        if m.job_sha256 != spec.sha256 {
-            return Err(Error::job(
-                &spec.path,
-                format!(
-                    "{} was computed from another version of the job; run that shard again",
-                    part.display()
-                ),
-            ));
-        }
-        if m.rows[0] != next_row || m.row_bytes != row_bytes {
+        let m = read_shard_record(spec, &mp, k, count, next_row)?;
+        if m.row_bytes != row_bytes {
             return Err(Error::input(
                 &mp,
-                format!("rows {:?} do not continue at row {next_row}", m.rows),
+                format!("rows of {} bytes, expected {row_bytes}", m.row_bytes),
             ));
         }
         let len = std::fs::metadata(&part)
@@ -1056,6 +1036,44 @@ pub fn assemble(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
     Ok(summary)
 }
 
+/// Reads shard k of count's record, checks it belongs to this job and continues at `next_row`.
+fn read_shard_record(
+    spec: &JobSpec,
+    rec: &Path,
+    k: u32,
+    count: u32,
+    next_row: u32,
+) -> Result<PartMeta> {
+    let bytes = std::fs::read(rec).map_err(|_| {
+        Error::job(
+            &spec.path,
+            format!(
+                "shard {}/{count} is not finished: {} is missing",
+                k + 1,
+                rec.display()
+            ),
+        )
+    })?;
+    let m: PartMeta = serde_json::from_slice(&bytes)
+        .map_err(|e| Error::input(rec, format!("damaged shard record: {e}")))?;
+    if m.job_sha256 != spec.sha256 {
+        return Err(Error::job(
+            &spec.path,
+            format!(
+                "{} was computed from another version of the job; run that shard again",
+                rec.display()
+            ),
+        ));
+    }
+    if m.rows[0] != next_row {
+        return Err(Error::input(
+            rec,
+            format!("rows {:?} do not continue at row {next_row}", m.rows),
+        ));
+    }
+    Ok(m)
+}
+
 /// Field runs: the shards wrote complete field files; merge their records into the manifest.
 fn assemble_fields(spec: &JobSpec, prep: &Prepared, grid: &FieldGrid) -> Result<RunSummary> {
     let manifest = grid.manifest_path();
@@ -1096,33 +1114,7 @@ fn assemble_fields(spec: &JobSpec, prep: &Prepared, grid: &FieldGrid) -> Result<
     let (mut entries, mut updates, mut next_row, mut recs) = (Vec::new(), 0u64, 0u32, Vec::new());
     for k in 0..count {
         let rec = part_path(&manifest, Shard { index: k, count });
-        let bytes = std::fs::read(&rec).map_err(|_| {
-            Error::job(
-                &spec.path,
-                format!(
-                    "shard {}/{count} is not finished: {} is missing",
-                    k + 1,
-                    rec.display()
-                ),
-            )
-        })?;
-        let m: PartMeta = serde_json::from_slice(&bytes)
-            .map_err(|e| Error::input(&rec, format!("damaged shard record: {e}")))?;
-        if m.job_sha256 != spec.sha256 {
-            return Err(Error::job(
-                &spec.path,
-                format!(
-                    "{} was computed from another version of the job; run that shard again",
-                    rec.display()
-                ),
-            ));
-        }
-        if m.rows[0] != next_row {
-            return Err(Error::input(
-                &rec,
-                format!("rows {:?} do not continue at row {next_row}", m.rows),
-            ));
-        }
+        let m = read_shard_record(spec, &rec, k, count, next_row)?;
         next_row = m.rows[1];
         updates += m.updates;
         entries.extend(m.fields);
