@@ -938,39 +938,8 @@ pub fn assemble(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
     } else {
         dir.clone()
     };
-    let name = spec
-        .output
-        .file_name()
-        .map(|f| f.to_string_lossy().into_owned())
-        .unwrap_or_default();
     // Find the split: any NAME.part-K-of-N.json present.
-    let mut count = None;
-    for e in std::fs::read_dir(&dir_read)
-        .map_err(|e| Error::io(&dir_read, e))?
-        .flatten()
-    {
-        let f = e.file_name().to_string_lossy().into_owned();
-        if let Some(rest) = f
-            .strip_prefix(&format!("{name}.part-"))
-            .and_then(|r| r.strip_suffix(".json"))
-        {
-            if let Some((_, n)) = rest.split_once("-of-") {
-                if let Ok(n) = n.parse::<u32>() {
-                    count = Some(count.map_or(n, |c: u32| c.max(n)));
-                }
-            }
-        }
-    }
-    let count = count.ok_or_else(|| {
-        Error::job(
-            &spec.path,
-            format!(
-                "no finished shard parts of {} found in {}",
-                name,
-                dir_read.display()
-            ),
-        )
-    })?;
+    let count = shard_count(spec, &dir_read, &spec.output, ".json")?;
     let row_bytes = prep.encoding.row_bytes(spec.plate.width as usize) as u64;
     let mut metas = Vec::new();
     let mut next_row = 0u32;
@@ -1036,6 +1005,39 @@ pub fn assemble(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
     Ok(summary)
 }
 
+/// N of the shard split whose records `BASE.part-K-of-N{suffix}` lie in `dir` (the largest N seen).
+fn shard_count(spec: &JobSpec, dir: &Path, base: &Path, suffix: &str) -> Result<u32> {
+    let name = base
+        .file_name()
+        .map(|f| f.to_string_lossy().into_owned())
+        .unwrap_or_default();
+    let prefix = format!("{name}.part-");
+    let mut count = None;
+    for e in std::fs::read_dir(dir)
+        .map_err(|e| Error::io(dir, e))?
+        .flatten()
+    {
+        let f = e.file_name().to_string_lossy().into_owned();
+        let n = f
+            .strip_prefix(&prefix)
+            .and_then(|r| r.strip_suffix(suffix))
+            .and_then(|r| r.split_once("-of-"))
+            .and_then(|(_, n)| n.parse::<u32>().ok());
+        if let Some(n) = n {
+            count = Some(count.map_or(n, |c: u32| c.max(n)));
+        }
+    }
+    count.ok_or_else(|| {
+        Error::job(
+            &spec.path,
+            format!(
+                "no finished shard records of {name} found in {}",
+                dir.display()
+            ),
+        )
+    })
+}
+
 /// Reads shard k of count's record, checks it belongs to this job and continues at `next_row`.
 fn read_shard_record(
     spec: &JobSpec,
@@ -1082,35 +1084,7 @@ fn assemble_fields(spec: &JobSpec, prep: &Prepared, grid: &FieldGrid) -> Result<
         .filter(|d| !d.as_os_str().is_empty())
         .map(Path::to_path_buf)
         .unwrap_or_else(|| PathBuf::from("."));
-    let prefix = format!(
-        "{}.part-",
-        manifest
-            .file_name()
-            .map(|f| f.to_string_lossy().into_owned())
-            .unwrap_or_default()
-    );
-    let mut count = None;
-    for e in std::fs::read_dir(&dir)
-        .map_err(|e| Error::io(&dir, e))?
-        .flatten()
-    {
-        let f = e.file_name().to_string_lossy().into_owned();
-        if let Some((_, n)) = f.strip_prefix(&prefix).and_then(|r| r.split_once("-of-")) {
-            if let Ok(n) = n.parse::<u32>() {
-                count = Some(count.map_or(n, |c: u32| c.max(n)));
-            }
-        }
-    }
-    let count = count.ok_or_else(|| {
-        Error::job(
-            &spec.path,
-            format!(
-                "no finished shard records of {} found in {}",
-                manifest.display(),
-                dir.display()
-            ),
-        )
-    })?;
+    let count = shard_count(spec, &dir, &manifest, "")?;
     let (mut entries, mut updates, mut next_row, mut recs) = (Vec::new(), 0u64, 0u32, Vec::new());
     for k in 0..count {
         let rec = part_path(&manifest, Shard { index: k, count });
