@@ -41,8 +41,13 @@ pub struct FieldEntry {
 pub struct FieldsState {
     /// Finished fields, in order.
     pub done: Vec<FieldEntry>,
-    /// Checkpoints of the current field row's writers (empty at a field-row boundary).
+    /// Checkpoints of the writers of field row `row` (empty before the first band).
     pub writers: Vec<WriterState>,
+    /// Field row of `writers`. A checkpoint taken right after a field row's last band still
+    /// holds that row's writers (they finish when the next row starts), so the row cannot be
+    /// derived from the next plate row.
+    #[serde(default)]
+    pub row: u32,
 }
 
 /// The grid of fields of a plate.
@@ -151,9 +156,22 @@ impl FieldSink {
     /// Starts (or resumes, from `state`) writing fields; `next_row` is the first plate row to come.
     pub fn new(grid: FieldGrid, next_row: u32, state: Option<FieldsState>) -> Result<FieldSink> {
         let state = state.unwrap_or_default();
-        let row = next_row / grid.field[1];
+        let mut row = next_row / grid.field[1];
         let mut writers = Vec::new();
         if !state.writers.is_empty() {
+            row = state.row;
+            let rows = (row * grid.field[1]..((row + 1) * grid.field[1]).min(grid.plate.height))
+                .len() as u32;
+            // Writers of a row are either still filling (next_row inside the row) or complete
+            // (next_row at the row's end); anything else is a journal from another layout.
+            if !(row * grid.field[1] < next_row && next_row <= row * grid.field[1] + rows) {
+                return Err(Error::input(
+                    grid.manifest_path(),
+                    format!(
+                        "resume journal: field row {row} does not hold plate row {next_row}; rerun with --restart"
+                    ),
+                ));
+            }
             for (col, ws) in state.writers.into_iter().enumerate() {
                 let col = col as u32;
                 writers.push(StripWriter::resume(
@@ -211,6 +229,7 @@ impl FieldSink {
         Ok(FieldsState {
             done: self.done.clone(),
             writers: ws,
+            row: self.row,
         })
     }
 
@@ -256,4 +275,98 @@ pub fn validate(field: [i64; 2], path: &Path) -> Result<[u32; 2]> {
         ));
     }
     Ok([field[0] as u32, field[1] as u32])
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::output::tiff::Compression;
+
+    fn grid(dir: &Path) -> FieldGrid {
+        FieldGrid {
+            field: [4, 3],
+            plate: Plate {
+                width: 8,
+                height: 6,
+                pitch: [2e-6, 2e-6],
+                wavelength: 633e-9,
+            },
+            output: dir.join("p.tif"),
+            layout: TiffLayout {
+                width: 8,
+                height: 6,
+                bits_per_sample: 8,
+                compression: Compression::None,
+                rows_per_strip: 1,
+                pixel_pitch_m: (2e-6, 2e-6),
+                software: "test".into(),
+                description: None,
+                bigtiff: None,
+            },
+        }
+    }
+
+    /// Band of one row at plate row r: one 4-byte block per field column.
+    fn band(r: u32) -> Vec<Vec<u8>> {
+        (0..2u8).map(|c| vec![r as u8 * 16 + c; 4]).collect()
+    }
+
+    fn files(dir: &Path) -> Vec<(String, Vec<u8>)> {
+        let mut v: Vec<_> = std::fs::read_dir(dir)
+            .unwrap()
+            .map(|e| e.unwrap().path())
+            .map(|p| {
+                (
+                    p.file_name().unwrap().to_string_lossy().into_owned(),
+                    std::fs::read(&p).unwrap(),
+                )
+            })
+            .collect();
+        v.sort();
+        v
+    }
+
+    /// A checkpoint right after a field row's last band (writers of row 0 still open, next plate
+    /// row 3 = first row of field row 1) must resume row 0's writers, then go on to row 1.
+    #[test]
+    fn checkpoint_at_field_row_boundary_resumes() {
+        let whole = tempfile::tempdir().unwrap();
+        let mut s = FieldSink::new(grid(whole.path()), 0, None).unwrap();
+        for r in 0..6 {
+            s.write_band(r, &band(r)).unwrap();
+        }
+        s.finish_row().unwrap();
+
+        let cut = tempfile::tempdir().unwrap();
+        let mut s = FieldSink::new(grid(cut.path()), 0, None).unwrap();
+        for r in 0..3 {
+            s.write_band(r, &band(r)).unwrap();
+        }
+        let state = s.checkpoint().unwrap();
+        assert_eq!(state.row, 0);
+        drop(s); // killed here: the writers of row 0 never finish
+        let state: FieldsState =
+            serde_json::from_str(&serde_json::to_string(&state).unwrap()).unwrap();
+        let mut s = FieldSink::new(grid(cut.path()), 3, Some(state)).unwrap();
+        for r in 3..6 {
+            s.write_band(r, &band(r)).unwrap();
+        }
+        s.finish_row().unwrap();
+        assert_eq!(s.done.len(), 4);
+        assert_eq!(files(cut.path()), files(whole.path()));
+    }
+
+    /// A journal whose writers' row cannot hold the next plate row is refused, not misapplied.
+    #[test]
+    fn journal_of_another_row_is_refused() {
+        let d = tempfile::tempdir().unwrap();
+        let mut s = FieldSink::new(grid(d.path()), 0, None).unwrap();
+        s.write_band(0, &band(0)).unwrap();
+        let state = s.checkpoint().unwrap();
+        drop(s);
+        let e = FieldSink::new(grid(d.path()), 5, Some(state))
+            .err()
+            .expect("must refuse");
+        assert!(e.to_string().contains("--restart"), "{e}");
+    }
 }
