@@ -2,10 +2,10 @@
 //! reference itself against closed-form optics.
 
 use fringemill::optics::{Plate, Reference};
-use fringemill::synthesis::kernels::KernelIsa;
+use fringemill::synthesis::kernels::{self, KernelIsa};
 use fringemill::synthesis::point_sum::{BandScratch, PointSum};
 use fringemill::synthesis::reference::fringe_at;
-use fringemill::synthesis::{Approximation, Emitter, PointSumOptions};
+use fringemill::synthesis::{Approximation, Emitter, PointSumOptions, Precision};
 use num_complex::Complex64;
 
 /// Small deterministic generator (xorshift64*), so tests need no extra crate.
@@ -82,6 +82,7 @@ fn point_sum_matches_reference_sum() {
                     approximation,
                     obliquity,
                     anti_alias: true,
+                    precision: Precision::F64,
                 };
                 let sum = PointSum::new(plate, reference, emitters.clone(), opts);
                 let portable = PointSum::new(plate, reference, emitters.clone(), opts)
@@ -381,6 +382,7 @@ fn separable_fresnel_matches_per_pixel_path() {
             approximation: Approximation::Fresnel,
             obliquity: false,
             anti_alias: true,
+            precision: Precision::F64,
         };
         let r = Reference::Plane { tilt };
         let fast = PointSum::new(plate, r, emitters.clone(), opts);
@@ -399,4 +401,204 @@ fn separable_fresnel_matches_per_pixel_path() {
             }
         }
     }
+}
+
+/// The f32 exact kernel against the f64 engine (itself checked against the reference sum above):
+/// near scenes (small supports, steep fringes), deep scenes (k r up to 3e6 rad, where a plain f32
+/// phase would be off by radians) and an off-axis scene seen through a 25 degree reference, on
+/// plane and spherical references, with and without obliquity, both kernel copies and several
+/// band sizes. Checked:
+/// - the same support pixels (the update counts are equal; a pixel in one set only would also
+///   show an error of order a / r, far above the bound);
+/// - per pixel |F32 - F64| <= 4e-5 x sum_j a_j / r_j, the phase bound of `kernels::exact32`
+///   (3e-5 rad per term) plus the f32 sum of up to 256 terms;
+/// - |dF| / max |F| <= 1e-4 (the goal the speed work was set);
+/// - the portable and AVX2 copies give the same bits, and so do all band sizes.
+#[test]
+fn f32_exact_kernel_within_bound() {
+    let mut rng = Rng(0xf32f_32f3);
+    let plate = Plate {
+        width: 67,
+        height: 41,
+        pitch: [1.0e-6, 1.2e-6],
+        wavelength: 633e-9,
+    };
+    let tilt = 25f64.to_radians();
+    let s = plate.size();
+    let off_axis: Vec<Emitter> = (0..60)
+        .map(|_| {
+            let z = rng.range(2e-3, 20e-3);
+            Emitter {
+                // Seen from the plate along the reference direction: dx / r near sin 25 deg.
+                pos: [-z * tilt.tan() + rng.range(-1.0, 1.0) * s[0], rng.range(-1.0, 1.0) * s[1], z],
+                amplitude: rng.range(0.2, 1.0),
+                phase: rng.range(0.0, 6.3),
+            }
+        })
+        .collect();
+    let cases: Vec<(&str, Reference, Vec<Emitter>)> = vec![
+        (
+            "near",
+            Reference::Plane { tilt: [0.0, 0.0] },
+            random_scene(&mut rng, 80, &plate, [20e-6, 400e-6]),
+        ),
+        (
+            "deep",
+            Reference::Plane {
+                tilt: [3f64.to_radians(), -2f64.to_radians()],
+            },
+            random_scene(&mut rng, 80, &plate, [0.1, 0.3]),
+        ),
+        (
+            "off-axis",
+            Reference::Plane { tilt: [tilt, 0.0] },
+            off_axis,
+        ),
+        (
+            "spherical",
+            Reference::Spherical {
+                position: [2e-3, -1e-3, 30e-3],
+            },
+            random_scene(&mut rng, 80, &plate, [50e-6, 2e-3]),
+        ),
+    ];
+    let mut worst_rel = 0.0f64;
+    for (name, reference, emitters) in cases {
+        for obliquity in [false, true] {
+            let opts = PointSumOptions {
+                approximation: Approximation::Exact,
+                obliquity,
+                anti_alias: true,
+                precision: Precision::F64,
+            };
+            let opts32 = PointSumOptions {
+                precision: Precision::F32,
+                ..opts
+            };
+            let f64_sum = PointSum::new(plate, reference, emitters.clone(), opts);
+            let (w, h) = (plate.width as usize, plate.height as usize);
+            let mut exact = vec![Complex64::new(0.0, 0.0); w * h];
+            let n64 = f64_sum.compute_band(0, h, &mut exact, &mut BandScratch::default());
+            assert!(n64 > 0, "{name}: no support on the plate");
+            // sum_j a_j / r_j per pixel (the scale of the bound).
+            let scale: Vec<f64> = (0..h)
+                .flat_map(|i| (0..w).map(move |j| (i, j)))
+                .map(|(i, j)| {
+                    let (x, y) = (plate.x_of_col(j as f64), plate.y_of_row(i as f64));
+                    emitters
+                        .iter()
+                        .map(|e| {
+                            let d = [x - e.pos[0], y - e.pos[1], e.pos[2]];
+                            e.amplitude / (d[0] * d[0] + d[1] * d[1] + d[2] * d[2]).sqrt()
+                        })
+                        .sum()
+                })
+                .collect();
+            let maxf = exact.iter().map(|f| f.norm()).fold(0.0, f64::max);
+            let mut first: Option<Vec<Complex64>> = None;
+            for isa in kernels::available() {
+                let sum32 = PointSum::new(plate, reference, emitters.clone(), opts32).with_isa(isa);
+                let mut f32_whole = vec![Complex64::new(0.0, 0.0); w * h];
+                let n32 = sum32.compute_band(0, h, &mut f32_whole, &mut BandScratch::default());
+                assert_eq!(n32, n64, "{name} obliquity={obliquity}: support pixel counts differ");
+                for (idx, (a, b)) in f32_whole.iter().zip(&exact).enumerate() {
+                    let d = (a - b).norm();
+                    assert!(
+                        d <= 4e-5 * scale[idx],
+                        "{name} obliquity={obliquity} {isa:?} pixel {idx}: {a} vs {b}, {:e} of sum a/r",
+                        d / scale[idx]
+                    );
+                    worst_rel = worst_rel.max(d / maxf);
+                }
+                for band in [1, 7] {
+                    assert!(
+                        whole_plate(&sum32, band) == f32_whole,
+                        "{name}: band {band} differs in bits"
+                    );
+                }
+                match &first {
+                    None => first = Some(f32_whole),
+                    Some(f) => assert!(*f == f32_whole, "{name}: kernel copies differ in bits"),
+                }
+            }
+        }
+    }
+    eprintln!("f32 exact kernel: worst |dF| / max|F| = {worst_rel:.2e}");
+    assert!(worst_rel <= 1e-4, "worst |dF| / max|F| = {worst_rel:e}");
+}
+
+/// Emitters placed so that one pixel sits within 1e-6 (in direction cosines) of the support edge,
+/// in x and in y, on either side: there the f32 test cannot decide, and the kernel must defer to
+/// the f64 one. Near emitters (per-pixel square root) and far ones (polynomial path, whose
+/// segments are classified as inside, outside or edge from margins at their anchors), under a
+/// tilted plane and a spherical reference. Each emitter alone must give the f64 engine's pixel
+/// count and field (an edge pixel taken or dropped wrongly is an error of a / r at that pixel).
+#[test]
+fn f32_support_edges_match_f64() {
+    let plate = Plate {
+        width: 40,
+        height: 9,
+        pitch: [1.0e-6, 1.0e-6],
+        wavelength: 633e-9,
+    };
+    let half = plate.nyquist_cosines();
+    let (x, y) = (plate.x_of_col(19.0), plate.y_of_row(4.0));
+    let refs = [
+        Reference::Plane {
+            tilt: [5f64.to_radians(), -3f64.to_radians()],
+        },
+        Reference::Spherical {
+            position: [1e-3, 0.5e-3, 20e-3],
+        },
+    ];
+    let mut checked = 0;
+    for reference in refs {
+        let rd = reference.direction(x, y);
+        for z0 in [30e-6, 2e-3] {
+            for axis in 0..2 {
+                for k in -40..=40 {
+                    let delta = k as f64 * 2.5e-8;
+                    let z = z0 * (1.0 + (k + 40) as f64 * 0.013);
+                    // Direction cosines of the pixel seen from the emitter: the support edge
+                    // (plus delta) on one axis, the reference's direction on the other.
+                    let mut dir = rd;
+                    dir[axis] += half[axis] + delta;
+                    let sz = (1.0 - dir[0] * dir[0] - dir[1] * dir[1]).sqrt();
+                    let e = Emitter {
+                        pos: [x - z * dir[0] / sz, y - z * dir[1] / sz, z],
+                        amplitude: 1.0,
+                        phase: 0.4,
+                    };
+                    let opts = PointSumOptions::default();
+                    let opts32 = PointSumOptions {
+                        precision: Precision::F32,
+                        ..opts
+                    };
+                    let (w, h) = (plate.width as usize, plate.height as usize);
+                    let mut a = vec![Complex64::new(0.0, 0.0); w * h];
+                    let mut b = a.clone();
+                    let n64 = PointSum::new(plate, reference, vec![e], opts).compute_band(
+                        0,
+                        h,
+                        &mut a,
+                        &mut BandScratch::default(),
+                    );
+                    let n32 = PointSum::new(plate, reference, vec![e], opts32).compute_band(
+                        0,
+                        h,
+                        &mut b,
+                        &mut BandScratch::default(),
+                    );
+                    let what = format!("{reference:?} z {z:e} axis {axis} delta {delta:e}");
+                    assert!(n64 > 0, "{what}: no support");
+                    assert_eq!(n32, n64, "{what}");
+                    for (p, q) in a.iter().zip(&b) {
+                        assert!((p - q).norm() <= 1e-4 / z, "{what}: {p} vs {q}");
+                    }
+                    checked += 1;
+                }
+            }
+        }
+    }
+    assert_eq!(checked, 2 * 2 * 2 * 81);
 }

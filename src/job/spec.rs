@@ -12,7 +12,7 @@ use crate::encoding::Encoding;
 use crate::error::{Error, Result};
 use crate::optics::{Plate, Reference};
 use crate::output::tiff::Compression;
-use crate::synthesis::{Approximation, PointSumOptions};
+use crate::synthesis::{Approximation, PointSumOptions, Precision};
 
 /// A number or an [x, y] pair (pitch).
 #[derive(Deserialize, Debug, Clone, Copy)]
@@ -96,6 +96,8 @@ pub struct RawSynthesis {
     pub approximation: Option<String>,
     /// Include the obliquity factor z / r (default false).
     pub obliquity: Option<bool>,
+    /// Exact kernel arithmetic: "f64" (default) or "f32".
+    pub precision: Option<String>,
     /// Rows computed together per task (default: chosen from the width).
     pub band_rows: Option<i64>,
     /// Iterative: "fourier" or "fresnel".
@@ -548,6 +550,15 @@ impl JobSpec {
                 )))
             }
         };
+        let precision = match s.precision.as_deref().unwrap_or("f64") {
+            "f64" => Precision::F64,
+            "f32" => Precision::F32,
+            other => {
+                return Err(bad(format!(
+                    "[synthesis] precision = \"{other}\" is not one of \"f64\", \"f32\""
+                )))
+            }
+        };
         let band_rows = match s.band_rows {
             None => None,
             Some(b) if (1..=65536).contains(&b) => Some(b as usize),
@@ -651,6 +662,7 @@ impl JobSpec {
                 approximation,
                 obliquity: s.obliquity.unwrap_or(false),
                 anti_alias: true,
+                precision,
             },
             method,
             band_rows,

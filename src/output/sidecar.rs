@@ -167,6 +167,7 @@ pub fn to_json(i: &SidecarInput) -> Value {
         "synthesis": {
             "method": match i.spec.method { crate::job::spec::Method::PointSum => "point-sum", crate::job::spec::Method::Iterative(_) => "iterative" },
             "approximation": s.approximation.name(),
+            "precision": s.precision.name(),
             "obliquity": s.obliquity,
             "anti_aliasing": "emitter j contributes where |(d_j - d_R)_x| <= lambda / (2 px) and likewise in y (d: local direction cosines)",
             "fringe_term": "F = O conj(R), O = sum a_j exp(i (k r_j + phi_j)) / r_j",

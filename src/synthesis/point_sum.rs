@@ -12,15 +12,40 @@
 
 use num_complex::Complex64;
 
-use super::kernels::{self, EmitterRow, KernelIsa, RowInputs};
+use super::kernels::{self, EmitterRow, KernelIsa, Row32, RowInputs, PAD};
 use super::support::{direction_window, plate_rows, row_columns};
-use super::{Approximation, Emitter, PointSumOptions};
+use super::{Approximation, Emitter, PointSumOptions, Precision};
+
+/// The f32 exact kernel sums this many consecutive emitters (by index, so the grouping is the
+/// same for every band and thread count) in f32, then adds the group into the f64 row sums.
+const F32_GROUP: usize = 256;
 use crate::optics::{Plate, Reference};
 
 /// phi / (2 pi) reduced to [0, 1).
 fn reduced_cycles(phase: f64) -> f64 {
     let t = phase / (2.0 * std::f64::consts::PI);
     t - t.floor()
+}
+
+/// Adds the f32 sums of an emitter group over the columns it touched into the f64 row sums and
+/// clears them.
+fn flush_group(
+    touched: &mut (usize, usize),
+    re32: &mut [f32],
+    im32: &mut [f32],
+    re: &mut [f64],
+    im: &mut [f64],
+) {
+    let (lo, hi) = *touched;
+    if lo < hi {
+        for c in lo..hi {
+            re[c] += re32[c] as f64;
+            im[c] += im32[c] as f64;
+        }
+        re32[lo..hi].fill(0.0);
+        im32[lo..hi].fill(0.0);
+    }
+    *touched = (re.len(), 0);
 }
 
 /// Decides whether an emitter is seen from a point of the plate (occlusion by the scene).
@@ -55,6 +80,8 @@ pub struct PointSum {
     tile_cols: usize,
     /// Use the separable Fresnel path where it applies (plane reference, one channel, no occlusion).
     separable: bool,
+    /// f32 exact kernel: distance from which the polynomial path is used.
+    poly_min_distance: f64,
 }
 
 /// Scratch buffers a worker reuses from band to band.
@@ -71,6 +98,10 @@ pub struct BandScratch {
     band_im: Vec<f64>,
     col_re: Vec<f64>,
     col_im: Vec<f64>,
+    re32: Vec<f32>,
+    im32: Vec<f32>,
+    rdx32: Vec<f32>,
+    rdy32: Vec<f32>,
     /// visible[k * tiles + t]: candidate k seen from tile t's centre.
     visible: Vec<bool>,
 }
@@ -136,6 +167,7 @@ impl PointSum {
             visibility: None,
             tile_cols: 512,
             separable: true,
+            poly_min_distance: kernels::poly_min_distance(plate.pitch[0], plate.wavelength),
         }
     }
 
@@ -269,6 +301,19 @@ impl PointSum {
                 }
             }
         }
+        let fast = self.opts.approximation == Approximation::Exact
+            && self.opts.precision == Precision::F32;
+        if fast {
+            for v in [
+                &mut scratch.re32,
+                &mut scratch.im32,
+                &mut scratch.rdx32,
+                &mut scratch.rdy32,
+            ] {
+                v.clear();
+                v.resize(w + PAD, 0.0);
+            }
+        }
         let single = self.channels.len() == 1;
         if !single {
             scratch.sum_row.resize(w, Complex64::new(0.0, 0.0));
@@ -297,6 +342,30 @@ impl PointSum {
                         }
                     }
                 }
+                if fast {
+                    for (d, s) in scratch.rdx32.iter_mut().zip(&scratch.ref_dir_x) {
+                        *d = *s as f32;
+                    }
+                    for (d, s) in scratch.rdy32.iter_mut().zip(&scratch.ref_dir_y) {
+                        *d = *s as f32;
+                    }
+                }
+                let mut ref_step = [0.0f64; 2];
+                if fast && matches!(ch.reference, Reference::Spherical { .. }) {
+                    for c in 1..w {
+                        ref_step[0] = ref_step[0]
+                            .max((scratch.ref_dir_x[c] - scratch.ref_dir_x[c - 1]).abs());
+                        ref_step[1] = ref_step[1]
+                            .max((scratch.ref_dir_y[c] - scratch.ref_dir_y[c - 1]).abs());
+                    }
+                }
+                let r32 = Row32 {
+                    rdx: &scratch.rdx32,
+                    rdy: &scratch.rdy32,
+                    pitch: self.plate.pitch[0],
+                    ref_step,
+                    poly_min_distance: self.poly_min_distance,
+                };
                 let (wx, wy) = self.row_window(&ch.reference, y);
                 let inputs = RowInputs {
                     xs: &self.xs,
@@ -305,6 +374,11 @@ impl PointSum {
                     half_band: self.half_band,
                     inv_lambda,
                 };
+                let (re, im) = (&mut scratch.re, &mut scratch.im);
+                let (re32, im32) = (&mut scratch.re32, &mut scratch.im32);
+                // f32 path: sums of the current emitter group over the columns [lo, hi) it touched.
+                let mut group = usize::MAX;
+                let mut touched = (w, 0usize);
                 let k0 = cands.partition_point(|&j| (j as usize) < ch.start);
                 let k1 = cands.partition_point(|&j| (j as usize) < ch.end);
                 for (k, &j) in cands.iter().enumerate().take(k1).skip(k0) {
@@ -325,25 +399,23 @@ impl PointSum {
                         phase_cycles: reduced_cycles(e.phase),
                         obliquity: self.opts.obliquity,
                     };
-                    let mut add = |a: usize, b: usize| match self.opts.approximation {
-                        Approximation::Exact => kernels::accumulate_exact(
-                            self.isa,
-                            &inputs,
-                            &er,
-                            a,
-                            b,
-                            &mut scratch.re,
-                            &mut scratch.im,
+                    if fast {
+                        if j as usize / F32_GROUP != group {
+                            flush_group(&mut touched, re32, im32, re, im);
+                            group = j as usize / F32_GROUP;
+                        }
+                        touched = (touched.0.min(c0), touched.1.max(c1));
+                    }
+                    let mut add = |a: usize, b: usize| match (self.opts.approximation, fast) {
+                        (Approximation::Exact, true) => kernels::accumulate_exact32(
+                            self.isa, &inputs, &r32, &er, a, b, re32, im32,
                         ),
-                        Approximation::Fresnel => kernels::accumulate_fresnel(
-                            self.isa,
-                            &inputs,
-                            &er,
-                            a,
-                            b,
-                            &mut scratch.re,
-                            &mut scratch.im,
-                        ),
+                        (Approximation::Exact, false) => {
+                            kernels::accumulate_exact(self.isa, &inputs, &er, a, b, re, im)
+                        }
+                        (Approximation::Fresnel, _) => {
+                            kernels::accumulate_fresnel(self.isa, &inputs, &er, a, b, re, im)
+                        }
                     };
                     if self.visibility.is_some() {
                         for t in c0 / self.tile_cols..=(c1 - 1) / self.tile_cols {
@@ -357,6 +429,9 @@ impl PointSum {
                     } else {
                         updates += add(c0, c1);
                     }
+                }
+                if fast {
+                    flush_group(&mut touched, re32, im32, re, im);
                 }
                 // O_c conj(R_c), R's phase in cycles (path length / lambda).
                 match ch.reference {

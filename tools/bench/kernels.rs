@@ -1,6 +1,6 @@
 //! Criterion benches of the hot kernels.
 //!
-//! * `point_sum/{exact,fresnel}/{avx2,portable}`: `PointSum::compute_band` on one band of a plate where
+//! * `point_sum/{exact_f32,exact,fresnel}/{avx2,portable}`: `PointSum::compute_band` on one band of a plate where
 //!   every emitter's anti-aliasing support covers every pixel (pitch 0.4 um at 633 nm: lambda / 2p =
 //!   0.79, while no emitter is seen at a direction cosine above 0.15), so the work is exactly
 //!   points x pixels; throughput is reported in point-pixel updates (`Throughput::Elements`). One core.
@@ -19,9 +19,9 @@ use criterion::{black_box, criterion_group, criterion_main, BenchmarkId, Criteri
 use fringemill::optics::fft2d::Fft2d;
 use fringemill::optics::propagation::{Grid, PropagationPlanner, PropagationRecipe};
 use fringemill::optics::{Plate, Reference};
-use fringemill::synthesis::kernels::KernelIsa;
+use fringemill::synthesis::kernels::{self, KernelIsa};
 use fringemill::synthesis::point_sum::{BandScratch, PointSum};
-use fringemill::synthesis::{Approximation, Emitter, PointSumOptions};
+use fringemill::synthesis::{Approximation, Emitter, PointSumOptions, Precision};
 use num_complex::{Complex32, Complex64};
 use rayon::prelude::*;
 
@@ -74,18 +74,28 @@ fn point_sum(c: &mut Criterion) {
         .measurement_time(Duration::from_secs(3))
         .warm_up_time(Duration::from_secs(1));
     g.throughput(Throughput::Elements(work));
-    let mut isas = vec![("portable", KernelIsa::Portable)];
-    #[cfg(target_arch = "x86_64")]
-    if std::arch::is_x86_feature_detected!("avx2") {
-        isas.insert(0, ("avx2", KernelIsa::Avx2));
-    }
-    for (aname, approximation) in [
-        ("exact", Approximation::Exact),
-        ("fresnel", Approximation::Fresnel),
+    let isas: Vec<(&str, KernelIsa)> = kernels::available()
+        .into_iter()
+        .rev()
+        .map(|i| match i {
+            KernelIsa::Portable => ("portable", i),
+            KernelIsa::Avx2 => ("avx2", i),
+            KernelIsa::Avx512 => ("avx512", i),
+        })
+        .collect();
+    for (aname, approximation, precision) in [
+        ("exact_f32", Approximation::Exact, Precision::F32),
+        ("exact", Approximation::Exact, Precision::F64),
+        ("fresnel", Approximation::Fresnel, Precision::F64),
     ] {
         for &(iname, isa) in &isas {
+            // Only the f32 exact kernel has an AVX-512 copy.
+            if isa == KernelIsa::Avx512 && precision != Precision::F32 {
+                continue;
+            }
             let opts = PointSumOptions {
                 approximation,
+                precision,
                 ..PointSumOptions::default()
             };
             let ps = PointSum::new(

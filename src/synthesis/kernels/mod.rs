@@ -19,6 +19,9 @@
 
 use num_complex::Complex64;
 
+mod exact32;
+pub use exact32::{poly_min_distance, Row32, AMBIGUOUS, LANES, PAD};
+
 /// Per-row inputs shared by every emitter.
 pub struct RowInputs<'a> {
     /// x of each column centre, metres.
@@ -229,7 +232,7 @@ pub fn fresnel_columns(
     match isa {
         #[cfg(target_arch = "x86_64")]
         // SAFETY: as in `accumulate_exact`.
-        KernelIsa::Avx2 => unsafe { fresnel_columns_avx2(ri, xj, z, amplitude, c0, c1, ure, uim) },
+        KernelIsa::Avx2 | KernelIsa::Avx512 => unsafe { fresnel_columns_avx2(ri, xj, z, amplitude, c0, c1, ure, uim) },
         _ => fresnel_columns_generic(ri, xj, z, amplitude, c0, c1, ure, uim),
     }
 }
@@ -254,7 +257,7 @@ pub fn mac(
     match isa {
         #[cfg(target_arch = "x86_64")]
         // SAFETY: as in `accumulate_exact`.
-        KernelIsa::Avx2 => unsafe { mac_avx2(cr, ci, ure, uim, re, im) },
+        KernelIsa::Avx2 | KernelIsa::Avx512 => unsafe { mac_avx2(cr, ci, ure, uim, re, im) },
         _ => mac_generic(cr, ci, ure, uim, re, im),
     }
 }
@@ -286,7 +289,7 @@ pub fn conj_reference(isa: KernelIsa, t: &[f64], re: &[f64], im: &[f64], out: &m
     match isa {
         #[cfg(target_arch = "x86_64")]
         // SAFETY: as in `accumulate_exact`.
-        KernelIsa::Avx2 => unsafe { conj_reference_avx2(t, re, im, out) },
+        KernelIsa::Avx2 | KernelIsa::Avx512 => unsafe { conj_reference_avx2(t, re, im, out) },
         _ => conj_reference_generic(t, re, im, out),
     }
 }
@@ -322,18 +325,124 @@ unsafe fn fresnel_avx2(
 pub enum KernelIsa {
     /// Portable code (SSE2 on x86-64).
     Portable,
-    /// AVX2, four f64 lanes.
+    /// AVX2 and FMA: four f64 or eight f32 lanes.
     Avx2,
+    /// AVX-512 (F, VL, DQ) besides AVX2 and FMA: the f32 exact kernel in sixteen lanes; the
+    /// other kernels run their AVX2 copies.
+    Avx512,
 }
 
-/// The best copy this CPU runs (`FRINGEMILL_PORTABLE=1` in the environment forces the portable one).
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2,fma,avx512f,avx512vl,avx512dq")]
+unsafe fn exact32_avx512<const OBLIQUE: bool>(
+    ri: &RowInputs,
+    r32: &Row32,
+    e: &EmitterRow,
+    c0: usize,
+    c1: usize,
+    re: &mut [f32],
+    im: &mut [f32],
+) -> u64 {
+    exact32::exact32_generic::<OBLIQUE>(ri, r32, e, c0, c1, re, im)
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2,fma")]
+unsafe fn exact32_avx2<const OBLIQUE: bool>(
+    ri: &RowInputs,
+    r32: &Row32,
+    e: &EmitterRow,
+    c0: usize,
+    c1: usize,
+    re: &mut [f32],
+    im: &mut [f32],
+) -> u64 {
+    exact32::exact32_generic::<OBLIQUE>(ri, r32, e, c0, c1, re, im)
+}
+
+/// Adds one emitter's exact spherical wave over columns [c0, c1) into the f32 row sums `re`, `im`
+/// (see [`exact32`] for the phase split and the error bound). Returns the pixels inside the
+/// support, the same set as [`accumulate_exact`].
+///
+/// # Panics
+/// If `re`, `im`, `r32.rdx` or `r32.rdy` are shorter than `c1 + PAD`.
+#[allow(clippy::too_many_arguments)]
+pub fn accumulate_exact32(
+    isa: KernelIsa,
+    ri: &RowInputs,
+    r32: &Row32,
+    e: &EmitterRow,
+    c0: usize,
+    c1: usize,
+    re: &mut [f32],
+    im: &mut [f32],
+) -> u64 {
+    assert!(
+        re.len() >= c1 + PAD
+            && im.len() >= c1 + PAD
+            && r32.rdx.len() >= c1 + PAD
+            && r32.rdy.len() >= c1 + PAD
+            && ri.xs.len() >= c1,
+        "f32 row buffers must be padded by PAD"
+    );
+    match (isa, e.obliquity) {
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: as in `accumulate_exact` (`detect` checks AVX2 and FMA).
+        (KernelIsa::Avx2, false) => unsafe { exact32_avx2::<false>(ri, r32, e, c0, c1, re, im) },
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: as above.
+        (KernelIsa::Avx2, true) => unsafe { exact32_avx2::<true>(ri, r32, e, c0, c1, re, im) },
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: `KernelIsa::Avx512` comes from `detect` after AVX-512 F, VL, DQ, AVX2 and FMA.
+        (KernelIsa::Avx512, false) => unsafe {
+            exact32_avx512::<false>(ri, r32, e, c0, c1, re, im)
+        },
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: as above.
+        (KernelIsa::Avx512, true) => unsafe { exact32_avx512::<true>(ri, r32, e, c0, c1, re, im) },
+        (_, false) => exact32::exact32_generic::<false>(ri, r32, e, c0, c1, re, im),
+        (_, true) => exact32::exact32_generic::<true>(ri, r32, e, c0, c1, re, im),
+    }
+}
+
+/// Every copy this CPU can run, portable first (tests and benches compare them).
+pub fn available() -> Vec<KernelIsa> {
+    let mut v = vec![KernelIsa::Portable];
+    #[cfg(target_arch = "x86_64")]
+    {
+        if std::arch::is_x86_feature_detected!("avx2") && std::arch::is_x86_feature_detected!("fma")
+        {
+            v.push(KernelIsa::Avx2);
+            if std::arch::is_x86_feature_detected!("avx512f")
+                && std::arch::is_x86_feature_detected!("avx512vl")
+                && std::arch::is_x86_feature_detected!("avx512dq")
+            {
+                v.push(KernelIsa::Avx512);
+            }
+        }
+    }
+    v
+}
+
+/// The best copy this CPU runs. In the environment, `FRINGEMILL_PORTABLE=1` forces the portable
+/// copy and `FRINGEMILL_NO_AVX512=1` stops at AVX2.
 pub fn detect() -> KernelIsa {
     if std::env::var_os("FRINGEMILL_PORTABLE").is_some_and(|v| v == "1") {
         return KernelIsa::Portable;
     }
     #[cfg(target_arch = "x86_64")]
     {
-        if std::arch::is_x86_feature_detected!("avx2") {
+        let avx2 = std::arch::is_x86_feature_detected!("avx2")
+            && std::arch::is_x86_feature_detected!("fma");
+        if avx2
+            && std::arch::is_x86_feature_detected!("avx512f")
+            && std::arch::is_x86_feature_detected!("avx512vl")
+            && std::arch::is_x86_feature_detected!("avx512dq")
+            && std::env::var_os("FRINGEMILL_NO_AVX512").is_none_or(|v| v != "1")
+        {
+            return KernelIsa::Avx512;
+        }
+        if avx2 {
             return KernelIsa::Avx2;
         }
     }
@@ -355,7 +464,7 @@ pub fn accumulate_exact(
         #[cfg(target_arch = "x86_64")]
         // SAFETY: `KernelIsa::Avx2` is only produced by `detect` after the CPU reported AVX2
         // (or by tests that check the same first).
-        KernelIsa::Avx2 => unsafe { exact_avx2(ri, e, c0, c1, re, im) },
+        KernelIsa::Avx2 | KernelIsa::Avx512 => unsafe { exact_avx2(ri, e, c0, c1, re, im) },
         _ => exact_generic(ri, e, c0, c1, re, im),
     }
 }
@@ -373,7 +482,7 @@ pub fn accumulate_fresnel(
     match isa {
         #[cfg(target_arch = "x86_64")]
         // SAFETY: as in `accumulate_exact`.
-        KernelIsa::Avx2 => unsafe { fresnel_avx2(ri, e, c0, c1, re, im) },
+        KernelIsa::Avx2 | KernelIsa::Avx512 => unsafe { fresnel_avx2(ri, e, c0, c1, re, im) },
         _ => fresnel_generic(ri, e, c0, c1, re, im),
     }
 }
@@ -404,7 +513,7 @@ mod unit_tests {
     /// The AVX2 copy and the portable copy give the same bits.
     #[test]
     fn isa_copies_are_bit_identical() {
-        if detect() != KernelIsa::Avx2 {
+        if !available().contains(&KernelIsa::Avx2) {
             return; // nothing to compare on this CPU
         }
         let n = 103;
