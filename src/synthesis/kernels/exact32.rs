@@ -9,7 +9,7 @@
 //!   Taylor remainder below [`POLY_PHASE_TOL`] = 2e-6 cycles; amplitude as a quadratic in n.
 //!   No square root or division per pixel. Segments of [`POLY_LANES`] = 16 pixels whose support
 //!   margins at the anchor (f64) exceed what the segment can change are taken whole; the others
-//!   get the f64 test per pixel. See [`exact32_poly`].
+//!   get the f64 test per pixel (bounds in `exact32_poly`).
 //! * Near path (closer emitters): per pixel, r - r_a = u (u + 2 dx_a) / (r + r_a) with
 //!   u = x - x_a and r from an f32 square root (no cancellation: the numerator is exact to f32
 //!   rounding, the denominator only needs relative accuracy). With |u| <= 4 pitches the remainder
@@ -50,7 +50,7 @@ pub struct Row32<'a> {
     pub rdx: &'a [f32],
     /// Same for y.
     pub rdy: &'a [f32],
-    /// Column pitch, metres (xs[c + i] = xs[c] + i p).
+    /// Column pitch, metres (`xs[c + i] = xs[c] + i p`).
     pub pitch: f64,
     /// Largest change of the reference direction cosines (x, y) between neighbouring columns
     /// of the row (0 for a plane reference).

@@ -19,7 +19,7 @@
 
 use num_complex::Complex64;
 
-mod exact32;
+pub mod exact32;
 pub use exact32::{poly_min_distance, Row32, AMBIGUOUS, LANES, PAD};
 
 /// Per-row inputs shared by every emitter.
