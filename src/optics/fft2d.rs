@@ -210,8 +210,7 @@ impl<T: FftNum> Fft2d<T> {
         let (row_fft, col_fft) = self.plans(inverse);
 
         rows_in_place(data, nx, row_fft, |i, row| row_hook(i, row), |_, _| {});
-        transpose_into(data, nx, 0, ny, scratch, ny, 0, None);
-        rows_in_place(scratch, ny, col_fft, |_, _| {}, |j, col| col_hook(j, col));
+        columns_into(data, nx, ny, col_fft, scratch, |j, col| col_hook(j, col));
         transpose_into(scratch, ny, 0, nx, data, nx, 0, None);
     }
 }
@@ -241,6 +240,56 @@ pub(crate) fn rows_in_place<T, B, A>(
                 before(i, row);
                 fft.process_with_scratch(row, fft_scratch);
                 after(i, row);
+            },
+        );
+}
+
+/// Columns per task of [`columns_into`]: a strip of 16 columns reads whole 128-byte row segments
+/// (complex f32) and its transposed copy (16 x ny values) stays in L2 while it is transformed.
+const STRIP: usize = 16;
+
+/// Column FFTs fused with the transpose: for each strip of [`STRIP`] columns of the row-major
+/// `ny x nx` buffer `data`, copies the columns into their place in `out` (transposed layout:
+/// column j is `out[j * ny..(j + 1) * ny]`), runs `fft` on each while it is in cache, then
+/// `after(j, col)`. One pass over memory instead of a transpose followed by a row pass.
+pub(crate) fn columns_into<T, A>(
+    data: &[Complex<T>],
+    nx: usize,
+    ny: usize,
+    fft: &Arc<dyn Fft<T>>,
+    out: &mut [Complex<T>],
+    after: A,
+) where
+    T: FftNum,
+    A: Fn(usize, &mut [Complex<T>]) + Sync,
+{
+    debug_assert_eq!(fft.len(), ny);
+    let scratch_len = fft.get_inplace_scratch_len();
+    out[..nx * ny]
+        .par_chunks_mut(ny * STRIP)
+        .enumerate()
+        .for_each_init(
+            || vec![Complex::new(T::zero(), T::zero()); scratch_len],
+            |fft_scratch, (s, chunk)| {
+                let c0 = s * STRIP;
+                let bc = chunk.len() / ny;
+                // Gather in row blocks so each destination column segment is written while the
+                // block's rows are in L1.
+                let mut r0 = 0;
+                while r0 < ny {
+                    let r1 = (r0 + TILE).min(ny);
+                    for b in 0..bc {
+                        let dst = &mut chunk[b * ny + r0..b * ny + r1];
+                        for (k, d) in dst.iter_mut().enumerate() {
+                            *d = data[(r0 + k) * nx + c0 + b];
+                        }
+                    }
+                    r0 = r1;
+                }
+                for (b, col) in chunk.chunks_exact_mut(ny).enumerate() {
+                    fft.process_with_scratch(col, fft_scratch);
+                    after(c0 + b, col);
+                }
             },
         );
 }
