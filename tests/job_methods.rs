@@ -203,11 +203,7 @@ fn iterative_job_errors_are_one_line() {
 #[test]
 fn f32_precision_plate_matches_f64_plate() {
     let d = tempfile::tempdir().unwrap();
-    std::fs::copy(
-        samples().join("badge_points.ply"),
-        d.path().join("pts.ply"),
-    )
-    .unwrap();
+    std::fs::copy(samples().join("badge_points.ply"), d.path().join("pts.ply")).unwrap();
     let mut plates = Vec::new();
     for precision in ["f64", "f32"] {
         let job = d.path().join(format!("{precision}.toml"));
@@ -228,7 +224,9 @@ fn f32_precision_plate_matches_f64_plate() {
             serde_json::from_slice(&std::fs::read(&s.sidecar).unwrap()).unwrap();
         assert_eq!(side["synthesis"]["precision"], precision);
         assert!(s.updates > 0);
-        plates.push(common::decode(&d.path().join(format!("out/{precision}.tif"))));
+        plates.push(common::decode(
+            &d.path().join(format!("out/{precision}.tif")),
+        ));
     }
     let (a, b) = (&plates[0].2, &plates[1].2);
     assert_eq!(a.len(), b.len());
@@ -239,5 +237,8 @@ fn f32_precision_plate_matches_f64_plate() {
         moved += (diff != 0) as usize;
     }
     assert!(moved * 200 < a.len(), "{moved} of {} pixels moved", a.len());
-    eprintln!("f32 vs f64 plate: {moved} of {} pixels one level apart", a.len());
+    eprintln!(
+        "f32 vs f64 plate: {moved} of {} pixels one level apart",
+        a.len()
+    );
 }

@@ -430,7 +430,11 @@ fn f32_exact_kernel_within_bound() {
             let z = rng.range(2e-3, 20e-3);
             Emitter {
                 // Seen from the plate along the reference direction: dx / r near sin 25 deg.
-                pos: [-z * tilt.tan() + rng.range(-1.0, 1.0) * s[0], rng.range(-1.0, 1.0) * s[1], z],
+                pos: [
+                    -z * tilt.tan() + rng.range(-1.0, 1.0) * s[0],
+                    rng.range(-1.0, 1.0) * s[1],
+                    z,
+                ],
                 amplitude: rng.range(0.2, 1.0),
                 phase: rng.range(0.0, 6.3),
             }
@@ -449,11 +453,7 @@ fn f32_exact_kernel_within_bound() {
             },
             random_scene(&mut rng, 80, &plate, [0.1, 0.3]),
         ),
-        (
-            "off-axis",
-            Reference::Plane { tilt: [tilt, 0.0] },
-            off_axis,
-        ),
+        ("off-axis", Reference::Plane { tilt: [tilt, 0.0] }, off_axis),
         (
             "spherical",
             Reference::Spherical {
@@ -500,7 +500,10 @@ fn f32_exact_kernel_within_bound() {
                 let sum32 = PointSum::new(plate, reference, emitters.clone(), opts32).with_isa(isa);
                 let mut f32_whole = vec![Complex64::new(0.0, 0.0); w * h];
                 let n32 = sum32.compute_band(0, h, &mut f32_whole, &mut BandScratch::default());
-                assert_eq!(n32, n64, "{name} obliquity={obliquity}: support pixel counts differ");
+                assert_eq!(
+                    n32, n64,
+                    "{name} obliquity={obliquity}: support pixel counts differ"
+                );
                 for (idx, (a, b)) in f32_whole.iter().zip(&exact).enumerate() {
                     let d = (a - b).norm();
                     assert!(

@@ -143,11 +143,17 @@ fn start_phase(seed: u64, index: usize) -> f64 {
 /// The phase the phase encoding shows for a phase `phi` in [0, 2 pi) with `levels` levels:
 /// `g = round(N phi / 2 pi) mod N`, `s = round(g 2^b / N)`, result `2 pi s / 2^b`.
 pub fn shown_phase(phi: f64, levels: u32) -> f64 {
+    let b: u32 = if levels <= 256 { 8 } else { 16 };
+    TAU * shown_sample(phi, levels) as f64 / (1u64 << b) as f64
+}
+
+/// The sample value s of [`shown_phase`] (0 ..= 2^b; 2^b only where the rounding reaches a full
+/// turn).
+fn shown_sample(phi: f64, levels: u32) -> usize {
     let n = levels as u64;
     let g = ((levels as f64 * phi / TAU).round() as u64) % n;
     let b: u32 = if levels <= 256 { 8 } else { 16 };
-    let s = (2 * (g << b) + n) / (2 * n);
-    TAU * s as f64 / (1u64 << b) as f64
+    ((2 * (g << b) + n) / (2 * n)) as usize
 }
 
 /// Phase of `v` in [0, 2 pi).
@@ -263,7 +269,8 @@ fn update_weights(field: &[Complex<f32>], st: &mut PlaneState, s: &Stats, nx: us
             let mut acc = 0.0;
             for ((w, u), &a) in w.iter_mut().zip(row).zip(amp) {
                 if a > 0.0 {
-                    let r = ((u.re as f64).hypot(u.im as f64) / a).max(floor);
+                    let (re, im) = (u.re as f64, u.im as f64);
+                    let r = ((re * re + im * im).sqrt() / a).max(floor);
                     *w *= mean / r;
                     acc += (*w * a) * (*w * a);
                 }
@@ -308,7 +315,8 @@ fn constrain(field: &mut [Complex<f32>], st: &PlaneState, s: &Stats, alg: &Algor
                     target *= m;
                 }
                 let (re, im) = (u.re as f64, u.im as f64);
-                let m = re.hypot(im);
+                // |u| without hypot's overflow guard: u is f32, so re^2 + im^2 fits f64.
+                let m = (re * re + im * im).sqrt();
                 *u = if m > 0.0 {
                     Complex::new((target * re / m) as f32, (target * im / m) as f32)
                 } else {
@@ -456,6 +464,21 @@ pub fn optimise(
     };
     let free_iters = opts.iterations - q_iters;
     let mut errors: Vec<f64> = Vec::with_capacity(opts.iterations + 1);
+    // Plate phasors of the shown samples s = 0 ..= 2^b (projected iterations).
+    let phasors: Vec<Complex<f32>> = match levels {
+        Some(l) => {
+            let b: u32 = if l <= 256 { 8 } else { 16 };
+            (0..=(1usize << b))
+                .map(|s| {
+                    let (si, c) = (TAU * s as f64 / (1u64 << b) as f64).sin_cos();
+                    Complex::new(c as f32, si as f32)
+                })
+                .collect()
+        }
+        None => Vec::new(),
+    };
+    // True while `holo` is ahead of `phase` (free iterations update the plate only).
+    let mut phase_stale = false;
     let mut stopped_early = false;
 
     // One iteration: error of the current phase, constraint, back-propagation, new phase.
@@ -463,6 +486,7 @@ pub fn optimise(
                     phase: &mut Vec<f64>,
                     holo: &mut Vec<Complex<f32>>,
                     errors: &mut Vec<f64>,
+                    phase_stale: &mut bool,
                     progress: &mut dyn FnMut(usize, f64)| {
         let mut e2 = 0.0;
         for (k, (p, st)) in planes.iter().zip(states.iter_mut()).enumerate() {
@@ -490,30 +514,67 @@ pub fn optimise(
         let e = (e2 / planes.len() as f64).sqrt();
         progress(errors.len(), e);
         errors.push(e);
-        let q = if quantize { levels } else { None };
-        let new_phase = |re: f64, im: f64| {
-            let phi = arg_0_2pi(re, im);
-            match q {
-                Some(l) => shown_phase(phi, l),
-                None => phi,
+        // The new plate: the back-propagated field's phase. Free iterations keep the field
+        // divided by its modulus (no angle needed; a zero keeps phase 0); projected iterations
+        // go through the angle to the phase the encoding shows.
+        let field: &[Complex<f64>] = &acc; // the sum over planes (empty with one plane)
+        let unit = |re: f64, im: f64| -> Complex<f32> {
+            let m = (re * re + im * im).sqrt();
+            if m > 0.0 {
+                Complex::new((re / m) as f32, (im / m) as f32)
+            } else {
+                Complex::new(1.0, 0.0)
             }
         };
-        if planes.len() > 1 {
-            phase
-                .par_iter_mut()
-                .zip(acc.par_iter())
-                .for_each(|(p, a)| *p = new_phase(a.re, a.im));
-        } else {
-            phase
-                .par_iter_mut()
-                .zip(work.par_iter())
-                .for_each(|(p, w)| *p = new_phase(w.re as f64, w.im as f64));
+        match (quantize, levels) {
+            (true, Some(l)) => {
+                // Phase and plate from the shown sample: the plate's phasors come from a table
+                // made with the same expressions as `load` (same bits, no sin/cos per pixel).
+                let b: u32 = if l <= 256 { 8 } else { 16 };
+                let shown = |re: f64, im: f64| shown_sample(arg_0_2pi(re, im), l);
+                let set = |p: &mut f64, h: &mut Complex<f32>, s: usize| {
+                    *p = TAU * s as f64 / (1u64 << b) as f64;
+                    *h = phasors[s];
+                };
+                if planes.len() > 1 {
+                    phase
+                        .par_iter_mut()
+                        .zip(holo.par_iter_mut())
+                        .zip(field.par_iter())
+                        .for_each(|((p, h), a)| set(p, h, shown(a.re, a.im)));
+                } else {
+                    phase
+                        .par_iter_mut()
+                        .zip(holo.par_iter_mut())
+                        .zip(work.par_iter())
+                        .for_each(|((p, h), w)| set(p, h, shown(w.re as f64, w.im as f64)));
+                }
+                *phase_stale = false;
+            }
+            _ => {
+                if planes.len() > 1 {
+                    holo.par_iter_mut()
+                        .zip(field.par_iter())
+                        .for_each(|(h, a)| *h = unit(a.re, a.im));
+                } else {
+                    holo.par_iter_mut()
+                        .zip(work.par_iter())
+                        .for_each(|(h, w)| *h = unit(w.re as f64, w.im as f64));
+                }
+                *phase_stale = true;
+            }
         }
-        load(holo, phase);
     };
 
     for _ in 0..free_iters {
-        step(false, &mut phase, &mut holo, &mut errors, progress);
+        step(
+            false,
+            &mut phase,
+            &mut holo,
+            &mut errors,
+            &mut phase_stale,
+            progress,
+        );
         let m = errors.len();
         if opts.stall_tolerance > 0.0
             && m > STALL_WINDOW
@@ -524,9 +585,22 @@ pub fn optimise(
         }
     }
     for _ in 0..q_iters {
-        step(true, &mut phase, &mut holo, &mut errors, progress);
+        step(
+            true,
+            &mut phase,
+            &mut holo,
+            &mut errors,
+            &mut phase_stale,
+            progress,
+        );
     }
     drop(step);
+    if phase_stale {
+        phase
+            .par_iter_mut()
+            .zip(holo.par_iter())
+            .for_each(|(p, h)| *p = arg_0_2pi(h.re as f64, h.im as f64));
+    }
     if let Some(l) = levels {
         if q_iters == 0 {
             phase.par_iter_mut().for_each(|p| *p = shown_phase(*p, l));

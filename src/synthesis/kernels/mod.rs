@@ -232,7 +232,9 @@ pub fn fresnel_columns(
     match isa {
         #[cfg(target_arch = "x86_64")]
         // SAFETY: as in `accumulate_exact`.
-        KernelIsa::Avx2 | KernelIsa::Avx512 => unsafe { fresnel_columns_avx2(ri, xj, z, amplitude, c0, c1, ure, uim) },
+        KernelIsa::Avx2 | KernelIsa::Avx512 => unsafe {
+            fresnel_columns_avx2(ri, xj, z, amplitude, c0, c1, ure, uim)
+        },
         _ => fresnel_columns_generic(ri, xj, z, amplitude, c0, c1, ure, uim),
     }
 }
