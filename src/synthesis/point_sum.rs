@@ -100,6 +100,10 @@ pub struct BandScratch {
     col_im: Vec<f64>,
     re32: Vec<f32>,
     im32: Vec<f32>,
+    band32_re: Vec<f32>,
+    band32_im: Vec<f32>,
+    group_re: Vec<f32>,
+    group_im: Vec<f32>,
     rdx32: Vec<f32>,
     rdy32: Vec<f32>,
     /// visible[k * tiles + t]: candidate k seen from tile t's centre.
@@ -274,7 +278,11 @@ impl PointSum {
             && self.channels.len() == 1
             && matches!(self.channels[0].reference, Reference::Plane { .. })
         {
-            let n = self.fresnel_band(row0, rows, out, scratch, &cands);
+            let n = if self.opts.precision == Precision::F32 {
+                self.fresnel_band32(row0, rows, out, scratch, &cands)
+            } else {
+                self.fresnel_band(row0, rows, out, scratch, &cands)
+            };
             scratch.candidates = cands;
             return n;
         }
@@ -561,6 +569,217 @@ impl PointSum {
         for (r, orow) in out.chunks_exact_mut(w).enumerate() {
             let y = self.plate.y_of_row((row0 + r) as f64);
             let ty = y * ay;
+            for (t, &x) in scratch.ref_cycles.iter_mut().zip(&self.xs) {
+                *t = x * ax + ty;
+            }
+            kernels::conj_reference(
+                self.isa,
+                &scratch.ref_cycles,
+                &scratch.band_re[r * w..(r + 1) * w],
+                &scratch.band_im[r * w..(r + 1) * w],
+                orow,
+            );
+        }
+        updates
+    }
+
+    /// The separable Fresnel band in f32 ([`kernels::fresnel32`]): emitters in groups of
+    /// `GROUP` consecutive indices; per group, the column factors once per band, then one pass per
+    /// row adding the whole group. Same support pixels and update count as [`Self::fresnel_band`].
+    fn fresnel_band32(
+        &self,
+        row0: usize,
+        rows: usize,
+        out: &mut [Complex64],
+        scratch: &mut BandScratch,
+        cands: &[u32],
+    ) -> u64 {
+        use kernels::fresnel32::GROUP;
+        let w = self.plate.width as usize;
+        let reference = self.channels[0].reference;
+        let inv_lambda = 1.0 / self.plate.wavelength;
+        let d = reference.direction(0.0, 0.0);
+        scratch.ref_dir_x.clear();
+        scratch.ref_dir_x.resize(w, d[0]);
+        scratch.ref_dir_y.clear();
+        scratch.ref_dir_y.resize(w, d[1]);
+        scratch.ref_cycles.resize(w, 0.0);
+        for v in [&mut scratch.band_re, &mut scratch.band_im] {
+            v.clear();
+            v.resize(rows * w, 0.0);
+        }
+        for v in [&mut scratch.band32_re, &mut scratch.band32_im] {
+            v.clear();
+            v.resize(rows * w, 0.0);
+        }
+        let inputs = RowInputs {
+            xs: &self.xs,
+            rdx: &scratch.ref_dir_x,
+            rdy: &scratch.ref_dir_y,
+            half_band: self.half_band,
+            inv_lambda,
+        };
+        let (wx, _) = direction_window([d[0], d[0]], [d[1], d[1]], self.half_band);
+        let ys: Vec<f64> = (0..rows)
+            .map(|r| self.plate.y_of_row((row0 + r) as f64))
+            .collect();
+        let mut updates = 0u64;
+        // Columns touched since the last flush of the f32 sums into f64.
+        let mut touched = (w, 0usize);
+        let flush = |touched: &mut (usize, usize),
+                     b32re: &mut [f32],
+                     b32im: &mut [f32],
+                     bre: &mut [f64],
+                     bim: &mut [f64]| {
+            let (lo, hi) = *touched;
+            if lo < hi {
+                for r in 0..rows {
+                    let (a, b) = (r * w + lo, r * w + hi);
+                    for (d, s) in bre[a..b].iter_mut().zip(&mut b32re[a..b]) {
+                        *d += *s as f64;
+                        *s = 0.0;
+                    }
+                    for (d, s) in bim[a..b].iter_mut().zip(&mut b32im[a..b]) {
+                        *d += *s as f64;
+                        *s = 0.0;
+                    }
+                }
+            }
+            *touched = (w, 0);
+        };
+        let mut block = usize::MAX;
+        let mut k = 0;
+        while k < cands.len() {
+            let g = cands[k] as usize / GROUP;
+            let mut end = k;
+            while end < cands.len() && cands[end] as usize / GROUP == g {
+                end += 1;
+            }
+            if g * GROUP / F32_GROUP != block {
+                block = g * GROUP / F32_GROUP;
+                flush(
+                    &mut touched,
+                    &mut scratch.band32_re,
+                    &mut scratch.band32_im,
+                    &mut scratch.band_re,
+                    &mut scratch.band_im,
+                );
+            }
+            // Column spans of the group's emitters (slot = index mod GROUP).
+            let mut spans: [Option<(usize, usize)>; GROUP] = [None; GROUP];
+            let (mut u0, mut u1) = (w, 0usize);
+            for &j in &cands[k..end] {
+                let e = &self.emitters[j as usize];
+                let z = e.pos[2];
+                let c0 = (self.plate.col_of_x(e.pos[0] + z * wx[0]).ceil() - 1.0).max(0.0);
+                let c1 =
+                    (self.plate.col_of_x(e.pos[0] + z * wx[1]).floor() + 1.0).min(w as f64 - 1.0);
+                if c0 <= c1 {
+                    let (c0, c1) = (c0 as usize, c1 as usize + 1);
+                    spans[j as usize % GROUP] = Some((c0, c1));
+                    u0 = u0.min(c0);
+                    u1 = u1.max(c1);
+                }
+            }
+            if u0 < u1 {
+                let len = u1 - u0;
+                for v in [&mut scratch.group_re, &mut scratch.group_im] {
+                    v.clear();
+                    v.resize(GROUP * len, 0.0);
+                }
+                let mut nx = [0u64; GROUP];
+                for &j in &cands[k..end] {
+                    let slot = j as usize % GROUP;
+                    if let Some((c0, c1)) = spans[slot] {
+                        let e = &self.emitters[j as usize];
+                        let at = slot * len + c0 - u0;
+                        nx[slot] = kernels::fresnel_columns32(
+                            self.isa,
+                            &inputs,
+                            e.pos[0],
+                            e.pos[2],
+                            e.amplitude,
+                            c0,
+                            c1,
+                            &mut scratch.group_re[at..at + c1 - c0],
+                            &mut scratch.group_im[at..at + c1 - c0],
+                        );
+                    }
+                }
+                touched = (touched.0.min(u0), touched.1.max(u1));
+                // Row factors of the group on every row of the band (zero outside the y support).
+                let mut coefs = vec![[[0f32; 2]; GROUP]; rows];
+                let mut live = vec![false; rows];
+                for (r, &y) in ys.iter().enumerate() {
+                    for &j in &cands[k..end] {
+                        let slot = j as usize % GROUP;
+                        if nx[slot] == 0 {
+                            continue;
+                        }
+                        let e = &self.emitters[j as usize];
+                        let z = e.pos[2];
+                        let inv_z = 1.0 / z;
+                        let dy = y - e.pos[1];
+                        // The y half of the support test, as in the f64 kernels.
+                        if (dy * inv_z - d[1]).abs() > self.half_band[1] {
+                            continue;
+                        }
+                        let t_row =
+                            (z + dy * dy * 0.5 * inv_z) * inv_lambda + reduced_cycles(e.phase);
+                        let (s, c) = kernels::sincos_cycles(t_row - t_row.floor());
+                        coefs[r][slot] = [c as f32, s as f32];
+                        live[r] = true;
+                        updates += nx[slot];
+                    }
+                }
+                // Rows in pairs where both are live (one pass over the factors for two rows).
+                let mut r = 0;
+                while r < rows {
+                    if !live[r] {
+                        r += 1;
+                        continue;
+                    }
+                    let (a, b) = (r * w + u0, r * w + u1);
+                    if r + 1 < rows && live[r + 1] {
+                        let (re0, re1) = scratch.band32_re[a..b + w].split_at_mut(len);
+                        let (im0, im1) = scratch.band32_im[a..b + w].split_at_mut(len);
+                        kernels::mac_group32_pair(
+                            self.isa,
+                            &coefs[r],
+                            &coefs[r + 1],
+                            &scratch.group_re,
+                            &scratch.group_im,
+                            re0,
+                            im0,
+                            &mut re1[w - len..],
+                            &mut im1[w - len..],
+                        );
+                        r += 2;
+                    } else {
+                        kernels::mac_group32(
+                            self.isa,
+                            &coefs[r],
+                            &scratch.group_re,
+                            &scratch.group_im,
+                            &mut scratch.band32_re[a..b],
+                            &mut scratch.band32_im[a..b],
+                        );
+                        r += 1;
+                    }
+                }
+            }
+            k = end;
+        }
+        flush(
+            &mut touched,
+            &mut scratch.band32_re,
+            &mut scratch.band32_im,
+            &mut scratch.band_re,
+            &mut scratch.band_im,
+        );
+        let (ax, ay) = (d[0] * inv_lambda, d[1] * inv_lambda);
+        for (r, orow) in out.chunks_exact_mut(w).enumerate() {
+            let ty = ys[r] * ay;
             for (t, &x) in scratch.ref_cycles.iter_mut().zip(&self.xs) {
                 *t = x * ax + ty;
             }

@@ -1,6 +1,6 @@
 //! Criterion benches of the hot kernels.
 //!
-//! * `point_sum/{exact_f32,exact,fresnel}/{avx2,portable}`: `PointSum::compute_band` on one band of a plate where
+//! * `point_sum/{exact_f32,exact,fresnel_f32,fresnel}/{avx512,avx2,portable}`: `PointSum::compute_band` on one band of a plate where
 //!   every emitter's anti-aliasing support covers every pixel (pitch 0.4 um at 633 nm: lambda / 2p =
 //!   0.79, while no emitter is seen at a direction cosine above 0.15), so the work is exactly
 //!   points x pixels; throughput is reported in point-pixel updates (`Throughput::Elements`). One core.
@@ -86,10 +86,11 @@ fn point_sum(c: &mut Criterion) {
     for (aname, approximation, precision) in [
         ("exact_f32", Approximation::Exact, Precision::F32),
         ("exact", Approximation::Exact, Precision::F64),
+        ("fresnel_f32", Approximation::Fresnel, Precision::F32),
         ("fresnel", Approximation::Fresnel, Precision::F64),
     ] {
         for &(iname, isa) in &isas {
-            // Only the f32 exact kernel has an AVX-512 copy.
+            // Only the f32 kernels have AVX-512 copies.
             if isa == KernelIsa::Avx512 && precision != Precision::F32 {
                 continue;
             }

@@ -76,7 +76,7 @@ pub fn poly_min_distance(pitch: f64, wavelength: f64) -> f64 {
 /// a = pi t (|a| <= pi/2) to degree 11 and 12 (remainders below 5.7e-8 and 6.4e-9), then the
 /// double-angle formulas.
 #[inline(always)]
-fn sincos_half(t: f32) -> (f32, f32) {
+pub(super) fn sincos_half(t: f32) -> (f32, f32) {
     let a = std::f32::consts::PI * t;
     let a2 = a * a;
     let s = a2.mul_add(-1.0 / 39_916_800.0, 1.0 / 362_880.0);

@@ -20,6 +20,7 @@
 use num_complex::Complex64;
 
 pub mod exact32;
+pub mod fresnel32;
 pub use exact32::{poly_min_distance, Row32, AMBIGUOUS, LANES, PAD};
 
 /// Per-row inputs shared by every emitter.
@@ -404,6 +405,136 @@ pub fn accumulate_exact32(
         (KernelIsa::Avx512, true) => unsafe { exact32_avx512::<true>(ri, r32, e, c0, c1, re, im) },
         (_, false) => exact32::exact32_generic::<false>(ri, r32, e, c0, c1, re, im),
         (_, true) => exact32::exact32_generic::<true>(ri, r32, e, c0, c1, re, im),
+    }
+}
+
+macro_rules! simd_copies {
+    ($avx2:ident, $avx512:ident, $generic:path, ($($arg:ident: $ty:ty),*) -> $ret:ty) => {
+        #[cfg(target_arch = "x86_64")]
+        #[target_feature(enable = "avx2,fma")]
+        unsafe fn $avx2($($arg: $ty),*) -> $ret {
+            $generic($($arg),*)
+        }
+        #[cfg(target_arch = "x86_64")]
+        #[target_feature(enable = "avx2,fma,avx512f,avx512vl,avx512dq")]
+        unsafe fn $avx512($($arg: $ty),*) -> $ret {
+            $generic($($arg),*)
+        }
+    };
+}
+
+simd_copies!(
+    columns32_avx2,
+    columns32_avx512,
+    fresnel32::columns32_generic,
+    (ri: &RowInputs, xj: f64, z: f64, amplitude: f64, c0: usize, c1: usize, ure: &mut [f32], uim: &mut [f32]) -> u64
+);
+simd_copies!(
+    mac_group_avx2,
+    mac_group_avx512,
+    fresnel32::mac_group_generic,
+    (coef: &[[f32; 2]; fresnel32::GROUP], ure: &[f32], uim: &[f32], re: &mut [f32], im: &mut [f32]) -> ()
+);
+
+simd_copies!(
+    mac_group2_avx2,
+    mac_group2_avx512,
+    fresnel32::mac_group2_generic,
+    (coef0: &[[f32; 2]; fresnel32::GROUP], coef1: &[[f32; 2]; fresnel32::GROUP], ure: &[f32], uim: &[f32], re0: &mut [f32], im0: &mut [f32], re1: &mut [f32], im1: &mut [f32]) -> ()
+);
+
+/// [`mac_group32`] on two rows at once (each factor load serves both; same bits as two calls).
+///
+/// # Panics
+/// If the rows differ in length or `ure`, `uim` do not hold `GROUP` factors of that length.
+#[allow(clippy::too_many_arguments)]
+pub fn mac_group32_pair(
+    isa: KernelIsa,
+    coef0: &[[f32; 2]; fresnel32::GROUP],
+    coef1: &[[f32; 2]; fresnel32::GROUP],
+    ure: &[f32],
+    uim: &[f32],
+    re0: &mut [f32],
+    im0: &mut [f32],
+    re1: &mut [f32],
+    im1: &mut [f32],
+) {
+    let n = re0.len();
+    assert!(
+        im0.len() == n
+            && re1.len() == n
+            && im1.len() == n
+            && ure.len() == fresnel32::GROUP * n
+            && uim.len() == ure.len(),
+        "group factor length"
+    );
+    match isa {
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: as in `fresnel_columns32`.
+        KernelIsa::Avx2 => unsafe { mac_group2_avx2(coef0, coef1, ure, uim, re0, im0, re1, im1) },
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: as in `fresnel_columns32`.
+        KernelIsa::Avx512 => unsafe {
+            mac_group2_avx512(coef0, coef1, ure, uim, re0, im0, re1, im1)
+        },
+        _ => fresnel32::mac_group2_generic(coef0, coef1, ure, uim, re0, im0, re1, im1),
+    }
+}
+
+/// The f32 Fresnel column factor of one emitter (see [`fresnel32`]); `ure`, `uim` hold
+/// `c1 - c0` values. Returns the columns inside the x support.
+#[allow(clippy::too_many_arguments)]
+pub fn fresnel_columns32(
+    isa: KernelIsa,
+    ri: &RowInputs,
+    xj: f64,
+    z: f64,
+    amplitude: f64,
+    c0: usize,
+    c1: usize,
+    ure: &mut [f32],
+    uim: &mut [f32],
+) -> u64 {
+    assert!(
+        ure.len() == c1 - c0 && uim.len() == c1 - c0 && c1 <= ri.xs.len(),
+        "column factor length"
+    );
+    match isa {
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: `KernelIsa::Avx2` comes from `detect` after AVX2 and FMA were reported.
+        KernelIsa::Avx2 => unsafe { columns32_avx2(ri, xj, z, amplitude, c0, c1, ure, uim) },
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: `KernelIsa::Avx512` comes from `detect` after AVX-512 F, VL, DQ, AVX2 and FMA.
+        KernelIsa::Avx512 => unsafe { columns32_avx512(ri, xj, z, amplitude, c0, c1, ure, uim) },
+        _ => fresnel32::columns32_generic(ri, xj, z, amplitude, c0, c1, ure, uim),
+    }
+}
+
+/// Adds a group of emitters to one row of f32 sums (see [`fresnel32`]).
+///
+/// # Panics
+/// If `ure` or `uim` do not hold `GROUP` factors of the row's length.
+pub fn mac_group32(
+    isa: KernelIsa,
+    coef: &[[f32; 2]; fresnel32::GROUP],
+    ure: &[f32],
+    uim: &[f32],
+    re: &mut [f32],
+    im: &mut [f32],
+) {
+    let n = re.len();
+    assert!(
+        im.len() == n && ure.len() == fresnel32::GROUP * n && uim.len() == ure.len(),
+        "group factor length"
+    );
+    match isa {
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: as in `fresnel_columns32`.
+        KernelIsa::Avx2 => unsafe { mac_group_avx2(coef, ure, uim, re, im) },
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: as in `fresnel_columns32`.
+        KernelIsa::Avx512 => unsafe { mac_group_avx512(coef, ure, uim, re, im) },
+        _ => fresnel32::mac_group_generic(coef, ure, uim, re, im),
     }
 }
 
