@@ -59,11 +59,29 @@ cp samples/badge.toml samples/badge_points.ply "$tmp/"
 sed -e 's/^approximation = "exact"/approximation = "fresnel"/' -e 's#out/badge.tif#out/badge_fresnel.tif#' \
     samples/badge.toml > "$tmp/badge_fresnel.toml"
 grep -q 'approximation = "fresnel"' "$tmp/badge_fresnel.toml"
-for job in badge badge_fresnel; do
+# The same two jobs with the f32 kernels ([synthesis] precision = "f32").
+for j in badge badge_fresnel; do
+    sed -e 's/^approximation = \(.*\)$/approximation = \1\nprecision = "f32"/' -e "s#out/$j.tif#out/${j}_f32.tif#" \
+        "$tmp/$j.toml" > "$tmp/${j}_f32.toml"
+    grep -q 'precision = "f32"' "$tmp/${j}_f32.toml"
+done
+for job in badge badge_f32 badge_fresnel badge_fresnel_f32; do
     for t in 2 1; do
         log "JOB $job threads=$t"
         run "$bin" run "$tmp/$job.toml" --restart --stats --threads "$t" -q
     done
+done
+
+section "iterative job: ms per iteration at 2048^2"
+# samples/tern_slm.toml at 2048 x 2048, run with 20 and 40 iterations (no early stop): the
+# difference over 20 is the cost of one free iteration, set-up and writing excluded.
+cp samples/tern_slm.toml samples/tern_target.png "$tmp/"
+for n in 20 40; do
+    sed -e 's/^width_px = .*/width_px = 2048/' -e 's/^height_px = .*/height_px = 2048/' \
+        -e "s/^iterations = .*/iterations = $n\nstall_tolerance = 0/" -e "s#out/tern_slm.tif#out/tern_$n.tif#" \
+        samples/tern_slm.toml > "$tmp/tern_$n.toml"
+    log "ITER tern_2048 iterations=$n"
+    run "$bin" run "$tmp/tern_$n.toml" --restart --stats --threads 2 -q
 done
 
 section "criterion benches (tools/bench/kernels.rs)"

@@ -46,6 +46,9 @@ def parse(text):
         m = re.match(r"^JOB (\S+) threads=(\d+)", line)
         if m:
             job = (m.group(1), int(m.group(2)))
+        m = re.match(r"^ITER (\S+) iterations=(\d+)", line)
+        if m:
+            job = (m.group(1) + "@" + m.group(2), 2)
         m = re.search(r"stats: .*: ([\d.]+) s, (\d+) point-pixel updates, ([\d.]+) G updates/s, peak memory (.*)$", line)
         if m and job:
             jobs[job] = dict(secs=float(m.group(1)), updates=int(m.group(2)), gups=float(m.group(3)), peak=m.group(4))
@@ -66,13 +69,20 @@ def main():
 
     g = lambda k: cg.get(k)
     gs = lambda v: f"{v / 1e9:.3f} G/s" if v is not None else None
-    exact = g("point_sum/exact/avx2") or g("point_sum/exact/portable")
-    fres = g("point_sum/fresnel/avx2") or g("point_sum/fresnel/portable")
+    best = lambda k: g(f"point_sum/{k}/avx512") or g(f"point_sum/{k}/avx2") or g(f"point_sum/{k}/portable")
+    exact = best("exact_f32")
+    exact64 = best("exact")
+    fres = best("fresnel_f32")
     careful = res.get("exact_careful")
     plain = res.get("exact_plain")
-    ratio("point sum exact, 1 core: kernel vs careful numpy (1 core)", exact, careful and careful * 1e9,
+    je = jobs.get(("badge_f32", 2))
+    ratio("GOAL exact: whole badge job f32, 2 threads vs careful numpy (1 core); goal >= 10x",
+          je and je["gups"] * 1e9, careful and careful * 1e9, gs(je and je["gups"] * 1e9), gs(careful and careful * 1e9))
+    ratio("point sum exact f64, 1 core: kernel vs careful numpy (1 core)", exact64, careful and careful * 1e9,
+          gs(exact64), gs(careful and careful * 1e9))
+    ratio("point sum exact f32, 1 core: kernel vs careful numpy (1 core)", exact, careful and careful * 1e9,
           gs(exact), gs(careful and careful * 1e9))
-    ratio("point sum exact, 1 core: kernel vs plain numpy (1 core)", exact, plain and plain * 1e9,
+    ratio("point sum exact f32, 1 core: kernel vs plain numpy (1 core)", exact, plain and plain * 1e9,
           gs(exact), gs(plain and plain * 1e9))
     gb = res.get("fresnel_gemm_band")
     ratio("Fresnel, same band: kernel 1 core vs numpy GEMM (BLAS 2 threads)", fres, gb and gb * 1e9, gs(fres), gs(gb and gb * 1e9))
@@ -82,17 +92,20 @@ def main():
         bv = big[bk] * 1e9
         ratio(f"Fresnel: kernel x 2 cores (ideal) vs best numpy GEMM ({bk[13:]}, 2 threads)",
               fres and 2 * fres, bv, gs(fres and 2 * fres), gs(bv))
-        jf = jobs.get(("badge_fresnel", 2))
-        ratio(f"Fresnel: whole badge job, 2 threads vs best numpy GEMM ({bk[13:]}, 2 threads)",
+        jf = jobs.get(("badge_fresnel_f32", 2))
+        ratio(f"GOAL Fresnel: whole badge job f32, 2 threads vs best numpy GEMM ({bk[13:]}, 2 threads)",
               jf and jf["gups"] * 1e9, bv, gs(jf and jf["gups"] * 1e9), gs(bv))
-    for name in ["badge", "badge_fresnel"]:
+    for name in ["badge", "badge_f32", "badge_fresnel", "badge_fresnel_f32"]:
         a, b = jobs.get((name, 2)), jobs.get((name, 1))
         ratio(f"thread scaling, whole job `{name}`: 2 threads vs 1", a and a["gups"], b and b["gups"],
               a and f"{a['gups']:.3f} G/s", b and f"{b['gups']:.3f} G/s")
-    ia, ip = g("point_sum/exact/avx2"), g("point_sum/exact/portable")
-    ratio("ISA: exact kernel AVX2 vs portable", ia, ip, gs(ia), gs(ip))
-    fa, fp = g("point_sum/fresnel/avx2"), g("point_sum/fresnel/portable")
-    ratio("ISA: Fresnel kernel AVX2 vs portable", fa, fp, gs(fa), gs(fp))
+    for k in ["exact_f32", "exact", "fresnel_f32", "fresnel"]:
+        for isa in ["avx512", "avx2"]:
+            a, p = g(f"point_sum/{k}/{isa}"), g(f"point_sum/{k}/portable")
+            if a is not None:
+                ratio(f"ISA: {k} kernel {isa} vs portable", a, p, gs(a), gs(p))
+    ratio("precision: exact kernel f32 vs f64 (best ISA, 1 core)", exact, exact64, gs(exact), gs(exact64))
+    ratio("precision: Fresnel kernel f32 vs f64 (best ISA, 1 core)", fres, best("fresnel"), gs(fres), gs(best("fresnel")))
 
     ms = lambda s: f"{s * 1e3:.1f} ms" if s is not None else None
     f2 = ct.get("fft2d/2048")
@@ -104,6 +117,11 @@ def main():
         for key, label in [(f"gs_numpy_{n}", "numpy.fft"), (f"gs_fftw_{n}", "numpy+pyFFTW 2 threads")]:
             r = res.get(key)
             ratio(f"GS iteration {n}^2 vs {label}", r and r / 1e3, fm, ms(fm), ms(r and r / 1e3))
+    t20, t40 = jobs.get(("tern_2048@20", 2)), jobs.get(("tern_2048@40", 2))
+    it = (t40["secs"] - t20["secs"]) / 20 if t20 and t40 else None
+    for key, label in [("gs_numpy_2048", "numpy.fft"), ("gs_fftw_2048", "numpy+pyFFTW 2 threads")]:
+        r = res.get(key)
+        ratio(f"GS iteration 2048^2 in a whole iterative job vs {label}", r and r / 1e3, it, ms(it), ms(r and r / 1e3))
     f2g = ct.get("gs_equiv/2048")
     ratio("GS iteration 2048^2 vs goal (FFTW from C, quoted 32 ms)", 0.032, f2g, ms(f2g), "32 ms (quoted)")
 
