@@ -97,6 +97,19 @@ section "numpy GS iteration"
 sizes=2048,4096; [ "$quick" = 1 ] && sizes=2048
 run numpy_env OPENBLAS_NUM_THREADS=2 $py tools/reference/gs_numpy.py --threads 2 --sizes "$sizes" "${qa[@]}"
 
+section "FFTW from C: GS iteration"
+# Needs the FFTW headers and libraries (Debian: libfftw3-dev); skipped with a note when absent.
+if ! [ -e /usr/include/fftw3.h ] && command -v apt-get >/dev/null; then
+    run apt-get install -y -q libfftw3-dev >/dev/null 2>&1 || log "(libfftw3-dev could not be installed)"
+fi
+if gcc -O3 -march=native -fopenmp tools/reference/gs_fftw.c -lfftw3f_threads -lfftw3f -lpthread -lm -o "$tmp/gs_fftw" 2>>"$raw"; then
+    for n in $(echo "$sizes" | tr , ' '); do
+        run env OMP_NUM_THREADS=2 "$tmp/gs_fftw" "$n" 2
+    done
+else
+    log "(gs_fftw.c did not build: no FFTW from C figures)"
+fi
+
 section "end"
 run $py tools/bench/summarize.py "$raw" "$run_dir/summary.md"
 echo "wrote $raw and $run_dir/summary.md"

@@ -119,9 +119,14 @@ def main():
             ratio(f"GS iteration {n}^2 vs {label}", r and r / 1e3, fm, ms(fm), ms(r and r / 1e3))
     t20, t40 = jobs.get(("tern_2048@20", 2)), jobs.get(("tern_2048@40", 2))
     it = (t40["secs"] - t20["secs"]) / 20 if t20 and t40 else None
-    for key, label in [("gs_numpy_2048", "numpy.fft"), ("gs_fftw_2048", "numpy+pyFFTW 2 threads")]:
+    for key, label in [("gs_numpy_2048", "numpy.fft"), ("gs_fftw_2048", "numpy+pyFFTW 2 threads"),
+                       ("gs_fftwc_2048", "GOAL: FFTW from C, 2 threads")]:
         r = res.get(key)
         ratio(f"GS iteration 2048^2 in a whole iterative job vs {label}", r and r / 1e3, it, ms(it), ms(r and r / 1e3))
+    for n in [2048, 4096]:
+        r, fm = res.get(f"fft2_fftwc_{n}"), ct.get(f"fft2d/{n}")
+        if r is not None and fm is not None:
+            ratio(f"FFT {n}^2 complex64 vs FFTW from C (2 threads)", r / 1e3, fm, ms(fm), ms(r / 1e3))
     f2g = ct.get("gs_equiv/2048")
     ratio("GS iteration 2048^2 vs goal (FFTW from C, quoted 32 ms)", 0.032, f2g, ms(f2g), "32 ms (quoted)")
 
