@@ -534,7 +534,8 @@ fn f32_exact_kernel_within_bound() {
 /// in x and in y, on either side: there the f32 test cannot decide, and the kernel must defer to
 /// the f64 one. Near emitters (per-pixel square root) and far ones (polynomial path, whose
 /// segments are classified as inside, outside or edge from margins at their anchors), under a
-/// tilted plane and a spherical reference. Each emitter alone must give the f64 engine's pixel
+/// tilted plane and a spherical reference (z from 30 um: per-pixel root; 2 mm: 16-pixel segments;
+/// 10 mm: 32-pixel segments). Each emitter alone must give the f64 engine's pixel
 /// count and field (an edge pixel taken or dropped wrongly is an error of a / r at that pixel).
 #[test]
 fn f32_support_edges_match_f64() {
@@ -557,7 +558,7 @@ fn f32_support_edges_match_f64() {
     let mut checked = 0;
     for reference in refs {
         let rd = reference.direction(x, y);
-        for z0 in [30e-6, 2e-3] {
+        for z0 in [30e-6, 2e-3, 10e-3] {
             for axis in 0..2 {
                 for k in -40..=40 {
                     let delta = k as f64 * 2.5e-8;
@@ -603,7 +604,7 @@ fn f32_support_edges_match_f64() {
             }
         }
     }
-    assert_eq!(checked, 2 * 2 * 2 * 81);
+    assert_eq!(checked, 2 * 3 * 2 * 81);
 }
 
 /// The f32 separable Fresnel path (plane reference) against the f64 per-pixel Fresnel path:

@@ -82,6 +82,7 @@ pub struct PointSum {
     separable: bool,
     /// f32 exact kernel: distance from which the polynomial path is used.
     poly_min_distance: f64,
+    poly_min_distance_wide: f64,
 }
 
 /// Scratch buffers a worker reuses from band to band.
@@ -171,7 +172,16 @@ impl PointSum {
             visibility: None,
             tile_cols: 512,
             separable: true,
-            poly_min_distance: kernels::poly_min_distance(plate.pitch[0], plate.wavelength),
+            poly_min_distance: kernels::poly_min_distance(
+                kernels::exact32::POLY_LANES,
+                plate.pitch[0],
+                plate.wavelength,
+            ),
+            poly_min_distance_wide: kernels::poly_min_distance(
+                kernels::exact32::POLY_LANES_WIDE,
+                plate.pitch[0],
+                plate.wavelength,
+            ),
         }
     }
 
@@ -373,6 +383,7 @@ impl PointSum {
                     pitch: self.plate.pitch[0],
                     ref_step,
                     poly_min_distance: self.poly_min_distance,
+                    poly_min_distance_wide: self.poly_min_distance_wide,
                 };
                 let (wx, wy) = self.row_window(&ch.reference, y);
                 let inputs = RowInputs {

@@ -32,13 +32,16 @@ use super::{EmitterRow, RowInputs};
 pub const LANES: usize = 8;
 /// Pixels per segment of the polynomial path (one f64 anchor and expansion each).
 pub const POLY_LANES: usize = 16;
+/// Pixels per segment of the polynomial path for emitters far enough for the longer expansion
+/// ([`poly_min_distance`] with this many lanes): half the f64 work per pixel.
+pub const POLY_LANES_WIDE: usize = 32;
 /// Segments of the polynomial path whose coefficients are computed together.
 const POLY_SEGMENTS: usize = 4;
 /// Padding the f32 row buffers need past the last column a kernel call touches.
-pub const PAD: usize = if BLOCK > POLY_LANES * POLY_SEGMENTS {
+pub const PAD: usize = if BLOCK > POLY_LANES_WIDE * POLY_SEGMENTS {
     BLOCK
 } else {
-    POLY_LANES * POLY_SEGMENTS
+    POLY_LANES_WIDE * POLY_SEGMENTS
 };
 
 /// Margin (in direction cosines) below which the f32 support test defers to the f64 one.
@@ -56,19 +59,22 @@ pub struct Row32<'a> {
     /// of the row (0 for a plane reference).
     pub ref_step: [f64; 2],
     /// Emitters at least this far from the row (sqrt(dy^2 + z^2), metres) take the polynomial
-    /// path; nearer ones the per-pixel square root. See [`poly_min_distance`].
+    /// path with [`POLY_LANES`]-pixel segments; nearer ones the per-pixel square root. See
+    /// [`poly_min_distance`].
     pub poly_min_distance: f64,
+    /// From this distance on, segments of [`POLY_LANES_WIDE`] pixels.
+    pub poly_min_distance_wide: f64,
 }
 
 /// Phase error allowed to the cubic expansion of r over a segment, cycles.
 pub const POLY_PHASE_TOL: f64 = 2e-6;
 
 /// The distance from which the cubic expansion of r about a segment's anchor is within
-/// [`POLY_PHASE_TOL`]: with |u| <= U = (POLY_LANES / 2) p, the Taylor remainder is
-/// |r''''| U^4 / 24 <= U^4 / (2 rho^3) (|r''''| <= 12 / rho^3 for r = sqrt(x^2 + rho^2)), so
-/// rho^3 >= U^4 / (2 lambda tol).
-pub fn poly_min_distance(pitch: f64, wavelength: f64) -> f64 {
-    let u = (POLY_LANES / 2) as f64 * pitch;
+/// [`POLY_PHASE_TOL`] with segments of `lanes` pixels: with |u| <= U = (lanes / 2) p, the Taylor
+/// remainder is |r''''| U^4 / 24 <= U^4 / (2 rho^3) (|r''''| <= 12 / rho^3 for
+/// r = sqrt(x^2 + rho^2)), so rho^3 >= U^4 / (2 lambda tol).
+pub fn poly_min_distance(lanes: usize, pitch: f64, wavelength: f64) -> f64 {
+    let u = (lanes / 2) as f64 * pitch;
     (u.powi(4) / (2.0 * wavelength * POLY_PHASE_TOL)).cbrt()
 }
 
@@ -124,8 +130,11 @@ pub fn exact32_generic<const OBLIQUE: bool>(
     re: &mut [f32],
     im: &mut [f32],
 ) -> u64 {
-    if (e.dy * e.dy + e.z * e.z).sqrt() >= r32.poly_min_distance {
-        exact32_poly::<OBLIQUE>(ri, r32, e, c0, c1, re, im)
+    let rho = (e.dy * e.dy + e.z * e.z).sqrt();
+    if rho >= r32.poly_min_distance_wide {
+        exact32_poly::<OBLIQUE, POLY_LANES_WIDE>(ri, r32, e, c0, c1, re, im)
+    } else if rho >= r32.poly_min_distance {
+        exact32_poly::<OBLIQUE, POLY_LANES>(ri, r32, e, c0, c1, re, im)
     } else {
         exact32_near::<OBLIQUE>(ri, r32, e, c0, c1, re, im)
     }
@@ -147,7 +156,7 @@ pub fn exact32_generic<const OBLIQUE: bool>(
 /// whose f64 margins at the anchor exceed those changes is wholly inside (or outside) the
 /// support; the rest (edge segments) get the f64 test pixel by pixel.
 #[inline(always)]
-fn exact32_poly<const OBLIQUE: bool>(
+fn exact32_poly<const OBLIQUE: bool, const L: usize>(
     ri: &RowInputs,
     r32: &Row32,
     e: &EmitterRow,
@@ -156,15 +165,14 @@ fn exact32_poly<const OBLIQUE: bool>(
     re: &mut [f32],
     im: &mut [f32],
 ) -> u64 {
-    const L: usize = POLY_LANES;
     const S: usize = POLY_SEGMENTS;
-    const ANCHOR: usize = L / 2;
+    let anchor = L / 2;
     let c2 = e.dy * e.dy + e.z * e.z;
     let rho = c2.sqrt();
     let p = r32.pitch;
     let il = ri.inv_lambda;
     let [bx, by] = ri.half_band;
-    let reach = ANCHOR as f64 * p / rho;
+    let reach = anchor as f64 * p / rho;
     let reach_x = reach + (L - 1) as f64 * r32.ref_step[0] + 1e-12;
     let reach_y = reach + (L - 1) as f64 * r32.ref_step[1] + 1e-12;
     let (m, amp) = if OBLIQUE {
@@ -175,7 +183,7 @@ fn exact32_poly<const OBLIQUE: bool>(
     let mut nl = [0f32; L];
     let mut lane = [0f32; L];
     for i in 0..L {
-        nl[i] = i as f32 - ANCHOR as f32;
+        nl[i] = i as f32 - anchor as f32;
         lane[i] = i as f32;
     }
     let last = ri.xs.len() - 1;
@@ -192,7 +200,7 @@ fn exact32_poly<const OBLIQUE: bool>(
         let mut b = [[0f32; S]; 3];
         let mut g = [[0f32; S]; 3];
         for k in 0..S {
-            dxa[k] = x0 + (k * L + ANCHOR) as f64 * p;
+            dxa[k] = x0 + (k * L + anchor) as f64 * p;
             let ra = (dxa[k] * dxa[k] + c2).sqrt();
             ir[k] = 1.0 / ra;
             let s = dxa[k] * ir[k];
@@ -201,7 +209,10 @@ fn exact32_poly<const OBLIQUE: bool>(
             ta[k] = (t - t.floor()) as f32;
             let q = 1.0 - s * s;
             let pl = p * il;
-            b[0][k] = (s * pl) as f32;
+            // Whole cycles per pixel do nothing at integer offsets n: keep b1 within half a cycle,
+            // so n b1 stays below L / 4 cycles and its f32 rounding small.
+            let b1 = s * pl;
+            b[0][k] = (b1 - b1.round_ties_even()) as f32;
             b[1][k] = (q * p * pl * 0.5 * ir[k]) as f32;
             b[2][k] = (-s * q * p * p * pl * 0.5 * ir[k] * ir[k]) as f32;
             let irm = if OBLIQUE { ir[k] * ir[k] } else { ir[k] };
@@ -213,7 +224,7 @@ fn exact32_poly<const OBLIQUE: bool>(
         // Support class per segment: 0 outside, 1 inside, 2 edge.
         let mut class = [0u8; S];
         for k in 0..S {
-            let cr = (c + k * L + ANCHOR).min(last);
+            let cr = (c + k * L + anchor).min(last);
             let mx = bx - (sa[k] - ri.rdx[cr]).abs();
             let my = by - (e.dy * ir[k] - ri.rdy[cr]).abs();
             class[k] = if mx > reach_x && my > reach_y {
@@ -233,19 +244,17 @@ fn exact32_poly<const OBLIQUE: bool>(
             // Weights: lanes past the span are dropped arithmetically; an edge segment's lanes
             // also by the f64 test. (Full segments read a constant array, never one just written
             // lane by lane: a wide load of narrow stores stalls store forwarding.)
-            const ONES: [f32; POLY_LANES] = [1.0; POLY_LANES];
+            let full = class[k] == 1;
             let mut edge = [0f32; L];
-            let wt = if class[k] == 1 {
+            if full {
                 count += live as u64;
-                &ONES
             } else {
                 for (i, v) in edge.iter_mut().enumerate().take(live) {
                     let inside = inside_f64(ri, e, c2, cs + i);
                     *v = if inside { 1.0 } else { 0.0 };
                     count += inside as u64;
                 }
-                &edge
-            };
+            }
             let live_f = live as f32;
             let (t0, b1, b2, b3) = (ta[k], b[0][k], b[1][k], b[2][k]);
             let (g0, g1, g2) = (g[0][k], g[1][k], g[2][k]);
@@ -255,7 +264,13 @@ fn exact32_poly<const OBLIQUE: bool>(
                 let t = n.mul_add(n.mul_add(n.mul_add(b3, b2), b1), t0);
                 let t = t - t.round_ties_even();
                 let (sn, co) = sincos_half(t);
-                let on = if lane[i] < live_f { wt[i] } else { 0.0 };
+                let on = if lane[i] >= live_f {
+                    0.0
+                } else if full {
+                    1.0
+                } else {
+                    edge[i]
+                };
                 let a = n.mul_add(n.mul_add(g2, g1), g0) * on;
                 re[i] = a.mul_add(co, re[i]);
                 im[i] = a.mul_add(sn, im[i]);
