@@ -8,6 +8,7 @@ pub mod iterative;
 pub mod kernels;
 pub mod phase_cell;
 pub mod point_sum;
+pub mod recording_plane;
 pub mod reference;
 pub mod support;
 

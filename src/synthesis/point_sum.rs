@@ -83,6 +83,8 @@ pub struct PointSum {
     /// f32 exact kernel: distance from which the polynomial path is used.
     poly_min_distance: f64,
     poly_min_distance_wide: f64,
+    /// Soft support edge (exact approximation, f64 only), see [`Self::with_edge_taper`].
+    taper_start: f64,
 }
 
 /// Scratch buffers a worker reuses from band to band.
@@ -177,6 +179,7 @@ impl PointSum {
                 plate.pitch[0],
                 plate.wavelength,
             ),
+            taper_start: 1.0,
             poly_min_distance_wide: kernels::poly_min_distance(
                 kernels::exact32::POLY_LANES_WIDE,
                 plate.pitch[0],
@@ -197,6 +200,18 @@ impl PointSum {
     pub fn with_visibility(mut self, v: std::sync::Arc<dyn Visibility>, tile_cols: usize) -> Self {
         self.visibility = Some(v);
         self.tile_cols = tile_cols.max(1);
+        self
+    }
+
+    /// Soft support edges: each emitter's wave weighted by a raised cosine of its support margin,
+    /// 1 up to `start` (a share of lambda / 2p, on each axis), 0 at the Nyquist limit
+    /// ([`kernels::edge_taper`]). Exact approximation in f64 only (the options are set so); the
+    /// recording-plane path uses it so its plane's window does not ring.
+    pub fn with_edge_taper(mut self, start: f64) -> Self {
+        self.taper_start = start;
+        self.opts.approximation = Approximation::Exact;
+        self.opts.precision = Precision::F64;
+        self.separable = false;
         self
     }
 
@@ -392,6 +407,7 @@ impl PointSum {
                     rdy: &scratch.ref_dir_y,
                     half_band: self.half_band,
                     inv_lambda,
+                    taper_start: self.taper_start,
                 };
                 let (re, im) = (&mut scratch.re, &mut scratch.im);
                 let (re32, im32) = (&mut scratch.re32, &mut scratch.im32);
@@ -523,6 +539,7 @@ impl PointSum {
             rdy: &scratch.ref_dir_y,
             half_band: self.half_band,
             inv_lambda,
+            taper_start: self.taper_start,
         };
         let (wx, _) = direction_window([d[0], d[0]], [d[1], d[1]], self.half_band);
         let mut updates = 0u64;
@@ -629,6 +646,7 @@ impl PointSum {
             rdy: &scratch.ref_dir_y,
             half_band: self.half_band,
             inv_lambda,
+            taper_start: self.taper_start,
         };
         let (wx, _) = direction_window([d[0], d[0]], [d[1], d[1]], self.half_band);
         let ys: Vec<f64> = (0..rows)

@@ -35,6 +35,23 @@ pub struct RowInputs<'a> {
     pub half_band: [f64; 2],
     /// 1 / lambda.
     pub inv_lambda: f64,
+    /// Soft support edge of the f64 exact kernel: below 1, each emitter's wave is weighted by
+    /// [`edge_taper`] of its margin on both axes (the recording-plane path); 1 or more: the
+    /// plain 0/1 support. The other kernels ignore it.
+    pub taper_start: f64,
+}
+
+/// Raised-cosine weight of a support margin: `u` = |d_j - d_R| / (lambda / 2p) on one axis;
+/// 1 up to `start`, falling to 0 at `u` = 1, 0 beyond.
+#[inline(always)]
+pub fn edge_taper(u: f64, start: f64) -> f64 {
+    if u <= start {
+        1.0
+    } else if u >= 1.0 {
+        0.0
+    } else {
+        0.5 * (1.0 + (std::f64::consts::PI * (u - start) / (1.0 - start)).cos())
+    }
 }
 
 /// One emitter on one row.
@@ -99,8 +116,15 @@ fn exact_generic(
         let dx = xs[i] - e.xj;
         let r = (dx * dx + c2).sqrt();
         let inv_r = 1.0 / r;
-        let inside = ((dx * inv_r - rdx[i]).abs() <= bx) & ((e.dy * inv_r - rdy[i]).abs() <= by);
-        let w = if inside { 1.0 } else { 0.0 };
+        let (gx, gy) = ((dx * inv_r - rdx[i]).abs(), (e.dy * inv_r - rdy[i]).abs());
+        let inside = (gx <= bx) & (gy <= by);
+        let w = if !inside {
+            0.0
+        } else if ri.taper_start < 1.0 {
+            edge_taper(gx / bx, ri.taper_start) * edge_taper(gy / by, ri.taper_start)
+        } else {
+            1.0
+        };
         let amp = if e.obliquity {
             e.amplitude * e.z * inv_r * inv_r
         } else {
@@ -659,6 +683,7 @@ mod unit_tests {
             rdy: &rdy,
             half_band: [0.2, 0.2],
             inv_lambda: 1.0 / 633e-9,
+            taper_start: 1.0,
         };
         for obliquity in [false, true] {
             let e = EmitterRow {
