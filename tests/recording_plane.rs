@@ -138,3 +138,94 @@ fn refuses_what_it_does_not_cover() {
     assert!(e(plane, o, Some(3e-3)).contains("closer to the plate"));
     assert!(RecordingPlane::new(plate, plane, em.clone(), o, None).is_ok());
 }
+
+const BIN: &str = env!("CARGO_BIN_EXE_fringemill");
+
+fn job(dir: &std::path::Path, name: &str, extra: &str, reference: &str) -> std::path::PathBuf {
+    let j = dir.join(format!("{name}.toml"));
+    std::fs::write(
+        &j,
+        format!(
+            "[hologram]\nwidth_px = 192\nheight_px = 128\npitch_um = 1.0\nwavelength_nm = 633\n\
+             [reference]\n{reference}\n\
+             [[object]]\npoints = \"pts.csv\"\n\
+             [synthesis]\nmethod = \"point-sum\"\napproximation = \"exact\"\n{extra}\n\
+             [encoding]\nkind = \"phase\"\nlevels = 256\n[output]\npath = \"out/{name}.tif\"\n"
+        ),
+    )
+    .unwrap();
+    j
+}
+
+/// Through the binary: `path = "recording-plane"` writes a plate that matches the direct one
+/// (256 levels: at most one level apart, on a small share of the pixels, as the field agrees to
+/// about 1e-4 of max |F| here), records the path in the sidecar, and `plan` names it; a job the
+/// method cannot take fails with one line.
+#[test]
+fn job_path_recording_plane() {
+    let d = tempfile::tempdir().unwrap();
+    let mut rng = Rng(0x70b5);
+    let mut csv = String::from("x_mm,y_mm,z_mm,amplitude\n");
+    for _ in 0..30 {
+        csv += &format!(
+            "{},{},{},{}\n",
+            rng.range(-0.03, 0.03),
+            rng.range(-0.03, 0.03),
+            rng.range(3.0, 4.0),
+            rng.range(0.3, 1.0)
+        );
+    }
+    std::fs::write(d.path().join("pts.csv"), csv).unwrap();
+    let plane = "kind = \"plane\"\ntilt_deg = [2, -1]";
+    let run = |j: &std::path::Path, cmd: &str| {
+        std::process::Command::new(BIN)
+            .args([cmd, "-q", j.to_str().unwrap()])
+            .output()
+            .unwrap()
+    };
+    let jd = job(d.path(), "direct", "", plane);
+    let jw = job(
+        d.path(),
+        "wrp",
+        "path = \"recording-plane\"\nrecording_plane_gap_mm = 2.0",
+        plane,
+    );
+    let o = run(&jw, "plan");
+    let text = String::from_utf8_lossy(&o.stdout);
+    assert!(o.status.success() && text.contains("path: recording plane"), "{text}");
+    for j in [&jd, &jw] {
+        let o = run(j, "run");
+        assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    }
+    let side: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(d.path().join("out/wrp.json")).unwrap()).unwrap();
+    assert_eq!(side["synthesis"]["path"], "recording-plane");
+    assert!((side["synthesis"]["recording_plane"]["distance_mm"].as_f64().unwrap() - 1.0).abs() < 0.05);
+    let dec = |p: &str| {
+        let mut dec = tiff::decoder::Decoder::new(std::fs::File::open(d.path().join(p)).unwrap()).unwrap();
+        match dec.read_image().unwrap() {
+            tiff::decoder::DecodingResult::U8(v) => v,
+            _ => panic!("8-bit plate expected"),
+        }
+    };
+    let (a, b) = (dec("out/direct.tif"), dec("out/wrp.tif"));
+    assert_eq!(a.len(), b.len());
+    let mut moved = 0;
+    for (x, y) in a.iter().zip(&b) {
+        let diff = (*x as i32 - *y as i32).rem_euclid(256);
+        assert!(diff <= 1 || diff == 255, "{x} vs {y}");
+        moved += (diff != 0) as usize;
+    }
+    assert!(moved * 50 < a.len(), "{moved} of {} pixels moved", a.len());
+    // Spherical reference: not for this method; one line, non-zero exit, no plate.
+    let js = job(
+        d.path(),
+        "sph",
+        "path = \"recording-plane\"",
+        "kind = \"spherical\"\nposition_mm = [0, 0, -300]",
+    );
+    let o = run(&js, "run");
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(!o.status.success() && err.contains("plane reference") && err.trim().lines().count() == 1, "{err}");
+    assert!(!d.path().join("out/sph.tif").exists());
+}

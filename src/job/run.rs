@@ -13,6 +13,9 @@ use num_complex::Complex64;
 use rayon::prelude::*;
 
 use super::fields::{manifest_json, FieldEntry, FieldGrid, FieldSink, FieldsState};
+use crate::synthesis::recording_plane::RecordingPlane;
+use crate::synthesis::{Approximation, Precision};
+use super::spec::SumPath;
 use super::iterative::{build_cell, sidecar_json as iterative_sidecar, IterationRecord};
 use super::journal::{changed_key, journal_path, Journal, FORMAT};
 use super::progress::{Progress, ProgressMode};
@@ -156,10 +159,85 @@ fn point_sum(spec: &JobSpec, scene: Scene) -> PointSum {
     }
 }
 
+/// Rough cost weights for `[synthesis] path = "auto"`, in units of one f64 exact update, measured
+/// on the benchmark machine (BENCHMARKS.md): an f32 exact update, and one element of one radix-2
+/// pass of a complex f64 FFT.
+const F32_UPDATE_WEIGHT: f64 = 0.3;
+const FFT_PASS_WEIGHT: f64 = 0.27;
+
+/// The point sum on the path the job asks for (`[synthesis] path`), with lines for `plan`.
+fn choose_sum(spec: &JobSpec, scene: Scene) -> Result<(Source, Vec<String>)> {
+    let mut lines = Vec::new();
+    if spec.sum_path == SumPath::Direct {
+        lines.push("path: direct point sum".into());
+        return Ok((Source::Points(point_sum(spec, scene)), lines));
+    }
+    let plane = if scene.channels.len() == 1 && scene.visibility.is_none() {
+        let (reference, emitters) = &scene.channels[0];
+        RecordingPlane::new(
+            spec.plate,
+            *reference,
+            emitters.clone(),
+            spec.synthesis,
+            spec.recording_plane_gap,
+        )
+    } else {
+        Err("the recording plane takes one reference and no occlusion".to_string())
+    };
+    let sum = point_sum(spec, scene);
+    let plane = match plane {
+        Ok(p) => p,
+        Err(why) => {
+            if spec.sum_path == SumPath::RecordingPlane {
+                return Err(Error::job(
+                    &spec.path,
+                    format!("[synthesis] path = \"recording-plane\": {why}"),
+                ));
+            }
+            lines.push(format!("path: direct point sum (recording plane not applicable: {why})"));
+            return Ok((Source::Points(sum), lines));
+        }
+    };
+    let unit = if spec.synthesis.precision == Precision::F32
+        && spec.synthesis.approximation == Approximation::Exact
+    {
+        F32_UPDATE_WEIGHT
+    } else {
+        1.0
+    };
+    let direct = sum.estimate_updates(64) * unit;
+    let via_plane = plane.estimate_cost(1.0, FFT_PASS_WEIGHT);
+    lines.push(format!(
+        "estimated cost (f64 exact updates): direct {direct:.3e}, recording plane {via_plane:.3e} (plane {:.3} mm from the plate, grid margins {:?} px, bands of {} rows)",
+        plane.distance() * 1e3,
+        plane.margins(),
+        plane.band_rows()
+    ));
+    let take = spec.sum_path == SumPath::RecordingPlane || via_plane < direct;
+    lines.push(
+        if take {
+            "path: recording plane"
+        } else {
+            "path: direct point sum (cheaper by the estimate)"
+        }
+        .into(),
+    );
+    Ok((
+        if take {
+            Source::Plane(plane, sum.unreachable())
+        } else {
+            Source::Points(sum)
+        },
+        lines,
+    ))
+}
+
 /// What produces the fringe term band by band: the point sum, or an iterated phase cell.
 pub enum Source {
     /// Point-source summation.
     Points(PointSum),
+    /// Point sum through a recording plane (and the direct sum's count of unreachable emitters).
+    Plane(RecordingPlane, usize),
     /// Iterated phase cell over the plate, with the iteration's record.
     Cell(PhaseCell, IterationRecord, IterativeSpec),
 }
@@ -169,7 +247,32 @@ impl Source {
     pub fn plate(&self) -> &crate::optics::Plate {
         match self {
             Source::Points(s) => s.plate(),
+            Source::Plane(p, _) => p.plate(),
             Source::Cell(c, ..) => c.plate(),
+        }
+    }
+    /// Rows per band the source prefers, if it has a preference.
+    fn preferred_band_rows(&self) -> Option<usize> {
+        match self {
+            Source::Plane(p, _) => Some(p.band_rows()),
+            _ => None,
+        }
+    }
+    /// `synthesis.path` (and the recording plane's record) for the sidecar.
+    fn sum_path(&self) -> Option<(&'static str, Option<serde_json::Value>)> {
+        match self {
+            Source::Points(_) => Some(("direct", None)),
+            Source::Plane(p, _) => Some((
+                "recording-plane",
+                Some(serde_json::json!({
+                    "distance_mm": p.distance() * 1e3,
+                    "grid_margins_px": p.margins(),
+                    "band_rows": p.band_rows(),
+                    "edge_taper_from": crate::synthesis::recording_plane::TAPER_START,
+                    "method": "emitters summed on a plane parallel to the plate (supports weighted by a raised cosine from 80 % of the half band to the Nyquist limit), carried to the plate by a band-limited angular-spectrum step centred on the reference's frequency",
+                })),
+            )),
+            Source::Cell(..) => None,
         }
     }
     /// F for a band; returns the work done (point-pixel updates, or pixels).
@@ -182,6 +285,7 @@ impl Source {
     ) -> u64 {
         match self {
             Source::Points(s) => s.compute_band(r0, n, out, scratch),
+            Source::Plane(p, _) => p.compute_band(r0, n, out, scratch),
             Source::Cell(c, ..) => c.compute_band(r0, n, out),
         }
     }
@@ -189,6 +293,7 @@ impl Source {
     pub fn estimate_updates(&self, max_rows: usize) -> f64 {
         match self {
             Source::Points(s) => s.estimate_updates(max_rows),
+            Source::Plane(p, _) => p.estimate_cost(1.0, 0.0),
             Source::Cell(c, ..) => c.plate().pixels() as f64,
         }
     }
@@ -196,6 +301,7 @@ impl Source {
     pub fn unreachable(&self) -> usize {
         match self {
             Source::Points(s) => s.unreachable(),
+            Source::Plane(_, n) => *n,
             Source::Cell(..) => 0,
         }
     }
@@ -214,13 +320,13 @@ impl Source {
                     .sum();
                 (spans as f64 + 0.05 * w) * n as f64
             }
-            Source::Cell(..) => w * n as f64,
+            Source::Plane(..) | Source::Cell(..) => w * n as f64,
         }
     }
     /// The sidecar's synthesis extras.
     fn sidecar_extra(&self) -> Option<serde_json::Value> {
         match self {
-            Source::Points(_) => None,
+            Source::Points(_) | Source::Plane(..) => None,
             Source::Cell(_, rec, it) => Some(iterative_sidecar(it, rec)),
         }
     }
@@ -318,7 +424,7 @@ fn prepare(spec: &JobSpec, mode: ProgressMode) -> Result<Prepared> {
         Method::PointSum => {
             let scene = build_scene(spec)?;
             let n = scene.normals.len();
-            (Source::Points(point_sum(spec, scene)), n)
+            (choose_sum(spec, scene)?.0, n)
         }
         Method::Iterative(it) => {
             let (cell, rec) = build_cell(spec, it, mode)?;
@@ -333,6 +439,11 @@ fn prepare(spec: &JobSpec, mode: ProgressMode) -> Result<Prepared> {
         },
     };
     let mut layout = tiff_layout(spec, &encoding);
+    // A source with its own band height (the recording plane pays its margins once per band)
+    // gets strips of that height unless the job sets them.
+    if let (Some(b), None, None) = (sum.preferred_band_rows(), spec.rows_per_strip, spec.field_px) {
+        layout.rows_per_strip = b as u32;
+    }
     let (fields, blocks, rps, unit_rows) = match spec.field_px {
         None => {
             let rps = layout.effective_rows_per_strip();
@@ -358,7 +469,16 @@ fn prepare(spec: &JobSpec, mode: ProgressMode) -> Result<Prepared> {
             (Some(grid), blocks, rps, fh)
         }
     };
-    let band_rows = band_rows_for(spec, rps);
+    let band_rows = match (sum.preferred_band_rows(), spec.band_rows) {
+        (Some(b), None) => {
+            let target = b.min(rps as usize).max(1);
+            (1..=target)
+                .rev()
+                .find(|d| rps as usize % d == 0)
+                .unwrap_or(1)
+        }
+        _ => band_rows_for(spec, rps),
+    };
     Ok(Prepared {
         source: sum,
         encoding,
@@ -744,6 +864,7 @@ fn finish_plate(
         unreachable: prep.source.unreachable(),
         updates,
         extra: prep.source.sidecar_extra(),
+        sum_path: prep.source.sum_path(),
     };
     if let Err(e) = sidecar::write(&sidecar, &input) {
         let _ = std::fs::remove_file(&finished.path);
@@ -785,6 +906,7 @@ fn finish_fields(
         unreachable: prep.source.unreachable(),
         updates,
         extra: prep.source.sidecar_extra(),
+        sum_path: prep.source.sum_path(),
     };
     sidecar::write(&sidecar, &input)?;
     Ok(RunSummary {
@@ -1218,7 +1340,14 @@ pub fn plan(spec: &JobSpec) -> Result<PlanReport> {
         scene.channels.len()
     ));
     lines.extend(scene.notes.iter().cloned());
-    let sum = point_sum(spec, scene);
+    let (source, path_lines) = choose_sum(spec, scene)?;
+    let sum = match &source {
+        Source::Points(s) => s,
+        _ => {
+            // The direct sum's figures (supports, reach) are reported either way.
+            &point_sum(spec, build_scene(spec)?)
+        }
+    };
     if !zs.is_empty() {
         for (name, z) in [
             ("nearest", zs[0]),
@@ -1257,6 +1386,7 @@ pub fn plan(spec: &JobSpec) -> Result<PlanReport> {
         updates,
         updates / p.pixels() as f64
     ));
+    lines.extend(path_lines);
     let encoding = match &spec.encoding {
         EncodingRequest::Fixed(e) => e.clone(),
         EncodingRequest::AmplitudeAuto { bits } => Encoding::Amplitude {

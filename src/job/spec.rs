@@ -88,6 +88,17 @@ pub struct RawObject {
     pub shift_px: Option<[i64; 2]>,
 }
 
+/// How a point sum is computed (`[synthesis] path`).
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum SumPath {
+    /// Every emitter summed on the plate itself.
+    Direct,
+    /// Emitters summed on a recording plane near them, carried to the plate by an FFT step.
+    RecordingPlane,
+    /// The cheaper of the two by the estimates `plan` prints.
+    Auto,
+}
+
 /// `[synthesis]`
 #[derive(Deserialize, Debug, Clone, Default)]
 #[serde(deny_unknown_fields)]
@@ -98,6 +109,10 @@ pub struct RawSynthesis {
     pub obliquity: Option<bool>,
     /// Exact kernel arithmetic: "f64" (default) or "f32".
     pub precision: Option<String>,
+    /// Point sum: "direct" (default), "recording-plane" or "auto" (the cheaper by estimate).
+    pub path: Option<String>,
+    /// Recording-plane path: distance from the nearest emitter to the plane, mm.
+    pub recording_plane_gap_mm: Option<f64>,
     /// Rows computed together per task (default: chosen from the width).
     pub band_rows: Option<i64>,
     /// Iterative: "fourier" or "fresnel".
@@ -314,6 +329,10 @@ pub struct JobSpec {
     pub method: Method,
     /// Rows per band, if set.
     pub band_rows: Option<usize>,
+    /// How the point sum is computed (`[synthesis] path`).
+    pub sum_path: SumPath,
+    /// Recording-plane gap, metres (None: the method's default).
+    pub recording_plane_gap: Option<f64>,
     /// Encoding.
     pub encoding: EncodingRequest,
     /// Output TIFF path, resolved.
@@ -559,6 +578,25 @@ impl JobSpec {
                 )))
             }
         };
+        let sum_path = match s.path.as_deref().unwrap_or("direct") {
+            "direct" => SumPath::Direct,
+            "recording-plane" => SumPath::RecordingPlane,
+            "auto" => SumPath::Auto,
+            other => {
+                return Err(bad(format!(
+                    "[synthesis] path = \"{other}\" is not one of \"direct\", \"recording-plane\", \"auto\""
+                )))
+            }
+        };
+        let recording_plane_gap = match s.recording_plane_gap_mm {
+            None => None,
+            Some(g) if g.is_finite() && g > 0.0 => Some(g * 1e-3),
+            Some(g) => {
+                return Err(bad(format!(
+                    "[synthesis] recording_plane_gap_mm = {g} must be a positive number"
+                )))
+            }
+        };
         let band_rows = match s.band_rows {
             None => None,
             Some(b) if (1..=65536).contains(&b) => Some(b as usize),
@@ -666,6 +704,8 @@ impl JobSpec {
             },
             method,
             band_rows,
+            sum_path,
+            recording_plane_gap,
             encoding,
             output,
             compression,

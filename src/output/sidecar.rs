@@ -34,6 +34,9 @@ pub struct SidecarInput<'a> {
     pub updates: u64,
     /// Method-specific record (iterative synthesis), stored under `iterative`.
     pub extra: Option<Value>,
+    /// How the point sum was computed: `synthesis.path`, and `synthesis.recording_plane` when
+    /// that path ran.
+    pub sum_path: Option<(&'static str, Option<Value>)>,
 }
 
 /// What a run wrote: one TIFF, or a set of field files with their manifest.
@@ -168,6 +171,8 @@ pub fn to_json(i: &SidecarInput) -> Value {
             "method": match i.spec.method { crate::job::spec::Method::PointSum => "point-sum", crate::job::spec::Method::Iterative(_) => "iterative" },
             "approximation": s.approximation.name(),
             "precision": s.precision.name(),
+            "path": i.sum_path.as_ref().map(|p| p.0),
+            "recording_plane": i.sum_path.as_ref().and_then(|p| p.1.clone()),
             "obliquity": s.obliquity,
             "anti_aliasing": "emitter j contributes where |(d_j - d_R)_x| <= lambda / (2 px) and likewise in y (d: local direction cosines)",
             "fringe_term": "F = O conj(R), O = sum a_j exp(i (k r_j + phi_j)) / r_j",
