@@ -269,7 +269,7 @@ impl Source {
                     "grid_margins_px": p.margins(),
                     "band_rows": p.band_rows(),
                     "edge_taper_from": crate::synthesis::recording_plane::TAPER_START,
-                    "method": "emitters summed on a plane parallel to the plate (supports weighted by a raised cosine from 80 % of the half band to the Nyquist limit), carried to the plate by a band-limited angular-spectrum step centred on the reference's frequency",
+                    "method": "emitters summed on a plane parallel to the plate (supports weighted by a quintic smooth step from 80 % of the half band to the Nyquist limit), carried to the plate by a band-limited angular-spectrum step centred on the reference's frequency",
                 })),
             )),
             Source::Cell(..) => None,

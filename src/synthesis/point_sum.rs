@@ -203,7 +203,7 @@ impl PointSum {
         self
     }
 
-    /// Soft support edges: each emitter's wave weighted by a raised cosine of its support margin,
+    /// Soft support edges: each emitter's wave weighted by a smooth step of its support margin,
     /// 1 up to `start` (a share of lambda / 2p, on each axis), 0 at the Nyquist limit
     /// ([`kernels::edge_taper`]). Exact approximation in f64 only (the options are set so); the
     /// recording-plane path uses it so its plane's window does not ring.

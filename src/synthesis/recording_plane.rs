@@ -18,8 +18,8 @@
 //! to the plate without approximation. What must be handled is the window: a support cut sharply
 //! at the recording plane diffracts over z_w, and wherever an emitter is nearer that plane than the
 //! plate is, the ringing reaches the middle of its support on the plate (measured: 5-25 % of |F|).
-//! So the window is soft on both sides: each emitter's wave on the plane is weighted by a raised
-//! cosine of its support margin (1 up to [`TAPER_START`] = 80 % of the half band, 0 at the Nyquist
+//! So the window is soft on both sides: each emitter's wave on the plane is weighted by a smooth
+//! step of its support margin (1 up to [`TAPER_START`] = 80 % of the half band, 0 at the Nyquist
 //! limit; [`PointSum::with_edge_taper`]) and the plane's spectrum by the same roll-off. Where every
 //! emitter is seen within 80 % of the band, the plate equals the direct sum to about 4e-4 of
 //! max |F| (`tests/recording_plane.rs`); in the outer fifth of each support it fades instead of
