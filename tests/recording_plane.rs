@@ -25,12 +25,7 @@ fn field_direct(plate: Plate, r: Reference, em: &[Emitter], taper: f64) -> Vec<C
     let mut f = vec![Complex64::new(0.0, 0.0); w * h];
     PointSum::new(plate, r, em.to_vec(), PointSumOptions::default())
         .with_edge_taper(taper)
-        .compute_band(
-        0,
-        h,
-        &mut f,
-        &mut BandScratch::default(),
-    );
+        .compute_band(0, h, &mut f, &mut BandScratch::default());
     f
 }
 
@@ -41,7 +36,12 @@ fn field_wrp(wrp: &RecordingPlane, band: usize) -> Vec<Complex64> {
     let mut r0 = 0;
     while r0 < h {
         let n = band.min(h - r0);
-        wrp.compute_band(r0, n, &mut f[r0 * w..(r0 + n) * w], &mut BandScratch::default());
+        wrp.compute_band(
+            r0,
+            n,
+            &mut f[r0 * w..(r0 + n) * w],
+            &mut BandScratch::default(),
+        );
         r0 += n;
     }
     f
@@ -81,8 +81,9 @@ fn agrees_with_direct_sum_inside_supports() {
         let direct = field_direct(plate, r, &em, 1.0);
         let maxf = direct.iter().map(|f| f.norm()).fold(0.0, f64::max);
         for gap in [0.25e-3, 1.2e-3, 2e-3] {
-            let wrp = RecordingPlane::new(plate, r, em.clone(), PointSumOptions::default(), Some(gap))
-                .unwrap();
+            let wrp =
+                RecordingPlane::new(plate, r, em.clone(), PointSumOptions::default(), Some(gap))
+                    .unwrap();
             let f = field_wrp(&wrp, 112);
             let worst = f
                 .iter()
@@ -96,9 +97,17 @@ fn agrees_with_direct_sum_inside_supports() {
             );
             if gap == 2e-3 {
                 let g = field_wrp(&wrp, 37);
-                let d = f.iter().zip(&g).map(|(a, b)| (a - b).norm()).fold(0.0, f64::max);
+                let d = f
+                    .iter()
+                    .zip(&g)
+                    .map(|(a, b)| (a - b).norm())
+                    .fold(0.0, f64::max);
                 // Other grid shapes cut the plane elsewhere: a change within the method's accuracy.
-                assert!(d <= 1e-4 * maxf, "band split changes the plate by {:.2e}", d / maxf);
+                assert!(
+                    d <= 1e-4 * maxf,
+                    "band split changes the plate by {:.2e}",
+                    d / maxf
+                );
             }
         }
     }
@@ -123,7 +132,11 @@ fn refuses_what_it_does_not_cover() {
         position: [0.0, 0.0, 0.1],
     };
     let o = PointSumOptions::default();
-    let e = |r, o, gap| RecordingPlane::new(plate, r, em.clone(), o, gap).err().unwrap_or_default();
+    let e = |r, o, gap| {
+        RecordingPlane::new(plate, r, em.clone(), o, gap)
+            .err()
+            .unwrap_or_default()
+    };
     assert!(e(sph, o, None).contains("plane reference"));
     assert!(e(
         plane,
@@ -134,7 +147,15 @@ fn refuses_what_it_does_not_cover() {
         None
     )
     .contains("exact"));
-    assert!(e(plane, PointSumOptions { obliquity: true, ..o }, None).contains("obliquity"));
+    assert!(e(
+        plane,
+        PointSumOptions {
+            obliquity: true,
+            ..o
+        },
+        None
+    )
+    .contains("obliquity"));
     assert!(e(plane, o, Some(3e-3)).contains("closer to the plate"));
     assert!(RecordingPlane::new(plate, plane, em.clone(), o, None).is_ok());
 }
@@ -192,7 +213,10 @@ fn job_path_recording_plane() {
     );
     let o = run(&jw, "plan");
     let text = String::from_utf8_lossy(&o.stdout);
-    assert!(o.status.success() && text.contains("path: recording plane"), "{text}");
+    assert!(
+        o.status.success() && text.contains("path: recording plane"),
+        "{text}"
+    );
     for j in [&jd, &jw] {
         let o = run(j, "run");
         assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
@@ -200,9 +224,17 @@ fn job_path_recording_plane() {
     let side: serde_json::Value =
         serde_json::from_slice(&std::fs::read(d.path().join("out/wrp.json")).unwrap()).unwrap();
     assert_eq!(side["synthesis"]["path"], "recording-plane");
-    assert!((side["synthesis"]["recording_plane"]["distance_mm"].as_f64().unwrap() - 1.0).abs() < 0.05);
+    assert!(
+        (side["synthesis"]["recording_plane"]["distance_mm"]
+            .as_f64()
+            .unwrap()
+            - 1.0)
+            .abs()
+            < 0.05
+    );
     let dec = |p: &str| {
-        let mut dec = tiff::decoder::Decoder::new(std::fs::File::open(d.path().join(p)).unwrap()).unwrap();
+        let mut dec =
+            tiff::decoder::Decoder::new(std::fs::File::open(d.path().join(p)).unwrap()).unwrap();
         match dec.read_image().unwrap() {
             tiff::decoder::DecodingResult::U8(v) => v,
             _ => panic!("8-bit plate expected"),
@@ -226,6 +258,9 @@ fn job_path_recording_plane() {
     );
     let o = run(&js, "run");
     let err = String::from_utf8_lossy(&o.stderr);
-    assert!(!o.status.success() && err.contains("plane reference") && err.trim().lines().count() == 1, "{err}");
+    assert!(
+        !o.status.success() && err.contains("plane reference") && err.trim().lines().count() == 1,
+        "{err}"
+    );
     assert!(!d.path().join("out/sph.tif").exists());
 }

@@ -116,7 +116,9 @@ impl RecordingPlane {
             }
         };
         if opts.approximation != Approximation::Exact {
-            return Err("the recording plane carries exact waves (approximation = \"exact\")".into());
+            return Err(
+                "the recording plane carries exact waves (approximation = \"exact\")".into(),
+            );
         }
         if opts.obliquity {
             return Err("the recording plane does not apply the obliquity factor".into());
@@ -134,7 +136,8 @@ impl RecordingPlane {
         let half = plate.nyquist_cosines();
         let p = plate.pitch[0].max(plate.pitch[1]);
         let reach = half[0].max(half[1]).min(0.99);
-        let gap = gap.unwrap_or_else(|| (z_min / 8.0).max(16.0 * p / reach * (1.0 - reach * reach).sqrt()));
+        let gap = gap
+            .unwrap_or_else(|| (z_min / 8.0).max(16.0 * p / reach * (1.0 - reach * reach).sqrt()));
         if !(gap.is_finite() && gap > 0.0) {
             return Err(format!("recording-plane gap {gap} m is not positive"));
         }
@@ -149,9 +152,8 @@ impl RecordingPlane {
         let s_r = [tilt[0].sin(), tilt[1].sin()];
         let tan_max = band_tangents(s_r, half);
         let ring = (plate.wavelength * z_w).sqrt();
-        let margin = [0, 1].map(|a| {
-            ((z_w * tan_max[a] + 4.0 * ring) / plate.pitch[a]).ceil() as usize + 8
-        });
+        let margin =
+            [0, 1].map(|a| ((z_w * tan_max[a] + 4.0 * ring) / plate.pitch[a]).ceil() as usize + 8);
         let tile_cols = (2 * margin[0]).max(512).min(plate.width as usize);
         let band_rows = (2 * margin[1]).max(256).min(plate.height as usize);
         Ok(RecordingPlane {
@@ -303,7 +305,8 @@ impl RecordingPlane {
                     let d = e.pos[2] - self.z_w;
                     let (dx, dy) = ((e.pos[0] - xc).abs(), (e.pos[1] - yc).abs());
                     let reach = [d * self.tan_max[0], d * self.tan_max[1]];
-                    (dx <= half_w[0] + reach[0] + p.pitch[0] && dy <= half_w[1] + reach[1] + p.pitch[1])
+                    (dx <= half_w[0] + reach[0] + p.pitch[0]
+                        && dy <= half_w[1] + reach[1] + p.pitch[1])
                         .then(|| Emitter {
                             pos: [e.pos[0] - xc, e.pos[1] - yc, d],
                             ..*e
@@ -328,7 +331,8 @@ impl RecordingPlane {
             for (g, h) in grid.iter_mut().zip(&plan.transfer) {
                 *g *= h;
             }
-            plan.fft.process_inverse_with_scratch(&mut grid, &mut scratch);
+            plan.fft
+                .process_inverse_with_scratch(&mut grid, &mut scratch);
             // The engine demodulated with R about the grid's centre: back to the plate's origin.
             let cycles = -k * (s_r[0] * xc + s_r[1] * yc) / std::f64::consts::TAU;
             let t = cycles - cycles.round();
@@ -358,10 +362,12 @@ impl RecordingPlane {
         for e in &self.emitters {
             let d = e.pos[2] - self.z_w;
             // Support on the recording plane: about 2 d tan(theta) per axis around the foot.
-            let sx = (2.0 * d * (half[0] / (1.0 - half[0] * half[0]).max(1e-6).sqrt()) / p.pitch[0])
+            let sx = (2.0 * d * (half[0] / (1.0 - half[0] * half[0]).max(1e-6).sqrt())
+                / p.pitch[0])
                 .min(p.width as f64 + 2.0 * self.margin[0] as f64)
                 .max(1.0);
-            let sy = (2.0 * d * (half[1] / (1.0 - half[1] * half[1]).max(1e-6).sqrt()) / p.pitch[1])
+            let sy = (2.0 * d * (half[1] / (1.0 - half[1] * half[1]).max(1e-6).sqrt())
+                / p.pitch[1])
                 .min(p.height as f64 + 2.0 * self.margin[1] as f64)
                 .max(1.0);
             updates += sx * sy;
