@@ -27,6 +27,26 @@ fn reduced_cycles(phase: f64) -> f64 {
     t - t.floor()
 }
 
+/// Row factor of emitter `e`'s Fresnel wave on the row at height `y` under a plane reference of
+/// direction cosine `ref_y` in y: `(sin, cos)` of 2 pi (z + dy^2 / 2z) / lambda + phi, or None
+/// where the y half of the support test fails (the same expression as the per-pixel kernel's).
+fn fresnel_row_factor(
+    e: &Emitter,
+    y: f64,
+    ref_y: f64,
+    half_band_y: f64,
+    inv_lambda: f64,
+) -> Option<(f64, f64)> {
+    let z = e.pos[2];
+    let inv_z = 1.0 / z;
+    let dy = y - e.pos[1];
+    if (dy * inv_z - ref_y).abs() > half_band_y {
+        return None;
+    }
+    let t_row = (z + dy * dy * 0.5 * inv_z) * inv_lambda + reduced_cycles(e.phase);
+    Some(kernels::sincos_cycles(t_row - t_row.floor()))
+}
+
 /// Adds the f32 sums of an emitter group over the columns it touched into the f64 row sums and
 /// clears them.
 fn flush_group(
@@ -569,17 +589,12 @@ impl PointSum {
             if nx == 0 {
                 continue;
             }
-            let inv_z = 1.0 / z;
-            let phase_cycles = reduced_cycles(e.phase);
             for r in 0..rows {
                 let y = self.plate.y_of_row((row0 + r) as f64);
-                let dy = y - e.pos[1];
-                // The y half of the support test, the same expression as the per-pixel kernel's.
-                if (dy * inv_z - d[1]).abs() > self.half_band[1] {
+                let Some((s, c)) = fresnel_row_factor(e, y, d[1], self.half_band[1], inv_lambda)
+                else {
                     continue;
-                }
-                let t_row = (z + dy * dy * 0.5 * inv_z) * inv_lambda + phase_cycles;
-                let (s, c) = kernels::sincos_cycles(t_row - t_row.floor());
+                };
                 let base = r * w;
                 kernels::mac(
                     self.isa,
@@ -593,10 +608,24 @@ impl PointSum {
                 updates += nx;
             }
         }
+        self.times_plane_conj(row0, d, out, scratch);
+        updates
+    }
+
+    /// out = (band_re + i band_im) conj(R) for a plane reference of direction cosines `d`, row by
+    /// row (the last step of both separable Fresnel paths).
+    fn times_plane_conj(
+        &self,
+        row0: usize,
+        d: [f64; 2],
+        out: &mut [Complex64],
+        scratch: &mut BandScratch,
+    ) {
+        let w = self.plate.width as usize;
+        let inv_lambda = 1.0 / self.plate.wavelength;
         let (ax, ay) = (d[0] * inv_lambda, d[1] * inv_lambda);
         for (r, orow) in out.chunks_exact_mut(w).enumerate() {
-            let y = self.plate.y_of_row((row0 + r) as f64);
-            let ty = y * ay;
+            let ty = self.plate.y_of_row((row0 + r) as f64) * ay;
             for (t, &x) in scratch.ref_cycles.iter_mut().zip(&self.xs) {
                 *t = x * ax + ty;
             }
@@ -608,7 +637,6 @@ impl PointSum {
                 orow,
             );
         }
-        updates
     }
 
     /// The separable Fresnel band in f32 ([`kernels::fresnel32`]): emitters in groups of
@@ -677,6 +705,8 @@ impl PointSum {
             *touched = (w, 0);
         };
         let mut block = usize::MAX;
+        let mut coefs: Vec<[[f32; 2]; GROUP]> = Vec::with_capacity(rows);
+        let mut live: Vec<bool> = Vec::with_capacity(rows);
         let mut k = 0;
         while k < cands.len() {
             let g = cands[k] as usize / GROUP;
@@ -737,8 +767,10 @@ impl PointSum {
                 }
                 touched = (touched.0.min(u0), touched.1.max(u1));
                 // Row factors of the group on every row of the band (zero outside the y support).
-                let mut coefs = vec![[[0f32; 2]; GROUP]; rows];
-                let mut live = vec![false; rows];
+                coefs.clear();
+                coefs.resize(rows, [[0f32; 2]; GROUP]);
+                live.clear();
+                live.resize(rows, false);
                 for (r, &y) in ys.iter().enumerate() {
                     for &j in &cands[k..end] {
                         let slot = j as usize % GROUP;
@@ -746,16 +778,11 @@ impl PointSum {
                             continue;
                         }
                         let e = &self.emitters[j as usize];
-                        let z = e.pos[2];
-                        let inv_z = 1.0 / z;
-                        let dy = y - e.pos[1];
-                        // The y half of the support test, as in the f64 kernels.
-                        if (dy * inv_z - d[1]).abs() > self.half_band[1] {
+                        let Some((s, c)) =
+                            fresnel_row_factor(e, y, d[1], self.half_band[1], inv_lambda)
+                        else {
                             continue;
-                        }
-                        let t_row =
-                            (z + dy * dy * 0.5 * inv_z) * inv_lambda + reduced_cycles(e.phase);
-                        let (s, c) = kernels::sincos_cycles(t_row - t_row.floor());
+                        };
                         coefs[r][slot] = [c as f32, s as f32];
                         live[r] = true;
                         updates += nx[slot];
@@ -806,20 +833,7 @@ impl PointSum {
             &mut scratch.band_re,
             &mut scratch.band_im,
         );
-        let (ax, ay) = (d[0] * inv_lambda, d[1] * inv_lambda);
-        for (r, orow) in out.chunks_exact_mut(w).enumerate() {
-            let ty = ys[r] * ay;
-            for (t, &x) in scratch.ref_cycles.iter_mut().zip(&self.xs) {
-                *t = x * ax + ty;
-            }
-            kernels::conj_reference(
-                self.isa,
-                &scratch.ref_cycles,
-                &scratch.band_re[r * w..(r + 1) * w],
-                &scratch.band_im[r * w..(r + 1) * w],
-                orow,
-            );
-        }
+        self.times_plane_conj(row0, d, out, scratch);
         updates
     }
 

@@ -27,6 +27,7 @@ pub const GROUP: usize = 8;
 /// Column factor of one emitter over columns [c0, c1) in f32, written to `ure`, `uim`
 /// (`c1 - c0` values); the x half of the support test as the f64 kernels apply it (same pixels).
 /// Returns the number of columns inside.
+#[allow(clippy::too_many_arguments)]
 #[inline(always)]
 pub fn columns32_generic(
     ri: &RowInputs,
@@ -86,6 +87,7 @@ pub fn mac_group_generic(
 /// Two rows at once (`re0`/`im0` with `coef0`, `re1`/`im1` with `coef1`): each factor load feeds
 /// both rows. Per pixel and row, the same chain of `mul_add`s as [`mac_group_generic`], so the
 /// bits are those of two single-row calls.
+#[allow(clippy::too_many_arguments)]
 #[inline(always)]
 pub fn mac_group2_generic(
     coef0: &[[f32; 2]; GROUP],
