@@ -438,6 +438,13 @@ impl PointSum {
                 let k1 = cands.partition_point(|&j| (j as usize) < ch.end);
                 for (k, &j) in cands.iter().enumerate().take(k1).skip(k0) {
                     let e = &self.emitters[j as usize];
+                    // Rows outside the emitter's row range hold none of its support (the range
+                    // is a tested superset); in a tall band most candidates miss most rows.
+                    if let Some((a, b)) = self.rows[j as usize] {
+                        if row < a || row >= b {
+                            continue;
+                        }
+                    }
                     let (c0, c1) = if self.opts.anti_alias {
                         match row_columns(&self.plate, e, y, wx, wy, self.opts.approximation) {
                             Some(s) => s,
