@@ -548,18 +548,8 @@ impl PointSum {
         cands: &[u32],
     ) -> u64 {
         let w = self.plate.width as usize;
-        let reference = self.channels[0].reference;
         let inv_lambda = 1.0 / self.plate.wavelength;
-        let d = reference.direction(0.0, 0.0);
-        scratch.ref_dir_x.clear();
-        scratch.ref_dir_x.resize(w, d[0]);
-        scratch.ref_dir_y.clear();
-        scratch.ref_dir_y.resize(w, d[1]);
-        scratch.ref_cycles.resize(w, 0.0);
-        scratch.band_re.clear();
-        scratch.band_re.resize(rows * w, 0.0);
-        scratch.band_im.clear();
-        scratch.band_im.resize(rows * w, 0.0);
+        let d = self.plane_band_setup(rows, scratch);
         let inputs = RowInputs {
             xs: &self.xs,
             rdx: &scratch.ref_dir_x,
@@ -619,6 +609,23 @@ impl PointSum {
         updates
     }
 
+    /// Set-up shared by the separable Fresnel paths: the plane reference's direction cosines in
+    /// the per-column arrays, and zeroed f64 band sums. Returns the direction cosines.
+    fn plane_band_setup(&self, rows: usize, scratch: &mut BandScratch) -> [f64; 2] {
+        let w = self.plate.width as usize;
+        let d = self.channels[0].reference.direction(0.0, 0.0);
+        scratch.ref_dir_x.clear();
+        scratch.ref_dir_x.resize(w, d[0]);
+        scratch.ref_dir_y.clear();
+        scratch.ref_dir_y.resize(w, d[1]);
+        scratch.ref_cycles.resize(w, 0.0);
+        for v in [&mut scratch.band_re, &mut scratch.band_im] {
+            v.clear();
+            v.resize(rows * w, 0.0);
+        }
+        d
+    }
+
     /// out = (band_re + i band_im) conj(R) for a plane reference of direction cosines `d`, row by
     /// row (the last step of both separable Fresnel paths).
     fn times_plane_conj(
@@ -659,18 +666,8 @@ impl PointSum {
     ) -> u64 {
         use kernels::fresnel32::GROUP;
         let w = self.plate.width as usize;
-        let reference = self.channels[0].reference;
         let inv_lambda = 1.0 / self.plate.wavelength;
-        let d = reference.direction(0.0, 0.0);
-        scratch.ref_dir_x.clear();
-        scratch.ref_dir_x.resize(w, d[0]);
-        scratch.ref_dir_y.clear();
-        scratch.ref_dir_y.resize(w, d[1]);
-        scratch.ref_cycles.resize(w, 0.0);
-        for v in [&mut scratch.band_re, &mut scratch.band_im] {
-            v.clear();
-            v.resize(rows * w, 0.0);
-        }
+        let d = self.plane_band_setup(rows, scratch);
         for v in [&mut scratch.band32_re, &mut scratch.band32_im] {
             v.clear();
             v.resize(rows * w, 0.0);
