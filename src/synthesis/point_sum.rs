@@ -563,13 +563,9 @@ impl PointSum {
         for &j in cands {
             let e = &self.emitters[j as usize];
             let z = e.pos[2];
-            // Columns of the x support (u = z sx for sx in the window), one pixel of slack.
-            let c0 = (self.plate.col_of_x(e.pos[0] + z * wx[0]).ceil() - 1.0).max(0.0);
-            let c1 = (self.plate.col_of_x(e.pos[0] + z * wx[1]).floor() + 1.0).min(w as f64 - 1.0);
-            if !(c0 <= c1) {
+            let Some((c0, c1)) = self.fresnel_x_span(e, wx) else {
                 continue;
-            }
-            let (c0, c1) = (c0 as usize, c1 as usize + 1);
+            };
             scratch.col_re.resize(c1 - c0, 0.0);
             scratch.col_im.resize(c1 - c0, 0.0);
             let nx = kernels::fresnel_columns(
@@ -607,6 +603,16 @@ impl PointSum {
         }
         self.times_plane_conj(row0, d, out, scratch);
         updates
+    }
+
+    /// Columns [c0, c1) of a Fresnel emitter's x support (u = z sx for sx in the window `wx`),
+    /// one pixel of slack each side; None when it misses the plate.
+    fn fresnel_x_span(&self, e: &Emitter, wx: [f64; 2]) -> Option<(usize, usize)> {
+        let z = e.pos[2];
+        let last = self.plate.width as f64 - 1.0;
+        let c0 = (self.plate.col_of_x(e.pos[0] + z * wx[0]).ceil() - 1.0).max(0.0);
+        let c1 = (self.plate.col_of_x(e.pos[0] + z * wx[1]).floor() + 1.0).min(last);
+        (c0 <= c1).then(|| (c0 as usize, c1 as usize + 1))
     }
 
     /// Set-up shared by the separable Fresnel paths: the plane reference's direction cosines in
@@ -733,12 +739,7 @@ impl PointSum {
             let (mut u0, mut u1) = (w, 0usize);
             for &j in &cands[k..end] {
                 let e = &self.emitters[j as usize];
-                let z = e.pos[2];
-                let c0 = (self.plate.col_of_x(e.pos[0] + z * wx[0]).ceil() - 1.0).max(0.0);
-                let c1 =
-                    (self.plate.col_of_x(e.pos[0] + z * wx[1]).floor() + 1.0).min(w as f64 - 1.0);
-                if c0 <= c1 {
-                    let (c0, c1) = (c0 as usize, c1 as usize + 1);
+                if let Some((c0, c1)) = self.fresnel_x_span(e, wx) {
                     spans[j as usize % GROUP] = Some((c0, c1));
                     u0 = u0.min(c0);
                     u1 = u1.max(c1);
