@@ -608,20 +608,31 @@ fn f32_support_edges_match_f64() {
 }
 
 /// The f32 separable Fresnel path (plane reference) against the f64 per-pixel Fresnel path:
-/// 300 emitters (more than one f32 flush group of 256, groups of 8 with gaps where emitters miss
-/// a band), on- and off-axis references. Same update count (same support pixels); per pixel
+/// 300 emitters (more than one f32 flush group of 256, blocks with gaps where emitters miss a
+/// band), on- and off-axis references, on a small plate (tails narrower than a register tile) and
+/// a wide one whose supports cover a fraction of it (tiles given per-chunk emitter lists). Same update count (same support pixels); per pixel
 /// |F32 - F64| <= 1e-5 x sum_j a_j / z_j (per term: f32 factors 6e-8, f32 sincos 3e-7, f32 sums of
 /// at most 256 terms); the same bits for every band size and kernel copy.
 #[test]
 fn f32_fresnel_path_within_bound() {
     let mut rng = Rng(0xf7e5_4e10);
-    let plate = Plate {
+    let small = Plate {
         width: 71,
         height: 53,
         pitch: [1.3e-6, 0.8e-6],
         wavelength: 532e-9,
     };
-    for tilt in [[0.0, 0.0], [7f64.to_radians(), -3f64.to_radians()]] {
+    let wide = Plate {
+        width: 613,
+        height: 19,
+        ..small
+    };
+    let cases = [
+        (small, [0.0, 0.0]),
+        (small, [7f64.to_radians(), -3f64.to_radians()]),
+        (wide, [4f64.to_radians(), 2f64.to_radians()]),
+    ];
+    for (plate, tilt) in cases {
         let emitters = random_scene(&mut rng, 300, &plate, [30e-6, 600e-6]);
         let opts = PointSumOptions {
             approximation: Approximation::Fresnel,

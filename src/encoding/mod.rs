@@ -157,25 +157,29 @@ impl Encoding {
     /// If `out` has the wrong length (a bug in the caller).
     pub fn encode_row(&self, f: &[Complex64], out: &mut [u8]) {
         assert_eq!(out.len(), self.row_bytes(f.len()), "encoded row length");
-        match self.bits_per_sample() {
-            1 => {
-                out.fill(0);
-                for (i, &v) in f.iter().enumerate() {
-                    if self.sample(v) != 0 {
-                        out[i / 8] |= 0x80 >> (i % 8);
+        // One loop per encoding, so the per-pixel test is inlined (a point-sum run's
+        // encoding stays a small fraction of its time).
+        match *self {
+            Encoding::BinaryAmplitude => pack_bits(f, out, |v| v.re >= 0.0),
+            Encoding::BinaryPhase => pack_bits(f, out, |v| v.re < 0.0),
+            Encoding::Phase { levels } if levels <= 256 => {
+                for (o, &v) in out.iter_mut().zip(f) {
+                    *o = phase_sample(v, levels) as u8;
+                }
+            }
+            _ => match self.bits_per_sample() {
+                1 => pack_bits(f, out, |v| self.sample(v) != 0),
+                8 => {
+                    for (o, &v) in out.iter_mut().zip(f) {
+                        *o = self.sample(v) as u8;
                     }
                 }
-            }
-            8 => {
-                for (o, &v) in out.iter_mut().zip(f) {
-                    *o = self.sample(v) as u8;
+                _ => {
+                    for (o, &v) in out.chunks_exact_mut(2).zip(f) {
+                        o.copy_from_slice(&self.sample(v).to_le_bytes());
+                    }
                 }
-            }
-            _ => {
-                for (o, &v) in out.chunks_exact_mut(2).zip(f) {
-                    o.copy_from_slice(&self.sample(v).to_le_bytes());
-                }
-            }
+            },
         }
     }
 
@@ -199,6 +203,18 @@ impl Encoding {
                 Complex64::new(s as f64 / ((1u32 << bits) - 1) as f64, 0.0)
             }
         }
+    }
+}
+
+/// Packs one bit per pixel, most significant bit first (TIFF FillOrder 1), set where `bit` holds.
+#[inline(always)]
+fn pack_bits(f: &[Complex64], out: &mut [u8], bit: impl Fn(Complex64) -> bool) {
+    for (o, px) in out.iter_mut().zip(f.chunks(8)) {
+        let mut b = 0u8;
+        for (i, &v) in px.iter().enumerate() {
+            b |= (bit(v) as u8) << (7 - i);
+        }
+        *o = b;
     }
 }
 
@@ -265,6 +281,53 @@ mod unit_tests {
         Encoding::BinaryAmplitude
             .encode_row(&[pos, neg, pos, neg, neg, neg, neg, neg, pos], &mut out);
         assert_eq!(out, [0b1010_0000, 0b1000_0000]);
+    }
+
+    /// `encode_row` (one loop per encoding) against the obvious per-pixel form built from
+    /// `sample`: TIFF's MSB-first bit packing (TIFF 6.0, FillOrder 1) and little-endian 16-bit
+    /// samples, on widths that do not fill the last byte.
+    #[test]
+    fn encode_row_matches_per_pixel_samples() {
+        let mut state = 0x2545_f491_4f6c_dd1du64;
+        let mut next = || {
+            state ^= state << 13;
+            state ^= state >> 7;
+            state ^= state << 17;
+            (state >> 11) as f64 / (1u64 << 53) as f64 * 2.0 - 1.0
+        };
+        let f: Vec<Complex64> = (0..203).map(|_| Complex64::new(next(), next())).collect();
+        let encodings = [
+            Encoding::BinaryAmplitude,
+            Encoding::BinaryPhase,
+            Encoding::Phase { levels: 3 },
+            Encoding::Phase { levels: 256 },
+            Encoding::Phase { levels: 1000 },
+            Encoding::Amplitude {
+                bits: 8,
+                scale: 0.7,
+            },
+            Encoding::Amplitude {
+                bits: 16,
+                scale: 0.7,
+            },
+        ];
+        for e in encodings {
+            for width in [1, 7, 8, 9, 203] {
+                let row = &f[..width];
+                let mut fast = vec![0xA5u8; e.row_bytes(width)];
+                e.encode_row(row, &mut fast);
+                let mut slow = vec![0u8; e.row_bytes(width)];
+                for (i, &v) in row.iter().enumerate() {
+                    let s = e.sample(v);
+                    match e.bits_per_sample() {
+                        1 => slow[i / 8] |= ((s != 0) as u8) << (7 - i % 8),
+                        8 => slow[i] = s as u8,
+                        _ => slow[2 * i..2 * i + 2].copy_from_slice(&s.to_le_bytes()),
+                    }
+                }
+                assert_eq!(fast, slow, "{e:?}, width {width}");
+            }
+        }
     }
 
     #[test]

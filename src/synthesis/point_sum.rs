@@ -127,6 +127,18 @@ pub struct BandScratch {
     band32_im: Vec<f32>,
     group_re: Vec<f32>,
     group_im: Vec<f32>,
+    /// Separable f32 path: the block's emitters (index, first column, end column, columns inside).
+    block_members: Vec<(u32, usize, usize, u64)>,
+    /// Separable f32 path: row coefficients, [member][row] (zero outside the y support).
+    block_cre: Vec<f32>,
+    block_cim: Vec<f32>,
+    /// Separable f32 path: coefficients packed per tile, [tile][member][tile row].
+    tile_coef: Vec<[f32; 2]>,
+    /// Separable f32 path: members live on some row of a tile, [tile][member].
+    tile_live: Vec<bool>,
+    tile_ks: Vec<u32>,
+    /// Separable paths: conj of the plane reference's column factor.
+    col_phasor: Vec<Complex64>,
     rdx32: Vec<f32>,
     rdy32: Vec<f32>,
     /// visible[k * tiles + t]: candidate k seen from tile t's centre.
@@ -624,7 +636,6 @@ impl PointSum {
         scratch.ref_dir_x.resize(w, d[0]);
         scratch.ref_dir_y.clear();
         scratch.ref_dir_y.resize(w, d[1]);
-        scratch.ref_cycles.resize(w, 0.0);
         for v in [&mut scratch.band_re, &mut scratch.band_im] {
             v.clear();
             v.resize(rows * w, 0.0);
@@ -633,7 +644,10 @@ impl PointSum {
     }
 
     /// out = (band_re + i band_im) conj(R) for a plane reference of direction cosines `d`, row by
-    /// row (the last step of both separable Fresnel paths).
+    /// row (the last step of both separable Fresnel paths). The plane wave factors,
+    /// conj(R) = exp(-i 2 pi x dx / lambda) exp(-i 2 pi y dy / lambda): one phasor per column for the
+    /// band and one per row, so a pixel costs two complex products instead of a sine and cosine
+    /// (rounding error of order 1e-16 against the direct phasor).
     fn times_plane_conj(
         &self,
         row0: usize,
@@ -644,24 +658,32 @@ impl PointSum {
         let w = self.plate.width as usize;
         let inv_lambda = 1.0 / self.plate.wavelength;
         let (ax, ay) = (d[0] * inv_lambda, d[1] * inv_lambda);
+        let conj_phasor = |t: f64| {
+            let (s, c) = kernels::sincos_cycles(t - t.floor());
+            Complex64::new(c, -s)
+        };
+        scratch.col_phasor.clear();
+        scratch
+            .col_phasor
+            .extend(self.xs.iter().map(|&x| conj_phasor(x * ax)));
         for (r, orow) in out.chunks_exact_mut(w).enumerate() {
-            let ty = self.plate.y_of_row((row0 + r) as f64) * ay;
-            for (t, &x) in scratch.ref_cycles.iter_mut().zip(&self.xs) {
-                *t = x * ax + ty;
-            }
-            kernels::conj_reference(
-                self.isa,
-                &scratch.ref_cycles,
+            let ry = conj_phasor(self.plate.y_of_row((row0 + r) as f64) * ay);
+            let (bre, bim) = (
                 &scratch.band_re[r * w..(r + 1) * w],
                 &scratch.band_im[r * w..(r + 1) * w],
-                orow,
             );
+            for (c, o) in orow.iter_mut().enumerate() {
+                *o = Complex64::new(bre[c], bim[c]) * (scratch.col_phasor[c] * ry);
+            }
         }
     }
 
-    /// The separable Fresnel band in f32 ([`kernels::fresnel32`]): emitters in groups of
-    /// `GROUP` consecutive indices; per group, the column factors once per band, then one pass per
-    /// row adding the whole group. Same support pixels and update count as [`Self::fresnel_band`].
+    /// The separable Fresnel band in f32 ([`kernels::fresnel32`]) as blocked matrix products:
+    /// per block of up to `BLOCK` candidates (never straddling an f32 flush boundary), the column
+    /// factors once over the union of their x spans (a panel, zero outside each span), the row
+    /// coefficients of every row, then register tiles of `TILE_ROWS` live rows by column chunks,
+    /// each given only the emitters live on its rows whose span meets its chunk. Same support
+    /// pixels and update count as [`Self::fresnel_band`].
     fn fresnel_band32(
         &self,
         row0: usize,
@@ -670,13 +692,16 @@ impl PointSum {
         scratch: &mut BandScratch,
         cands: &[u32],
     ) -> u64 {
-        use kernels::fresnel32::GROUP;
+        use kernels::fresnel32::{BLOCK, CHUNK, TILE_ROWS as MR};
         let w = self.plate.width as usize;
+        let nr = kernels::tile_columns(self.isa);
         let inv_lambda = 1.0 / self.plate.wavelength;
         let d = self.plane_band_setup(rows, scratch);
+        // f32 sums, plus MR - 1 spare zero rows that pad the last tile (zero coefficients: they
+        // stay zero and are never flushed).
         for v in [&mut scratch.band32_re, &mut scratch.band32_im] {
             v.clear();
-            v.resize(rows * w, 0.0);
+            v.resize((rows + MR - 1) * w, 0.0);
         }
         let inputs = RowInputs {
             xs: &self.xs,
@@ -693,6 +718,7 @@ impl PointSum {
         let mut updates = 0u64;
         // Columns touched since the last flush of the f32 sums into f64.
         let mut touched = (w, 0usize);
+        let isa = self.isa;
         let flush = |touched: &mut (usize, usize),
                      b32re: &mut [f32],
                      b32im: &mut [f32],
@@ -702,30 +728,20 @@ impl PointSum {
             if lo < hi {
                 for r in 0..rows {
                     let (a, b) = (r * w + lo, r * w + hi);
-                    for (d, s) in bre[a..b].iter_mut().zip(&mut b32re[a..b]) {
-                        *d += *s as f64;
-                        *s = 0.0;
-                    }
-                    for (d, s) in bim[a..b].iter_mut().zip(&mut b32im[a..b]) {
-                        *d += *s as f64;
-                        *s = 0.0;
-                    }
+                    kernels::flush32(isa, &mut b32re[a..b], &mut bre[a..b]);
+                    kernels::flush32(isa, &mut b32im[a..b], &mut bim[a..b]);
                 }
             }
             *touched = (w, 0);
         };
-        let mut block = usize::MAX;
-        let mut coefs: Vec<[[f32; 2]; GROUP]> = Vec::with_capacity(rows);
-        let mut live: Vec<bool> = Vec::with_capacity(rows);
+        let mut members = std::mem::take(&mut scratch.block_members);
+        let mut live_rows: Vec<usize> = Vec::with_capacity(rows);
+        let mut flush_block = usize::MAX;
         let mut k = 0;
         while k < cands.len() {
-            let g = cands[k] as usize / GROUP;
-            let mut end = k;
-            while end < cands.len() && cands[end] as usize / GROUP == g {
-                end += 1;
-            }
-            if g * GROUP / F32_GROUP != block {
-                block = g * GROUP / F32_GROUP;
+            let fb = cands[k] as usize / F32_GROUP;
+            if fb != flush_block {
+                flush_block = fb;
                 flush(
                     &mut touched,
                     &mut scratch.band32_re,
@@ -734,103 +750,137 @@ impl PointSum {
                     &mut scratch.band_im,
                 );
             }
-            // Column spans of the group's emitters (slot = index mod GROUP).
-            let mut spans: [Option<(usize, usize)>; GROUP] = [None; GROUP];
-            let (mut u0, mut u1) = (w, 0usize);
-            for &j in &cands[k..end] {
-                let e = &self.emitters[j as usize];
-                if let Some((c0, c1)) = self.fresnel_x_span(e, wx) {
-                    spans[j as usize % GROUP] = Some((c0, c1));
-                    u0 = u0.min(c0);
-                    u1 = u1.max(c1);
+            // The block: the next candidates of this flush block with a non-empty x span.
+            members.clear();
+            while k < cands.len() && cands[k] as usize / F32_GROUP == fb && members.len() < BLOCK {
+                let j = cands[k];
+                if let Some((c0, c1)) = self.fresnel_x_span(&self.emitters[j as usize], wx) {
+                    members.push((j, c0, c1, 0));
+                }
+                k += 1;
+            }
+            if members.is_empty() {
+                continue;
+            }
+            // The panel: columns [u0, u1), rounded out to whole register tiles where the plate
+            // allows; member p's factors in row p, zero outside its span.
+            let u0 = members.iter().map(|m| m.1).min().unwrap_or(0) / nr * nr;
+            let u1 = members
+                .iter()
+                .map(|m| m.2)
+                .max()
+                .unwrap_or(0)
+                .next_multiple_of(nr)
+                .min(w);
+            let len = u1 - u0;
+            let nm = members.len();
+            for v in [&mut scratch.group_re, &mut scratch.group_im] {
+                v.clear();
+                v.resize(nm * len, 0.0);
+            }
+            for (p, m) in members.iter_mut().enumerate() {
+                let e = &self.emitters[m.0 as usize];
+                let at = p * len + m.1 - u0;
+                m.3 = kernels::fresnel_columns32(
+                    self.isa,
+                    &inputs,
+                    e.pos[0],
+                    e.pos[2],
+                    e.amplitude,
+                    m.1,
+                    m.2,
+                    &mut scratch.group_re[at..at + m.2 - m.1],
+                    &mut scratch.group_im[at..at + m.2 - m.1],
+                );
+            }
+            touched = (touched.0.min(u0), touched.1.max(u1));
+            // Row coefficients, [member][row] (zero outside the y support, or for a member with
+            // no column inside).
+            for v in [&mut scratch.block_cre, &mut scratch.block_cim] {
+                v.clear();
+                v.resize(nm * rows, 0.0);
+            }
+            for (p, m) in members.iter().enumerate() {
+                if m.3 == 0 {
+                    continue;
+                }
+                let e = &self.emitters[m.0 as usize];
+                let inside = kernels::fresnel_row_coefs32(
+                    self.isa,
+                    &ys,
+                    e.pos[1],
+                    e.pos[2],
+                    reduced_cycles(e.phase),
+                    d[1],
+                    self.half_band[1],
+                    inv_lambda,
+                    &mut scratch.block_cre[p * rows..(p + 1) * rows],
+                    &mut scratch.block_cim[p * rows..(p + 1) * rows],
+                );
+                updates += inside * m.3;
+            }
+            live_rows.clear();
+            live_rows.extend((0..rows).filter(|&r| {
+                (0..nm).any(|p| {
+                    scratch.block_cre[p * rows + r] != 0.0 || scratch.block_cim[p * rows + r] != 0.0
+                })
+            }));
+            // Tiles of MR live rows (the last one padded with the spare rows), their coefficients
+            // packed [member][tile row], and which members are live on each.
+            let tiles = live_rows.len().div_ceil(MR);
+            scratch.tile_coef.clear();
+            scratch.tile_coef.resize(tiles * nm * MR, [0.0; 2]);
+            scratch.tile_live.clear();
+            scratch.tile_live.resize(tiles * nm, false);
+            for (i, &r) in live_rows.iter().enumerate() {
+                let (t, slot) = (i / MR, i % MR);
+                for p in 0..nm {
+                    let cf = [
+                        scratch.block_cre[p * rows + r],
+                        scratch.block_cim[p * rows + r],
+                    ];
+                    if cf != [0.0; 2] {
+                        scratch.tile_coef[(t * nm + p) * MR + slot] = cf;
+                        scratch.tile_live[t * nm + p] = true;
+                    }
                 }
             }
-            if u0 < u1 {
-                let len = u1 - u0;
-                for v in [&mut scratch.group_re, &mut scratch.group_im] {
-                    v.clear();
-                    v.resize(GROUP * len, 0.0);
-                }
-                let mut nx = [0u64; GROUP];
-                for &j in &cands[k..end] {
-                    let slot = j as usize % GROUP;
-                    if let Some((c0, c1)) = spans[slot] {
-                        let e = &self.emitters[j as usize];
-                        let at = slot * len + c0 - u0;
-                        nx[slot] = kernels::fresnel_columns32(
-                            self.isa,
-                            &inputs,
-                            e.pos[0],
-                            e.pos[2],
-                            e.amplitude,
-                            c0,
-                            c1,
-                            &mut scratch.group_re[at..at + c1 - c0],
-                            &mut scratch.group_im[at..at + c1 - c0],
-                        );
-                    }
-                }
-                touched = (touched.0.min(u0), touched.1.max(u1));
-                // Row factors of the group on every row of the band (zero outside the y support).
-                coefs.clear();
-                coefs.resize(rows, [[0f32; 2]; GROUP]);
-                live.clear();
-                live.resize(rows, false);
-                for (r, &y) in ys.iter().enumerate() {
-                    for &j in &cands[k..end] {
-                        let slot = j as usize % GROUP;
-                        if nx[slot] == 0 {
-                            continue;
+            let mut c = u0;
+            while c < u1 {
+                let ce = (c + CHUNK).min(u1);
+                for t in 0..tiles {
+                    scratch.tile_ks.clear();
+                    for (p, m) in members.iter().enumerate() {
+                        if scratch.tile_live[t * nm + p] && m.1 < ce && m.2 > c {
+                            scratch.tile_ks.push(p as u32);
                         }
-                        let e = &self.emitters[j as usize];
-                        let Some((s, c)) =
-                            fresnel_row_factor(e, y, d[1], self.half_band[1], inv_lambda)
-                        else {
-                            continue;
-                        };
-                        coefs[r][slot] = [c as f32, s as f32];
-                        live[r] = true;
-                        updates += nx[slot];
                     }
-                }
-                // Rows in pairs where both are live (one pass over the factors for two rows).
-                let mut r = 0;
-                while r < rows {
-                    if !live[r] {
-                        r += 1;
+                    if scratch.tile_ks.is_empty() {
                         continue;
                     }
-                    let (a, b) = (r * w + u0, r * w + u1);
-                    if r + 1 < rows && live[r + 1] {
-                        let (re0, re1) = scratch.band32_re[a..b + w].split_at_mut(len);
-                        let (im0, im1) = scratch.band32_im[a..b + w].split_at_mut(len);
-                        kernels::mac_group32_pair(
-                            self.isa,
-                            &coefs[r],
-                            &coefs[r + 1],
-                            &scratch.group_re,
-                            &scratch.group_im,
-                            re0,
-                            im0,
-                            &mut re1[w - len..],
-                            &mut im1[w - len..],
-                        );
-                        r += 2;
-                    } else {
-                        kernels::mac_group32(
-                            self.isa,
-                            &coefs[r],
-                            &scratch.group_re,
-                            &scratch.group_im,
-                            &mut scratch.band32_re[a..b],
-                            &mut scratch.band32_im[a..b],
-                        );
-                        r += 1;
-                    }
+                    let row_at = |i: usize| {
+                        let r = live_rows.get(t * MR + i).copied().unwrap_or(rows + i - 1);
+                        r * w + u0
+                    };
+                    let tile_rows: [usize; MR] = std::array::from_fn(row_at);
+                    kernels::mac_tile32(
+                        self.isa,
+                        &scratch.tile_ks,
+                        &scratch.tile_coef[t * nm * MR..(t + 1) * nm * MR],
+                        &scratch.group_re,
+                        &scratch.group_im,
+                        len,
+                        c - u0,
+                        ce - u0,
+                        &tile_rows,
+                        &mut scratch.band32_re,
+                        &mut scratch.band32_im,
+                    );
                 }
+                c = ce;
             }
-            k = end;
         }
+        scratch.block_members = members;
         flush(
             &mut touched,
             &mut scratch.band32_re,

@@ -1,28 +1,39 @@
 //! The fast Fresnel kernels (plane reference): the separable form of the paraxial phase in f32,
-//! emitters applied eight at a time to each row.
+//! summed as a register-blocked complex matrix product.
 //!
 //! With a plane reference the Fresnel wave of emitter j factors into a column factor
 //! u_j(x) = (a_j / z_j) exp(i 2 pi (x - x_j)^2 / (2 z_j lambda)) (zero outside the x half of the
 //! support test) and a row factor v_j(y) = exp(i 2 pi t_j(y)) (zero outside the y half), so a band
 //! is a sum of rank-one updates F += v_j u_j^T: a matrix product. Here the column factors of a
-//! group of [`GROUP`] emitters are formed once per band, then every row adds the whole group in one
-//! pass over its pixels, accumulators held in registers (eight complex multiply-adds per load and
-//! store of the row).
+//! block of up to [`BLOCK`] emitters are formed once per band (a panel), and tiles of
+//! [`TILE_ROWS`] rows by a few SIMD vectors of columns keep their sums in registers while every
+//! emitter of the block is added ([`mac_tile_generic`]); the caller cuts the panel into column
+//! chunks and hands each tile only the emitters whose support meets it, so band-limited supports
+//! cost what they cover (to the chunk and tile), not the panel.
 //!
 //! Precision: phases are formed in f64 and reduced to [-1/2, 1/2) cycles before the f32 sine and
 //! cosine (error 3e-7); factors are rounded to f32 (6e-8 relative); the f32 row sums are flushed
 //! into f64 by the caller every 256 emitters. Per term the error is below 1e-6 of a_j / z_j.
 //!
-//! Determinism: each pixel's sum is one chain of `mul_add`s over the group's emitters in index
-//! order; an absent emitter (outside the band, or outside the support) has a zero factor and
-//! leaves the chain's value unchanged, so results do not depend on how rows are cut into bands.
+//! Determinism: each pixel's sum is one chain of `mul_add`s over the emitters in index order; an
+//! absent emitter (outside the band, or outside the support, or left out of a tile's list) adds
+//! exact zeros and leaves the chain's value unchanged (up to the sign of a zero), so results do
+//! not depend on how rows are cut into bands, tiles or chunks.
 //! The portable and SIMD copies compile this same source and give the same bits.
 
 use super::exact32::sincos_half;
-use super::RowInputs;
+use super::{sincos_cycles, RowInputs};
 
-/// Emitters applied together to a row.
-pub const GROUP: usize = 8;
+/// Emitters in one panel of column factors (the inner dimension of one matrix product).
+pub const BLOCK: usize = 64;
+
+/// Rows of a register tile.
+pub const TILE_ROWS: usize = 4;
+
+/// Columns of a panel handed to a tile at once: the emitters meeting such a chunk are listed per
+/// tile, and the chunk's factors (BLOCK x 256 x 8 bytes = 128 KiB) stay in the L2 cache while
+/// the band's tiles pass over it.
+pub const CHUNK: usize = 256;
 
 /// Column factor of one emitter over columns [c0, c1) in f32, written to `ure`, `uim`
 /// (`c1 - c0` values); the x half of the support test as the f64 kernels apply it (same pixels).
@@ -59,65 +70,122 @@ pub fn columns32_generic(
     n
 }
 
-/// re + i im += sum over the group of (cr_k + i ci_k)(ure_k + i uim_k), per pixel, emitters in
-/// order; `ure[k * len..(k + 1) * len]` is emitter k's factor over the row's `len` pixels.
+/// Row coefficients of one emitter (at height `yj`, distance `z`, phase `cycles0` in cycles)
+/// over the rows at heights `ys`: the y half of the support test, |dy / z - ref_y| <= half band,
+/// and the row factor exp(i 2 pi t), t = (z + dy^2 / 2z) / lambda + cycles0, phase and sine/cosine
+/// in f64 (the f64 separable path's values), rounded to f32; zero outside. Returns the rows inside.
+#[allow(clippy::too_many_arguments)]
 #[inline(always)]
-pub fn mac_group_generic(
-    coef: &[[f32; 2]; GROUP],
-    ure: &[f32],
-    uim: &[f32],
-    re: &mut [f32],
-    im: &mut [f32],
-) {
-    let len = re.len();
-    for c in 0..len {
-        let (mut r, mut m) = (re[c], im[c]);
-        for (k, &[cr, ci]) in coef.iter().enumerate() {
-            let (ur, ui) = (ure[k * len + c], uim[k * len + c]);
-            r = cr.mul_add(ur, r);
-            r = (-ci).mul_add(ui, r);
-            m = cr.mul_add(ui, m);
-            m = ci.mul_add(ur, m);
-        }
-        re[c] = r;
-        im[c] = m;
+pub fn row_coefs_generic(
+    ys: &[f64],
+    yj: f64,
+    z: f64,
+    cycles0: f64,
+    ref_y: f64,
+    half_band_y: f64,
+    inv_lambda: f64,
+    cre: &mut [f32],
+    cim: &mut [f32],
+) -> u64 {
+    let inv_z = 1.0 / z;
+    let (cre, cim) = (&mut cre[..ys.len()], &mut cim[..ys.len()]);
+    let mut n = 0u64;
+    for i in 0..ys.len() {
+        let dy = ys[i] - yj;
+        let inside = (dy * inv_z - ref_y).abs() <= half_band_y;
+        let t = (z + dy * dy * 0.5 * inv_z) * inv_lambda + cycles0;
+        let (s, c) = sincos_cycles(t - t.floor());
+        cre[i] = if inside { c as f32 } else { 0.0 };
+        cim[i] = if inside { s as f32 } else { 0.0 };
+        n += inside as u64;
+    }
+    n
+}
+
+/// d += s (widened to f64) and s = 0, element by element: the flush of f32 sums into f64 ones.
+#[inline(always)]
+pub fn flush_generic(s: &mut [f32], d: &mut [f64]) {
+    let d = &mut d[..s.len()];
+    for i in 0..s.len() {
+        d[i] += s[i] as f64;
+        s[i] = 0.0;
     }
 }
 
-/// Two rows at once (`re0`/`im0` with `coef0`, `re1`/`im1` with `coef1`): each factor load feeds
-/// both rows. Per pixel and row, the same chain of `mul_add`s as [`mac_group_generic`], so the
-/// bits are those of two single-row calls.
+/// One step of [`mac_tile_generic`]: `N` columns from panel column `c` on the tile's rows.
 #[allow(clippy::too_many_arguments)]
 #[inline(always)]
-pub fn mac_group2_generic(
-    coef0: &[[f32; 2]; GROUP],
-    coef1: &[[f32; 2]; GROUP],
+fn tile_step<const MR: usize, const N: usize>(
+    ks: &[u32],
+    coef: &[[f32; 2]],
     ure: &[f32],
     uim: &[f32],
-    re0: &mut [f32],
-    im0: &mut [f32],
-    re1: &mut [f32],
-    im1: &mut [f32],
+    stride: usize,
+    c: usize,
+    rows: &[usize; MR],
+    re: &mut [f32],
+    im: &mut [f32],
 ) {
-    let len = re0.len();
-    for c in 0..len {
-        let (mut r0, mut m0, mut r1, mut m1) = (re0[c], im0[c], re1[c], im1[c]);
-        for k in 0..GROUP {
-            let (ur, ui) = (ure[k * len + c], uim[k * len + c]);
-            let [a, b] = coef0[k];
-            r0 = a.mul_add(ur, r0);
-            r0 = (-b).mul_add(ui, r0);
-            m0 = a.mul_add(ui, m0);
-            m0 = b.mul_add(ur, m0);
-            let [a, b] = coef1[k];
-            r1 = a.mul_add(ur, r1);
-            r1 = (-b).mul_add(ui, r1);
-            m1 = a.mul_add(ui, m1);
-            m1 = b.mul_add(ur, m1);
+    let mut ar = [[0f32; N]; MR];
+    let mut ai = [[0f32; N]; MR];
+    for i in 0..MR {
+        ar[i] = re[rows[i] + c..][..N].try_into().unwrap();
+        ai[i] = im[rows[i] + c..][..N].try_into().unwrap();
+    }
+    for &k in ks {
+        let k = k as usize;
+        let o = k * stride + c;
+        let ur: &[f32; N] = ure[o..o + N].try_into().unwrap();
+        let ui: &[f32; N] = uim[o..o + N].try_into().unwrap();
+        let cf: &[[f32; 2]; MR] = coef[k * MR..k * MR + MR].try_into().unwrap();
+        for i in 0..MR {
+            let [a, b] = cf[i];
+            for l in 0..N {
+                let r = a.mul_add(ur[l], ar[i][l]);
+                ar[i][l] = (-b).mul_add(ui[l], r);
+                let m = a.mul_add(ui[l], ai[i][l]);
+                ai[i][l] = b.mul_add(ur[l], m);
+            }
         }
-        re0[c] = r0;
-        im0[c] = m0;
-        re1[c] = r1;
-        im1[c] = m1;
+    }
+    for i in 0..MR {
+        re[rows[i] + c..][..N].copy_from_slice(&ar[i]);
+        im[rows[i] + c..][..N].copy_from_slice(&ai[i]);
+    }
+}
+
+/// A register tile of the matrix product: for the `MR` rows whose sums start at `rows[i]` in
+/// `re`, `im` (offsets of panel column 0) and the panel columns [c0, c1),
+/// re + i im += sum over k in `ks` of (cr + i ci)(ure + i uim), with (cr, ci) = `coef[k * MR + i]`
+/// and emitter k's column factors at `ure[k * stride..]`.
+///
+/// Columns go `NR` at a time with the tile's 2 x MR x NR sums held in registers over the whole
+/// emitter list (for AVX-512, MR = 4 and NR = 32: sixteen accumulators, four factor loads and
+/// eight broadcasts per 32 multiply-adds), then one at a time at the end. Every pixel's sum is the
+/// chain re = fma(cr, ur, re), re = fma(-ci, ui, re), im = fma(cr, ui, im), im = fma(ci, ur, im)
+/// over `ks` in order, whatever `MR` and `NR` are, so copies of any width give the same bits, and
+/// so does leaving out an emitter whose factor or coefficient is zero. The rows must be distinct.
+#[allow(clippy::too_many_arguments)]
+#[inline(always)]
+pub fn mac_tile_generic<const MR: usize, const NR: usize>(
+    ks: &[u32],
+    coef: &[[f32; 2]],
+    ure: &[f32],
+    uim: &[f32],
+    stride: usize,
+    c0: usize,
+    c1: usize,
+    rows: &[usize; MR],
+    re: &mut [f32],
+    im: &mut [f32],
+) {
+    let mut c = c0;
+    while c + NR <= c1 {
+        tile_step::<MR, NR>(ks, coef, ure, uim, stride, c, rows, re, im);
+        c += NR;
+    }
+    while c < c1 {
+        tile_step::<MR, 1>(ks, coef, ure, uim, stride, c, rows, re, im);
+        c += 1;
     }
 }

@@ -455,54 +455,155 @@ simd_copies!(
     (ri: &RowInputs, xj: f64, z: f64, amplitude: f64, c0: usize, c1: usize, ure: &mut [f32], uim: &mut [f32]) -> u64
 );
 simd_copies!(
-    mac_group_avx2,
-    mac_group_avx512,
-    fresnel32::mac_group_generic,
-    (coef: &[[f32; 2]; fresnel32::GROUP], ure: &[f32], uim: &[f32], re: &mut [f32], im: &mut [f32]) -> ()
+    mac_tile_avx2,
+    mac_tile_avx512,
+    mac_tile_for_isa,
+    (ks: &[u32], coef: &[[f32; 2]], ure: &[f32], uim: &[f32], stride: usize, c0: usize, c1: usize, rows: &[usize; fresnel32::TILE_ROWS], re: &mut [f32], im: &mut [f32], nr: usize) -> ()
 );
 
 simd_copies!(
-    mac_group2_avx2,
-    mac_group2_avx512,
-    fresnel32::mac_group2_generic,
-    (coef0: &[[f32; 2]; fresnel32::GROUP], coef1: &[[f32; 2]; fresnel32::GROUP], ure: &[f32], uim: &[f32], re0: &mut [f32], im0: &mut [f32], re1: &mut [f32], im1: &mut [f32]) -> ()
+    row_coefs_avx2,
+    row_coefs_avx512,
+    fresnel32::row_coefs_generic,
+    (ys: &[f64], yj: f64, z: f64, cycles0: f64, ref_y: f64, half_band_y: f64, inv_lambda: f64, cre: &mut [f32], cim: &mut [f32]) -> u64
 );
 
-/// [`mac_group32`] on two rows at once (each factor load serves both; same bits as two calls).
+simd_copies!(
+    flush_avx2,
+    flush_avx512,
+    fresnel32::flush_generic,
+    (s: &mut [f32], d: &mut [f64]) -> ()
+);
+
+/// Row coefficients of one emitter over a band's rows for the f32 separable Fresnel path (see
+/// [`fresnel32::row_coefs_generic`]); the same bits from every copy. Returns the rows inside.
 ///
 /// # Panics
-/// If the rows differ in length or `ure`, `uim` do not hold `GROUP` factors of that length.
+/// If `cre` or `cim` is shorter than `ys`.
 #[allow(clippy::too_many_arguments)]
-pub fn mac_group32_pair(
+pub fn fresnel_row_coefs32(
     isa: KernelIsa,
-    coef0: &[[f32; 2]; fresnel32::GROUP],
-    coef1: &[[f32; 2]; fresnel32::GROUP],
-    ure: &[f32],
-    uim: &[f32],
-    re0: &mut [f32],
-    im0: &mut [f32],
-    re1: &mut [f32],
-    im1: &mut [f32],
-) {
-    let n = re0.len();
-    assert!(
-        im0.len() == n
-            && re1.len() == n
-            && im1.len() == n
-            && ure.len() == fresnel32::GROUP * n
-            && uim.len() == ure.len(),
-        "group factor length"
-    );
+    ys: &[f64],
+    yj: f64,
+    z: f64,
+    cycles0: f64,
+    ref_y: f64,
+    half_band_y: f64,
+    inv_lambda: f64,
+    cre: &mut [f32],
+    cim: &mut [f32],
+) -> u64 {
     match isa {
         #[cfg(target_arch = "x86_64")]
         // SAFETY: as in `fresnel_columns32`.
-        KernelIsa::Avx2 => unsafe { mac_group2_avx2(coef0, coef1, ure, uim, re0, im0, re1, im1) },
+        KernelIsa::Avx2 => unsafe {
+            row_coefs_avx2(ys, yj, z, cycles0, ref_y, half_band_y, inv_lambda, cre, cim)
+        },
         #[cfg(target_arch = "x86_64")]
         // SAFETY: as in `fresnel_columns32`.
         KernelIsa::Avx512 => unsafe {
-            mac_group2_avx512(coef0, coef1, ure, uim, re0, im0, re1, im1)
+            row_coefs_avx512(ys, yj, z, cycles0, ref_y, half_band_y, inv_lambda, cre, cim)
         },
-        _ => fresnel32::mac_group2_generic(coef0, coef1, ure, uim, re0, im0, re1, im1),
+        _ => fresnel32::row_coefs_generic(
+            ys,
+            yj,
+            z,
+            cycles0,
+            ref_y,
+            half_band_y,
+            inv_lambda,
+            cre,
+            cim,
+        ),
+    }
+}
+
+/// d += s as f64, then s = 0 (f32 sums flushed into f64 ones).
+///
+/// # Panics
+/// If `d` is shorter than `s`.
+pub fn flush32(isa: KernelIsa, s: &mut [f32], d: &mut [f64]) {
+    match isa {
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: as in `fresnel_columns32`.
+        KernelIsa::Avx2 => unsafe { flush_avx2(s, d) },
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: as in `fresnel_columns32`.
+        KernelIsa::Avx512 => unsafe { flush_avx512(s, d) },
+        _ => fresnel32::flush_generic(s, d),
+    }
+}
+
+/// The tile kernel at the column width `nr` chosen for a copy ([`tile_columns`]): AVX-512 holds
+/// 4 x 32 complex sums in 16 registers, AVX2 4 x 8 in 8 (16 would leave no room for loads).
+#[allow(clippy::too_many_arguments)]
+#[inline(always)]
+fn mac_tile_for_isa(
+    ks: &[u32],
+    coef: &[[f32; 2]],
+    ure: &[f32],
+    uim: &[f32],
+    stride: usize,
+    c0: usize,
+    c1: usize,
+    rows: &[usize; fresnel32::TILE_ROWS],
+    re: &mut [f32],
+    im: &mut [f32],
+    nr: usize,
+) {
+    const MR: usize = fresnel32::TILE_ROWS;
+    if nr == 32 {
+        fresnel32::mac_tile_generic::<MR, 32>(ks, coef, ure, uim, stride, c0, c1, rows, re, im)
+    } else {
+        fresnel32::mac_tile_generic::<MR, 8>(ks, coef, ure, uim, stride, c0, c1, rows, re, im)
+    }
+}
+
+/// Columns per register tile for a copy of the Fresnel tile kernel; panels are laid out in
+/// multiples of it.
+pub fn tile_columns(isa: KernelIsa) -> usize {
+    match isa {
+        KernelIsa::Avx512 => 32,
+        _ => 8,
+    }
+}
+
+/// Adds a block of emitters to a tile of [`fresnel32::TILE_ROWS`] rows of f32 sums over the
+/// panel columns [c0, c1) (see [`fresnel32::mac_tile_generic`]); the same bits from every copy.
+///
+/// # Panics
+/// If the rows are not distinct, or an index falls outside the slices.
+#[allow(clippy::too_many_arguments)]
+pub fn mac_tile32(
+    isa: KernelIsa,
+    ks: &[u32],
+    coef: &[[f32; 2]],
+    ure: &[f32],
+    uim: &[f32],
+    stride: usize,
+    c0: usize,
+    c1: usize,
+    rows: &[usize; fresnel32::TILE_ROWS],
+    re: &mut [f32],
+    im: &mut [f32],
+) {
+    for i in 0..rows.len() {
+        assert!(!rows[..i].contains(&rows[i]), "tile rows must be distinct");
+    }
+    assert!(c1 <= stride && re.len() == im.len(), "tile bounds");
+    let nr = tile_columns(isa);
+    match isa {
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: as in `fresnel_columns32`; the kernel itself indexes with bounds checks.
+        KernelIsa::Avx2 => unsafe {
+            mac_tile_avx2(ks, coef, ure, uim, stride, c0, c1, rows, re, im, nr)
+        },
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: as in `fresnel_columns32`; the kernel itself indexes with bounds checks.
+        KernelIsa::Avx512 => unsafe {
+            mac_tile_avx512(ks, coef, ure, uim, stride, c0, c1, rows, re, im, nr)
+        },
+        _ => mac_tile_for_isa(ks, coef, ure, uim, stride, c0, c1, rows, re, im, nr),
     }
 }
 
@@ -532,34 +633,6 @@ pub fn fresnel_columns32(
         // SAFETY: `KernelIsa::Avx512` comes from `detect` after AVX-512 F, VL, DQ, AVX2 and FMA.
         KernelIsa::Avx512 => unsafe { columns32_avx512(ri, xj, z, amplitude, c0, c1, ure, uim) },
         _ => fresnel32::columns32_generic(ri, xj, z, amplitude, c0, c1, ure, uim),
-    }
-}
-
-/// Adds a group of emitters to one row of f32 sums (see [`fresnel32`]).
-///
-/// # Panics
-/// If `ure` or `uim` do not hold `GROUP` factors of the row's length.
-pub fn mac_group32(
-    isa: KernelIsa,
-    coef: &[[f32; 2]; fresnel32::GROUP],
-    ure: &[f32],
-    uim: &[f32],
-    re: &mut [f32],
-    im: &mut [f32],
-) {
-    let n = re.len();
-    assert!(
-        im.len() == n && ure.len() == fresnel32::GROUP * n && uim.len() == ure.len(),
-        "group factor length"
-    );
-    match isa {
-        #[cfg(target_arch = "x86_64")]
-        // SAFETY: as in `fresnel_columns32`.
-        KernelIsa::Avx2 => unsafe { mac_group_avx2(coef, ure, uim, re, im) },
-        #[cfg(target_arch = "x86_64")]
-        // SAFETY: as in `fresnel_columns32`.
-        KernelIsa::Avx512 => unsafe { mac_group_avx512(coef, ure, uim, re, im) },
-        _ => fresnel32::mac_group_generic(coef, ure, uim, re, im),
     }
 }
 
