@@ -100,9 +100,8 @@ pub struct PointSum {
     tile_cols: usize,
     /// Use the separable Fresnel path where it applies (plane reference, one channel, no occlusion).
     separable: bool,
-    /// f32 exact kernel: distance from which the polynomial path is used.
-    poly_min_distance: f64,
-    poly_min_distance_wide: f64,
+    /// f32 exact kernel: distances from which the polynomial path's segment widths apply.
+    poly_min_distance: [f64; 3],
     /// Soft support edge (exact approximation, f64 only), see [`Self::with_edge_taper`].
     taper_start: f64,
 }
@@ -206,17 +205,9 @@ impl PointSum {
             visibility: None,
             tile_cols: 512,
             separable: true,
-            poly_min_distance: kernels::poly_min_distance(
-                kernels::exact32::POLY_LANES,
-                plate.pitch[0],
-                plate.wavelength,
-            ),
+            poly_min_distance: kernels::exact32::POLY_WIDTHS
+                .map(|l| kernels::poly_min_distance(l, plate.pitch[0], plate.wavelength)),
             taper_start: 1.0,
-            poly_min_distance_wide: kernels::poly_min_distance(
-                kernels::exact32::POLY_LANES_WIDE,
-                plate.pitch[0],
-                plate.wavelength,
-            ),
         }
     }
 
@@ -430,7 +421,6 @@ impl PointSum {
                     pitch: self.plate.pitch[0],
                     ref_step,
                     poly_min_distance: self.poly_min_distance,
-                    poly_min_distance_wide: self.poly_min_distance_wide,
                 };
                 let (wx, wy) = self.row_window(&ch.reference, y);
                 let inputs = RowInputs {

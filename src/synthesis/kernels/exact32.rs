@@ -7,7 +7,8 @@
 //! * Polynomial path (emitters at least [`poly_min_distance`] from the row, which is nearly all
 //!   of a display scene): a cubic in the lane offset n about the anchor, coefficients from f64,
 //!   Taylor remainder below [`POLY_PHASE_TOL`] = 2e-6 cycles; amplitude as a quadratic in n.
-//!   No square root or division per pixel. Segments of [`POLY_LANES`] = 16 pixels whose support
+//!   No square root or division per pixel. Segments of 16, 32 or 64 pixels ([`POLY_WIDTHS`], the
+//!   widest the emitter's distance allows) whose support
 //!   margins at the anchor (f64) exceed what the segment can change are taken whole; the others
 //!   get the f64 test per pixel (bounds in `exact32_poly`).
 //! * Near path (closer emitters): per pixel, r - r_a = u (u + 2 dx_a) / (r + r_a) with
@@ -35,13 +36,18 @@ pub const POLY_LANES: usize = 16;
 /// Pixels per segment of the polynomial path for emitters far enough for the longer expansion
 /// ([`poly_min_distance`] with this many lanes): half the f64 work per pixel.
 pub const POLY_LANES_WIDE: usize = 32;
+/// Pixels per segment for emitters farther still (display scenes tens of millimetres away).
+pub const POLY_LANES_XWIDE: usize = 64;
+/// The polynomial path's segment widths, narrowest first; `Row32::poly_min_distance[i]` is the
+/// distance from which width `i` keeps the expansion within [`POLY_PHASE_TOL`].
+pub const POLY_WIDTHS: [usize; 3] = [POLY_LANES, POLY_LANES_WIDE, POLY_LANES_XWIDE];
 /// Segments of the polynomial path whose coefficients are computed together.
 const POLY_SEGMENTS: usize = 4;
 /// Padding the f32 row buffers need past the last column a kernel call touches.
-pub const PAD: usize = if BLOCK > POLY_LANES_WIDE * POLY_SEGMENTS {
+pub const PAD: usize = if BLOCK > POLY_LANES_XWIDE * POLY_SEGMENTS {
     BLOCK
 } else {
-    POLY_LANES_WIDE * POLY_SEGMENTS
+    POLY_LANES_XWIDE * POLY_SEGMENTS
 };
 
 /// Margin (in direction cosines) below which the f32 support test defers to the f64 one.
@@ -58,12 +64,10 @@ pub struct Row32<'a> {
     /// Largest change of the reference direction cosines (x, y) between neighbouring columns
     /// of the row (0 for a plane reference).
     pub ref_step: [f64; 2],
-    /// Emitters at least this far from the row (sqrt(dy^2 + z^2), metres) take the polynomial
-    /// path with [`POLY_LANES`]-pixel segments; nearer ones the per-pixel square root. See
-    /// [`poly_min_distance`].
-    pub poly_min_distance: f64,
-    /// From this distance on, segments of [`POLY_LANES_WIDE`] pixels.
-    pub poly_min_distance_wide: f64,
+    /// Emitters at least `poly_min_distance[i]` from the row (sqrt(dy^2 + z^2), metres) take
+    /// the polynomial path with segments of `POLY_WIDTHS[i]` pixels (the widest that applies);
+    /// nearer ones the per-pixel square root. See [`poly_min_distance`].
+    pub poly_min_distance: [f64; 3],
 }
 
 /// Phase error allowed to the cubic expansion of r over a segment, cycles.
@@ -131,17 +135,20 @@ pub fn exact32_generic<const OBLIQUE: bool>(
     im: &mut [f32],
 ) -> u64 {
     let rho = (e.dy * e.dy + e.z * e.z).sqrt();
-    if rho >= r32.poly_min_distance_wide {
+    let d = &r32.poly_min_distance;
+    if rho >= d[2] {
+        exact32_poly::<OBLIQUE, POLY_LANES_XWIDE>(ri, r32, e, c0, c1, re, im)
+    } else if rho >= d[1] {
         exact32_poly::<OBLIQUE, POLY_LANES_WIDE>(ri, r32, e, c0, c1, re, im)
-    } else if rho >= r32.poly_min_distance {
+    } else if rho >= d[0] {
         exact32_poly::<OBLIQUE, POLY_LANES>(ri, r32, e, c0, c1, re, im)
     } else {
         exact32_near::<OBLIQUE>(ri, r32, e, c0, c1, re, im)
     }
 }
 
-/// The polynomial path. Per segment of eight pixels, in f64 about the anchor a (u = n p, n the
-/// lane's offset from the anchor, -4..=3):
+/// The polynomial path. Per segment of `L` pixels, in f64 about the anchor a (u = n p, n the
+/// lane's offset from the anchor, -L/2..L/2):
 ///
 ///   r / lambda = r_a / lambda + n b1 + n^2 b2 + n^3 b3 + R4,
 ///   b1 = s p / lambda,  b2 = (1 - s^2) p^2 / (2 r_a lambda),  b3 = -s (1 - s^2) p^3 / (2 r_a^2 lambda),
@@ -210,7 +217,8 @@ fn exact32_poly<const OBLIQUE: bool, const L: usize>(
             let q = 1.0 - s * s;
             let pl = p * il;
             // Whole cycles per pixel do nothing at integer offsets n: keep b1 within half a cycle,
-            // so n b1 stays below L / 4 cycles and its f32 rounding small.
+            // so n b1 stays below L / 4 cycles (16 for 64 lanes) and its f32 rounding small: the
+            // Horner chain's few roundings at that size are below 2e-6 cycles (1.2e-5 rad).
             let b1 = s * pl;
             b[0][k] = (b1 - b1.round_ties_even()) as f32;
             b[1][k] = (q * p * pl * 0.5 * ir[k]) as f32;
@@ -259,6 +267,19 @@ fn exact32_poly<const OBLIQUE: bool, const L: usize>(
             let (t0, b1, b2, b3) = (ta[k], b[0][k], b[1][k], b[2][k]);
             let (g0, g1, g2) = (g[0][k], g[1][k], g[2][k]);
             let (re, im) = (&mut re[cs..cs + L], &mut im[cs..cs + L]);
+            if full && live == L {
+                // The common case, without lane weights (a weight of 1 is exact: same bits).
+                for i in 0..L {
+                    let n = nl[i];
+                    let t = n.mul_add(n.mul_add(n.mul_add(b3, b2), b1), t0);
+                    let t = t - t.round_ties_even();
+                    let (sn, co) = sincos_half(t);
+                    let a = n.mul_add(n.mul_add(g2, g1), g0);
+                    re[i] = a.mul_add(co, re[i]);
+                    im[i] = a.mul_add(sn, im[i]);
+                }
+                continue;
+            }
             for i in 0..L {
                 let n = nl[i];
                 let t = n.mul_add(n.mul_add(n.mul_add(b3, b2), b1), t0);
