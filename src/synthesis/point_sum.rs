@@ -122,11 +122,9 @@ pub struct BandScratch {
     col_im: Vec<f64>,
     re32: Vec<f32>,
     im32: Vec<f32>,
-    band32_re: Vec<f32>,
-    band32_im: Vec<f32>,
     group_re: Vec<f32>,
     group_im: Vec<f32>,
-    /// Separable f32 path: the block's emitters (index, first column, end column, columns inside).
+    /// Separable f32 path: the group's emitters (index, first column, end column, rows inside).
     block_members: Vec<(u32, usize, usize, u64)>,
     /// Separable f32 path: row coefficients, [member][row] (zero outside the y support).
     block_cre: Vec<f32>,
@@ -669,11 +667,11 @@ impl PointSum {
     }
 
     /// The separable Fresnel band in f32 ([`kernels::fresnel32`]) as blocked matrix products:
-    /// per block of up to `BLOCK` candidates (never straddling an f32 flush boundary), the column
-    /// factors once over the union of their x spans (a panel, zero outside each span), the row
-    /// coefficients of every row, then register tiles of `TILE_ROWS` live rows by column chunks,
-    /// each given only the emitters live on its rows whose span meets its chunk. Same support
-    /// pixels and update count as [`Self::fresnel_band`].
+    /// per group of candidates (the f32 flush groups of `F32_GROUP` indices), the row
+    /// coefficients on every row, then column chunk by chunk: the column factors of the members
+    /// meeting the chunk (a panel), and register tiles of `TILE_ROWS` live rows, each given the
+    /// members live on its rows, whose f32 sums are added straight into the f64 band. Same
+    /// support pixels and update count as [`Self::fresnel_band`].
     fn fresnel_band32(
         &self,
         row0: usize,
@@ -682,15 +680,14 @@ impl PointSum {
         scratch: &mut BandScratch,
         cands: &[u32],
     ) -> u64 {
-        use kernels::fresnel32::{BLOCK, CHUNK, TILE_ROWS as MR};
+        use kernels::fresnel32::{CHUNK, TILE_ROWS as MR};
         let w = self.plate.width as usize;
         let nr = kernels::tile_columns(self.isa);
         let inv_lambda = 1.0 / self.plate.wavelength;
         let d = self.plane_band_setup(rows, scratch);
-        // f32 sums, plus MR - 1 spare zero rows that pad the last tile (zero coefficients: they
-        // stay zero and are never flushed).
-        for v in [&mut scratch.band32_re, &mut scratch.band32_im] {
-            v.clear();
+        // MR - 1 spare rows pad the last tile (zero coefficients: they only ever get zeros added,
+        // and the conjugate step reads the band's own rows).
+        for v in [&mut scratch.band_re, &mut scratch.band_im] {
             v.resize((rows + MR - 1) * w, 0.0);
         }
         let inputs = RowInputs {
@@ -706,96 +703,30 @@ impl PointSum {
             .map(|r| self.plate.y_of_row((row0 + r) as f64))
             .collect();
         let mut updates = 0u64;
-        // Columns touched since the last flush of the f32 sums into f64.
-        let mut touched = (w, 0usize);
-        let isa = self.isa;
-        let flush = |touched: &mut (usize, usize),
-                     b32re: &mut [f32],
-                     b32im: &mut [f32],
-                     bre: &mut [f64],
-                     bim: &mut [f64]| {
-            let (lo, hi) = *touched;
-            if lo < hi {
-                for r in 0..rows {
-                    let (a, b) = (r * w + lo, r * w + hi);
-                    kernels::flush32(isa, &mut b32re[a..b], &mut bre[a..b]);
-                    kernels::flush32(isa, &mut b32im[a..b], &mut bim[a..b]);
-                }
-            }
-            *touched = (w, 0);
-        };
+        // (index, first column, end column, rows inside the y support).
         let mut members = std::mem::take(&mut scratch.block_members);
         let mut live_rows: Vec<usize> = Vec::with_capacity(rows);
-        let mut flush_block = usize::MAX;
         let mut k = 0;
         while k < cands.len() {
-            let fb = cands[k] as usize / F32_GROUP;
-            if fb != flush_block {
-                flush_block = fb;
-                flush(
-                    &mut touched,
-                    &mut scratch.band32_re,
-                    &mut scratch.band32_im,
-                    &mut scratch.band_re,
-                    &mut scratch.band_im,
-                );
-            }
-            // The block: the next candidates of this flush block with a non-empty x span.
+            // The group: the candidates of one flush group with a non-empty x span.
+            let g = cands[k] as usize / F32_GROUP;
             members.clear();
-            while k < cands.len() && cands[k] as usize / F32_GROUP == fb && members.len() < BLOCK {
+            while k < cands.len() && cands[k] as usize / F32_GROUP == g {
                 let j = cands[k];
                 if let Some((c0, c1)) = self.fresnel_x_span(&self.emitters[j as usize], wx) {
                     members.push((j, c0, c1, 0));
                 }
                 k += 1;
             }
-            if members.is_empty() {
-                continue;
-            }
-            // The panel: columns [u0, u1), rounded out to whole register tiles where the plate
-            // allows; member p's factors in row p, zero outside its span.
-            let u0 = members.iter().map(|m| m.1).min().unwrap_or(0) / nr * nr;
-            let u1 = members
-                .iter()
-                .map(|m| m.2)
-                .max()
-                .unwrap_or(0)
-                .next_multiple_of(nr)
-                .min(w);
-            let len = u1 - u0;
             let nm = members.len();
-            for v in [&mut scratch.group_re, &mut scratch.group_im] {
-                v.clear();
-                v.resize(nm * len, 0.0);
-            }
-            for (p, m) in members.iter_mut().enumerate() {
-                let e = &self.emitters[m.0 as usize];
-                let at = p * len + m.1 - u0;
-                m.3 = kernels::fresnel_columns32(
-                    self.isa,
-                    &inputs,
-                    e.pos[0],
-                    e.pos[2],
-                    e.amplitude,
-                    m.1,
-                    m.2,
-                    &mut scratch.group_re[at..at + m.2 - m.1],
-                    &mut scratch.group_im[at..at + m.2 - m.1],
-                );
-            }
-            touched = (touched.0.min(u0), touched.1.max(u1));
-            // Row coefficients, [member][row] (zero outside the y support, or for a member with
-            // no column inside).
+            // Row coefficients, [member][row] (zero outside the y support).
             for v in [&mut scratch.block_cre, &mut scratch.block_cim] {
                 v.clear();
                 v.resize(nm * rows, 0.0);
             }
-            for (p, m) in members.iter().enumerate() {
-                if m.3 == 0 {
-                    continue;
-                }
+            for (p, m) in members.iter_mut().enumerate() {
                 let e = &self.emitters[m.0 as usize];
-                let inside = kernels::fresnel_row_coefs32(
+                m.3 = kernels::fresnel_row_coefs32(
                     self.isa,
                     &ys,
                     e.pos[1],
@@ -807,7 +738,25 @@ impl PointSum {
                     &mut scratch.block_cre[p * rows..(p + 1) * rows],
                     &mut scratch.block_cim[p * rows..(p + 1) * rows],
                 );
-                updates += inside * m.3;
+            }
+            // Members with no row inside drop out, their coefficient rows with them.
+            let mut q = 0;
+            for p in 0..nm {
+                if members[p].3 > 0 {
+                    members[q] = members[p];
+                    scratch
+                        .block_cre
+                        .copy_within(p * rows..(p + 1) * rows, q * rows);
+                    scratch
+                        .block_cim
+                        .copy_within(p * rows..(p + 1) * rows, q * rows);
+                    q += 1;
+                }
+            }
+            members.truncate(q);
+            let nm = members.len();
+            if nm == 0 {
+                continue;
             }
             live_rows.clear();
             live_rows.extend((0..rows).filter(|&r| {
@@ -835,49 +784,85 @@ impl PointSum {
                     }
                 }
             }
+            // Column chunks over the union of the spans, aligned to whole register tiles.
+            let u0 = members.iter().map(|m| m.1).min().unwrap_or(0) / nr * nr;
+            let u1 = members.iter().map(|m| m.2).max().unwrap_or(0);
+            for v in [&mut scratch.group_re, &mut scratch.group_im] {
+                v.clear();
+                v.resize(nm * CHUNK, 0.0);
+            }
+            let end = u1.next_multiple_of(nr).min(w);
             let mut c = u0;
             while c < u1 {
-                let ce = (c + CHUNK).min(u1);
+                let ce = (c + CHUNK).min(end);
+                // The panel: member p's factors in row p over [c, ce), zero outside its span
+                // (rows of members that miss the chunk are left as they are and never read).
+                scratch.tile_ks.clear();
+                for (p, m) in members.iter().enumerate() {
+                    if m.1 >= ce || m.2 <= c {
+                        continue;
+                    }
+                    scratch.tile_ks.push(p as u32);
+                    let (a, b) = (m.1.max(c), m.2.min(ce));
+                    let row = p * CHUNK;
+                    let (pre, pim) = (
+                        &mut scratch.group_re[row..row + ce - c],
+                        &mut scratch.group_im[row..row + ce - c],
+                    );
+                    pre[..a - c].fill(0.0);
+                    pim[..a - c].fill(0.0);
+                    pre[b - c..].fill(0.0);
+                    pim[b - c..].fill(0.0);
+                    let e = &self.emitters[m.0 as usize];
+                    let inside = kernels::fresnel_columns32(
+                        self.isa,
+                        &inputs,
+                        e.pos[0],
+                        e.pos[2],
+                        e.amplitude,
+                        a,
+                        b,
+                        &mut pre[a - c..b - c],
+                        &mut pim[a - c..b - c],
+                    );
+                    updates += inside * m.3;
+                }
+                let in_chunk = scratch.tile_ks.len();
                 for t in 0..tiles {
-                    scratch.tile_ks.clear();
-                    for (p, m) in members.iter().enumerate() {
-                        if scratch.tile_live[t * nm + p] && m.1 < ce && m.2 > c {
-                            scratch.tile_ks.push(p as u32);
+                    // This tile's list: the chunk's members live on its rows, in index order.
+                    scratch.tile_ks.truncate(in_chunk);
+                    for q in 0..in_chunk {
+                        let p = scratch.tile_ks[q];
+                        if scratch.tile_live[t * nm + p as usize] {
+                            scratch.tile_ks.push(p);
                         }
                     }
-                    if scratch.tile_ks.is_empty() {
+                    if scratch.tile_ks.len() == in_chunk {
                         continue;
                     }
                     let row_at = |i: usize| {
                         let r = live_rows.get(t * MR + i).copied().unwrap_or(rows + i - 1);
-                        r * w + u0
+                        r * w + c
                     };
                     let tile_rows: [usize; MR] = std::array::from_fn(row_at);
                     kernels::mac_tile32(
                         self.isa,
-                        &scratch.tile_ks,
+                        &scratch.tile_ks[in_chunk..],
                         &scratch.tile_coef[t * nm * MR..(t + 1) * nm * MR],
                         &scratch.group_re,
                         &scratch.group_im,
-                        len,
-                        c - u0,
-                        ce - u0,
+                        CHUNK,
+                        0,
+                        ce - c,
                         &tile_rows,
-                        &mut scratch.band32_re,
-                        &mut scratch.band32_im,
+                        &mut scratch.band_re,
+                        &mut scratch.band_im,
                     );
                 }
                 c = ce;
             }
         }
         scratch.block_members = members;
-        flush(
-            &mut touched,
-            &mut scratch.band32_re,
-            &mut scratch.band32_im,
-            &mut scratch.band_re,
-            &mut scratch.band_im,
-        );
         self.times_plane_conj(row0, d, out, scratch);
         updates
     }

@@ -4,16 +4,17 @@
 //! With a plane reference the Fresnel wave of emitter j factors into a column factor
 //! u_j(x) = (a_j / z_j) exp(i 2 pi (x - x_j)^2 / (2 z_j lambda)) (zero outside the x half of the
 //! support test) and a row factor v_j(y) = exp(i 2 pi t_j(y)) (zero outside the y half), so a band
-//! is a sum of rank-one updates F += v_j u_j^T: a matrix product. Here the column factors of a
-//! block of up to [`BLOCK`] emitters are formed once per band (a panel), and tiles of
-//! [`TILE_ROWS`] rows by a few SIMD vectors of columns keep their sums in registers while every
-//! emitter of the block is added ([`mac_tile_generic`]); the caller cuts the panel into column
-//! chunks and hands each tile only the emitters whose support meets it, so band-limited supports
-//! cost what they cover (to the chunk and tile), not the panel.
+//! is a sum of rank-one updates F += v_j u_j^T: a matrix product. The caller takes the emitters in
+//! groups (the f32 flush groups of 256 indices), forms the column factors of a group chunk by
+//! chunk of [`CHUNK`] columns (a panel), and tiles of [`TILE_ROWS`] rows by a few SIMD vectors of
+//! columns keep their sums in registers while every emitter of the group live on the tile and
+//! meeting the chunk is added ([`mac_tile_generic`]); the f32 sums then go straight into the f64
+//! band. Band-limited supports cost what they cover, to a chunk and a tile.
 //!
 //! Precision: phases are formed in f64 and reduced to [-1/2, 1/2) cycles before the f32 sine and
 //! cosine (error 3e-7); factors are rounded to f32 (6e-8 relative); the f32 row sums are flushed
-//! into f64 by the caller every 256 emitters. Per term the error is below 1e-6 of a_j / z_j.
+//! into f64 at the end of each group of 256 emitter indices. Per term the error is below 1e-6 of
+//! a_j / z_j.
 //!
 //! Determinism: each pixel's sum is one chain of `mul_add`s over the emitters in index order; an
 //! absent emitter (outside the band, or outside the support, or left out of a tile's list) adds
@@ -24,16 +25,13 @@
 use super::exact32::sincos_half;
 use super::{sincos_cycles, RowInputs};
 
-/// Emitters in one panel of column factors (the inner dimension of one matrix product).
-pub const BLOCK: usize = 64;
-
 /// Rows of a register tile.
 pub const TILE_ROWS: usize = 4;
 
-/// Columns of a panel handed to a tile at once: the emitters meeting such a chunk are listed per
-/// tile, and the chunk's factors (BLOCK x 256 x 8 bytes = 128 KiB) stay in the L2 cache while
-/// the band's tiles pass over it.
-pub const CHUNK: usize = 256;
+/// Columns of a panel: the emitters meeting a chunk are listed per tile (so a support edge wastes
+/// at most a chunk's width), and a group's factors over it (at most 256 x 64 x 8 bytes = 128 KiB)
+/// stay in the L2 cache while the band's tiles pass over it.
+pub const CHUNK: usize = 64;
 
 /// Column factor of one emitter over columns [c0, c1) in f32, written to `ure`, `uim`
 /// (`c1 - c0` values); the x half of the support test as the f64 kernels apply it (same pixels).
@@ -51,6 +49,8 @@ pub fn columns32_generic(
     uim: &mut [f32],
 ) -> u64 {
     let (xs, rdx) = (&ri.xs[c0..c1], &ri.rdx[c0..c1]);
+    // Equal lengths up front: no bounds checks in the loop, and no scalar epilogue forced on it.
+    let (ure, uim) = (&mut ure[..xs.len()], &mut uim[..xs.len()]);
     let inv_z = 1.0 / z;
     let amp = (amplitude * inv_z) as f32;
     let q = 0.5 * inv_z * ri.inv_lambda;
@@ -102,16 +102,6 @@ pub fn row_coefs_generic(
     n
 }
 
-/// d += s (widened to f64) and s = 0, element by element: the flush of f32 sums into f64 ones.
-#[inline(always)]
-pub fn flush_generic(s: &mut [f32], d: &mut [f64]) {
-    let d = &mut d[..s.len()];
-    for i in 0..s.len() {
-        d[i] += s[i] as f64;
-        s[i] = 0.0;
-    }
-}
-
 /// One step of [`mac_tile_generic`]: `N` columns from panel column `c` on the tile's rows.
 #[allow(clippy::too_many_arguments)]
 #[inline(always)]
@@ -123,15 +113,11 @@ fn tile_step<const MR: usize, const N: usize>(
     stride: usize,
     c: usize,
     rows: &[usize; MR],
-    re: &mut [f32],
-    im: &mut [f32],
+    re: &mut [f64],
+    im: &mut [f64],
 ) {
     let mut ar = [[0f32; N]; MR];
     let mut ai = [[0f32; N]; MR];
-    for i in 0..MR {
-        ar[i] = re[rows[i] + c..][..N].try_into().unwrap();
-        ai[i] = im[rows[i] + c..][..N].try_into().unwrap();
-    }
     for &k in ks {
         let k = k as usize;
         let o = k * stride + c;
@@ -149,22 +135,26 @@ fn tile_step<const MR: usize, const N: usize>(
         }
     }
     for i in 0..MR {
-        re[rows[i] + c..][..N].copy_from_slice(&ar[i]);
-        im[rows[i] + c..][..N].copy_from_slice(&ai[i]);
+        let (re, im) = (&mut re[rows[i] + c..][..N], &mut im[rows[i] + c..][..N]);
+        for l in 0..N {
+            re[l] += ar[i][l] as f64;
+            im[l] += ai[i][l] as f64;
+        }
     }
 }
 
-/// A register tile of the matrix product: for the `MR` rows whose sums start at `rows[i]` in
-/// `re`, `im` (offsets of panel column 0) and the panel columns [c0, c1),
-/// re + i im += sum over k in `ks` of (cr + i ci)(ure + i uim), with (cr, ci) = `coef[k * MR + i]`
-/// and emitter k's column factors at `ure[k * stride..]`.
+/// A register tile of the matrix product: for the `MR` rows whose f64 sums start at `rows[i]` in
+/// `re`, `im` (offsets of panel column 0) and the panel columns [c0, c1), the f32 sum over k in
+/// `ks` of (cr + i ci)(ure + i uim), with (cr, ci) = `coef[k * MR + i]` and emitter k's column
+/// factors at `ure[k * stride..]`, is formed in registers from zero and then added to `re`, `im`.
 ///
 /// Columns go `NR` at a time with the tile's 2 x MR x NR sums held in registers over the whole
 /// emitter list (for AVX-512, MR = 4 and NR = 32: sixteen accumulators, four factor loads and
-/// eight broadcasts per 32 multiply-adds), then one at a time at the end. Every pixel's sum is the
-/// chain re = fma(cr, ur, re), re = fma(-ci, ui, re), im = fma(cr, ui, im), im = fma(ci, ur, im)
-/// over `ks` in order, whatever `MR` and `NR` are, so copies of any width give the same bits, and
-/// so does leaving out an emitter whose factor or coefficient is zero. The rows must be distinct.
+/// eight broadcasts per 32 multiply-adds), then one at a time at the end. Every pixel's f32 sum is
+/// the chain re = fma(cr, ur, re), re = fma(-ci, ui, re), im = fma(cr, ui, im),
+/// im = fma(ci, ur, im) over `ks` in order, whatever `MR` and `NR` are, so copies of any width
+/// give the same bits, and so does leaving out an emitter whose factor or coefficient is zero.
+/// The rows must be distinct.
 #[allow(clippy::too_many_arguments)]
 #[inline(always)]
 pub fn mac_tile_generic<const MR: usize, const NR: usize>(
@@ -176,8 +166,8 @@ pub fn mac_tile_generic<const MR: usize, const NR: usize>(
     c0: usize,
     c1: usize,
     rows: &[usize; MR],
-    re: &mut [f32],
-    im: &mut [f32],
+    re: &mut [f64],
+    im: &mut [f64],
 ) {
     let mut c = c0;
     while c + NR <= c1 {

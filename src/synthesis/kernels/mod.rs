@@ -458,7 +458,7 @@ simd_copies!(
     mac_tile_avx2,
     mac_tile_avx512,
     mac_tile_for_isa,
-    (ks: &[u32], coef: &[[f32; 2]], ure: &[f32], uim: &[f32], stride: usize, c0: usize, c1: usize, rows: &[usize; fresnel32::TILE_ROWS], re: &mut [f32], im: &mut [f32], nr: usize) -> ()
+    (ks: &[u32], coef: &[[f32; 2]], ure: &[f32], uim: &[f32], stride: usize, c0: usize, c1: usize, rows: &[usize; fresnel32::TILE_ROWS], re: &mut [f64], im: &mut [f64], nr: usize) -> ()
 );
 
 simd_copies!(
@@ -466,13 +466,6 @@ simd_copies!(
     row_coefs_avx512,
     fresnel32::row_coefs_generic,
     (ys: &[f64], yj: f64, z: f64, cycles0: f64, ref_y: f64, half_band_y: f64, inv_lambda: f64, cre: &mut [f32], cim: &mut [f32]) -> u64
-);
-
-simd_copies!(
-    flush_avx2,
-    flush_avx512,
-    fresnel32::flush_generic,
-    (s: &mut [f32], d: &mut [f64]) -> ()
 );
 
 /// Row coefficients of one emitter over a band's rows for the f32 separable Fresnel path (see
@@ -518,22 +511,6 @@ pub fn fresnel_row_coefs32(
     }
 }
 
-/// d += s as f64, then s = 0 (f32 sums flushed into f64 ones).
-///
-/// # Panics
-/// If `d` is shorter than `s`.
-pub fn flush32(isa: KernelIsa, s: &mut [f32], d: &mut [f64]) {
-    match isa {
-        #[cfg(target_arch = "x86_64")]
-        // SAFETY: as in `fresnel_columns32`.
-        KernelIsa::Avx2 => unsafe { flush_avx2(s, d) },
-        #[cfg(target_arch = "x86_64")]
-        // SAFETY: as in `fresnel_columns32`.
-        KernelIsa::Avx512 => unsafe { flush_avx512(s, d) },
-        _ => fresnel32::flush_generic(s, d),
-    }
-}
-
 /// The tile kernel at the column width `nr` chosen for a copy ([`tile_columns`]): AVX-512 holds
 /// 4 x 32 complex sums in 16 registers, AVX2 4 x 8 in 8 (16 would leave no room for loads).
 #[allow(clippy::too_many_arguments)]
@@ -547,8 +524,8 @@ fn mac_tile_for_isa(
     c0: usize,
     c1: usize,
     rows: &[usize; fresnel32::TILE_ROWS],
-    re: &mut [f32],
-    im: &mut [f32],
+    re: &mut [f64],
+    im: &mut [f64],
     nr: usize,
 ) {
     const MR: usize = fresnel32::TILE_ROWS;
@@ -568,8 +545,9 @@ pub fn tile_columns(isa: KernelIsa) -> usize {
     }
 }
 
-/// Adds a block of emitters to a tile of [`fresnel32::TILE_ROWS`] rows of f32 sums over the
-/// panel columns [c0, c1) (see [`fresnel32::mac_tile_generic`]); the same bits from every copy.
+/// Adds a group of emitters, summed in f32, to a tile of [`fresnel32::TILE_ROWS`] rows of f64
+/// sums over the panel columns [c0, c1) (see [`fresnel32::mac_tile_generic`]); the same bits
+/// from every copy.
 ///
 /// # Panics
 /// If the rows are not distinct, or an index falls outside the slices.
@@ -584,8 +562,8 @@ pub fn mac_tile32(
     c0: usize,
     c1: usize,
     rows: &[usize; fresnel32::TILE_ROWS],
-    re: &mut [f32],
-    im: &mut [f32],
+    re: &mut [f64],
+    im: &mut [f64],
 ) {
     for i in 0..rows.len() {
         assert!(!rows[..i].contains(&rows[i]), "tile rows must be distinct");
