@@ -13,7 +13,7 @@
 use num_complex::Complex64;
 
 use super::kernels::{self, EmitterRow, KernelIsa, Row32, RowInputs, PAD};
-use super::support::{direction_window, plate_rows, row_columns};
+use super::support::{direction_window, plate_rows, row_columns, row_hole_columns};
 use super::{Approximation, Emitter, PointSumOptions, Precision};
 
 /// The f32 exact kernel sums this many consecutive emitters (by index, so the grouping is the
@@ -285,6 +285,23 @@ impl PointSum {
         row_columns(&self.plate, e, y, wx, wy, self.opts.approximation)
     }
 
+    /// Columns [start, end) inside emitter `j`'s span on row `row` that surely fail the y half of
+    /// the exact test (see [`super::support::row_offset_hole`]); the kernels skip them.
+    pub fn row_hole(&self, j: usize, row: usize) -> Option<(usize, usize)> {
+        if !self.opts.anti_alias {
+            return None;
+        }
+        let y = self.plate.y_of_row(row as f64);
+        let (_, wy) = self.row_window(&self.channel_of(j).reference, y);
+        row_hole_columns(
+            &self.plate,
+            &self.emitters[j],
+            y,
+            wy,
+            self.opts.approximation,
+        )
+    }
+
     /// Emitters (indices, in order) whose support may reach rows [row0, row0 + rows).
     pub fn candidates(&self, row0: usize, rows: usize, out: &mut Vec<u32>) {
         out.clear();
@@ -453,6 +470,19 @@ impl PointSum {
                     } else {
                         (0, w)
                     };
+                    // Off the foot row the y test may cut a hole out of the middle of the span:
+                    // walk the one or two intervals left.
+                    let hole = if self.opts.anti_alias {
+                        row_hole_columns(&self.plate, e, y, wy, self.opts.approximation)
+                    } else {
+                        None
+                    };
+                    let spans = match hole {
+                        Some((h0, h1)) if h0 < c1 && h1 > c0 => {
+                            [(c0, h0.max(c0)), (h1.min(c1), c1)]
+                        }
+                        _ => [(c0, c1), (c1, c1)],
+                    };
                     let er = EmitterRow {
                         xj: e.pos[0],
                         dy: y - e.pos[1],
@@ -479,17 +509,22 @@ impl PointSum {
                             kernels::accumulate_fresnel(self.isa, &inputs, &er, a, b, re, im)
                         }
                     };
-                    if self.visibility.is_some() {
-                        for t in c0 / self.tile_cols..=(c1 - 1) / self.tile_cols {
-                            if scratch.visible[k * tiles + t] {
-                                updates += add(
-                                    c0.max(t * self.tile_cols),
-                                    c1.min((t + 1) * self.tile_cols),
-                                );
-                            }
+                    for (c0, c1) in spans {
+                        if c0 >= c1 {
+                            continue;
                         }
-                    } else {
-                        updates += add(c0, c1);
+                        if self.visibility.is_some() {
+                            for t in c0 / self.tile_cols..=(c1 - 1) / self.tile_cols {
+                                if scratch.visible[k * tiles + t] {
+                                    updates += add(
+                                        c0.max(t * self.tile_cols),
+                                        c1.min((t + 1) * self.tile_cols),
+                                    );
+                                }
+                            }
+                        } else {
+                            updates += add(c0, c1);
+                        }
                     }
                 }
                 if fast {
@@ -881,6 +916,9 @@ impl PointSum {
             while (t as usize) < b {
                 if let Some((c0, c1)) = self.row_span(j, t as usize) {
                     sum += (c1 - c0) as f64;
+                    if let Some((h0, h1)) = self.row_hole(j, t as usize) {
+                        sum -= (h1.min(c1) as f64 - h0.max(c0) as f64).max(0.0);
+                    }
                 }
                 samples += 1;
                 t += step;

@@ -154,6 +154,44 @@ pub fn row_offset_span(
     }
 }
 
+/// Exact test only: the half-width `hole` of the offsets |u| < hole on a row at offset `dy` where
+/// the y test surely fails. Off the foot row, dy / sqrt(u^2 + dy^2 + z^2) is largest in magnitude
+/// at u = 0 and falls as |u| grows, so where it exceeds the window at u = 0 the support splits into
+/// two intervals either side of the foot point. A subset of the failing set (rounded inwards by a
+/// relative 1e-9); None when there is no hole (or the approximation is Fresnel, whose y test takes
+/// whole rows).
+pub fn row_offset_hole(dy: f64, z: f64, wy: [f64; 2], approx: Approximation) -> Option<f64> {
+    if approx != Approximation::Exact {
+        return None;
+    }
+    // The bound the value dy / r must not pass: wy1 above the row's foot, wy0 below it.
+    let limit = if dy > 0.0 && wy[1] > 0.0 {
+        dy / wy[1]
+    } else if dy < 0.0 && wy[0] < 0.0 {
+        dy / wy[0]
+    } else {
+        return None;
+    };
+    // |dy| / r > |limit bound| <=> r < limit <=> u^2 < limit^2 - dy^2 - z^2.
+    let q = limit * limit - dy * dy - z * z;
+    (q > 0.0).then(|| q.sqrt() * (1.0 - 1e-9))
+}
+
+/// Columns [start, end) of `plate` that lie wholly inside the hole of [`row_offset_hole`] on the
+/// row at height `y` (one pixel of slack on each side), if any.
+pub fn row_hole_columns(
+    plate: &Plate,
+    e: &Emitter,
+    y: f64,
+    wy: [f64; 2],
+    approx: Approximation,
+) -> Option<(usize, usize)> {
+    let h = row_offset_hole(y - e.pos[1], e.pos[2], wy, approx)?;
+    let c0 = (plate.col_of_x(e.pos[0] - h).floor() + 1.0).max(0.0);
+    let c1 = (plate.col_of_x(e.pos[0] + h).ceil() - 1.0).min(plate.width as f64 - 1.0);
+    (c0 <= c1).then(|| (c0 as usize, c1 as usize + 1))
+}
+
 /// Columns [start, end) of `plate` that may hold the emitter's support on the row at height `y`,
 /// with one pixel of slack on each side; None when empty.
 pub fn row_columns(
@@ -245,6 +283,43 @@ mod unit_tests {
                 }
             }
         }
+    }
+
+    /// Offsets inside the hole fail the exact test (brute force on a grid), and the hole is not
+    /// trivially small where the geometry makes one: rows beyond the foot row's reach.
+    #[test]
+    fn holes_hold_only_failing_offsets() {
+        let z = 1.0;
+        let windows = [
+            [-0.3, 0.3],
+            [-0.2, 0.05],
+            [0.4, 0.7],
+            [-0.7, -0.4],
+            [-1.5, -0.1],
+        ];
+        let mut holes = 0;
+        for wy in windows {
+            for iv in -300..=300 {
+                let v = iv as f64 * 0.01;
+                let Some(h) = row_offset_hole(v, z, wy, Approximation::Exact) else {
+                    continue;
+                };
+                holes += 1;
+                for iu in -300..=300 {
+                    let u = iu as f64 * 0.01;
+                    let sy = dir(u, v, z, Approximation::Exact)[1];
+                    if u.abs() < h {
+                        assert!(sy < wy[0] || sy > wy[1], "{wy:?} u={u} v={v} hole {h}");
+                    }
+                }
+            }
+        }
+        assert!(holes > 500, "only {holes} rows with a hole");
+        // On axis, window +-0.3: at v = 2 z the hole is |u| < sqrt((v / 0.3)^2 - v^2 - z^2).
+        let h = row_offset_hole(2.0, 1.0, [-0.3, 0.3], Approximation::Exact).unwrap();
+        assert!((h - ((2.0f64 / 0.3).powi(2) - 5.0).sqrt()).abs() < 1e-8);
+        assert!(row_offset_hole(0.2, 1.0, [-0.3, 0.3], Approximation::Exact).is_none());
+        assert!(row_offset_hole(2.0, 1.0, [-0.3, 0.3], Approximation::Fresnel).is_none());
     }
 
     /// For a plane reference at normal incidence the x-span on the foot row is exactly
