@@ -8,6 +8,7 @@
 //! Nothing here depends on scenes, encodings or files.
 
 pub mod fft2d;
+pub(crate) mod pointwise;
 pub mod propagation;
 
 use std::f64::consts::PI;

@@ -47,6 +47,7 @@ use std::sync::Arc;
 use num_complex::Complex;
 use rayon::prelude::*;
 
+use super::kernels::{self, KernelIsa};
 use crate::optics::propagation::{Grid, Propagator};
 
 /// Which constraint is imposed in the replay planes.
@@ -224,28 +225,30 @@ impl Stats {
     }
 }
 
-fn stats(field: &[Complex<f32>], st: &PlaneState, nx: usize) -> Stats {
+/// Columns [a0, a1) of row `row` in the signal area (empty when the row misses the window).
+fn area_columns(window: Option<[usize; 4]>, row: usize, nx: usize) -> (usize, usize) {
+    match window {
+        None => (0, nx),
+        Some([x, y, w, h]) if row >= y && row < y + h => (x.min(nx), (x + w).min(nx)),
+        Some(_) => (0, 0),
+    }
+}
+
+fn stats(field: &[Complex<f32>], st: &PlaneState, nx: usize, isa: KernelIsa) -> Stats {
     let rows: Vec<Stats> = field
         .par_chunks(nx)
         .zip(st.amp.par_chunks(nx))
         .enumerate()
         .map(|(i, (row, amp))| {
-            let mut s = Stats::default();
-            for (j, (u, &a)) in row.iter().zip(amp).enumerate() {
-                let (re, im) = (u.re as f64, u.im as f64);
-                let p = re * re + im * im;
-                let m = p.sqrt();
-                s.p_all += p;
-                if in_area(st.window, i, j) {
-                    s.p_area += p;
-                    s.cross += m * a;
-                    if a > 0.0 {
-                        s.ratio_sum += m / a;
-                        s.lit += 1.0;
-                    }
-                }
+            let (a0, a1) = area_columns(st.window, i, nx);
+            let [p_all, p_area, cross, ratio_sum, lit] = kernels::stats_row(isa, row, amp, a0, a1);
+            Stats {
+                p_all,
+                p_area,
+                cross,
+                ratio_sum,
+                lit,
             }
-            s
         })
         .collect();
     rows.into_iter().fold(Stats::default(), Stats::add)
@@ -286,43 +289,32 @@ fn update_weights(field: &[Complex<f32>], st: &mut PlaneState, s: &Stats, nx: us
 }
 
 /// Imposes the replay-plane constraint on `field` in place.
-fn constrain(field: &mut [Complex<f32>], st: &PlaneState, s: &Stats, alg: &Algorithm, nx: usize) {
-    let c = s.p_all.sqrt();
+fn constrain(
+    field: &mut [Complex<f32>],
+    st: &PlaneState,
+    s: &Stats,
+    alg: &Algorithm,
+    nx: usize,
+    isa: KernelIsa,
+) {
     let weighted = matches!(alg, Algorithm::WeightedGs);
     let mix = match alg {
         Algorithm::MixedRegion { mix, .. } => Some(*mix),
         _ => None,
     };
+    // Inside the signal area: target amplitude sqrt(P) a (w) (mix), the field's phase kept.
+    // Outside it (mixed region only): the field kept, scaled by 1 - mix.
+    let scale = s.p_all.sqrt() * mix.unwrap_or(1.0);
+    let outside = (1.0 - mix.unwrap_or(0.0)) as f32;
     field
         .par_chunks_mut(nx)
         .zip(st.amp.par_chunks(nx))
         .zip(st.weights.par_chunks(nx))
         .enumerate()
         .for_each(|(i, ((row, amp), w))| {
-            for (j, ((u, &a), &w)) in row.iter_mut().zip(amp).zip(w).enumerate() {
-                let inside = in_area(st.window, i, j);
-                if !inside {
-                    // Outside the signal window (mixed region only): keep the field, scaled.
-                    let k = (1.0 - mix.unwrap_or(0.0)) as f32;
-                    *u = *u * k;
-                    continue;
-                }
-                let mut target = c * a;
-                if weighted {
-                    target *= w;
-                }
-                if let Some(m) = mix {
-                    target *= m;
-                }
-                let (re, im) = (u.re as f64, u.im as f64);
-                // |u| without hypot's overflow guard: u is f32, so re^2 + im^2 fits f64.
-                let m = (re * re + im * im).sqrt();
-                *u = if m > 0.0 {
-                    Complex::new((target * re / m) as f32, (target * im / m) as f32)
-                } else {
-                    Complex::new(target as f32, 0.0)
-                };
-            }
+            let (a0, a1) = area_columns(st.window, i, nx);
+            let w = weighted.then_some(w);
+            kernels::constrain_row(isa, row, amp, w, scale, a0, a1, outside);
         });
 }
 
@@ -482,6 +474,7 @@ pub fn optimise(
     let mut stopped_early = false;
 
     // One iteration: error of the current phase, constraint, back-propagation, new phase.
+    let isa = kernels::detect();
     let mut step = |quantize: bool,
                     phase: &mut Vec<f64>,
                     holo: &mut Vec<Complex<f32>>,
@@ -492,12 +485,12 @@ pub fn optimise(
         for (k, (p, st)) in planes.iter().zip(states.iter_mut()).enumerate() {
             work.copy_from_slice(holo);
             p.propagator.propagate_with_scratch(&mut work, &mut scratch);
-            let s = stats(&work, st, nx);
+            let s = stats(&work, st, nx, isa);
             e2 += s.error() * s.error();
             if matches!(opts.algorithm, Algorithm::WeightedGs) {
                 update_weights(&work, st, &s, nx);
             }
-            constrain(&mut work, st, &s, &opts.algorithm, nx);
+            constrain(&mut work, st, &s, &opts.algorithm, nx, isa);
             p.back.propagate_with_scratch(&mut work, &mut scratch);
             if planes.len() > 1 {
                 if k == 0 {
@@ -557,9 +550,9 @@ pub fn optimise(
                         .zip(field.par_iter())
                         .for_each(|(h, a)| *h = unit(a.re, a.im));
                 } else {
-                    holo.par_iter_mut()
-                        .zip(work.par_iter())
-                        .for_each(|(h, w)| *h = unit(w.re as f64, w.im as f64));
+                    holo.par_chunks_mut(nx)
+                        .zip(work.par_chunks(nx))
+                        .for_each(|(h, w)| kernels::unit_row(isa, h, w));
                 }
                 *phase_stale = true;
             }
@@ -613,7 +606,7 @@ pub fn optimise(
     for (p, st) in planes.iter().zip(states.iter()) {
         work.copy_from_slice(&holo);
         p.propagator.propagate_with_scratch(&mut work, &mut scratch);
-        let e = stats(&work, st, nx).error();
+        let e = stats(&work, st, nx, kernels::detect()).error();
         e2 += e * e;
     }
     let e = (e2 / planes.len() as f64).sqrt();

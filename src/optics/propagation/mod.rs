@@ -191,6 +191,18 @@ pub(crate) struct Separable<T> {
 /// Applies `fac[k] * scale` to `v[k]`.
 #[inline]
 pub(crate) fn mul_by<T: FftNum>(v: &mut [Complex<T>], fac: &[Complex<T>], scale: Complex<T>) {
+    // f32 fields (the iterative loop's) take the vectorized copy.
+    if std::any::TypeId::of::<T>() == std::any::TypeId::of::<f32>() {
+        // SAFETY: T is f32, so these are the same slices and value with their own type.
+        let (v, fac, scale) = unsafe {
+            (
+                &mut *(v as *mut [Complex<T>] as *mut [Complex<f32>]),
+                &*(fac as *const [Complex<T>] as *const [Complex<f32>]),
+                *(&scale as *const Complex<T> as *const Complex<f32>),
+            )
+        };
+        return crate::optics::pointwise::mul_by_f32(v, fac, scale);
+    }
     for (a, &b) in v.iter_mut().zip(fac) {
         *a = *a * (b * scale);
     }

@@ -21,6 +21,7 @@ use num_complex::Complex64;
 
 pub mod exact32;
 pub mod fresnel32;
+pub mod pointwise;
 pub use exact32::{poly_min_distance, Row32, AMBIGUOUS, LANES, PAD};
 
 /// Per-row inputs shared by every emitter.
@@ -467,6 +468,95 @@ simd_copies!(
     fresnel32::row_coefs_generic,
     (ys: &[f64], yj: f64, z: f64, cycles0: f64, ref_y: f64, half_band_y: f64, inv_lambda: f64, cre: &mut [f32], cim: &mut [f32]) -> u64
 );
+
+simd_copies!(
+    stats_row_avx2,
+    stats_row_avx512,
+    pointwise::stats_row_generic,
+    (row: &[num_complex::Complex<f32>], amp: &[f64], a0: usize, a1: usize) -> [f64; 5]
+);
+simd_copies!(
+    constrain_row_avx2,
+    constrain_row_avx512,
+    pointwise::constrain_row_generic,
+    (row: &mut [num_complex::Complex<f32>], amp: &[f64], weights: Option<&[f64]>, scale: f64, a0: usize, a1: usize, outside: f32) -> ()
+);
+simd_copies!(
+    unit_row_avx2,
+    unit_row_avx512,
+    pointwise::unit_row_generic,
+    (h: &mut [num_complex::Complex<f32>], u: &[num_complex::Complex<f32>]) -> ()
+);
+
+/// Sums of one replay row of the iterative loop (see [`pointwise::stats_row_generic`]).
+///
+/// # Panics
+/// If `amp` is shorter than `row`.
+pub fn stats_row(
+    isa: KernelIsa,
+    row: &[num_complex::Complex<f32>],
+    amp: &[f64],
+    a0: usize,
+    a1: usize,
+) -> [f64; 5] {
+    match isa {
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: as in `fresnel_columns32`.
+        KernelIsa::Avx2 => unsafe { stats_row_avx2(row, amp, a0, a1) },
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: as in `fresnel_columns32`.
+        KernelIsa::Avx512 => unsafe { stats_row_avx512(row, amp, a0, a1) },
+        _ => pointwise::stats_row_generic(row, amp, a0, a1),
+    }
+}
+
+/// The amplitude constraint on one replay row (see [`pointwise::constrain_row_generic`]).
+///
+/// # Panics
+/// If `amp` (or `weights`) is shorter than the area's end.
+#[allow(clippy::too_many_arguments)]
+pub fn constrain_row(
+    isa: KernelIsa,
+    row: &mut [num_complex::Complex<f32>],
+    amp: &[f64],
+    weights: Option<&[f64]>,
+    scale: f64,
+    a0: usize,
+    a1: usize,
+    outside: f32,
+) {
+    match isa {
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: as in `fresnel_columns32`.
+        KernelIsa::Avx2 => unsafe { constrain_row_avx2(row, amp, weights, scale, a0, a1, outside) },
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: as in `fresnel_columns32`.
+        KernelIsa::Avx512 => unsafe {
+            constrain_row_avx512(row, amp, weights, scale, a0, a1, outside)
+        },
+        _ => pointwise::constrain_row_generic(row, amp, weights, scale, a0, a1, outside),
+    }
+}
+
+/// h = u / |u| element by element (see [`pointwise::unit_row_generic`]).
+///
+/// # Panics
+/// If `u` is shorter than `h`.
+pub fn unit_row(
+    isa: KernelIsa,
+    h: &mut [num_complex::Complex<f32>],
+    u: &[num_complex::Complex<f32>],
+) {
+    match isa {
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: as in `fresnel_columns32`.
+        KernelIsa::Avx2 => unsafe { unit_row_avx2(h, u) },
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: as in `fresnel_columns32`.
+        KernelIsa::Avx512 => unsafe { unit_row_avx512(h, u) },
+        _ => pointwise::unit_row_generic(h, u),
+    }
+}
 
 /// Row coefficients of one emitter over a band's rows for the f32 separable Fresnel path (see
 /// [`fresnel32::row_coefs_generic`]); the same bits from every copy. Returns the rows inside.
