@@ -66,10 +66,38 @@ for j in badge badge_fresnel; do
     grep -q 'precision = "f32"' "$tmp/${j}_f32.toml"
 done
 for job in badge badge_f32 badge_fresnel badge_fresnel_f32; do
-    for t in 2 1; do
+    for t in 2 1 2 1; do
         log "JOB $job threads=$t"
         run "$bin" run "$tmp/$job.toml" --restart --stats --threads "$t" -q
     done
+done
+
+section "whole jobs: 1024-point cloud (Fresnel goal shape, band-limited supports)"
+# cloud.ply at 30 mm: every support covers the 2048^2 plate, as in the numpy GEMM of 2048^2 x 1024
+# points; at 3 mm the supports are a few hundred pixels across (band-limited). Each job 3 times:
+# the summary keeps the best run (these jobs take a fraction of a second, and the machine's load
+# moves single runs by tens of per cent).
+$py tools/bench/make_scenes.py "$tmp"
+for v in "cloud_fresnel_f32 30.0 fresnel" "cloud_near_fresnel_f32 3.0 fresnel" "cloud_exact_f32 30.0 exact"; do
+    set -- $v
+    sed -e 's/badge_points.ply/cloud.ply/' -e "s/^offset_mm = .*/offset_mm = [0.0, 0.0, $2]/" \
+        -e "s/^approximation = .*/approximation = \"$3\"\nprecision = \"f32\"/" \
+        -e 's/^compression = .*/compression = "none"/' -e "s#out/badge.tif#out/$1.tif#" \
+        samples/badge.toml > "$tmp/$1.toml"
+    for r in 1 2 3; do
+        log "JOB $1 threads=2"
+        run "$bin" run "$tmp/$1.toml" --restart --stats --threads 2 -q
+    done
+done
+
+section "recording plane against the direct sum (dense scene)"
+# 5000 emitters 2.0-2.5 mm in front of a 2048^2 plate at 1 um, 256 phase levels, 2 threads.
+for v in "dense_direct_f64 direct f64" "dense_direct_f32 direct f32" "dense_plane recording-plane f64"; do
+    set -- $v
+    printf '[hologram]\nwidth_px = 2048\nheight_px = 2048\npitch_um = 1.0\nwavelength_nm = 633\n[reference]\nkind = "plane"\ntilt_deg = [2, -1]\n[[object]]\npoints = "dense.csv"\n[synthesis]\nmethod = "point-sum"\napproximation = "exact"\npath = "%s"\nprecision = "%s"\n[encoding]\nkind = "phase"\nlevels = 256\n[output]\npath = "out/%s.tif"\n' \
+        "$2" "$3" "$1" > "$tmp/$1.toml"
+    log "JOB $1 threads=2"
+    run "$bin" run "$tmp/$1.toml" --restart --stats --threads 2 -q
 done
 
 section "iterative job: ms per iteration at 2048^2"

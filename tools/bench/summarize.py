@@ -51,7 +51,10 @@ def parse(text):
             job = (m.group(1) + "@" + m.group(2), 2)
         m = re.search(r"stats: .*: ([\d.]+) s, (\d+) point-pixel updates, ([\d.]+) G updates/s, peak memory (.*)$", line)
         if m and job:
-            jobs[job] = dict(secs=float(m.group(1)), updates=int(m.group(2)), gups=float(m.group(3)), peak=m.group(4))
+            # Jobs run more than once keep their best run (fastest).
+            if job not in jobs or float(m.group(1)) < jobs[job]["secs"]:
+                jobs[job] = dict(secs=float(m.group(1)), updates=int(m.group(2)), gups=float(m.group(3)),
+                                 peak=m.group(4))
     return crit_time, crit_thrpt, res, jobs, loads
 
 
@@ -95,6 +98,23 @@ def main():
         jf = jobs.get(("badge_fresnel_f32", 2))
         ratio(f"GOAL Fresnel: whole badge job f32, 2 threads vs best numpy GEMM ({bk[13:]}, 2 threads)",
               jf and jf["gups"] * 1e9, bv, gs(jf and jf["gups"] * 1e9), gs(bv))
+        jc = jobs.get(("cloud_fresnel_f32", 2))
+        ratio(f"GOAL Fresnel: 1024-point cloud job f32 at 2048^2 (supports cover the plate), 2 threads vs numpy GEMM "
+              f"({bk[13:]}, 2 threads)", jc and jc["gups"] * 1e9, bv, gs(jc and jc["gups"] * 1e9), gs(bv))
+        jn = jobs.get(("cloud_near_fresnel_f32", 2))
+        ratio("GOAL Fresnel, band-limited: the cloud 3 mm away (supports a few hundred px), 2 threads vs numpy GEMM",
+              jn and jn["gups"] * 1e9, bv, gs(jn and jn["gups"] * 1e9), gs(bv))
+        ratio("Fresnel speed kept with band-limited supports: cloud at 3 mm vs at 30 mm (G updates/s)",
+              jn and jn["gups"], jc and jc["gups"], jn and f"{jn['gups']:.3f} G/s", jc and f"{jc['gups']:.3f} G/s")
+    jx = jobs.get(("cloud_exact_f32", 2))
+    ratio("exact: 1024-point cloud job f32, 2 threads vs careful numpy (1 core)",
+          jx and jx["gups"] * 1e9, careful and careful * 1e9, gs(jx and jx["gups"] * 1e9), gs(careful and careful * 1e9))
+    d64, d32, dp = (jobs.get((n, 2)) for n in ["dense_direct_f64", "dense_direct_f32", "dense_plane"])
+    sec = lambda j: j and f"{j['secs']:.2f} s"
+    ratio("recording plane vs direct sum f64, dense scene (time)", dp and 1 / dp["secs"], d64 and 1 / d64["secs"],
+          sec(dp), sec(d64))
+    ratio("recording plane vs direct sum f32, dense scene (time)", dp and 1 / dp["secs"], d32 and 1 / d32["secs"],
+          sec(dp), sec(d32))
     for name in ["badge", "badge_f32", "badge_fresnel", "badge_fresnel_f32"]:
         a, b = jobs.get((name, 2)), jobs.get((name, 1))
         ratio(f"thread scaling, whole job `{name}`: 2 threads vs 1", a and a["gups"], b and b["gups"],
