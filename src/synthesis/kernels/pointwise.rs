@@ -16,22 +16,32 @@ pub fn stats_row_generic(row: &[Complex<f32>], amp: &[f64], a0: usize, a1: usize
     let n = row.len();
     let amp = &amp[..n];
     let mut acc = [[0f64; SUM_LANES]; 5];
+    // Pixel c + l goes to lane l: whole groups of lanes first, then the tail in lanes 0, 1, ...
+    // (a tail lane's missing pixels add nothing). Each step is a plain loop over the lanes so the
+    // copies vectorize it.
     let mut c = 0;
     while c < n {
         let m = (n - c).min(SUM_LANES);
+        let mut p = [0f64; SUM_LANES];
+        let mut inside = [0f64; SUM_LANES];
+        let mut a = [0f64; SUM_LANES];
+        for l in 0..m {
+            let (re, im) = (row[c + l].re as f64, row[c + l].im as f64);
+            p[l] = re * re + im * im;
+            inside[l] = (((c + l) >= a0) & ((c + l) < a1)) as u8 as f64;
+            a[l] = amp[c + l];
+        }
         for l in 0..SUM_LANES {
-            let i = c + l.min(m - 1);
-            let live = (l < m) as u8 as f64;
-            let (re, im) = (row[i].re as f64, row[i].im as f64);
-            let p = (re * re + im * im) * live;
-            let inside = ((i >= a0) & (i < a1)) as u8 as f64 * live;
-            let a = amp[i];
-            let mag = p.sqrt();
-            let lit = (a > 0.0) as u8 as f64 * inside;
-            acc[0][l] += p;
-            acc[1][l] += p * inside;
-            acc[2][l] += mag * a * inside;
-            acc[3][l] += if lit > 0.0 { mag / a } else { 0.0 };
+            // |u| and |u| / a in f32 (relative error 1e-7 per pixel; the sums stay f64): the f64
+            // square root and division per pixel were most of this loop's time.
+            let mag32 = (p[l] as f32).sqrt();
+            let mag = mag32 as f64;
+            let lit = (a[l] > 0.0) as u8 as f64 * inside[l];
+            let q = (mag32 / a[l] as f32) as f64;
+            acc[0][l] += p[l];
+            acc[1][l] += p[l] * inside[l];
+            acc[2][l] += mag * a[l] * inside[l];
+            acc[3][l] += if lit > 0.0 { q } else { 0.0 };
             acc[4][l] += lit;
         }
         c += SUM_LANES;
@@ -134,8 +144,9 @@ mod tests {
         (u, amp, w)
     }
 
-    /// The lane-wise sums against plain sequential f64 sums of the same terms (only the order of
-    /// addition differs: relative 1e-13 on these 203 terms), the same bits from every copy.
+    /// The lane-wise sums against plain sequential f64 sums (the order of addition differs:
+    /// relative 1e-13 on these 203 terms; |u| and |u| / a are taken in f32: relative 2e-7 for the
+    /// two sums that use them), the same bits from every copy.
     #[test]
     fn stats_row_matches_plain_sums() {
         let (u, amp, _) = row(203);
@@ -158,8 +169,9 @@ mod tests {
             for isa in available() {
                 let got = stats_row(isa, &u, &amp, a0, a1);
                 for k in 0..5 {
+                    let tol = if k == 2 || k == 3 { 2e-7 } else { 1e-13 };
                     assert!(
-                        (got[k] - plain[k]).abs() <= 1e-13 * plain[k].abs().max(1.0),
+                        (got[k] - plain[k]).abs() <= tol * plain[k].abs().max(1.0),
                         "{isa:?} [{a0}, {a1}) sum {k}: {} vs {}",
                         got[k],
                         plain[k]
