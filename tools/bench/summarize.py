@@ -137,8 +137,10 @@ def main():
         for key, label in [(f"gs_numpy_{n}", "numpy.fft"), (f"gs_fftw_{n}", "numpy+pyFFTW 2 threads")]:
             r = res.get(key)
             ratio(f"GS iteration {n}^2 vs {label}", r and r / 1e3, fm, ms(fm), ms(r and r / 1e3))
-    t20, t40 = jobs.get(("tern_2048@20", 2)), jobs.get(("tern_2048@40", 2))
-    it = (t40["secs"] - t20["secs"]) / 20 if t20 and t40 else None
+    t20 = jobs.get(("tern_2048@20", 2))
+    tn = [(n, jobs.get((f"tern_2048@{n}", 2))) for n in (80, 40)]
+    tn = [(n, j) for n, j in tn if j]
+    it = (tn[0][1]["secs"] - t20["secs"]) / (tn[0][0] - 20) if t20 and tn else None
     for key, label in [("gs_numpy_2048", "numpy.fft"), ("gs_fftw_2048", "numpy+pyFFTW 2 threads"),
                        ("gs_fftwc_2048", "GOAL: FFTW from C, 2 threads")]:
         r = res.get(key)
