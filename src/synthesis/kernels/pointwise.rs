@@ -15,38 +15,40 @@ pub const SUM_LANES: usize = 8;
 pub fn stats_row_generic(row: &[Complex<f32>], amp: &[f64], a0: usize, a1: usize) -> [f64; 5] {
     let n = row.len();
     let amp = &amp[..n];
-    let mut acc = [[0f64; SUM_LANES]; 5];
-    // Pixel c + l goes to lane l: whole groups of lanes first, then the tail in lanes 0, 1, ...
-    // (a tail lane's missing pixels add nothing). Each step is a plain loop over the lanes so the
-    // copies vectorize it.
+    let mut sums = [[0f64; SUM_LANES]; 5];
+    // Pixel c + l goes to lane l: whole groups of lanes through fixed-size views (so the copies
+    // vectorize the step), then the tail in lanes 0, 1, ...
+    let mut step = |r: &[Complex<f32>], a: &[f64], c: usize| {
+        for l in 0..r.len() {
+            let (re, im) = (r[l].re as f64, r[l].im as f64);
+            let p = re * re + im * im;
+            let i = c + l;
+            let inside = if i >= a0 && i < a1 { 1.0 } else { 0.0 };
+            // |u| and |u| / a in f32 (relative error 1e-7 per pixel; the sums stay f64): in f64
+            // they were most of this loop's time.
+            let mag32 = (p as f32).sqrt();
+            let q = if a[l] > 0.0 {
+                (mag32 / a[l] as f32) as f64
+            } else {
+                0.0
+            };
+            sums[0][l] += p;
+            sums[1][l] += p * inside;
+            sums[2][l] += mag32 as f64 * a[l] * inside;
+            sums[3][l] += if inside > 0.0 { q } else { 0.0 };
+            sums[4][l] += if a[l] > 0.0 { inside } else { 0.0 };
+        }
+    };
+    let full = n / SUM_LANES * SUM_LANES;
     let mut c = 0;
-    while c < n {
-        let m = (n - c).min(SUM_LANES);
-        let mut p = [0f64; SUM_LANES];
-        let mut inside = [0f64; SUM_LANES];
-        let mut a = [0f64; SUM_LANES];
-        for l in 0..m {
-            let (re, im) = (row[c + l].re as f64, row[c + l].im as f64);
-            p[l] = re * re + im * im;
-            inside[l] = (((c + l) >= a0) & ((c + l) < a1)) as u8 as f64;
-            a[l] = amp[c + l];
-        }
-        for l in 0..SUM_LANES {
-            // |u| and |u| / a in f32 (relative error 1e-7 per pixel; the sums stay f64): the f64
-            // square root and division per pixel were most of this loop's time.
-            let mag32 = (p[l] as f32).sqrt();
-            let mag = mag32 as f64;
-            let lit = (a[l] > 0.0) as u8 as f64 * inside[l];
-            let q = (mag32 / a[l] as f32) as f64;
-            acc[0][l] += p[l];
-            acc[1][l] += p[l] * inside[l];
-            acc[2][l] += mag * a[l] * inside[l];
-            acc[3][l] += if lit > 0.0 { q } else { 0.0 };
-            acc[4][l] += lit;
-        }
+    while c < full {
+        let r: &[Complex<f32>; SUM_LANES] = row[c..c + SUM_LANES].try_into().unwrap();
+        let a: &[f64; SUM_LANES] = amp[c..c + SUM_LANES].try_into().unwrap();
+        step(r, a, c);
         c += SUM_LANES;
     }
-    acc.map(|v| {
+    step(&row[full..], &amp[full..], full);
+    sums.map(|v| {
         let q = [v[0] + v[4], v[1] + v[5], v[2] + v[6], v[3] + v[7]];
         (q[0] + q[2]) + (q[1] + q[3])
     })
