@@ -15,27 +15,24 @@ import random
 import sys
 
 
+def write_cloud(path, n, seed):
+    """n points spread over 3 x 3 x 4 mm, amplitudes 0.5-1, random phases (PLY, mm)."""
+    rng = random.Random(seed)
+    with open(path, "w", encoding="ascii") as f:
+        f.write("ply\nformat ascii 1.0\ncomment benchmark cloud (invented), lengths in mm\n")
+        f.write("element vertex %d\nproperty double x\nproperty double y\nproperty double z\n" % n)
+        f.write("property double amplitude\nproperty double phase\nend_header\n")
+        for _ in range(n):
+            f.write("%.6f %.6f %.6f %.6f %.6f\n" % (rng.uniform(-1.5, 1.5), rng.uniform(-1.5, 1.5),
+                                                  rng.uniform(0.0, 4.0), rng.uniform(0.5, 1.0),
+                                                  rng.uniform(0.0, 6.28)))
+
+
 def main():
     out = sys.argv[1]
     os.makedirs(out, exist_ok=True)
-    rng = random.Random(7)
-    with open(os.path.join(out, "cloud.ply"), "w", encoding="ascii") as f:
-        f.write("ply\nformat ascii 1.0\ncomment benchmark cloud (invented), lengths in mm\n")
-        f.write("element vertex 1024\nproperty double x\nproperty double y\nproperty double z\n")
-        f.write("property double amplitude\nproperty double phase\nend_header\n")
-        for _ in range(1024):
-            f.write("%.6f %.6f %.6f %.6f %.6f\n" % (rng.uniform(-1.5, 1.5), rng.uniform(-1.5, 1.5),
-                                                  rng.uniform(0.0, 4.0), rng.uniform(0.5, 1.0),
-                                                  rng.uniform(0.0, 6.28)))
-    rng = random.Random(9)
-    with open(os.path.join(out, "cloud9.ply"), "w", encoding="ascii") as f:
-        f.write("ply\nformat ascii 1.0\ncomment benchmark cloud (invented), lengths in mm\n")
-        f.write("element vertex 9216\nproperty double x\nproperty double y\nproperty double z\n")
-        f.write("property double amplitude\nproperty double phase\nend_header\n")
-        for _ in range(9216):
-            f.write("%.6f %.6f %.6f %.6f %.6f\n" % (rng.uniform(-1.5, 1.5), rng.uniform(-1.5, 1.5),
-                                                  rng.uniform(0.0, 4.0), rng.uniform(0.5, 1.0),
-                                                  rng.uniform(0.0, 6.28)))
+    write_cloud(os.path.join(out, "cloud.ply"), 1024, 7)
+    write_cloud(os.path.join(out, "cloud9.ply"), 9216, 9)
     rng = random.Random(11)
     with open(os.path.join(out, "dense.csv"), "w", encoding="ascii") as f:
         f.write("x_mm,y_mm,z_mm,amplitude\n")

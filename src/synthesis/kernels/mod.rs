@@ -462,144 +462,63 @@ simd_copies!(
     (ks: &[u32], coef: &[[f32; 2]], ure: &[f32], uim: &[f32], stride: usize, c0: usize, c1: usize, rows: &[usize; fresnel32::TILE_ROWS], re: &mut [f64], im: &mut [f64], nr: usize) -> ()
 );
 
-simd_copies!(
-    row_coefs_avx2,
-    row_coefs_avx512,
-    fresnel32::row_coefs_generic,
+/// A kernel with [`simd_copies!`] and its dispatching function: `pub fn $name(isa, args...)` runs
+/// the copy `isa` names, the portable one otherwise. Kernels whose arguments need checking before
+/// the copies run keep a hand-written wrapper.
+macro_rules! simd_kernel {
+    ($(#[$m:meta])* pub fn $name:ident = $generic:path, $avx2:ident, $avx512:ident,
+     ($($arg:ident: $ty:ty),*) -> $ret:ty) => {
+        simd_copies!($avx2, $avx512, $generic, ($($arg: $ty),*) -> $ret);
+        $(#[$m])*
+        #[allow(clippy::too_many_arguments)]
+        pub fn $name(isa: KernelIsa, $($arg: $ty),*) -> $ret {
+            match isa {
+                #[cfg(target_arch = "x86_64")]
+                // SAFETY: `KernelIsa::Avx2` comes from `detect` or `available` after AVX2 and FMA
+                // were reported; the kernel body is safe code (its indexing is checked).
+                KernelIsa::Avx2 => unsafe { $avx2($($arg),*) },
+                #[cfg(target_arch = "x86_64")]
+                // SAFETY: as above, with AVX-512 F, VL and DQ reported as well.
+                KernelIsa::Avx512 => unsafe { $avx512($($arg),*) },
+                _ => $generic($($arg),*),
+            }
+        }
+    };
+}
+
+simd_kernel!(
+    /// Row coefficients of one emitter over a band's rows for the f32 separable Fresnel path (see
+    /// [`fresnel32::row_coefs_generic`]); the same bits from every copy. Returns the rows inside.
+    ///
+    /// # Panics
+    /// If `cre` or `cim` is shorter than `ys`.
+    pub fn fresnel_row_coefs32 = fresnel32::row_coefs_generic, row_coefs_avx2, row_coefs_avx512,
     (ys: &[f64], yj: f64, z: f64, cycles0: f64, ref_y: f64, half_band_y: f64, inv_lambda: f64, cre: &mut [f32], cim: &mut [f32]) -> u64
 );
-
-simd_copies!(
-    stats_row_avx2,
-    stats_row_avx512,
-    pointwise::stats_row_generic,
+simd_kernel!(
+    /// Sums of one replay row of the iterative loop (see [`pointwise::stats_row_generic`]).
+    ///
+    /// # Panics
+    /// If `amp` is shorter than `row`.
+    pub fn stats_row = pointwise::stats_row_generic, stats_row_avx2, stats_row_avx512,
     (row: &[num_complex::Complex<f32>], amp: &[f64], a0: usize, a1: usize) -> [f64; 5]
 );
-simd_copies!(
-    constrain_row_avx2,
-    constrain_row_avx512,
-    pointwise::constrain_row_generic,
+simd_kernel!(
+    /// The amplitude constraint on one replay row (see [`pointwise::constrain_row_generic`]).
+    ///
+    /// # Panics
+    /// If `amp` (or `weights`) is shorter than the area's end.
+    pub fn constrain_row = pointwise::constrain_row_generic, constrain_row_avx2, constrain_row_avx512,
     (row: &mut [num_complex::Complex<f32>], amp: &[f64], weights: Option<&[f64]>, scale: f64, a0: usize, a1: usize, outside: f32) -> ()
 );
-simd_copies!(
-    unit_row_avx2,
-    unit_row_avx512,
-    pointwise::unit_row_generic,
+simd_kernel!(
+    /// h = u / |u| element by element (see [`pointwise::unit_row_generic`]).
+    ///
+    /// # Panics
+    /// If `u` is shorter than `h`.
+    pub fn unit_row = pointwise::unit_row_generic, unit_row_avx2, unit_row_avx512,
     (h: &mut [num_complex::Complex<f32>], u: &[num_complex::Complex<f32>]) -> ()
 );
-
-/// Sums of one replay row of the iterative loop (see [`pointwise::stats_row_generic`]).
-///
-/// # Panics
-/// If `amp` is shorter than `row`.
-pub fn stats_row(
-    isa: KernelIsa,
-    row: &[num_complex::Complex<f32>],
-    amp: &[f64],
-    a0: usize,
-    a1: usize,
-) -> [f64; 5] {
-    match isa {
-        #[cfg(target_arch = "x86_64")]
-        // SAFETY: as in `fresnel_columns32`.
-        KernelIsa::Avx2 => unsafe { stats_row_avx2(row, amp, a0, a1) },
-        #[cfg(target_arch = "x86_64")]
-        // SAFETY: as in `fresnel_columns32`.
-        KernelIsa::Avx512 => unsafe { stats_row_avx512(row, amp, a0, a1) },
-        _ => pointwise::stats_row_generic(row, amp, a0, a1),
-    }
-}
-
-/// The amplitude constraint on one replay row (see [`pointwise::constrain_row_generic`]).
-///
-/// # Panics
-/// If `amp` (or `weights`) is shorter than the area's end.
-#[allow(clippy::too_many_arguments)]
-pub fn constrain_row(
-    isa: KernelIsa,
-    row: &mut [num_complex::Complex<f32>],
-    amp: &[f64],
-    weights: Option<&[f64]>,
-    scale: f64,
-    a0: usize,
-    a1: usize,
-    outside: f32,
-) {
-    match isa {
-        #[cfg(target_arch = "x86_64")]
-        // SAFETY: as in `fresnel_columns32`.
-        KernelIsa::Avx2 => unsafe { constrain_row_avx2(row, amp, weights, scale, a0, a1, outside) },
-        #[cfg(target_arch = "x86_64")]
-        // SAFETY: as in `fresnel_columns32`.
-        KernelIsa::Avx512 => unsafe {
-            constrain_row_avx512(row, amp, weights, scale, a0, a1, outside)
-        },
-        _ => pointwise::constrain_row_generic(row, amp, weights, scale, a0, a1, outside),
-    }
-}
-
-/// h = u / |u| element by element (see [`pointwise::unit_row_generic`]).
-///
-/// # Panics
-/// If `u` is shorter than `h`.
-pub fn unit_row(
-    isa: KernelIsa,
-    h: &mut [num_complex::Complex<f32>],
-    u: &[num_complex::Complex<f32>],
-) {
-    match isa {
-        #[cfg(target_arch = "x86_64")]
-        // SAFETY: as in `fresnel_columns32`.
-        KernelIsa::Avx2 => unsafe { unit_row_avx2(h, u) },
-        #[cfg(target_arch = "x86_64")]
-        // SAFETY: as in `fresnel_columns32`.
-        KernelIsa::Avx512 => unsafe { unit_row_avx512(h, u) },
-        _ => pointwise::unit_row_generic(h, u),
-    }
-}
-
-/// Row coefficients of one emitter over a band's rows for the f32 separable Fresnel path (see
-/// [`fresnel32::row_coefs_generic`]); the same bits from every copy. Returns the rows inside.
-///
-/// # Panics
-/// If `cre` or `cim` is shorter than `ys`.
-#[allow(clippy::too_many_arguments)]
-pub fn fresnel_row_coefs32(
-    isa: KernelIsa,
-    ys: &[f64],
-    yj: f64,
-    z: f64,
-    cycles0: f64,
-    ref_y: f64,
-    half_band_y: f64,
-    inv_lambda: f64,
-    cre: &mut [f32],
-    cim: &mut [f32],
-) -> u64 {
-    match isa {
-        #[cfg(target_arch = "x86_64")]
-        // SAFETY: as in `fresnel_columns32`.
-        KernelIsa::Avx2 => unsafe {
-            row_coefs_avx2(ys, yj, z, cycles0, ref_y, half_band_y, inv_lambda, cre, cim)
-        },
-        #[cfg(target_arch = "x86_64")]
-        // SAFETY: as in `fresnel_columns32`.
-        KernelIsa::Avx512 => unsafe {
-            row_coefs_avx512(ys, yj, z, cycles0, ref_y, half_band_y, inv_lambda, cre, cim)
-        },
-        _ => fresnel32::row_coefs_generic(
-            ys,
-            yj,
-            z,
-            cycles0,
-            ref_y,
-            half_band_y,
-            inv_lambda,
-            cre,
-            cim,
-        ),
-    }
-}
 
 /// The tile kernel at the column width `nr` chosen for a copy ([`tile_columns`]): AVX-512 holds
 /// 4 x 32 complex sums in 16 registers, AVX2 4 x 8 in 8 (16 would leave no room for loads).
