@@ -215,6 +215,90 @@ impl<T: FftNum> Fft2d<T> {
     }
 }
 
+impl<T: FftNum> Fft2d<T> {
+    /// First half of a pass that leaves its output transposed: rows of `src` are copied into
+    /// `work`, `row_hook(i, row)` runs and the row FFTs follow, then the column FFTs write the
+    /// spectrum transposed into `out_t` (column j is `out_t[j * ny..(j + 1) * ny]`), calling
+    /// `col_hook(j, col)` after each. `src` is not changed; `work` ends as scratch.
+    ///
+    /// Against [`run`](Self::run) this saves the transpose back and the copy of the input: two
+    /// of the three passes over memory that a loop alternating forward and back transforms would
+    /// otherwise spend on layout. No normalization is applied.
+    ///
+    /// # Panics
+    /// If a buffer does not hold `nx * ny` elements.
+    pub(crate) fn run_into_transposed<R, C>(
+        &self,
+        src: &[Complex<T>],
+        work: &mut [Complex<T>],
+        out_t: &mut [Complex<T>],
+        inverse: bool,
+        row_hook: R,
+        col_hook: C,
+    ) where
+        R: Fn(usize, &mut [Complex<T>]) + Sync,
+        C: Fn(usize, &mut [Complex<T>]) + Sync,
+    {
+        let (nx, ny) = (self.nx, self.ny);
+        for (what, len) in [
+            ("source", src.len()),
+            ("work", work.len()),
+            ("output", out_t.len()),
+        ] {
+            if len != nx * ny {
+                length_error(what, len, nx * ny);
+            }
+        }
+        let (row_fft, col_fft) = self.plans(inverse);
+        let scratch_len = row_fft.get_inplace_scratch_len();
+        let min_rows = (MIN_TASK_ELEMS / nx).max(1);
+        work.par_chunks_mut(nx)
+            .zip(src.par_chunks(nx))
+            .with_min_len(min_rows)
+            .enumerate()
+            .for_each_init(
+                || vec![Complex::new(T::zero(), T::zero()); scratch_len],
+                |fft_scratch, (i, (row, s))| {
+                    row.copy_from_slice(s);
+                    row_hook(i, row);
+                    row_fft.process_with_scratch(row, fft_scratch);
+                },
+            );
+        columns_into(work, nx, ny, col_fft, out_t, col_hook);
+    }
+
+    /// Second half, the mirror of [`run_into_transposed`](Self::run_into_transposed): `in_t`
+    /// holds the input transposed (column j at `in_t[j * ny..(j + 1) * ny]`); `col_hook(j, col)`
+    /// runs on each column before its FFT (in place, contiguous), then the row FFTs write the
+    /// result row-major into `out`, calling `row_hook(i, row)` after each. `in_t` ends as
+    /// scratch. No normalization is applied.
+    ///
+    /// # Panics
+    /// If a buffer does not hold `nx * ny` elements.
+    pub(crate) fn run_from_transposed<C, R>(
+        &self,
+        in_t: &mut [Complex<T>],
+        out: &mut [Complex<T>],
+        inverse: bool,
+        col_hook: C,
+        row_hook: R,
+    ) where
+        C: Fn(usize, &mut [Complex<T>]) + Sync,
+        R: Fn(usize, &mut [Complex<T>]) + Sync,
+    {
+        let (nx, ny) = (self.nx, self.ny);
+        for (what, len) in [("input", in_t.len()), ("output", out.len())] {
+            if len != nx * ny {
+                length_error(what, len, nx * ny);
+            }
+        }
+        let (row_fft, col_fft) = self.plans(inverse);
+        rows_in_place(in_t, ny, col_fft, col_hook, |_, _| {});
+        // The columns of the transposed buffer (nx rows of length ny) are the output's rows.
+        columns_into(in_t, ny, nx, row_fft, out, row_hook);
+    }
+}
+
 /// Runs `fft` on every row (length `len`) of `data` in parallel, calling `before(i, row)` ahead of
 /// the FFT and `after(i, row)` behind it. One rustfft scratch buffer per rayon task.
 pub(crate) fn rows_in_place<T, B, A>(

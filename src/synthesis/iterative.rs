@@ -180,6 +180,22 @@ struct PlaneState {
     weights: Vec<f64>,
 }
 
+impl PlaneState {
+    /// The same state for the transposed layout of an `nx x ny` plane: line j is column j.
+    fn transposed(&self, nx: usize, ny: usize) -> PlaneState {
+        let t = |v: &[f64]| {
+            let mut out = vec![0.0; v.len()];
+            crate::optics::fft2d::transpose_into(v, nx, 0, ny, &mut out, ny, 0, None);
+            out
+        };
+        PlaneState {
+            amp: t(&self.amp),
+            window: self.window.map(|[x, y, w, h]| [y, x, h, w]),
+            weights: t(&self.weights),
+        }
+    }
+}
+
 /// True when (row, col) is in the signal area: the window, or the whole plane without one.
 #[inline]
 fn in_area(window: Option<[usize; 4]>, row: usize, col: usize) -> bool {
@@ -234,24 +250,53 @@ fn area_columns(window: Option<[usize; 4]>, row: usize, nx: usize) -> (usize, us
     }
 }
 
+/// Sums of line `i` (length `len`) of a plane in the state's layout.
+#[inline]
+fn line_stats(
+    i: usize,
+    row: &[Complex<f32>],
+    st: &PlaneState,
+    len: usize,
+    isa: KernelIsa,
+) -> Stats {
+    let (a0, a1) = area_columns(st.window, i, len);
+    let [p_all, p_area, cross, ratio_sum, lit] =
+        kernels::stats_row(isa, row, &st.amp[i * len..(i + 1) * len], a0, a1);
+    Stats {
+        p_all,
+        p_area,
+        cross,
+        ratio_sum,
+        lit,
+    }
+}
+
 fn stats(field: &[Complex<f32>], st: &PlaneState, nx: usize, isa: KernelIsa) -> Stats {
     let rows: Vec<Stats> = field
         .par_chunks(nx)
-        .zip(st.amp.par_chunks(nx))
         .enumerate()
-        .map(|(i, (row, amp))| {
-            let (a0, a1) = area_columns(st.window, i, nx);
-            let [p_all, p_area, cross, ratio_sum, lit] = kernels::stats_row(isa, row, amp, a0, a1);
-            Stats {
-                p_all,
-                p_area,
-                cross,
-                ratio_sum,
-                lit,
-            }
-        })
+        .map(|(i, row)| line_stats(i, row, st, nx, isa))
         .collect();
     rows.into_iter().fold(Stats::default(), Stats::add)
+}
+
+/// Per-line sums written by a propagation hook (one slot per line, so the sum over lines keeps
+/// its order whatever the thread count).
+struct LineSums(Vec<std::sync::Mutex<Stats>>);
+
+impl LineSums {
+    fn new(lines: usize) -> Self {
+        LineSums((0..lines).map(|_| Default::default()).collect())
+    }
+    fn set(&self, i: usize, s: Stats) {
+        *self.0[i].lock().unwrap_or_else(|e| e.into_inner()) = s;
+    }
+    fn total(&self) -> Stats {
+        self.0
+            .iter()
+            .map(|m| *m.lock().unwrap_or_else(|e| e.into_inner()))
+            .fold(Stats::default(), Stats::add)
+    }
 }
 
 /// Updates the weighted-GS weights in place: `w <- w mean(r) / r`, then normalises so that
@@ -288,6 +333,47 @@ fn update_weights(field: &[Complex<f32>], st: &mut PlaneState, s: &Stats, nx: us
     }
 }
 
+/// The replay-plane constraint of one iteration, from the plane's sums.
+struct Constraint {
+    weighted: bool,
+    /// sqrt(P) (times the mix): the target amplitude's scale inside the signal area.
+    scale: f64,
+    /// Factor of the free field outside the area (mixed region only).
+    outside: f32,
+}
+
+impl Constraint {
+    fn new(s: &Stats, alg: &Algorithm) -> Self {
+        let mix = match alg {
+            Algorithm::MixedRegion { mix, .. } => Some(*mix),
+            _ => None,
+        };
+        // Inside the signal area: target amplitude sqrt(P) a (w) (mix), the field's phase kept.
+        // Outside it (mixed region only): the field kept, scaled by 1 - mix.
+        Constraint {
+            weighted: matches!(alg, Algorithm::WeightedGs),
+            scale: s.p_all.sqrt() * mix.unwrap_or(1.0),
+            outside: (1.0 - mix.unwrap_or(0.0)) as f32,
+        }
+    }
+
+    /// Imposes the constraint on line `i` (length `len`) of a plane in the state's layout.
+    #[inline]
+    fn line(
+        &self,
+        i: usize,
+        row: &mut [Complex<f32>],
+        st: &PlaneState,
+        len: usize,
+        isa: KernelIsa,
+    ) {
+        let (a0, a1) = area_columns(st.window, i, len);
+        let span = i * len..(i + 1) * len;
+        let w = self.weighted.then(|| &st.weights[span.clone()]);
+        kernels::constrain_row(isa, row, &st.amp[span], w, self.scale, a0, a1, self.outside);
+    }
+}
+
 /// Imposes the replay-plane constraint on `field` in place.
 fn constrain(
     field: &mut [Complex<f32>],
@@ -297,25 +383,11 @@ fn constrain(
     nx: usize,
     isa: KernelIsa,
 ) {
-    let weighted = matches!(alg, Algorithm::WeightedGs);
-    let mix = match alg {
-        Algorithm::MixedRegion { mix, .. } => Some(*mix),
-        _ => None,
-    };
-    // Inside the signal area: target amplitude sqrt(P) a (w) (mix), the field's phase kept.
-    // Outside it (mixed region only): the field kept, scaled by 1 - mix.
-    let scale = s.p_all.sqrt() * mix.unwrap_or(1.0);
-    let outside = (1.0 - mix.unwrap_or(0.0)) as f32;
+    let c = Constraint::new(s, alg);
     field
         .par_chunks_mut(nx)
-        .zip(st.amp.par_chunks(nx))
-        .zip(st.weights.par_chunks(nx))
         .enumerate()
-        .for_each(|(i, ((row, amp), w))| {
-            let (a0, a1) = area_columns(st.window, i, nx);
-            let w = weighted.then_some(w);
-            kernels::constrain_row(isa, row, amp, w, scale, a0, a1, outside);
-        });
+        .for_each(|(i, row)| c.line(i, row, st, nx, isa));
 }
 
 /// Computes one phase-only hologram on `grid` whose replays through each plane's propagator match
@@ -422,6 +494,17 @@ pub fn optimise(
         })
         .collect();
 
+    // The replay planes stay transposed between the forward and the back propagation when every
+    // propagator does that at no extra cost (optics::propagation, "Transposed middle plane"):
+    // the state then follows that layout, lines of length ny.
+    let transposed = planes
+        .iter()
+        .all(|p| p.propagator.transposes_natively() && p.back.transposes_natively());
+    if transposed {
+        states = states.iter().map(|st| st.transposed(nx, ny)).collect();
+    }
+    let line_len = if transposed { ny } else { nx };
+
     // Buffers, allocated once.
     let mut phase: Vec<f64> = (0..n).map(|i| start_phase(opts.seed, i)).collect();
     let mut holo = vec![Complex::<f32>::new(0.0, 0.0); n];
@@ -431,12 +514,18 @@ pub fn optimise(
     } else {
         Vec::new()
     };
-    let scratch_len = planes
-        .iter()
-        .map(|p| p.propagator.scratch_len().max(p.back.scratch_len()))
-        .max()
-        .unwrap_or(0);
+    // The propagators' scratch; in the transposed layout, the replay plane.
+    let scratch_len = if transposed {
+        n
+    } else {
+        planes
+            .iter()
+            .map(|p| p.propagator.scratch_len().max(p.back.scratch_len()))
+            .max()
+            .unwrap_or(0)
+    };
     let mut scratch = vec![Complex::<f32>::new(0.0, 0.0); scratch_len];
+    let line_sums = LineSums::new(if transposed { nx } else { 0 });
 
     let load = |holo: &mut [Complex<f32>], phase: &[f64]| {
         holo.par_iter_mut()
@@ -482,16 +571,45 @@ pub fn optimise(
                     phase_stale: &mut bool,
                     progress: &mut dyn FnMut(usize, f64)| {
         let mut e2 = 0.0;
+        // With one plane, a free iteration's new plate is made in place by the back
+        // propagation's last hook (transposed layout only).
+        let unit_fused = transposed && planes.len() == 1 && !quantize;
         for (k, (p, st)) in planes.iter().zip(states.iter_mut()).enumerate() {
-            work.copy_from_slice(holo);
-            p.propagator.propagate_with_scratch(&mut work, &mut scratch);
-            let s = stats(&work, st, nx, isa);
-            e2 += s.error() * s.error();
-            if matches!(opts.algorithm, Algorithm::WeightedGs) {
-                update_weights(&work, st, &s, nx);
+            if transposed {
+                // Forward into the transposed replay plane (`scratch`), summing each line as it
+                // leaves the column FFT; the constraint runs on each line ahead of the back
+                // propagation's column FFT.
+                let hook = |j: usize, col: &mut [Complex<f32>]| {
+                    line_sums.set(j, line_stats(j, col, st, line_len, isa))
+                };
+                p.propagator
+                    .propagate_into_transposed(holo, &mut work, &mut scratch, &hook);
+                let s = line_sums.total();
+                e2 += s.error() * s.error();
+                if matches!(opts.algorithm, Algorithm::WeightedGs) {
+                    update_weights(&scratch, st, &s, line_len);
+                }
+                let c = Constraint::new(&s, &opts.algorithm);
+                let st: &PlaneState = st;
+                let before = |j: usize, col: &mut [Complex<f32>]| c.line(j, col, st, line_len, isa);
+                let unit = |_: usize, row: &mut [Complex<f32>]| {
+                    if unit_fused {
+                        kernels::unit_in_place(isa, row)
+                    }
+                };
+                p.back
+                    .propagate_from_transposed(&mut scratch, &mut work, &before, &unit);
+            } else {
+                work.copy_from_slice(holo);
+                p.propagator.propagate_with_scratch(&mut work, &mut scratch);
+                let s = stats(&work, st, nx, isa);
+                e2 += s.error() * s.error();
+                if matches!(opts.algorithm, Algorithm::WeightedGs) {
+                    update_weights(&work, st, &s, nx);
+                }
+                constrain(&mut work, st, &s, &opts.algorithm, nx, isa);
+                p.back.propagate_with_scratch(&mut work, &mut scratch);
             }
-            constrain(&mut work, st, &s, &opts.algorithm, nx, isa);
-            p.back.propagate_with_scratch(&mut work, &mut scratch);
             if planes.len() > 1 {
                 if k == 0 {
                     acc.par_iter_mut().zip(work.par_iter()).for_each(|(a, w)| {
@@ -545,7 +663,10 @@ pub fn optimise(
                 *phase_stale = false;
             }
             _ => {
-                if planes.len() > 1 {
+                if unit_fused {
+                    // `work` holds the new plate already; the old one becomes the work buffer.
+                    std::mem::swap(holo, &mut work);
+                } else if planes.len() > 1 {
                     holo.par_iter_mut()
                         .zip(field.par_iter())
                         .for_each(|(h, a)| *h = unit(a.re, a.im));
@@ -604,9 +725,19 @@ pub fn optimise(
     // Error of the returned phase.
     let mut e2 = 0.0;
     for (p, st) in planes.iter().zip(states.iter()) {
-        work.copy_from_slice(&holo);
-        p.propagator.propagate_with_scratch(&mut work, &mut scratch);
-        let e = stats(&work, st, nx, kernels::detect()).error();
+        let e = if transposed {
+            let isa = kernels::detect();
+            let hook = |j: usize, col: &mut [Complex<f32>]| {
+                line_sums.set(j, line_stats(j, col, st, line_len, isa))
+            };
+            p.propagator
+                .propagate_into_transposed(&holo, &mut work, &mut scratch, &hook);
+            line_sums.total().error()
+        } else {
+            work.copy_from_slice(&holo);
+            p.propagator.propagate_with_scratch(&mut work, &mut scratch);
+            stats(&work, st, nx, kernels::detect()).error()
+        };
         e2 += e * e;
     }
     let e = (e2 / planes.len() as f64).sqrt();

@@ -9,6 +9,9 @@
 //! * `gs_equiv/{2048,4096}`: what one Gerchberg-Saxton iteration costs with the crate's parts: a
 //!   Fourier-lens propagation forward, the target amplitude imposed, the inverse propagation, the
 //!   plate amplitude set to one (complex f32), with the row kernels the iterative loop uses. The numpy counterpart is `tools/reference/gs_numpy.py`.
+//! * `gs_loop/2048`: one free iteration of the loop itself (`synthesis::iterative::optimise`, plain GS
+//!   through a Fourier lens, the error summed every iteration), as the difference of 20 and 4
+//!   iterations over 16; this is what a job's iterations cost.
 //!
 //! Run: `cargo bench --bench kernels` (or `-- point_sum` for one group). The numpy reference doing the
 //! same work is in `tools/reference/`; `tools/bench/run_all.sh` runs both and writes the ratios.
@@ -19,6 +22,7 @@ use criterion::{black_box, criterion_group, criterion_main, BenchmarkId, Criteri
 use fringemill::optics::fft2d::Fft2d;
 use fringemill::optics::propagation::{Grid, PropagationPlanner, PropagationRecipe};
 use fringemill::optics::{Plate, Reference};
+use fringemill::synthesis::iterative::{optimise, IterOptions, Plane};
 use fringemill::synthesis::kernels::{self, KernelIsa};
 use fringemill::synthesis::point_sum::{BandScratch, PointSum};
 use fringemill::synthesis::{Approximation, Emitter, PointSumOptions, Precision};
@@ -238,5 +242,61 @@ fn gs_equiv(c: &mut Criterion) {
     g.finish();
 }
 
-criterion_group!(benches, point_sum, fft, propagation, gs_equiv);
+/// One free iteration of the crate's own loop (`synthesis::iterative::optimise`, plain GS, one
+/// Fourier-lens plane, error evaluated every iteration): each sample times `optimise` with 4 and
+/// with 20 iterations and keeps the difference over 16, so set-up and the final error drop out.
+fn gs_loop(c: &mut Criterion) {
+    let mut g = c.benchmark_group("gs_loop");
+    g.sample_size(10)
+        .measurement_time(Duration::from_secs(10))
+        .warm_up_time(Duration::from_secs(1));
+    for n in [2048usize] {
+        let g0 = grid(n);
+        let mut planner = PropagationPlanner::<f32>::new();
+        let focal = 0.1;
+        let fwd = planner.plan_recipe(&g0, 0.0, PropagationRecipe::Fourier { focal });
+        let back = planner.plan_recipe(
+            &fwd.output(),
+            0.0,
+            PropagationRecipe::Fourier { focal: -focal },
+        );
+        let target: Vec<f64> = (0..n * n)
+            .map(|i| {
+                if (i / n / 64 + i % n / 64) % 2 == 0 {
+                    1.0
+                } else {
+                    0.0
+                }
+            })
+            .collect();
+        let planes = [Plane {
+            target,
+            propagator: fwd.into(),
+            back: back.into(),
+        }];
+        let run = |iterations: usize| {
+            let opts = IterOptions {
+                iterations,
+                ..IterOptions::default()
+            };
+            let t = std::time::Instant::now();
+            black_box(optimise(&planes, &g0, &opts, &mut |_, _| {}));
+            t.elapsed()
+        };
+        g.throughput(Throughput::Elements((n * n) as u64));
+        g.bench_function(BenchmarkId::from_parameter(n), |b| {
+            b.iter_custom(|reps| {
+                let mut total = Duration::ZERO;
+                for _ in 0..reps {
+                    let (short, long) = (run(4), run(20));
+                    total += long.saturating_sub(short) / 16;
+                }
+                total
+            })
+        });
+    }
+    g.finish();
+}
+
+criterion_group!(benches, point_sum, fft, propagation, gs_equiv, gs_loop);
 criterion_main!(benches);

@@ -35,7 +35,9 @@ use num_complex::Complex;
 use rustfft::num_traits::Float;
 use rustfft::FftNum;
 
-use super::{check_len, cis_cycles, mul_by, scratch_failed, to_t, Grid, Propagator, Separable};
+use super::{
+    check_len, cis_cycles, mul_by, scratch_failed, to_t, Grid, LineHook, Propagator, Separable,
+};
 use crate::optics::fft2d::Fft2d;
 
 /// A 2-D DFT between two centred pixel grids of the same shape,
@@ -142,6 +144,58 @@ impl<T: FftNum + Float> CentredDft<T> {
     }
 }
 
+impl<T: FftNum + Float> CentredDft<T> {
+    /// [`apply`](Self::apply) reading `src` and leaving the output transposed in `out_t`
+    /// ([`Propagator::propagate_into_transposed`]): the post factor and then `after_col` run on
+    /// each output column.
+    pub(crate) fn apply_into_transposed(
+        &self,
+        src: &[Complex<T>],
+        work: &mut [Complex<T>],
+        out_t: &mut [Complex<T>],
+        after_col: LineHook<'_, T>,
+    ) {
+        let (pre, post) = (&self.pre, &self.post);
+        self.fft.run_into_transposed(
+            src,
+            work,
+            out_t,
+            self.inverse,
+            |i, row| mul_by(row, &pre.x, pre.y[i]),
+            |j, col| {
+                mul_by(col, &post.y, post.x[j]);
+                after_col(j, col)
+            },
+        );
+    }
+
+    /// [`apply`](Self::apply) from a transposed input ([`Propagator::propagate_from_transposed`]):
+    /// `before_col` and then the pre factor run on each input column before its FFT, the post
+    /// factor and then `after_row` on each output row.
+    pub(crate) fn apply_from_transposed(
+        &self,
+        in_t: &mut [Complex<T>],
+        out: &mut [Complex<T>],
+        before_col: LineHook<'_, T>,
+        after_row: LineHook<'_, T>,
+    ) {
+        let (pre, post) = (&self.pre, &self.post);
+        self.fft.run_from_transposed(
+            in_t,
+            out,
+            self.inverse,
+            |j, col| {
+                before_col(j, col);
+                mul_by(col, &pre.y, pre.x[j])
+            },
+            |i, row| {
+                mul_by(row, &post.x, post.y[i]);
+                after_row(i, row)
+            },
+        );
+    }
+}
+
 /// Fourier-transform propagation through a lens of focal length `focal` (module docs): output pitch
 /// `lambda |f| / (N p)`, power conserved.
 #[derive(Clone, Debug)]
@@ -202,5 +256,27 @@ impl<T: FftNum + Float> Propagator<T> for Fourier<T> {
     }
     fn propagate_with_scratch(&self, field: &mut [Complex<T>], scratch: &mut [Complex<T>]) {
         self.dft.apply(field, scratch);
+    }
+    fn transposes_natively(&self) -> bool {
+        true
+    }
+    fn propagate_into_transposed(
+        &self,
+        src: &[Complex<T>],
+        work: &mut [Complex<T>],
+        out_t: &mut [Complex<T>],
+        after_col: LineHook<'_, T>,
+    ) {
+        self.dft.apply_into_transposed(src, work, out_t, after_col);
+    }
+    fn propagate_from_transposed(
+        &self,
+        in_t: &mut [Complex<T>],
+        out: &mut [Complex<T>],
+        before_col: LineHook<'_, T>,
+        after_row: LineHook<'_, T>,
+    ) {
+        self.dft
+            .apply_from_transposed(in_t, out, before_col, after_row);
     }
 }

@@ -28,7 +28,7 @@ use rustfft::num_traits::Float;
 use rustfft::FftNum;
 
 use super::fourier::CentredDft;
-use super::{cis_cycles, Grid, Propagator};
+use super::{cis_cycles, Grid, LineHook, Propagator};
 use crate::optics::fft2d::Fft2d;
 
 /// Single-FFT Fresnel propagation over a distance `z` (module docs).
@@ -93,5 +93,27 @@ impl<T: FftNum + Float> Propagator<T> for SingleFftFresnel<T> {
     }
     fn propagate_with_scratch(&self, field: &mut [Complex<T>], scratch: &mut [Complex<T>]) {
         self.dft.apply(field, scratch);
+    }
+    fn transposes_natively(&self) -> bool {
+        true
+    }
+    fn propagate_into_transposed(
+        &self,
+        src: &[Complex<T>],
+        work: &mut [Complex<T>],
+        out_t: &mut [Complex<T>],
+        after_col: LineHook<'_, T>,
+    ) {
+        self.dft.apply_into_transposed(src, work, out_t, after_col);
+    }
+    fn propagate_from_transposed(
+        &self,
+        in_t: &mut [Complex<T>],
+        out: &mut [Complex<T>],
+        before_col: LineHook<'_, T>,
+        after_row: LineHook<'_, T>,
+    ) {
+        self.dft
+            .apply_from_transposed(in_t, out, before_col, after_row);
     }
 }

@@ -15,6 +15,16 @@
 //!   back-propagates.
 //! * Fields carry absolute phase and amplitude: the propagators that change the pitch scale the field
 //!   so that power, `sum |U|^2 dx dy`, is conserved between the planes.
+//!
+//! # Transposed middle plane
+//! A 2-D FFT on row-major data transforms the rows, gathers the columns into a transposed buffer
+//! to transform them, and transposes back: a third of its passes over memory only restore the
+//! layout. A loop that propagates forward, works pointwise on the result and propagates back
+//! (iterative phase retrieval) need not restore it: [`Propagator::propagate_into_transposed`]
+//! leaves the middle plane column-major and [`Propagator::propagate_from_transposed`] starts
+//! from there, with hooks that run on each line while it is in cache. Propagators whose last and
+//! first steps are the column and row FFTs ([`Fourier`], [`SingleFftFresnel`]) do this at no
+//! extra cost ([`Propagator::transposes_natively`]); the others fall back to a transpose.
 
 use std::f64::consts::PI;
 
@@ -152,6 +162,76 @@ pub trait Propagator<T: FftNum>: Send + Sync {
     /// If `field.len() != nx * ny` or the scratch is too short.
     fn propagate_with_scratch(&self, field: &mut [Complex<T>], scratch: &mut [Complex<T>]);
 
+    /// True when [`propagate_into_transposed`](Self::propagate_into_transposed) and
+    /// [`propagate_from_transposed`](Self::propagate_from_transposed) cost no more than
+    /// [`propagate_with_scratch`](Self::propagate_with_scratch) (their default versions add a
+    /// transpose and a copy). Iterative loops pick the transposed layout only when every
+    /// propagator they use says so.
+    fn transposes_natively(&self) -> bool {
+        false
+    }
+
+    /// Propagates `src` (row-major, not changed) and writes the output transposed into `out_t`:
+    /// output column j is `out_t[j * ny..(j + 1) * ny]`. `after_col(j, col)` runs on each output
+    /// column once it is final. `work` (`nx * ny` elements) is used as scratch.
+    ///
+    /// Loops that alternate a forward and a back propagation keep the middle plane transposed
+    /// (module docs, "Transposed middle plane"). The default propagates a copy and transposes it.
+    ///
+    /// # Panics
+    /// If a buffer does not hold `nx * ny` elements.
+    fn propagate_into_transposed(
+        &self,
+        src: &[Complex<T>],
+        work: &mut [Complex<T>],
+        out_t: &mut [Complex<T>],
+        after_col: LineHook<'_, T>,
+    ) {
+        let g = self.input();
+        let (nx, ny) = (g.nx, g.ny);
+        check_len(src.len(), nx * ny);
+        check_len(work.len(), nx * ny);
+        check_len(out_t.len(), nx * ny);
+        work.copy_from_slice(src);
+        let mut scratch = vec![Complex::new(T::zero(), T::zero()); self.scratch_len()];
+        self.propagate_with_scratch(work, &mut scratch);
+        crate::optics::fft2d::transpose_into(work, nx, 0, ny, out_t, ny, 0, None);
+        out_t
+            .par_chunks_mut(ny)
+            .enumerate()
+            .for_each(|(j, col)| after_col(j, col));
+    }
+
+    /// The mirror of [`propagate_into_transposed`](Self::propagate_into_transposed): `in_t` holds
+    /// the input transposed (input column j at `in_t[j * ny..(j + 1) * ny]`); `before_col(j, col)`
+    /// runs on each input column first, then the field is propagated and written row-major into
+    /// `out`, and `after_row(i, row)` runs on each output row once it is final. `in_t` ends as
+    /// scratch.
+    ///
+    /// # Panics
+    /// If a buffer does not hold `nx * ny` elements.
+    fn propagate_from_transposed(
+        &self,
+        in_t: &mut [Complex<T>],
+        out: &mut [Complex<T>],
+        before_col: LineHook<'_, T>,
+        after_row: LineHook<'_, T>,
+    ) {
+        let g = self.input();
+        let (nx, ny) = (g.nx, g.ny);
+        check_len(in_t.len(), nx * ny);
+        check_len(out.len(), nx * ny);
+        in_t.par_chunks_mut(ny)
+            .enumerate()
+            .for_each(|(j, col)| before_col(j, col));
+        crate::optics::fft2d::transpose_into(in_t, ny, 0, nx, out, nx, 0, None);
+        let mut scratch = vec![Complex::new(T::zero(), T::zero()); self.scratch_len()];
+        self.propagate_with_scratch(out, &mut scratch);
+        out.par_chunks_mut(nx)
+            .enumerate()
+            .for_each(|(i, row)| after_row(i, row));
+    }
+
     /// Propagates `field` in place, allocating the scratch.
     ///
     /// # Panics
@@ -161,6 +241,10 @@ pub trait Propagator<T: FftNum>: Send + Sync {
         self.propagate_with_scratch(field, &mut scratch);
     }
 }
+
+/// A function run on one line (row or column) of a field, with the line's index: the hooks of the
+/// transposed propagation methods of [`Propagator`].
+pub type LineHook<'a, T> = &'a (dyn Fn(usize, &mut [Complex<T>]) + Sync);
 
 /// `exp(i 2 pi cycles)`, with the argument reduced to [-1/2, 1/2] cycle in f64 before the
 /// trigonometry, so large phases keep their accuracy.

@@ -520,6 +520,12 @@ simd_kernel!(
     (h: &mut [num_complex::Complex<f32>], u: &[num_complex::Complex<f32>]) -> ()
 );
 
+simd_kernel!(
+    /// u = u / |u| in place (see [`pointwise::unit_in_place_generic`]): the bits of [`unit_row`].
+    pub fn unit_in_place = pointwise::unit_in_place_generic, unit_in_place_avx2, unit_in_place_avx512,
+    (u: &mut [num_complex::Complex<f32>]) -> ()
+);
+
 /// The tile kernel at the column width `nr` chosen for a copy ([`tile_columns`]): AVX-512 holds
 /// 4 x 32 complex sums in 16 registers, AVX2 4 x 8 in 8 (16 would leave no room for loads).
 #[allow(clippy::too_many_arguments)]

@@ -122,9 +122,24 @@ pub fn unit_row_generic(h: &mut [Complex<f32>], u: &[Complex<f32>]) {
     }
 }
 
+/// `u = u / |u|` in place, element by element: the same formula and bits as
+/// [`unit_row_generic`] with `h` and `u` the same row.
+#[inline(always)]
+pub fn unit_in_place_generic(u: &mut [Complex<f32>]) {
+    for v in u.iter_mut() {
+        let (re, im) = (v.re as f64, v.im as f64);
+        let m = (re * re + im * im).sqrt();
+        *v = if m > 0.0 {
+            Complex::new((re / m) as f32, (im / m) as f32)
+        } else {
+            Complex::new(1.0, 0.0)
+        };
+    }
+}
+
 #[cfg(test)]
 mod tests {
-    use super::super::{available, constrain_row, stats_row, unit_row};
+    use super::super::{available, constrain_row, stats_row, unit_in_place, unit_row};
     use num_complex::Complex;
 
     fn row(n: usize) -> (Vec<Complex<f32>>, Vec<f64>, Vec<f64>) {
@@ -241,6 +256,10 @@ mod tests {
                             assert!((h[i] - u[i] / n).norm() <= 3e-7);
                         }
                     }
+                    // The in-place copy gives the same bits as the two-buffer one.
+                    let mut v = u.clone();
+                    unit_in_place(isa, &mut v);
+                    assert_eq!(v, h, "{isa:?}: in-place unit phasors differ");
                     match &first {
                         None => first = Some((c, h)),
                         Some((fc, fh)) => {
