@@ -48,6 +48,7 @@ use num_complex::Complex;
 use rayon::prelude::*;
 
 use super::kernels::{self, KernelIsa};
+use crate::optics::pointwise::large_buffer;
 use crate::optics::propagation::{Grid, Propagator};
 
 /// Which constraint is imposed in the replay planes.
@@ -507,10 +508,13 @@ pub fn optimise(
 
     // Buffers, allocated once.
     let mut phase: Vec<f64> = (0..n).map(|i| start_phase(opts.seed, i)).collect();
-    let mut holo = vec![Complex::<f32>::new(0.0, 0.0); n];
-    let mut work = vec![Complex::<f32>::new(0.0, 0.0); n];
+    // Whole-plane buffers on huge pages where the system offers them (the column passes visit one
+    // page per row otherwise).
+    let zero = Complex::<f32>::new(0.0, 0.0);
+    let mut holo = large_buffer(n, zero);
+    let mut work = large_buffer(n, zero);
     let mut acc: Vec<Complex<f64>> = if planes.len() > 1 {
-        vec![Complex::new(0.0, 0.0); n]
+        large_buffer(n, Complex::new(0.0, 0.0))
     } else {
         Vec::new()
     };
@@ -524,7 +528,7 @@ pub fn optimise(
             .max()
             .unwrap_or(0)
     };
-    let mut scratch = vec![Complex::<f32>::new(0.0, 0.0); scratch_len];
+    let mut scratch = large_buffer(scratch_len, zero);
     let line_sums = LineSums::new(if transposed { nx } else { 0 });
 
     let load = |holo: &mut [Complex<f32>], phase: &[f64]| {
