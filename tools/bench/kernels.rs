@@ -9,7 +9,7 @@
 //! * `gs_equiv/{2048,4096}`: what one Gerchberg-Saxton iteration costs with the crate's parts: a
 //!   Fourier-lens propagation forward, the target amplitude imposed, the inverse propagation, the
 //!   plate amplitude set to one (complex f32), with the row kernels the iterative loop uses. The numpy counterpart is `tools/reference/gs_numpy.py`.
-//! * `gs_loop/2048`: one free iteration of the loop itself (`synthesis::iterative::optimise`, plain GS
+//! * `gs_loop/{2048,4096}`: one free iteration of the loop itself (`synthesis::iterative::optimise`, plain GS
 //!   through a Fourier lens, the error summed every iteration), as the difference of 20 and 4
 //!   iterations over 16; this is what a job's iterations cost.
 //!
@@ -250,7 +250,7 @@ fn gs_loop(c: &mut Criterion) {
     g.sample_size(10)
         .measurement_time(Duration::from_secs(10))
         .warm_up_time(Duration::from_secs(1));
-    for n in [2048usize] {
+    for n in [2048usize, 4096] {
         let g0 = grid(n);
         let mut planner = PropagationPlanner::<f32>::new();
         let focal = 0.1;
