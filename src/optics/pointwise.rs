@@ -62,7 +62,10 @@ pub fn large_buffer<T: Copy>(n: usize, value: T) -> Vec<T> {
         let bytes = n.saturating_mul(std::mem::size_of::<T>());
         if bytes >= 2 * HUGE {
             let start = v.as_mut_ptr() as usize;
-            let (lo, hi) = ((start + HUGE - 1) & !(HUGE - 1), (start + bytes) & !(HUGE - 1));
+            let (lo, hi) = (
+                (start + HUGE - 1) & !(HUGE - 1),
+                (start + bytes) & !(HUGE - 1),
+            );
             if hi > lo {
                 // SAFETY: [lo, hi) lies inside the vector's own allocation (capacity n, not yet
                 // written); MADV_HUGEPAGE only asks the kernel to back the range with large pages

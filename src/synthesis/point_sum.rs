@@ -102,7 +102,7 @@ pub struct PointSum {
     separable: bool,
     /// f32 exact kernel: distances from which the polynomial path's segment widths apply.
     poly_min_distance: [f64; 3],
-    /// Soft support edge (exact approximation, f64 only), see [`Self::with_edge_taper`].
+    /// Soft support edge (exact approximation), see [`Self::with_edge_taper`].
     taper_start: f64,
 }
 
@@ -226,12 +226,12 @@ impl PointSum {
 
     /// Soft support edges: each emitter's wave weighted by a smooth step of its support margin,
     /// 1 up to `start` (a share of lambda / 2p, on each axis), 0 at the Nyquist limit
-    /// ([`kernels::edge_taper`]). Exact approximation in f64 only (the options are set so); the
-    /// recording-plane path uses it so its plane's window does not ring.
+    /// ([`kernels::edge_taper`]). Exact approximation only (the options are set so), in f64 or
+    /// f32 (the f32 kernels' per-pixel path); the recording-plane path uses it so its plane's
+    /// window does not ring.
     pub fn with_edge_taper(mut self, start: f64) -> Self {
         self.taper_start = start;
         self.opts.approximation = Approximation::Exact;
-        self.opts.precision = Precision::F64;
         self.separable = false;
         self
     }

@@ -134,6 +134,11 @@ pub fn exact32_generic<const OBLIQUE: bool>(
     re: &mut [f32],
     im: &mut [f32],
 ) -> u64 {
+    if ri.taper_start < 1.0 {
+        // Soft support edges (the recording plane): the emitters sit close to the plane, where
+        // the per-pixel path is the one that applies anyway.
+        return exact32_near::<OBLIQUE, true>(ri, r32, e, c0, c1, re, im);
+    }
     let rho = (e.dy * e.dy + e.z * e.z).sqrt();
     let d = &r32.poly_min_distance;
     if rho >= d[2] {
@@ -143,7 +148,7 @@ pub fn exact32_generic<const OBLIQUE: bool>(
     } else if rho >= d[0] {
         exact32_poly::<OBLIQUE, POLY_LANES>(ri, r32, e, c0, c1, re, im)
     } else {
-        exact32_near::<OBLIQUE>(ri, r32, e, c0, c1, re, im)
+        exact32_near::<OBLIQUE, false>(ri, r32, e, c0, c1, re, im)
     }
 }
 
@@ -302,9 +307,19 @@ fn exact32_poly<const OBLIQUE: bool, const L: usize>(
     count
 }
 
-/// The per-pixel square-root path, for emitters close to the row.
+/// [`super::edge_taper`] in f32 (the same smooth step; absolute error below 1e-6).
 #[inline(always)]
-fn exact32_near<const OBLIQUE: bool>(
+fn edge_taper32(u: f32, start: f32, inv_width: f32) -> f32 {
+    let s = ((u - start) * inv_width).clamp(0.0, 1.0);
+    1.0 - s * s * s * s.mul_add(s.mul_add(6.0, -15.0), 10.0)
+}
+
+/// The per-pixel square-root path, for emitters close to the row. With `TAPER`, each pixel's
+/// weight is also multiplied by the soft edge of its support margins ([`super::edge_taper`] of
+/// `|dx / r - rdx| / bx` and `|dy / r - rdy| / by`, in f32 from the same f32 quantities as the
+/// support test).
+#[inline(always)]
+fn exact32_near<const OBLIQUE: bool, const TAPER: bool>(
     ri: &RowInputs,
     r32: &Row32,
     e: &EmitterRow,
@@ -320,6 +335,14 @@ fn exact32_near<const OBLIQUE: bool>(
     let bx = ri.half_band[0] as f32;
     let by = ri.half_band[1] as f32;
     let inv_lambda = ri.inv_lambda as f32;
+    let (inv_bx, inv_by) = (1.0 / bx, 1.0 / by);
+    let t_start = ri.taper_start as f32;
+    let t_inv_width = if TAPER { 1.0 / (1.0 - t_start) } else { 0.0 };
+    // The soft edge of a pixel from its f32 distances to the band edge (gx, gy <= 0 inside).
+    let taper = |gx: f32, gy: f32| -> f32 {
+        edge_taper32((gx + bx) * inv_bx, t_start, t_inv_width)
+            * edge_taper32((gy + by) * inv_by, t_start, t_inv_width)
+    };
     let amp = if OBLIQUE {
         (e.amplitude * e.z) as f32
     } else {
@@ -381,6 +404,7 @@ fn exact32_near<const OBLIQUE: bool>(
             amb[i] = (live & ((gx.abs() < AMBIGUOUS) | (gy.abs() < AMBIGUOUS))) as u32;
             ins[i] = inside as u32;
             let a = if OBLIQUE { amp * ir * ir } else { amp * ir };
+            let a = if TAPER { a * taper(gx, gy) } else { a };
             w[i] = if inside { a } else { 0.0 };
             let t = t - t.round_ties_even();
             let (s, co) = sincos_half(t);
@@ -398,6 +422,13 @@ fn exact32_near<const OBLIQUE: bool>(
                     let rr = r + ral[i];
                     let ir = rr * (1.0 / (r * rr));
                     let a = if OBLIQUE { amp * ir * ir } else { amp * ir };
+                    let a = if TAPER {
+                        let gx = (dx * ir - rdx[i]).abs() - bx;
+                        let gy = (dyf * ir - rdy[i]).abs() - by;
+                        a * taper(gx, gy)
+                    } else {
+                        a
+                    };
                     w[i] = if inside { a } else { 0.0 };
                 }
             }
