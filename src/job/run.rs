@@ -210,7 +210,9 @@ fn choose_sum(spec: &JobSpec, scene: Scene) -> Result<(Source, Vec<String>)> {
         1.0
     };
     let direct = sum.estimate_updates(64) * unit;
-    let via_plane = plane.estimate_cost(1.0, FFT_PASS_WEIGHT);
+    // The plane's updates run in the precision the job asks for too (soft edges in f32 since
+    // the per-pixel f32 path takes them).
+    let via_plane = plane.estimate_cost(unit, FFT_PASS_WEIGHT);
     lines.push(format!(
         "estimated cost (f64 exact updates): direct {direct:.3e}, recording plane {via_plane:.3e} (plane {:.3} mm from the plate, grid margins {:?} px, bands of {} rows)",
         plane.distance() * 1e3,

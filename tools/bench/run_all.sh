@@ -93,7 +93,8 @@ done
 
 section "recording plane against the direct sum (dense scene)"
 # 5000 emitters 2.0-2.5 mm in front of a 2048^2 plate at 1 um, 256 phase levels, 2 threads.
-for v in "dense_direct_f64 direct f64" "dense_direct_f32 direct f32" "dense_plane recording-plane f64"; do
+for v in "dense_direct_f64 direct f64" "dense_direct_f32 direct f32" "dense_plane recording-plane f64" \
+    "dense_plane_f32 recording-plane f32"; do
     set -- $v
     printf '[hologram]\nwidth_px = 2048\nheight_px = 2048\npitch_um = 1.0\nwavelength_nm = 633\n[reference]\nkind = "plane"\ntilt_deg = [2, -1]\n[[object]]\npoints = "dense.csv"\n[synthesis]\nmethod = "point-sum"\napproximation = "exact"\npath = "%s"\nprecision = "%s"\n[encoding]\nkind = "phase"\nlevels = 256\n[output]\npath = "out/%s.tif"\n' \
         "$2" "$3" "$1" > "$tmp/$1.toml"

@@ -113,8 +113,13 @@ def main():
     sec = lambda j: j and f"{j['secs']:.2f} s"
     ratio("recording plane vs direct sum f64, dense scene (time)", dp and 1 / dp["secs"], d64 and 1 / d64["secs"],
           sec(dp), sec(d64))
-    ratio("recording plane vs direct sum f32, dense scene (time)", dp and 1 / dp["secs"], d32 and 1 / d32["secs"],
+    ratio("recording plane f64 vs direct sum f32, dense scene (time)", dp and 1 / dp["secs"], d32 and 1 / d32["secs"],
           sec(dp), sec(d32))
+    dp32 = jobs.get(("dense_plane_f32", 2))
+    ratio("recording plane f32 vs direct sum f32, dense scene (time)", dp32 and 1 / dp32["secs"],
+          d32 and 1 / d32["secs"], sec(dp32), sec(d32))
+    ratio("recording plane f32 vs recording plane f64, dense scene (time)", dp32 and 1 / dp32["secs"],
+          dp and 1 / dp["secs"], sec(dp32), sec(dp))
     for name in ["badge", "badge_f32", "badge_fresnel", "badge_fresnel_f32"]:
         a, b = jobs.get((name, 2)), jobs.get((name, 1))
         ratio(f"thread scaling, whole job `{name}`: 2 threads vs 1", a and a["gups"], b and b["gups"],
