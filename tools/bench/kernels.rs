@@ -16,11 +16,12 @@
 //! Run: `cargo bench --bench kernels` (or `-- point_sum` for one group). The numpy reference doing the
 //! same work is in `tools/reference/`; `tools/bench/run_all.sh` runs both and writes the ratios.
 
+use std::sync::Arc;
 use std::time::Duration;
 
 use criterion::{black_box, criterion_group, criterion_main, BenchmarkId, Criterion, Throughput};
 use fringemill::optics::fft2d::Fft2d;
-use fringemill::optics::propagation::{Grid, PropagationPlanner, PropagationRecipe};
+use fringemill::optics::propagation::{Grid, PropagationPlanner, PropagationRecipe, Propagator};
 use fringemill::optics::{Plate, Reference};
 use fringemill::synthesis::iterative::{optimise, IterOptions, Plane};
 use fringemill::synthesis::kernels::{self, KernelIsa};
@@ -189,30 +190,37 @@ fn propagation(c: &mut Criterion) {
     g.finish();
 }
 
+/// The GS benches' problem at n x n (as `gs_numpy.py` and `gs_fftw.c`): a Fourier lens of 0.1 m
+/// and its inverse, and a 64-pixel checkerboard target intensity.
+fn gs_problem(n: usize) -> (Arc<dyn Propagator<f32>>, Arc<dyn Propagator<f32>>, Vec<f64>) {
+    let g0 = grid(n);
+    let mut planner = PropagationPlanner::<f32>::new();
+    let focal = 0.1;
+    let fwd = planner.plan_recipe(&g0, 0.0, PropagationRecipe::Fourier { focal });
+    let back = planner.plan_recipe(
+        &fwd.output(),
+        0.0,
+        PropagationRecipe::Fourier { focal: -focal },
+    );
+    let target = (0..n * n)
+        .map(|i| {
+            if (i / n / 64 + i % n / 64) % 2 == 0 {
+                1.0
+            } else {
+                0.0
+            }
+        })
+        .collect();
+    (fwd, back, target)
+}
+
 fn gs_equiv(c: &mut Criterion) {
     let mut g = c.benchmark_group("gs_equiv");
     g.sample_size(10)
         .measurement_time(Duration::from_secs(3))
         .warm_up_time(Duration::from_secs(1));
     for n in [2048usize, 4096] {
-        let g0 = grid(n);
-        let mut planner = PropagationPlanner::<f32>::new();
-        let focal = 0.1;
-        let fwd = planner.plan_recipe(&g0, 0.0, PropagationRecipe::Fourier { focal });
-        let inv = planner.plan_recipe(
-            &fwd.output(),
-            0.0,
-            PropagationRecipe::Fourier { focal: -focal },
-        );
-        let target: Vec<f64> = (0..n * n)
-            .map(|i| {
-                if (i / n / 64 + i % n / 64) % 2 == 0 {
-                    1.0
-                } else {
-                    0.0
-                }
-            })
-            .collect();
+        let (fwd, inv, target) = gs_problem(n);
         let mut field: Vec<Complex32> = (0..n * n)
             .map(|i| Complex32::from_polar(1.0, ((i * 2654435761usize) % 6283) as f32 * 1e-3))
             .collect();
@@ -252,27 +260,11 @@ fn gs_loop(c: &mut Criterion) {
         .warm_up_time(Duration::from_secs(1));
     for n in [2048usize, 4096] {
         let g0 = grid(n);
-        let mut planner = PropagationPlanner::<f32>::new();
-        let focal = 0.1;
-        let fwd = planner.plan_recipe(&g0, 0.0, PropagationRecipe::Fourier { focal });
-        let back = planner.plan_recipe(
-            &fwd.output(),
-            0.0,
-            PropagationRecipe::Fourier { focal: -focal },
-        );
-        let target: Vec<f64> = (0..n * n)
-            .map(|i| {
-                if (i / n / 64 + i % n / 64) % 2 == 0 {
-                    1.0
-                } else {
-                    0.0
-                }
-            })
-            .collect();
+        let (fwd, back, target) = gs_problem(n);
         let planes = [Plane {
             target,
-            propagator: fwd.into(),
-            back: back.into(),
+            propagator: fwd,
+            back,
         }];
         let run = |iterations: usize| {
             let opts = IterOptions {
