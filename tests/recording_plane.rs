@@ -47,6 +47,14 @@ fn field_wrp(wrp: &RecordingPlane, band: usize) -> Vec<Complex64> {
     f
 }
 
+/// max |a - b| over the pixels.
+fn max_diff(a: &[Complex64], b: &[Complex64]) -> f64 {
+    a.iter()
+        .zip(b)
+        .map(|(x, y)| (x - y).norm())
+        .fold(0.0, f64::max)
+}
+
 /// Deep points near the axis of a small plate, seen along the reference, so every emitter reaches
 /// every pixel within 4 % of its band (inside the taper's flat part): the recording-plane plate
 /// equals the direct sum. Gaps from 0.25 to 2 mm (the plane from near the plate to near the
@@ -85,11 +93,7 @@ fn agrees_with_direct_sum_inside_supports() {
                 RecordingPlane::new(plate, r, em.clone(), PointSumOptions::default(), Some(gap))
                     .unwrap();
             let f = field_wrp(&wrp, 112);
-            let worst = f
-                .iter()
-                .zip(&direct)
-                .map(|(a, b)| (a - b).norm())
-                .fold(0.0, f64::max);
+            let worst = max_diff(&f, &direct);
             assert!(
                 worst <= 1e-3 * maxf,
                 "tilt {tilt:?} gap {gap:e}: worst |dF| / max|F| = {:.2e}",
@@ -97,11 +101,7 @@ fn agrees_with_direct_sum_inside_supports() {
             );
             if gap == 2e-3 {
                 let g = field_wrp(&wrp, 37);
-                let d = f
-                    .iter()
-                    .zip(&g)
-                    .map(|(a, b)| (a - b).norm())
-                    .fold(0.0, f64::max);
+                let d = max_diff(&f, &g);
                 // Other grid shapes cut the plane elsewhere: a change within the method's accuracy.
                 assert!(
                     d <= 1e-4 * maxf,
@@ -162,11 +162,7 @@ fn f32_soft_edge_matches_f64() {
         };
         let (f64s, f32s) = (sum(Precision::F64), sum(Precision::F32));
         let maxf = f64s.iter().map(|f| f.norm()).fold(0.0, f64::max);
-        let worst = f32s
-            .iter()
-            .zip(&f64s)
-            .map(|(a, b)| (a - b).norm())
-            .fold(0.0, f64::max);
+        let worst = max_diff(&f32s, &f64s);
         assert!(
             worst <= 1e-4 * maxf,
             "tilt {tilt:?}: tapered f32 kernel worst |dF| / max|F| = {:.2e}",
@@ -184,11 +180,7 @@ fn f32_soft_edge_matches_f64() {
             },
         )
         .compute_band(0, 90, &mut plain, &mut BandScratch::default());
-        let d = plain
-            .iter()
-            .zip(&f64s)
-            .map(|(a, b)| (a - b).norm())
-            .fold(0.0, f64::max);
+        let d = max_diff(&plain, &f64s);
         assert!(
             d > 1e-2 * maxf,
             "the taper changed little ({:.2e})",
@@ -219,14 +211,7 @@ fn f32_soft_edge_matches_f64() {
     let plane = |opts| RecordingPlane::new(plate, r, em.clone(), opts, Some(0.5e-3)).unwrap();
     let p64 = field_wrp(&plane(PointSumOptions::default()), 90);
     let p32 = field_wrp(&plane(f32_opts), 90);
-    let worst = |a: &[Complex64], b: &[Complex64]| {
-        a.iter()
-            .zip(b)
-            .map(|(x, y)| (x - y).norm())
-            .fold(0.0, f64::max)
-            / maxf
-    };
-    let (d64, dd) = (worst(&p32, &p64), worst(&p32, &direct));
+    let (d64, dd) = (max_diff(&p32, &p64) / maxf, max_diff(&p32, &direct) / maxf);
     assert!(d64 <= 1e-4, "recording plane f32 vs f64: {d64:.2e}");
     assert!(dd <= 1e-3, "recording plane f32 vs direct f64: {dd:.2e}");
 }
