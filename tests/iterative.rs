@@ -20,6 +20,7 @@ fn grid() -> Grid {
         ny: N,
         pitch: [8e-6; 2],
         wavelength: 633e-9,
+        lattice: Default::default(),
     }
 }
 
@@ -27,7 +28,12 @@ fn fourier_plane(target: Vec<f64>) -> Plane {
     let g = grid();
     let mut planner = PropagationPlanner::<f32>::new();
     let propagator = planner.plan_recipe(&g, 0.0, PropagationRecipe::Fourier { focal: FOCAL });
-    let back = planner.plan_recipe(&g, 0.0, PropagationRecipe::Fourier { focal: -FOCAL });
+    // The inverse starts from the replay lattice the forward transform ends on.
+    let back = planner.plan_recipe(
+        &propagator.output(),
+        0.0,
+        PropagationRecipe::Fourier { focal: -FOCAL },
+    );
     Plane {
         target,
         propagator,
@@ -351,10 +357,16 @@ fn two_planes_share_one_phase() {
     for &(f, col) in &[(0.2, N / 2 + 8), (0.4, N / 2 + 8)] {
         let mut target = vec![0.0; N * N];
         target[(N / 2 - 6) * N + col] = 1.0;
+        let propagator = planner.plan_recipe(&g, 0.0, PropagationRecipe::Fourier { focal: f });
+        let back = planner.plan_recipe(
+            &propagator.output(),
+            0.0,
+            PropagationRecipe::Fourier { focal: -f },
+        );
         planes.push(Plane {
             target,
-            propagator: planner.plan_recipe(&g, 0.0, PropagationRecipe::Fourier { focal: f }),
-            back: planner.plan_recipe(&g, 0.0, PropagationRecipe::Fourier { focal: -f }),
+            propagator,
+            back,
         });
     }
     let r = run(&planes, &opts(Algorithm::GerchbergSaxton, 10));
@@ -399,13 +411,14 @@ fn transposed_layout_matches_row_major_loop() {
         ny,
         pitch: [8e-6; 2],
         wavelength: 633e-9,
+        lattice: Default::default(),
     };
     let mut planner = PropagationPlanner::<f32>::new();
     let mut lens = |f: f64| {
-        (
-            planner.plan_recipe(&g, 0.0, PropagationRecipe::Fourier { focal: f }),
-            planner.plan_recipe(&g, 0.0, PropagationRecipe::Fourier { focal: -f }),
-        )
+        let fwd = planner.plan_recipe(&g, 0.0, PropagationRecipe::Fourier { focal: f });
+        let back =
+            planner.plan_recipe(&fwd.output(), 0.0, PropagationRecipe::Fourier { focal: -f });
+        (fwd, back)
     };
     let (fwd, back) = lens(0.2);
     let (fwd2, back2) = lens(0.35);

@@ -592,6 +592,7 @@ fn lambert_intensity_follows_cosine() {
             offset_mm: [0.0, 0.0, 10.0],
             rotation_deg: [deg, 0.0, 0.0],
             size: PlacementSize::Scale(1.0),
+            ..Placement::default()
         });
         let mut o = opts(200, Pattern::Random, 3);
         o.shading = Shading {
@@ -704,6 +705,7 @@ fn placement_rotates_x_then_y_then_z_scales_and_offsets() {
         offset_mm: [1.0, 2.0, 30.0],
         rotation_deg: [90.0, 90.0, 0.0],
         size: PlacementSize::Scale(2.0),
+        ..Placement::default()
     });
     let want = [1e-3 + 2e-3, 2e-3, 30e-3];
     for k in 0..3 {
@@ -725,6 +727,7 @@ fn placement_rotates_x_then_y_then_z_scales_and_offsets() {
         offset_mm: [0.0, 0.0, 50.0],
         rotation_deg: [0.0, 0.0, 45.0],
         size: PlacementSize::FitMm(5.0),
+        ..Placement::default()
     });
     let (lo, hi) = fit.bounds();
     let ext = (0..3).map(|k| hi[k] - lo[k]).fold(0.0, f64::max);
@@ -782,6 +785,7 @@ fn same_geometry_in_every_format_gives_identical_samples() {
         offset_mm: [0.0, 0.0, 20.0],
         rotation_deg: [10.0, 20.0, 30.0],
         size: PlacementSize::FitMm(8.0),
+        ..Placement::default()
     };
     let mut reference: Option<(Vec<SurfaceSample>, Vec<SurfaceSample>)> = None;
     for (name, _format, bytes) in &files {
@@ -1446,6 +1450,7 @@ fn small_square_behind_a_larger_one_is_hidden_from_the_centre() {
         offset_mm: [-1.0, -1.0, 9.0],
         rotation_deg: [0.0; 3],
         size: PlacementSize::Scale(2.0),
+        ..Placement::default()
     });
     let bvh = Bvh::build(&cube);
     let s = sample_surface(&cube, &opts(6000, Pattern::Stratified, 8)).unwrap();
@@ -1465,6 +1470,7 @@ fn points_on_shared_edges_and_vertices_are_not_blocked_by_their_neighbours() {
         offset_mm: [1.0, -2.0, 30.0],
         rotation_deg: [10.0, 20.0, 30.0],
         size: PlacementSize::Scale(5.0),
+        ..Placement::default()
     });
     let bvh = Bvh::build(&sphere);
     let eye = [0.0, 0.0, 0.0];

@@ -244,6 +244,7 @@ fn planner_recipes_by_distance() {
         ny: 1000,
         pitch: [8e-6, 8e-6],
         wavelength: 500e-9,
+        lattice: Default::default(),
     };
     let zc = g.critical_distance();
     assert!((zc[0] - 0.128).abs() < 1e-15 && zc[0] == zc[1]);
@@ -268,6 +269,7 @@ fn planner_recipes_by_distance() {
         ny: 100,
         pitch: [4e-6, 8e-6],
         wavelength: 633e-9,
+        lattice: Default::default(),
     };
     let zc = g.critical_distance();
     assert!((zc[0] - 2000.0 * 16e-12 / 633e-9).abs() < 1e-15);
@@ -282,6 +284,7 @@ fn planner_recipes_by_distance() {
         ny: 10,
         pitch: [2e-6, 3e-6],
         wavelength: 500e-9,
+        lattice: Default::default(),
     };
     assert_eq!(planner.plan(&g, 1e-5).output(), g);
     let out = planner.plan(&g, 1.0).output().pitch;
@@ -311,6 +314,7 @@ fn square_aperture_far_field_zeros() {
         ny: n,
         pitch: [p, p],
         wavelength: lambda,
+        lattice: Default::default(),
     };
     let d = 15.0 * p;
     let aperture = sample(&grid, |x, y| {
@@ -445,6 +449,7 @@ fn straight_edge_fresnel_fringes() {
         ny: 4,
         pitch: [p, p],
         wavelength: lambda,
+        lattice: Default::default(),
     };
     let field = sample(&grid, |x, _| {
         let t = if x < -p / 4.0 {
@@ -524,6 +529,7 @@ fn point_source_sign_convention_asm() {
         ny: n,
         pitch: [p, p],
         wavelength: lambda,
+        lattice: Default::default(),
     };
     let (z0, d) = (600e-6, 300e-6);
     let sphere = |z: f64, x: f64, y: f64| {
@@ -589,6 +595,7 @@ fn gaussian_beam_fresnel_and_asm() {
         ny: n,
         pitch: [p, p],
         wavelength: lambda,
+        lattice: Default::default(),
     };
     let zc = grid.critical_distance()[0];
     let input = sample(&grid, |x, y| {
@@ -628,6 +635,7 @@ fn gaussian_fourier_transform() {
         ny,
         pitch: [p, p],
         wavelength: lambda,
+        lattice: Default::default(),
     };
     let input = sample(&grid, |x, y| {
         Complex64::new((-(x * x + y * y) / (w0 * w0)).exp(), 0.0)
@@ -692,6 +700,7 @@ fn asm_against_direct_rayleigh_sommerfeld_sum() {
         ny: n,
         pitch: [p, p],
         wavelength: lambda,
+        lattice: Default::default(),
     };
     let z = 200.0 * lambda;
     let a = 8.0 * lambda; // aperture radius
@@ -740,6 +749,7 @@ fn power_is_conserved() {
         ny: 90,
         pitch: [2e-6, 2.5e-6],
         wavelength: 633e-9,
+        lattice: Default::default(),
     };
     let random = rng.field(grid.len());
     let (w0, tilt) = (15e-6, 0.01);
@@ -819,6 +829,7 @@ fn fresnel_round_trip_is_identity() {
         ny: 36,
         pitch: [4e-6, 3e-6],
         wavelength: 1064e-9,
+        lattice: Default::default(),
     };
     let field = rng.field(grid.len());
     let mut planner = PropagationPlanner::<f64>::new();
@@ -848,6 +859,7 @@ fn f32_matches_f64() {
         ny: 200,
         pitch: [4e-6, 4e-6],
         wavelength: 532e-9,
+        lattice: Default::default(),
     };
     let field = rng.field(grid.len());
     let zc = grid.critical_distance()[0];
@@ -891,6 +903,7 @@ fn dirty_scratch_gives_identical_results() {
         ny: 27,
         pitch: [3e-6, 3e-6],
         wavelength: 500e-9,
+        lattice: Default::default(),
     };
     let field = to32(&rng.field(grid.len()));
     let mut planner = PropagationPlanner::<f32>::new();
@@ -932,6 +945,7 @@ fn one_and_two_threads_agree_bitwise() {
         ny: 96,
         pitch: [2e-6, 2e-6],
         wavelength: 633e-9,
+        lattice: Default::default(),
     };
     let field = rng.field(grid.len());
     let run = |threads: usize| {
@@ -992,6 +1006,7 @@ fn constructors_match_planner() {
         ny: 22,
         pitch: [5e-6, 5e-6],
         wavelength: 500e-9,
+        lattice: Default::default(),
     };
     let field = rng.field(grid.len());
     let mut planner = PropagationPlanner::<f64>::new();
@@ -1053,6 +1068,7 @@ fn transposed_halves_match_plain_propagation() {
             ny,
             pitch: [4e-6, 5e-6],
             wavelength: 633e-9,
+            lattice: Default::default(),
         };
         let mut rng = Rng(0x5eed ^ (nx * 131 + ny) as u64);
         let input = rng.field(nx * ny);

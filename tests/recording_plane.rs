@@ -261,6 +261,24 @@ fn refuses_what_it_does_not_cover() {
     .contains("obliquity"));
     assert!(e(plane, o, Some(3e-3)).contains("closer to the plate"));
     assert!(RecordingPlane::new(plate, plane, em.clone(), o, None).is_ok());
+    // 0.5 um at 532 nm with a 30 deg tilt in y: the band's direction cosines reach
+    // (0.532, 1.032), past grazing, so no margin holds it (it was z_w x 302 from the sampled band,
+    // millions of pixels). 10 deg keeps the band inside the unit circle (length 0.884): accepted,
+    // margin z_w x 1.51 / p, about 5500 px.
+    let fine = Plate {
+        pitch: [0.5e-6, 0.5e-6],
+        wavelength: 532e-9,
+        ..plate
+    };
+    let tilted = |deg: f64| Reference::Plane {
+        tilt: [0.0, deg.to_radians()],
+    };
+    let why = RecordingPlane::new(fine, tilted(30.0), em.clone(), o, None)
+        .err()
+        .unwrap_or_default();
+    assert!(why.contains("grazing"), "{why:?}");
+    let ok = RecordingPlane::new(fine, tilted(10.0), em.clone(), o, None).unwrap();
+    assert!(ok.margins()[1] < 10_000, "{:?}", ok.margins());
 }
 
 const BIN: &str = env!("CARGO_BIN_EXE_fringemill");

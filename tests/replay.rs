@@ -163,6 +163,7 @@ fn focus_first_zero_at_lambda_z_over_w() {
             ny: side as usize,
             pitch: [p, p],
             wavelength: 633e-9,
+            lattice: Default::default(),
         };
         // Band-limited angular spectrum keeps the plate's pitch in the image plane (fine sampling).
         let prop = PropagationPlanner::<f32>::new().plan_recipe(

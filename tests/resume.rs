@@ -11,12 +11,19 @@ mod common;
 const BIN: &str = env!("CARGO_BIN_EXE_fringemill");
 
 fn job(dir: &Path, encoding: &str) -> PathBuf {
+    job_in(dir, encoding, "f32")
+}
+
+/// As [`job`], with `[synthesis] precision` given. The kill tests take the f64 reference kernel:
+/// resuming does not depend on the kernel, and its slower run leaves the kills time to land.
+fn job_in(dir: &Path, encoding: &str, precision: &str) -> PathBuf {
     let pts = Path::new(env!("CARGO_MANIFEST_DIR")).join("samples/badge_points.ply");
     std::fs::copy(pts, dir.join("pts.ply")).unwrap();
     let text = format!(
         "[hologram]\nwidth_px = 768\nheight_px = 640\npitch_um = 2.0\nwavelength_nm = 532\n\
          [reference]\nkind = \"plane\"\ntilt_deg = [3.0, 1.0]\n\
          [[object]]\npoints = \"pts.ply\"\noffset_mm = [0, 0, 20]\n\
+         [synthesis]\nprecision = \"{precision}\"\n\
          [encoding]\n{encoding}\n[output]\npath = \"out/plate.tif\"\nrows_per_strip = 16\n"
     );
     let p = dir.join("job.toml");
@@ -29,8 +36,12 @@ fn run(args: &[&str]) -> std::process::Output {
 }
 
 fn clean_plate(encoding: &str) -> Vec<u8> {
+    clean_plate_in(encoding, "f32")
+}
+
+fn clean_plate_in(encoding: &str, precision: &str) -> Vec<u8> {
     let d = tempfile::tempdir().unwrap();
-    let j = job(d.path(), encoding);
+    let j = job_in(d.path(), encoding, precision);
     let o = run(&["run", "-q", j.to_str().unwrap()]);
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
     std::fs::read(d.path().join("out/plate.tif")).unwrap()
@@ -76,9 +87,9 @@ fn kill_runs(j: &Path, done: &Path, delays_ms: Vec<u64>) -> usize {
 #[test]
 fn kill_9_then_resume_is_byte_identical() {
     let enc = "kind = \"phase\"\nlevels = 256";
-    let reference = clean_plate(enc);
+    let reference = clean_plate_in(enc, "f64");
     let d = tempfile::tempdir().unwrap();
-    let j = job(d.path(), enc);
+    let j = job_in(d.path(), enc, "f64");
     let tif = d.path().join("out/plate.tif");
     // A kill can land after the final rename; the file under the final name is then whole, which
     // the comparison below checks.
@@ -360,7 +371,7 @@ fn fields_tile_the_plate_exactly() {
 fn fields_resume_after_kill_9() {
     let enc = "kind = \"phase\"\nlevels = 256";
     let mk = |dir: &Path| {
-        let j = job(dir, enc);
+        let j = job_in(dir, enc, "f64");
         std::fs::write(
             &j,
             std::fs::read_to_string(&j).unwrap() + "field_px = [256, 160]\n",

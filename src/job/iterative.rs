@@ -2,8 +2,9 @@
 //! optimised (`synthesis::iterative`), and the cell laid over the plate (`synthesis::phase_cell`).
 //!
 //! Fourier geometry: the replay plane is the focal plane of a lens of focal length f, sampled at
-//! lambda f / (N p) for an N-pixel cell of pitch p; each target pixel is one sample, the image
-//! centred on the axis (moved by `shift_px`). Fresnel geometry: each image sits at its distance,
+//! lambda f / (N p) for an N-pixel cell of pitch p, with the optical axis on sample floor(N/2) (the
+//! lattice of a plain FFT after fftshift); each target pixel is one sample, the image's middle
+//! pixel on the axis (moved by `shift_px`). Fresnel geometry: each image sits at its distance,
 //! on the grid of the propagator the planner picks for it (angular spectrum below N p^2 / lambda,
 //! pitch p; single-FFT Fresnel above, pitch lambda z / (N p)).
 
@@ -68,7 +69,10 @@ pub fn read_target(path: &Path) -> Result<(usize, usize, Vec<f64>)> {
     }
 }
 
-/// Places an image on an nx x ny canvas, centred and shifted by [right, up] pixels.
+/// Places an image on an nx x ny replay lattice, shifted by [right, up] pixels: with no shift the
+/// image's pixel (floor(h/2), floor(w/2)) lands on the optical axis, sample (floor(ny/2),
+/// floor(nx/2)) (physics.md, "Replay lattices"); an image as large as the lattice lands pixel for
+/// pixel.
 fn place(
     path: &Path,
     img: (usize, usize, Vec<f64>),
@@ -77,8 +81,8 @@ fn place(
     shift: [i64; 2],
 ) -> Result<(Vec<f64>, [usize; 4])> {
     let (w, h, v) = img;
-    let x0 = (nx as i64 - w as i64) / 2 + shift[0];
-    let y0 = (ny as i64 - h as i64) / 2 - shift[1];
+    let x0 = (nx / 2) as i64 - (w / 2) as i64 + shift[0];
+    let y0 = (ny / 2) as i64 - (h / 2) as i64 - shift[1];
     if x0 < 0 || y0 < 0 || x0 + w as i64 > nx as i64 || y0 + h as i64 > ny as i64 {
         return Err(Error::job(path, format!("the {w} x {h} px target, shifted by {shift:?}, does not fit the {nx} x {ny} replay grid of the cell")));
     }
@@ -114,6 +118,7 @@ pub fn build_cell(
         ny,
         pitch: p.pitch,
         wavelength: p.wavelength,
+        lattice: Default::default(),
     };
     let mut planner = PropagationPlanner::<f32>::new();
     let mut planes = Vec::new();
@@ -124,10 +129,16 @@ pub fn build_cell(
             continue;
         };
         let (fwd, back) = match it.geometry {
-            Geometry::Fourier(f) => (
-                planner.plan_recipe(&grid, 0.0, PropagationRecipe::Fourier { focal: f }),
-                planner.plan_recipe(&grid, 0.0, PropagationRecipe::Fourier { focal: -f }),
-            ),
+            Geometry::Fourier(f) => {
+                let fwd = planner.plan_recipe(&grid, 0.0, PropagationRecipe::Fourier { focal: f });
+                // The inverse starts from the replay lattice the forward transform ends on.
+                let back = planner.plan_recipe(
+                    &fwd.output(),
+                    0.0,
+                    PropagationRecipe::Fourier { focal: -f },
+                );
+                (fwd, back)
+            }
             Geometry::Fresnel => {
                 let z = distance.expect("validated: fresnel images carry a distance");
                 let recipe = planner.recipe(&grid, z);

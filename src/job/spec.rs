@@ -62,6 +62,12 @@ pub struct RawObject {
     pub rotation_deg: Option<[f64; 3]>,
     /// Meshes: largest extent after rotation, mm (instead of scale).
     pub fit_mm: Option<f64>,
+    /// Meshes: the file's unit, "m", "mm", "um" or "in" (default: metres for glTF, millimetres
+    /// for OBJ, STL and PLY).
+    pub units: Option<String>,
+    /// Meshes: the model axis that faces the plate's viewer, "+z" (default), "-z", "+x", "-x",
+    /// "+y" or "-y".
+    pub front: Option<String>,
     /// Meshes: number of emitters.
     pub emitters: Option<i64>,
     /// Meshes: mean emitter spacing, micrometres.
@@ -433,6 +439,8 @@ impl JobSpec {
             let mesh_keys = [
                 ("rotation_deg", o.rotation_deg.is_some()),
                 ("fit_mm", o.fit_mm.is_some()),
+                ("units", o.units.is_some()),
+                ("front", o.front.is_some()),
                 ("emitters", o.emitters.is_some()),
                 ("spacing_um", o.spacing_um.is_some()),
                 ("pattern", o.pattern.is_some()),
@@ -569,7 +577,7 @@ impl JobSpec {
                 )))
             }
         };
-        let precision = match s.precision.as_deref().unwrap_or("f64") {
+        let precision = match s.precision.as_deref().unwrap_or("f32") {
             "f64" => Precision::F64,
             "f32" => Precision::F32,
             other => {
@@ -939,8 +947,33 @@ fn mesh_object(o: &RawObject, n: usize, bad: &dyn Fn(String) -> Error) -> Result
         (_, Some(f)) => PlacementSize::FitMm(f),
         (s, None) => PlacementSize::Scale(s.unwrap_or(1.0)),
     };
+    use crate::scene::mesh::{Front, MeshFormat};
+    let unit_mm = match &o.units {
+        Some(u) => crate::scene::mesh::unit_mm(u).ok_or_else(|| {
+            bad(format!(
+                "[[object]] #{n} units = {u:?}: expected \"m\", \"mm\", \"um\" or \"in\""
+            ))
+        })?,
+        // The format's own unit; an unknown extension is refused when the mesh is read.
+        None => o
+            .mesh
+            .as_deref()
+            .and_then(|m| std::path::Path::new(m).extension())
+            .and_then(|e| MeshFormat::from_extension(&e.to_string_lossy()))
+            .map_or(1.0, MeshFormat::default_unit_mm),
+    };
+    let front = match &o.front {
+        Some(f) => Front::parse(f).ok_or_else(|| {
+            bad(format!(
+                "[[object]] #{n} front = {f:?}: expected \"+z\", \"-z\", \"+x\", \"-x\", \"+y\" or \"-y\""
+            ))
+        })?,
+        None => Front::PlusZ,
+    };
     let placement = Placement {
         offset_mm: o.offset_mm.unwrap_or([0.0; 3]),
+        unit_mm,
+        orientation: front.matrix(),
         rotation_deg: o.rotation_deg.unwrap_or([0.0; 3]),
         size,
     };

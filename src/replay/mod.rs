@@ -331,6 +331,7 @@ pub fn replay_planes(
         ny: win.h as usize,
         pitch: p.pitch,
         wavelength: p.wavelength,
+        lattice: Default::default(),
     };
     let centre = [
         p.x_of_col(win.x as f64 + (win.w as f64 - 1.0) / 2.0),
@@ -453,8 +454,22 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
     let images = replay_planes(&pf, win, req.illumination, &req.distances, req.focal)?;
     let mut written = Vec::new();
     let mut planes = Vec::new();
+    // Depth planes are drawn as the plate's viewer sees them (physics.md, "Viewing side"): the
+    // viewer stands at z < 0 looking towards +z, so the image's right is plate -x and its columns
+    // run opposite to the grid's. Fourier planes keep the FFT lattice (column = +x of the focal
+    // plane, as a plain FFT after fftshift shows it), on which targets are designed.
+    let mirrored = req.focal.is_none();
     for img in &images {
         let (w, h) = (img.grid.nx, img.grid.ny);
+        let drawn: Vec<f32> = if mirrored {
+            img.intensity
+                .chunks_exact(w)
+                .flat_map(|row| row.iter().rev().copied())
+                .collect()
+        } else {
+            img.intensity.clone()
+        };
+        let grid_col = |c: usize| if mirrored { w - 1 - c } else { c };
         let path = if images.len() == 1 {
             req.out.clone()
         } else {
@@ -466,23 +481,22 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
             req.out
                 .with_file_name(format!("{stem}-z{:.3}mm.png", img.distance * 1e3))
         };
-        metrics::write_png(&path, w, h, &img.intensity, req.scale, req.bits)?;
+        metrics::write_png(&path, w, h, &drawn, req.scale, req.bits)?;
         written.push(path.clone());
-        let pk: Vec<metrics::Peak> = metrics::peaks(w, h, &img.intensity, req.peaks, 0.05)
+        let pk: Vec<metrics::Peak> = metrics::peaks(w, h, &drawn, req.peaks, 0.05)
             .into_iter()
             .map(|(c, r, rel)| metrics::Peak {
                 col: c,
                 row: r,
-                x_mm: (img.centre[0] + img.grid.x_of_col(c)) * 1e3,
+                x_mm: (img.centre[0] + img.grid.x_of_col(grid_col(c))) * 1e3,
                 y_mm: (img.centre[1] + img.grid.y_of_row(r)) * 1e3,
                 relative: rel,
             })
             .collect();
         let region = match req.region {
-            Some(rg) => Some(
-                metrics::region_stats(w, h, &img.intensity, rg)
-                    .map_err(|m| Error::job(&req.tif, m))?,
-            ),
+            Some(rg) => {
+                Some(metrics::region_stats(w, h, &drawn, rg).map_err(|m| Error::job(&req.tif, m))?)
+            }
             None => None,
         };
         let cmp = match &target {
@@ -493,7 +507,7 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
                         format!("is {tw} x {th} px; the replay image is {w} x {h}"),
                     ));
                 }
-                Some(metrics::compare(w, h, &img.intensity, t, req.region))
+                Some(metrics::compare(w, h, &drawn, t, req.region))
             }
             None => None,
         };
@@ -517,6 +531,7 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
             Illumination::Recorded => serde_json::json!("recorded reference"),
             Illumination::Plane(t) => serde_json::json!({"plane_tilt_deg": [t[0].to_degrees(), t[1].to_degrees()]}),
         },
+        "drawn_as": if mirrored { "seen by the plate's viewer (standing at z < 0, looking towards +z through the plate): image right = plate -x, image up = plate +y; peak col/row count in the image" } else { "the FFT lattice of the focal plane (optical axis on sample floor(N/2), as a plain FFT after fftshift): image right = +x of the focal plane, image up = +y" },
         "depth_convention": if req.focal.is_some() { "focal plane of a lens of focal length focal_mm behind the plate (Fourier geometry); centre_mm is the optical axis" } else { "distance D shows the plane z = D in front of the plate (field propagated by -D)" },
         "planes": planes,
     });

@@ -33,8 +33,9 @@
 //! transformed as one periodic cell; light that would wrap around lands in the margin, never in the
 //! tile. Memory per band in flight: two grids of (tile + 2 margins) complex f64.
 //!
-//! Applies to exact spherical waves without the obliquity factor, one plane reference, no
-//! occlusion; other jobs take the direct sum.
+//! Applies to exact spherical waves without the obliquity factor, one plane reference whose band
+//! stays inside the unit circle of directions (|s_R| + lambda / 2p per axis), no occlusion; other
+//! jobs take the direct sum.
 
 use std::collections::HashMap;
 use std::sync::{Arc, Mutex};
@@ -150,6 +151,20 @@ impl RecordingPlane {
             ));
         }
         let s_r = [tilt[0].sin(), tilt[1].sin()];
+        // The band's farthest direction cosines. Where they reach the unit circle, the band holds
+        // propagating directions as close to grazing as the grid reaches (the soft edge still
+        // weights them), whose lateral travel over z_w has no bound: no finite margin keeps their
+        // wrap-around out of the tile (and `band_tangents` would return whatever its samples
+        // nearest uz = 0 give).
+        let far = [0, 1].map(|a| s_r[a].abs() + half[a]);
+        if far[0] * far[0] + far[1] * far[1] >= 1.0 - 1e-6 {
+            return Err(format!(
+                "the reference tilt plus the plate's half-angle reaches grazing incidence (direction cosines up to ({:.3}, {:.3}), length {:.3} >= 1): the recording plane's grid would need an unbounded margin",
+                far[0],
+                far[1],
+                far[0].hypot(far[1])
+            ));
+        }
         let tan_max = band_tangents(s_r, half);
         let ring = (plate.wavelength * z_w).sqrt();
         let margin =

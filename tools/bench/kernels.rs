@@ -153,6 +153,7 @@ fn grid(n: usize) -> Grid {
         ny: n,
         pitch: [2e-6; 2],
         wavelength: 532e-9,
+        lattice: Default::default(),
     }
 }
 

@@ -11,9 +11,11 @@
 //!
 //! `U2(u, v) = 1 / (i lambda f) * integral U1(x, y) exp(-i 2 pi (x u + y v) / (lambda f)) dx dy`,
 //!
-//! evaluated as a DFT on the pixel-centre grids of `physics.md`: output pitch `lambda |f| / (N p)`
-//! per axis, with the optical axis at the centre of both grids for odd and even sizes alike (the
-//! half-pixel offsets of even sizes are exact phase ramps, not an `fftshift`). The factor
+//! evaluated as a DFT from the plate's pixel-centre grid to the replay lattice of `physics.md`
+//! ("Replay lattices": the optical axis on the sample `floor(N/2)`, as after an `fftshift`), or
+//! back when the input grid is a replay lattice: output pitch `lambda |f| / (N p)` per axis. The
+//! half-pixel offset of the plate's centre for even sizes is an exact phase ramp, so
+//! `|U2[k]| = |DFT(U1)[k - floor(N/2)]|` sample for sample. The factor
 //! `px py / (i lambda f)` makes the transform unitary in the sense of power:
 //! `sum |U2|^2 du dv = sum |U1|^2 dx dy`.
 //!
@@ -40,10 +42,13 @@ use super::{
 };
 use crate::optics::fft2d::Fft2d;
 
-/// A 2-D DFT between two centred pixel grids of the same shape,
-/// `out[m, n] = post[m, n] * sum_{i, j} pre[i, j] in[i, j] exp(-+ i 2 pi ((j-cx)(m-cx)/nx + (i-cy)(n-cy)/ny))`,
-/// where `c = (n - 1) / 2`, with separable `pre` and `post` factors that may carry chirps and a
-/// constant. Shared by [`Fourier`] and the single-FFT Fresnel propagator.
+/// A 2-D DFT between two grids of the same shape whose optical axes sit at `ci` (input) and
+/// `co` (output) on each axis,
+/// `out[m, n] = post[m, n] * sum_{i, j} pre[i, j] in[i, j] exp(-+ i 2 pi ((j-cix)(m-cox)/nx + (i-ciy)(n-coy)/ny))`,
+/// with separable `pre` and `post` factors that may carry chirps and a constant. The input is on
+/// one [`super::Lattice`] and the output on the other (a plate's pixel centres `(N - 1) / 2` to the
+/// replay lattice's `floor(N / 2)`, or back). Shared by [`Fourier`] and the single-FFT Fresnel
+/// propagator.
 #[derive(Clone, Debug)]
 pub(crate) struct CentredDft<T: FftNum> {
     fft: Arc<Fft2d<T>>,
@@ -54,29 +59,34 @@ pub(crate) struct CentredDft<T: FftNum> {
 
 /// Per-axis factors of [`CentredDft`], in f64.
 ///
-/// `inverse` selects the `+i` kernel. `chirp_in(x)` and `chirp_out(u)` return extra phases in cycles
-/// for the input sample at `x` and the output sample at `u` (metres from the axis).
+/// `inverse` selects the `+i` kernel; `a_in` and `a_out` are twice the axis index of the input and
+/// output lattices ([`super::Lattice::axis_twice`]). `chirp_in(x)` and `chirp_out(u)` return extra phases
+/// in cycles for the input sample at `x` and the output sample at `u` (metres from the axis).
+#[allow(clippy::too_many_arguments)]
 fn axis_factors(
     n: usize,
     p_in: f64,
     p_out: f64,
     inverse: bool,
+    a_in: u64,
+    a_out: u64,
     chirp_in: &dyn Fn(f64) -> f64,
     chirp_out: &dyn Fn(f64) -> f64,
 ) -> (Vec<Complex<f64>>, Vec<Complex<f64>>) {
-    // exp(-s i 2 pi (j - c)(m - c) / n) = exp(-s i 2 pi j m / n) exp(s i 2 pi j c / n)
-    //                                     exp(s i 2 pi c m / n) exp(-s i 2 pi c^2 / n),
-    // with c = (n - 1) / 2; the ramps are reduced exactly in integers: j c / n = j (n - 1) / (2 n).
+    // With ci = a_in / 2 and co = a_out / 2:
+    // exp(-s i 2 pi (j - ci)(m - co) / n) = exp(-s i 2 pi j m / n) exp(s i 2 pi j co / n)
+    //                                       exp(s i 2 pi ci m / n) exp(-s i 2 pi ci co / n);
+    // the ramps are reduced exactly in integers: j co / n = (j a_out mod 2n) / 2n, and so on.
     let s = if inverse { -1.0 } else { 1.0 };
     let n64 = n as u64;
-    let ramp = |j: usize| -> f64 { ((j as u64 * (n64 - 1)) % (2 * n64)) as f64 / (2 * n64) as f64 };
-    let c2 = ((n64 - 1) * (n64 - 1) % (4 * n64)) as f64 / (4 * n64) as f64;
-    let c = (n as f64 - 1.0) / 2.0;
+    let ramp = |j: usize, a: u64| -> f64 { ((j as u64 * a) % (2 * n64)) as f64 / (2 * n64) as f64 };
+    let cc = ((a_in * a_out) % (4 * n64)) as f64 / (4 * n64) as f64;
+    let (ci, co) = (a_in as f64 / 2.0, a_out as f64 / 2.0);
     let pre = (0..n)
-        .map(|j| cis_cycles(s * ramp(j) + chirp_in((j as f64 - c) * p_in)))
+        .map(|j| cis_cycles(s * ramp(j, a_out) + chirp_in((j as f64 - ci) * p_in)))
         .collect();
     let post = (0..n)
-        .map(|m| cis_cycles(s * (ramp(m) - c2) + chirp_out((m as f64 - c) * p_out)))
+        .map(|m| cis_cycles(s * (ramp(m, a_in) - cc) + chirp_out((m as f64 - co) * p_out)))
         .collect();
     (pre, post)
 }
@@ -102,10 +112,28 @@ impl<T: FftNum + Float> CentredDft<T> {
         // A chirp exp(i a rho^2) = exp(i a x^2) exp(i a y^2) separates by axis.
         let cin = |x: f64| chirp_in(x * x);
         let cout = |u: f64| chirp_out(u * u);
-        let (pre_x, post_x) =
-            axis_factors(input.nx, input.pitch[0], out_pitch[0], inverse, &cin, &cout);
-        let (pre_y, post_y) =
-            axis_factors(input.ny, input.pitch[1], out_pitch[1], inverse, &cin, &cout);
+        let (li, lo) = (input.lattice, input.lattice.transformed());
+        let (pre_x, post_x) = axis_factors(
+            input.nx,
+            input.pitch[0],
+            out_pitch[0],
+            inverse,
+            li.axis_twice(input.nx),
+            lo.axis_twice(input.nx),
+            &cin,
+            &cout,
+        );
+        // Rows: y = (c - i) p, so y v = (i - ci)(m - co) p p_out, the same form as x.
+        let (pre_y, post_y) = axis_factors(
+            input.ny,
+            input.pitch[1],
+            out_pitch[1],
+            inverse,
+            li.axis_twice(input.ny),
+            lo.axis_twice(input.ny),
+            &cin,
+            &cout,
+        );
         let conv = |v: Vec<Complex<f64>>| v.into_iter().map(to_t::<T>).collect::<Vec<_>>();
         CentredDft {
             fft,
@@ -231,6 +259,7 @@ impl<T: FftNum + Float> Fourier<T> {
             input: *grid,
             output: Grid {
                 pitch: out_pitch,
+                lattice: grid.lattice.transformed(),
                 ..*grid
             },
             focal,

@@ -10,7 +10,9 @@
 //! `U2(u, v) = exp(i k z) / (i lambda z) * exp(i k (u^2 + v^2) / (2 z))
 //!            * integral U1(x, y) exp(i k (x^2 + y^2) / (2 z)) exp(-i 2 pi (x u + y v) / (lambda z)) dx dy`,
 //!
-//! evaluated with one 2-D FFT on centred pixel grids: output pitch `lambda |z| / (N p)` per axis. All
+//! evaluated with one 2-D FFT from the plate's pixel-centre grid to the replay lattice (optical axis
+//! on sample `floor(N/2)`, physics.md "Replay lattices"), or back from a replay lattice to pixel
+//! centres: output pitch `lambda |z| / (N p)` per axis. All
 //! factors are kept (the constant `exp(i k z) / (i lambda z)` and both quadratic phases), so the output
 //! has the correct absolute phase, and the sample area `px py` makes the discrete transform
 //! power-conserving: `sum |U2|^2 du dv = sum |U1|^2 dx dy`.
@@ -68,6 +70,7 @@ impl<T: FftNum + Float> SingleFftFresnel<T> {
             input: *grid,
             output: Grid {
                 pitch: out_pitch,
+                lattice: grid.lattice.transformed(),
                 ..*grid
             },
             distance: z,

@@ -7,9 +7,15 @@
 //!
 //! # Conventions (shared `physics.md`)
 //! * SI units: metres.
-//! * Fields are row-major, `ny` rows of `nx` samples; pixel (row i, column j) has its centre at
-//!   `x = (j - (nx-1)/2) px`, `y = ((ny-1)/2 - i) py`: row 0 is the top row, y points up, and the
-//!   optical axis passes through the centre of the grid (between pixels when a size is even).
+//! * Fields are row-major, `ny` rows of `nx` samples; row 0 is the top row, y points up. Where the
+//!   optical axis sits is the grid's [`Lattice`]: on a plate ([`Lattice::PixelCentres`]) pixel
+//!   (row i, column j) has its centre at `x = (j - (nx-1)/2) px`, `y = ((ny-1)/2 - i) py` (the axis
+//!   between pixels when a size is even); on the replay plane of a Fourier or single-FFT Fresnel
+//!   transform ([`Lattice::FftAxis`]) the axis is the sample with index `floor(N/2)` on each axis,
+//!   `x = (j - floor(nx/2)) px`, `y = (floor(ny/2) - i) py`, the `fftshift` layout every FFT
+//!   library uses, so a plain DFT of the plate samples replays on the same lattice:
+//!   `|U[k]| = |DFT(t)[k - floor(N/2)]|` (physics.md, "Replay lattices"). Those two propagators
+//!   map one lattice to the other; the angular spectrum keeps its input's.
 //! * Time dependence `exp(-i w t)`: a wave travelling towards +z gains `exp(+i k z)`, a wave diverging
 //!   from a point is `exp(+i k r) / r`. A positive distance propagates towards +z, a negative one
 //!   back-propagates.
@@ -54,6 +60,45 @@ pub struct Grid {
     pub pitch: [f64; 2],
     /// Wavelength, metres.
     pub wavelength: f64,
+    /// Where the optical axis sits on the grid (module docs).
+    pub lattice: Lattice,
+}
+
+/// Where the optical axis crosses a sampled plane.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Default)]
+pub enum Lattice {
+    /// The plate's pixel-centre grid: the axis at the geometric centre, `(N - 1) / 2` on each
+    /// axis (between two samples for even N).
+    #[default]
+    PixelCentres,
+    /// The replay lattice of a Fourier or single-FFT Fresnel plane: the axis on the sample
+    /// `floor(N / 2)` on each axis (the zero order of a plain DFT after `fftshift`).
+    FftAxis,
+}
+
+impl Lattice {
+    /// Twice the index of the axis on an axis of `n` samples: `n - 1` for pixel centres,
+    /// `2 floor(n / 2)` for the FFT lattice (twice, so that both are integers).
+    pub fn axis_twice(self, n: usize) -> u64 {
+        match self {
+            Lattice::PixelCentres => n as u64 - 1,
+            Lattice::FftAxis => 2 * (n as u64 / 2),
+        }
+    }
+
+    /// Index of the optical axis on an axis of `n` samples (half-integer for even-sized pixel
+    /// centres).
+    pub fn axis_index(self, n: usize) -> f64 {
+        self.axis_twice(n) as f64 / 2.0
+    }
+
+    /// The lattice on the other side of a Fourier or single-FFT Fresnel transform.
+    pub fn transformed(self) -> Lattice {
+        match self {
+            Lattice::PixelCentres => Lattice::FftAxis,
+            Lattice::FftAxis => Lattice::PixelCentres,
+        }
+    }
 }
 
 impl Grid {
@@ -72,14 +117,14 @@ impl Grid {
         self.pitch[0] * self.pitch[1]
     }
 
-    /// x of the centre of column `j`, metres.
+    /// x of the centre of column `j`, metres from the optical axis (see [`Lattice`]).
     pub fn x_of_col(&self, j: usize) -> f64 {
-        (j as f64 - (self.nx as f64 - 1.0) / 2.0) * self.pitch[0]
+        (j as f64 - self.lattice.axis_index(self.nx)) * self.pitch[0]
     }
 
-    /// y of the centre of row `i`, metres (row 0 is the top, y points up).
+    /// y of the centre of row `i`, metres from the optical axis (row 0 is the top, y points up).
     pub fn y_of_row(&self, i: usize) -> f64 {
-        ((self.ny as f64 - 1.0) / 2.0 - i as f64) * self.pitch[1]
+        (self.lattice.axis_index(self.ny) - i as f64) * self.pitch[1]
     }
 
     /// Critical distance `N p^2 / lambda` per axis, [x, y], metres (Voelz and Roggemann, Applied

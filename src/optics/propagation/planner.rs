@@ -70,7 +70,7 @@ impl<T: FftNum + Float> PropagationPlanner<T> {
     ///
     /// ```
     /// use fringemill::optics::propagation::{Grid, PropagationPlanner, PropagationRecipe};
-    /// let grid = Grid { nx: 1000, ny: 1000, pitch: [8e-6; 2], wavelength: 500e-9 };
+    /// let grid = Grid { nx: 1000, ny: 1000, pitch: [8e-6; 2], wavelength: 500e-9, lattice: Default::default() };
     /// let planner = PropagationPlanner::<f32>::new();
     /// // z_c = 1000 * (8 um)^2 / 500 nm = 0.128 m
     /// assert_eq!(planner.recipe(&grid, 0.1),

@@ -1,10 +1,19 @@
 //! Triangle meshes: reading them from glTF 2.0 (`.glb`, `.gltf`), Wavefront OBJ, STL and PLY
 //! files, and placing them in front of the plate.
 //!
-//! A [`Mesh`] as read holds the file's own coordinates, taken to be millimetres, with every
+//! A [`Mesh`] as read holds the file's own coordinates in the file's own unit, with every
 //! polygon already split into triangles and every vertex attribute indexed like the positions.
-//! [`Mesh::placed`] rotates, scales and moves it into plate coordinates (metres, plate at
+//! [`Mesh::placed`] turns, rotates, scales and moves it into plate coordinates (metres, plate at
 //! z = 0, y up); [`crate::scene::sampling`] then turns its surface into emitters.
+//!
+//! Units (physics.md, "Mesh units"): glTF 2.0 distances are metres (glTF 2.0 specification,
+//! sec. 3.4); OBJ, STL and PLY carry no unit and are read as millimetres (common practice for
+//! STL). [`MeshFormat::default_unit_mm`] gives the default, [`Placement::unit_mm`] the one used.
+//!
+//! Facing (physics.md, "Viewing side"): the plate's viewer stands at z < 0 looking towards +z.
+//! [`Front`] names the model axis that is its front (+Z in glTF, the axis a 3-D tool's front view
+//! looks along) and [`Front::matrix`] turns that axis to plate -z, the model's up to plate +y, so
+//! the model faces the viewer right-reading (for +Z: a half turn about y, model +X to plate -x).
 //!
 //! Conventions shared by all readers:
 //! * **Winding**: a triangle `[a, b, c]` faces the side from which `a, b, c` run anticlockwise;
@@ -205,15 +214,108 @@ pub fn srgb_unit_to_linear(c: f64) -> f64 {
 }
 
 /// Where and how large a mesh is put in front of the plate.
+///
+/// A file position `p` becomes `(R O p) s u 1e-3 + offset_mm 1e-3` metres: `O` the
+/// [`orientation`](Self::orientation) (model axes to plate axes), `R` the
+/// [`rotation_deg`](Self::rotation_deg) rotations, `u` the [`unit_mm`](Self::unit_mm) and `s` the
+/// [`size`](Self::size) factor.
 #[derive(Clone, Copy, Debug, PartialEq)]
 pub struct Placement {
     /// Translation added last, millimetres in plate coordinates.
     pub offset_mm: [f64; 3],
+    /// Millimetres per file unit (1000 for glTF's metres, 1 for millimetres).
+    pub unit_mm: f64,
+    /// Proper rotation from the model's axes to the plate's, applied first (row-major, on
+    /// column vectors); [`Front::matrix`] gives the viewer-facing one, the identity keeps the
+    /// file's axes as plate axes.
+    pub orientation: [[f64; 3]; 3],
     /// Rotations in degrees about the x, y and z axes through the file's origin, applied in
     /// that order (x first), each anticlockwise seen from the positive end of its axis.
     pub rotation_deg: [f64; 3],
     /// Scale of the rotated mesh.
     pub size: PlacementSize,
+}
+
+/// The model axis that is a mesh's front: it is turned to face the plate's viewer (plate -z),
+/// with the model's up (+Y, or +Z when the front is along Y) turned to plate +y.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Front {
+    /// +X
+    PlusX,
+    /// -X
+    MinusX,
+    /// +Y (up is +Z)
+    PlusY,
+    /// -Y (up is +Z; the front of Z-up models)
+    MinusY,
+    /// +Z (glTF's front, and the default for every format)
+    PlusZ,
+    /// -Z
+    MinusZ,
+}
+
+impl Front {
+    /// Parses `"+x"`, `"-x"`, `"+y"`, `"-y"`, `"+z"` or `"-z"` (case-insensitive).
+    pub fn parse(s: &str) -> Option<Front> {
+        Some(match s.trim().to_ascii_lowercase().as_str() {
+            "+x" | "x" => Front::PlusX,
+            "-x" => Front::MinusX,
+            "+y" | "y" => Front::PlusY,
+            "-y" => Front::MinusY,
+            "+z" | "z" => Front::PlusZ,
+            "-z" => Front::MinusZ,
+            _ => return None,
+        })
+    }
+
+    /// The name `parse` reads.
+    pub fn name(self) -> &'static str {
+        match self {
+            Front::PlusX => "+x",
+            Front::MinusX => "-x",
+            Front::PlusY => "+y",
+            Front::MinusY => "-y",
+            Front::PlusZ => "+z",
+            Front::MinusZ => "-z",
+        }
+    }
+
+    /// The model's front and up directions, in model axes.
+    pub fn front_and_up(self) -> ([f64; 3], [f64; 3]) {
+        let (y, z) = ([0.0, 1.0, 0.0], [0.0, 0.0, 1.0]);
+        match self {
+            Front::PlusX => ([1.0, 0.0, 0.0], y),
+            Front::MinusX => ([-1.0, 0.0, 0.0], y),
+            Front::PlusY => ([0.0, 1.0, 0.0], z),
+            Front::MinusY => ([0.0, -1.0, 0.0], z),
+            Front::PlusZ => (z, y),
+            Front::MinusZ => ([0.0, 0.0, -1.0], y),
+        }
+    }
+
+    /// The rotation taking the model's front to plate -z and its up to plate +y. The model's
+    /// right as seen from the front, `up x front`, goes to plate -x, which is the viewer's right
+    /// (physics.md, "Viewing side"). For `PlusZ`: `diag(-1, 1, -1)`, a half turn about y.
+    pub fn matrix(self) -> [[f64; 3]; 3] {
+        let (f, u) = self.front_and_up();
+        let r = cross(u, f);
+        // Rows: plate x = -(r . p), plate y = u . p, plate z = -(f . p).
+        [r.map(|v| -v), u, f.map(|v| -v)]
+    }
+}
+
+/// The identity rotation.
+pub const IDENTITY3: [[f64; 3]; 3] = [[1.0, 0.0, 0.0], [0.0, 1.0, 0.0], [0.0, 0.0, 1.0]];
+
+/// Millimetres per unit for a `units` key: `"m"`, `"mm"`, `"um"` or `"in"`.
+pub fn unit_mm(name: &str) -> Option<f64> {
+    Some(match name.trim() {
+        "m" => 1000.0,
+        "mm" => 1.0,
+        "um" => 1e-3,
+        "in" => 25.4,
+        _ => return None,
+    })
 }
 
 /// How the size of a placed mesh is chosen.
@@ -226,10 +328,12 @@ pub enum PlacementSize {
 }
 
 impl Default for Placement {
-    /// No offset, no rotation, scale 1.
+    /// No offset, file axes as plate axes, no rotation, millimetres, scale 1.
     fn default() -> Self {
         Placement {
             offset_mm: [0.0; 3],
+            unit_mm: 1.0,
+            orientation: IDENTITY3,
             rotation_deg: [0.0; 3],
             size: PlacementSize::Scale(1.0),
         }
@@ -242,6 +346,12 @@ impl Placement {
     pub fn validate(&self) -> std::result::Result<(), String> {
         if self.offset_mm.iter().any(|v| !v.is_finite()) {
             return Err(format!("offset_mm {:?} is not finite", self.offset_mm));
+        }
+        if !(self.unit_mm.is_finite() && self.unit_mm > 0.0) {
+            return Err(format!(
+                "unit {} mm must be a positive number",
+                self.unit_mm
+            ));
         }
         if self.rotation_deg.iter().any(|v| !v.is_finite()) {
             return Err(format!(
@@ -258,6 +368,11 @@ impl Placement {
             }
             _ => Ok(()),
         }
+    }
+
+    /// The whole turn `Rz Ry Rx O`: the orientation, then the rotations.
+    pub fn turn_matrix(&self) -> [[f64; 3]; 3] {
+        mat3_mul(&self.rotation_matrix(), &self.orientation)
     }
 
     /// The rotation matrix `Rz Ry Rx` (row-major), applied to column vectors.
@@ -309,16 +424,16 @@ impl Mesh {
     }
 
     /// The mesh in plate coordinates, in metres: every position p becomes
-    /// `(R p) s 1e-3 + offset_mm 1e-3`, where `R` is [`Placement::rotation_matrix`] and `s` the
-    /// scale: the given factor for [`PlacementSize::Scale`] (file units read as millimetres), or
-    /// for [`PlacementSize::FitMm`] the factor that makes the largest extent of the rotated
-    /// mesh's bounding box the given size (1 when that extent is zero). Normals are rotated.
+    /// `(R O p) s 1e-3 + offset_mm 1e-3`, where `R O` is [`Placement::turn_matrix`] and `s` the
+    /// scale: the given factor times [`Placement::unit_mm`] for [`PlacementSize::Scale`], or for
+    /// [`PlacementSize::FitMm`] the factor that makes the largest extent of the turned mesh's
+    /// bounding box the given size (1 when that extent is zero). Normals are turned.
     /// The placement is not checked: call [`Placement::validate`] first.
     pub fn placed(&self, p: &Placement) -> Mesh {
-        let r = p.rotation_matrix();
+        let r = p.turn_matrix();
         let rotated: Vec<[f64; 3]> = self.positions.iter().map(|&q| mat3_apply(&r, q)).collect();
         let s = match p.size {
-            PlacementSize::Scale(s) => s,
+            PlacementSize::Scale(s) => s * p.unit_mm,
             PlacementSize::FitMm(size) => {
                 let (lo, hi) = bounds_of(&rotated);
                 let extent = (0..3).map(|i| hi[i] - lo[i]).fold(0.0, f64::max);
@@ -459,6 +574,16 @@ pub enum MeshFormat {
 }
 
 impl MeshFormat {
+    /// Millimetres per file unit when the job gives no `units`: 1000 for glTF (metres, glTF 2.0
+    /// specification sec. 3.4), 1 for OBJ, STL and PLY (no unit in the format; millimetres,
+    /// common practice for STL).
+    pub fn default_unit_mm(self) -> f64 {
+        match self {
+            MeshFormat::Gltf => 1000.0,
+            MeshFormat::Obj | MeshFormat::Stl | MeshFormat::Ply => 1.0,
+        }
+    }
+
     /// The format belonging to a file extension (case-insensitive, without the dot).
     pub fn from_extension(ext: &str) -> Option<MeshFormat> {
         Some(match ext.to_ascii_lowercase().as_str() {
@@ -472,7 +597,8 @@ impl MeshFormat {
 }
 
 /// Reads a mesh, choosing the format by the extension: `.glb`, `.gltf`, `.obj`, `.stl` or
-/// `.ply` (case-insensitive). Positions are in the file's units, read as millimetres.
+/// `.ply` (case-insensitive). Positions are in the file's own unit
+/// ([`MeshFormat::default_unit_mm`]).
 pub fn load_mesh(path: &Path) -> Result<Mesh> {
     let format = mesh_format(path)?;
     let data = std::fs::read(path).map_err(|e| Error::io(path, e))?;
