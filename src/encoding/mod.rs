@@ -116,11 +116,7 @@ impl Encoding {
     pub fn bits_per_sample(&self) -> u8 {
         match *self {
             Encoding::Phase { levels } | Encoding::CalibratedPhase { levels, .. } => {
-                if levels <= 256 {
-                    8
-                } else {
-                    16
-                }
+                phase_bits(levels)
             }
             Encoding::BinaryPhase | Encoding::BinaryAmplitude => 1,
             Encoding::Amplitude { bits, .. } => bits,
@@ -191,7 +187,7 @@ impl Encoding {
                 ref calibration, ..
             } => Complex64::from_polar(1.0, calibration.phase_of(s)),
             Encoding::Phase { levels } => {
-                let b = if levels <= 256 { 8 } else { 16 };
+                let b = phase_bits(levels);
                 Complex64::from_polar(
                     1.0,
                     2.0 * std::f64::consts::PI * s as f64 / (1u32 << b) as f64,
@@ -229,10 +225,20 @@ pub fn phase_level(f: Complex64, levels: u32) -> u32 {
     (g % levels as u64) as u32
 }
 
+/// Bits b of a stored sample of N phase levels: 8 for N <= 256, else 16 (physics.md).
+#[inline]
+pub fn phase_bits(levels: u32) -> u8 {
+    if levels <= 256 {
+        8
+    } else {
+        16
+    }
+}
+
 /// Stored value s = round(g 2^b / N) in exact integer arithmetic (no ties can occur for N <= 2^b).
 #[inline]
 pub fn phase_stored(g: u32, levels: u32) -> u16 {
-    let b: u64 = if levels <= 256 { 8 } else { 16 };
+    let b = phase_bits(levels) as u64;
     let num = (g as u64) << b;
     ((2 * num + levels as u64) / (2 * levels as u64)) as u16
 }

@@ -209,21 +209,3 @@ pub fn build_cell(
         record,
     ))
 }
-
-/// The sidecar section of an iterative run.
-pub fn sidecar_json(it: &IterativeSpec, rec: &IterationRecord) -> serde_json::Value {
-    serde_json::json!({
-        "geometry": match it.geometry { Geometry::Fourier(_) => "fourier", Geometry::Fresnel => "fresnel" },
-        "focal_mm": match it.geometry { Geometry::Fourier(f) => Some(f * 1e3), Geometry::Fresnel => None },
-        "algorithm": format!("{:?}", it.algorithm),
-        "iterations_run": rec.errors.len().saturating_sub(1),
-        "stopped_early": rec.stopped_early,
-        "error_per_iteration": rec.errors,
-        "cell_px": rec.cell,
-        "replay_pitch_um": rec.replay_pitch.iter().map(|p| [p[0] * 1e6, p[1] * 1e6]).collect::<Vec<_>>(),
-        "carrier_deg": [it.carrier[0].to_degrees(), it.carrier[1].to_degrees()],
-        "lens_mm": it.lens.map(|f| f * 1e3),
-        "seed": it.seed,
-        "quantize_last": it.quantize_last,
-    })
-}

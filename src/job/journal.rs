@@ -10,7 +10,7 @@ use std::path::{Path, PathBuf};
 use serde::{Deserialize, Serialize};
 
 use crate::error::{Error, Result};
-use crate::output::sidecar::write_atomically;
+use crate::output::atomic::write_atomically;
 use crate::output::tiff::WriterState;
 
 /// Journal format name.

@@ -5,6 +5,7 @@ pub mod fields;
 pub mod iterative;
 pub mod journal;
 pub mod progress;
+pub mod record;
 pub mod run;
 pub mod scene;
 pub mod spec;

@@ -13,16 +13,18 @@ use num_complex::Complex64;
 use rayon::prelude::*;
 
 use super::fields::{manifest_json, FieldEntry, FieldGrid, FieldSink, FieldsState};
-use super::iterative::{build_cell, sidecar_json as iterative_sidecar, IterationRecord};
+use super::iterative::{build_cell, IterationRecord};
 use super::journal::{changed_key, journal_path, Journal, FORMAT};
 use super::progress::{Progress, ProgressMode};
+use super::record::{self, RunRecord, Written};
 use super::scene::{build_scene, Scene};
 use super::spec::SumPath;
 use super::spec::{EncodingRequest, JobSpec};
 use super::spec::{IterativeSpec, Method};
 use crate::encoding::Encoding;
 use crate::error::{Error, Result};
-use crate::output::sidecar::{self, write_atomically, OutputRecord, SidecarInput};
+use crate::output::atomic::write_atomically;
+use crate::output::sidecar::RecordingPlaneRecord;
 use crate::output::tiff::{partial_path, StripWriter, TiffLayout};
 use crate::synthesis::phase_cell::PhaseCell;
 use crate::synthesis::point_sum::{BandScratch, PointSum};
@@ -214,9 +216,10 @@ fn choose_sum(spec: &JobSpec, scene: Scene) -> Result<(Source, Vec<String>)> {
     // the per-pixel f32 path takes them).
     let via_plane = plane.estimate_cost(unit, FFT_PASS_WEIGHT);
     lines.push(format!(
-        "estimated cost (f64 exact updates): direct {direct:.3e}, recording plane {via_plane:.3e} (plane {:.3} mm from the plate, grid margins {:?} px, bands of {} rows)",
+        "estimated cost (f64 exact updates): direct {direct:.3e}, recording plane {via_plane:.3e} (plane {:.3} mm from the plate, grid margins {} x {} px, bands of {} rows)",
         plane.distance() * 1e3,
-        plane.margins(),
+        plane.margins()[0],
+        plane.margins()[1],
         plane.band_rows()
     ));
     // The estimate counts the updates inside the supports; the kernels also walk the slack of the
@@ -269,18 +272,18 @@ impl Source {
         }
     }
     /// `synthesis.path` (and the recording plane's record) for the sidecar.
-    fn sum_path(&self) -> Option<(&'static str, Option<serde_json::Value>)> {
+    fn sum_path(&self) -> Option<(&'static str, Option<RecordingPlaneRecord>)> {
         match self {
             Source::Points(_) => Some(("direct", None)),
             Source::Plane(p, _) => Some((
                 "recording-plane",
-                Some(serde_json::json!({
-                    "distance_mm": p.distance() * 1e3,
-                    "grid_margins_px": p.margins(),
-                    "band_rows": p.band_rows(),
-                    "edge_taper_from": crate::synthesis::recording_plane::TAPER_START,
-                    "method": "emitters summed on a plane parallel to the plate (supports weighted by a quintic smooth step from 80 % of the half band to the Nyquist limit), carried to the plate by a band-limited angular-spectrum step centred on the reference's frequency",
-                })),
+                Some(RecordingPlaneRecord {
+                    distance_mm: p.distance() * 1e3,
+                    grid_margins_px: p.margins(),
+                    band_rows: p.band_rows(),
+                    edge_taper_from: crate::synthesis::recording_plane::TAPER_START,
+                    method: "emitters summed on a plane parallel to the plate (supports weighted by a quintic smooth step from 80 % of the half band to the Nyquist limit), carried to the plate by a band-limited angular-spectrum step centred on the reference's frequency".into(),
+                }),
             )),
             Source::Cell(..) => None,
         }
@@ -334,10 +337,10 @@ impl Source {
         }
     }
     /// The sidecar's synthesis extras.
-    fn sidecar_extra(&self) -> Option<serde_json::Value> {
+    fn sidecar_extra(&self) -> Option<crate::output::sidecar::IterativeRecord> {
         match self {
             Source::Points(_) | Source::Plane(..) => None,
-            Source::Cell(_, rec, it) => Some(iterative_sidecar(it, rec)),
+            Source::Cell(_, rec, it) => Some(record::iterative_record(it, rec)),
         }
     }
 }
@@ -869,18 +872,20 @@ fn finish_plate(
 ) -> Result<RunSummary> {
     let finished = writer.finish()?;
     let sidecar = sidecar_path(&spec.output);
-    let input = SidecarInput {
+    let side = record::sidecar(
         spec,
-        encoding: &prep.encoding,
-        layout: &prep.layout,
-        output: OutputRecord::Tiff(&finished),
-        emitters: prep.emitters,
-        unreachable: prep.source.unreachable(),
-        updates,
-        extra: prep.source.sidecar_extra(),
-        sum_path: prep.source.sum_path(),
-    };
-    if let Err(e) = sidecar::write(&sidecar, &input) {
+        RunRecord {
+            encoding: &prep.encoding,
+            layout: &prep.layout,
+            written: Written::Tiff(&finished),
+            emitters: prep.emitters,
+            unreachable: prep.source.unreachable(),
+            updates,
+            iterative: prep.source.sidecar_extra(),
+            sum_path: prep.source.sum_path(),
+        },
+    );
+    if let Err(e) = side.write(&sidecar) {
         let _ = std::fs::remove_file(&finished.path);
         return Err(e);
     }
@@ -907,22 +912,24 @@ fn finish_fields(
         + "\n";
     write_atomically(&manifest, text.as_bytes())?;
     let sidecar = sidecar_path(&spec.output);
-    let input = SidecarInput {
+    record::sidecar(
         spec,
-        encoding: &prep.encoding,
-        layout: &prep.layout,
-        output: OutputRecord::Fields {
-            manifest: &manifest,
-            count: entries.len(),
-            field_px: grid.field,
+        RunRecord {
+            encoding: &prep.encoding,
+            layout: &prep.layout,
+            written: Written::Fields {
+                manifest: &manifest,
+                count: entries.len(),
+                field_px: grid.field,
+            },
+            emitters: prep.emitters,
+            unreachable: prep.source.unreachable(),
+            updates,
+            iterative: prep.source.sidecar_extra(),
+            sum_path: prep.source.sum_path(),
         },
-        emitters: prep.emitters,
-        unreachable: prep.source.unreachable(),
-        updates,
-        extra: prep.source.sidecar_extra(),
-        sum_path: prep.source.sum_path(),
-    };
-    sidecar::write(&sidecar, &input)?;
+    )
+    .write(&sidecar)?;
     Ok(RunSummary {
         tiff: manifest,
         sidecar,
@@ -1275,7 +1282,7 @@ fn plan_iterative(spec: &JobSpec, it: &IterativeSpec) -> Result<PlanReport> {
     let mut lines = vec![
         format!("job: {}", spec.path.display()),
         format!("plate: {} x {} px, pitch {:.4} x {:.4} um, wavelength {:.2} nm", p.width, p.height, p.pitch[0] * 1e6, p.pitch[1] * 1e6, p.wavelength * 1e9),
-        format!("iterative synthesis: {:?}, {} iterations at most, cell {} x {} px repeated over the plate", it.algorithm, it.iterations, cell[0], cell[1]),
+        format!("iterative synthesis: {}, {} iterations at most, cell {} x {} px repeated over the plate", super::record::algorithm_name(it.algorithm), it.iterations, cell[0], cell[1]),
     ];
     if let super::spec::Geometry::Fourier(f) = it.geometry {
         lines.push(format!(
@@ -1356,7 +1363,7 @@ pub fn plan(spec: &JobSpec) -> Result<PlanReport> {
         th[0].to_degrees(),
         th[1].to_degrees()
     ));
-    lines.push(format!("reference: {:?}", spec.reference));
+    lines.push(format!("reference: {}", spec.reference.describe()));
     if let crate::optics::Reference::Plane { tilt } = spec.reference {
         for (axis, t, m) in [("x", tilt[0], th[0]), ("y", tilt[1], th[1])] {
             if t.abs() > m {

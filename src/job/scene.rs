@@ -270,5 +270,5 @@ pub fn write_emitters_ply(path: &std::path::Path, scene: &Scene) -> Result<()> {
             );
         }
     }
-    crate::output::sidecar::write_atomically(path, t.as_bytes())
+    crate::output::atomic::write_atomically(path, t.as_bytes())
 }

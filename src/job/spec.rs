@@ -218,8 +218,10 @@ pub enum ObjectSource {
 /// How a mesh object is placed, sampled, shaded and occluded.
 #[derive(Clone, Debug, PartialEq)]
 pub struct MeshObject {
-    /// Placement (offset, rotation, scale or fit).
+    /// Placement (offset, turn, rotation, scale or fit).
     pub placement: crate::scene::mesh::Placement,
+    /// The model axis turned to face the viewer (its matrix is the placement's orientation).
+    pub front: crate::scene::mesh::Front,
     /// Emitter count or spacing (metres); None: derived from the plate's resolution at that depth.
     pub density: Option<crate::scene::sampling::Density>,
     /// Sampling pattern.
@@ -639,7 +641,7 @@ impl JobSpec {
                     Some(c) => {
                         let path = dir.join(c);
                         let table = read_calibration(&path)?;
-                        let bits = if levels <= 256 { 8 } else { 16 };
+                        let bits = crate::encoding::phase_bits(levels as u32);
                         let cal = crate::encoding::Calibration::new(table, levels as u32, bits).map_err(|m| Error::input(&path, m))?;
                         EncodingRequest::Fixed(Encoding::CalibratedPhase { levels: levels as u32, calibration: std::sync::Arc::new(cal) })
                     }
@@ -1055,6 +1057,7 @@ fn mesh_object(o: &RawObject, n: usize, bad: &dyn Fn(String) -> Error) -> Result
         }
     };
     Ok(MeshObject {
+        front,
         placement,
         density,
         pattern,

@@ -93,6 +93,23 @@ pub enum Reference {
 }
 
 impl Reference {
+    /// The reference in words and user units, for `plan` and messages.
+    pub fn describe(&self) -> String {
+        match *self {
+            Reference::Plane { tilt } => format!(
+                "plane wave, tilted {:.3} deg in x and {:.3} deg in y",
+                tilt[0].to_degrees(),
+                tilt[1].to_degrees()
+            ),
+            Reference::Spherical { position } => format!(
+                "spherical wave from ({:.3}, {:.3}, {:.3}) mm",
+                position[0] * 1e3,
+                position[1] * 1e3,
+                position[2] * 1e3
+            ),
+        }
+    }
+
     /// Phase of R at (x, y), radians (not reduced).
     #[inline]
     pub fn phase(&self, x: f64, y: f64, k: f64) -> f64 {

@@ -1,4 +1,6 @@
-//! Writing plates: streamed TIFF strips (`tiff`) and the JSON sidecar (`sidecar`).
-//! Depends on `encoding` and `job::spec` for what it records; nothing here computes fields.
+//! Writing plates: streamed TIFF strips (`tiff`), the JSON sidecar's format (`sidecar`) and
+//! small files replaced atomically (`atomic`). Depends on `encoding` and `error` only: `job`
+//! fills in what the sidecar records; nothing here computes fields.
+pub mod atomic;
 pub mod sidecar;
 pub mod tiff;

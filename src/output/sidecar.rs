@@ -1,208 +1,546 @@
 //! The JSON sidecar written beside each plate (`NAME.json` for `NAME.tif`): every physical parameter,
-//! the encoding, counts, tool version, the job's hash and the TIFF's SHA-256. Its fields are
-//! documented in README.md ("The sidecar"); `format_version` changes when a field changes meaning.
-//! It holds no time stamps, so the same job gives the same sidecar.
+//! the viewing convention, the encoding, counts, tool version, the job's hash and the TIFF's
+//! SHA-256. One serde type, [`Sidecar`], is written here and read back by `replay`, so the file
+//! format is this module's types and nothing else: no `Debug` text reaches the file, and renaming
+//! a Rust item cannot change it. Its fields are documented in README.md ("The sidecar");
+//! [`FORMAT_VERSION`] changes when a field changes meaning. It holds no time stamps, so the same
+//! job gives the same sidecar.
+//!
+//! This module knows the file, not the job: `job` fills a [`Sidecar`] from what it ran.
 
 use std::path::Path;
 
-use serde_json::{json, Value};
+use serde::{Deserialize, Serialize};
 
-use super::tiff::{Compression, FinishedTiff, TiffLayout};
-use crate::encoding::Encoding;
+use super::atomic::write_atomically;
 use crate::error::{Error, Result};
-use crate::job::spec::JobSpec;
-use crate::optics::Reference;
 
-/// Version of the sidecar layout.
-pub const FORMAT_VERSION: u32 = 1;
+/// Version of the sidecar layout. 2: the `viewing` section, names instead of program text for
+/// mesh sizes, densities, patterns, phases, occlusion and the iterative algorithm, the replay
+/// lattice of iterative planes.
+pub const FORMAT_VERSION: u32 = 2;
 
-/// Everything the sidecar records.
-pub struct SidecarInput<'a> {
-    /// The job.
-    pub spec: &'a JobSpec,
-    /// Encoding as written (amplitude scale resolved).
-    pub encoding: &'a Encoding,
-    /// TIFF layout.
-    pub layout: &'a TiffLayout,
+/// The `format` field of every sidecar.
+pub const FORMAT_NAME: &str = "fringemill-sidecar";
+
+/// The whole sidecar.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct Sidecar {
+    /// Always [`FORMAT_NAME`].
+    pub format: String,
+    /// [`FORMAT_VERSION`].
+    pub format_version: u32,
+    /// The program that wrote it.
+    pub tool: ToolRecord,
+    /// The job file.
+    pub job: JobRecord,
+    /// The plate's geometry.
+    pub hologram: HologramRecord,
+    /// Which side the viewer stands on, how models are turned, how replays are drawn.
+    pub viewing: ViewingRecord,
+    /// The job's reference wave.
+    pub reference: ReferenceRecord,
+    /// The job's objects, in order.
+    pub objects: Vec<ObjectRecord>,
+    /// Iterative synthesis (null for point sums).
+    pub iterative: Option<IterativeRecord>,
+    /// How F was computed.
+    pub synthesis: SynthesisRecord,
+    /// How F became samples.
+    pub encoding: EncodingRecord,
     /// What was written.
-    pub output: OutputRecord<'a>,
-    /// Emitters summed.
-    pub emitters: usize,
-    /// Emitters with no support on the plate.
-    pub unreachable: usize,
-    /// Point-pixel updates done.
-    pub updates: u64,
-    /// Method-specific record (iterative synthesis), stored under `iterative`.
-    pub extra: Option<Value>,
-    /// How the point sum was computed: `synthesis.path`, and `synthesis.recording_plane` when
-    /// that path ran.
-    pub sum_path: Option<(&'static str, Option<Value>)>,
+    pub output: OutputFiles,
 }
 
-/// What a run wrote: one TIFF, or a set of field files with their manifest.
-pub enum OutputRecord<'a> {
-    /// One TIFF.
-    Tiff(&'a FinishedTiff),
-    /// Field files.
-    Fields {
-        /// The manifest file.
-        manifest: &'a Path,
-        /// Number of fields.
-        count: usize,
-        /// Field size.
-        field_px: [u32; 2],
-    },
+/// `tool`
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct ToolRecord {
+    /// "fringemill".
+    pub name: String,
+    /// Package version.
+    pub version: String,
 }
 
-fn reference_json(r: &Reference) -> Value {
-    match *r {
-        Reference::Plane { tilt } => {
-            json!({"kind": "plane", "tilt_deg": [tilt[0].to_degrees(), tilt[1].to_degrees()]})
-        }
-        Reference::Spherical { position } => {
-            json!({"kind": "spherical", "position_mm": [position[0] * 1e3, position[1] * 1e3, position[2] * 1e3]})
+impl ToolRecord {
+    /// This program.
+    pub fn this() -> ToolRecord {
+        ToolRecord {
+            name: "fringemill".into(),
+            version: env!("CARGO_PKG_VERSION").into(),
         }
     }
 }
 
-/// The sidecar as a JSON value.
-pub fn to_json(i: &SidecarInput) -> Value {
-    let p = &i.spec.plate;
-    let reference = reference_json(&i.spec.reference);
-    let encoding = match *i.encoding {
-        Encoding::CalibratedPhase {
-            levels,
-            ref calibration,
-        } => json!({
-            "kind": "phase", "levels": levels, "bits_per_sample": i.encoding.bits_per_sample(),
-            "stored_value": "the grey value of the calibration table whose measured phase is nearest (mod 2 pi) to 2 pi g / N, g = round(N arg(F) / 2 pi) mod N",
-            "calibration": {"table": calibration.table, "level_to_grey": calibration.level_to_grey},
-        }),
-        Encoding::Phase { levels } => json!({
-            "kind": "phase", "levels": levels, "bits_per_sample": i.encoding.bits_per_sample(),
-            "stored_value": "s = round(g 2^b / N), g = round(N arg(F) / 2 pi) mod N; displayed phase 2 pi s / 2^b"
-        }),
-        Encoding::BinaryPhase => {
-            json!({"kind": "binary-phase", "bits_per_sample": 1, "stored_value": "1 (phase pi) where Re F < 0, else 0"})
-        }
-        Encoding::BinaryAmplitude => {
-            json!({"kind": "binary-amplitude", "bits_per_sample": 1, "stored_value": "1 (clear) where Re F >= 0, else 0 (opaque)"})
-        }
-        Encoding::Amplitude { bits, scale } => json!({
-            "kind": "amplitude", "bits_per_sample": bits, "bipolar_scale": scale,
-            "stored_value": "s = round((1 + Re F / bipolar_scale) / 2 (2^b - 1)), clipped"
-        }),
-    };
-    let objects: Vec<Value> = i
-        .spec
-        .objects
-        .iter()
-        .map(|o| {
-            let file = o.points.file_name().map(|f| f.to_string_lossy().into_owned());
-            let mut v = match &o.source {
-                crate::job::spec::ObjectSource::Image { distance, shift_px } => json!({"image": file, "distance_mm": distance.map(|d| d * 1e3), "shift_px": shift_px}),
-                crate::job::spec::ObjectSource::Points => json!({"points": file, "offset_mm": [o.offset[0] * 1e3, o.offset[1] * 1e3, o.offset[2] * 1e3], "scale": o.scale}),
-                crate::job::spec::ObjectSource::Mesh(m) => json!({
-                    "mesh": file,
-                    "offset_mm": m.placement.offset_mm,
-                    "rotation_deg": m.placement.rotation_deg,
-                    "size": format!("{:?}", m.placement.size),
-                    "density": m.density.map(|d| format!("{d:?}")).unwrap_or_else(|| "replay cell lambda z / D".into()),
-                    "pattern": format!("{:?}", m.pattern),
-                    "seed": m.seed,
-                    "light_dir": m.shading.light_dir, "ambient": m.shading.ambient, "smooth_normals": m.shading.smooth_normals,
-                    "phase": format!("{:?}", m.phase),
-                    "occlusion": format!("{:?}", m.occlusion),
-                }),
-            };
-            v["gain"] = json!(o.gain);
-            if let Some(r) = o.reference {
-                v["reference"] = reference_json(&r);
-            }
-            v
-        })
-        .collect();
-    let s = &i.spec.synthesis;
-    let compression = match i.layout.compression {
-        Compression::None => "none",
-        Compression::Deflate => "deflate",
-    };
-    let output = match &i.output {
-        OutputRecord::Tiff(t) => json!({
-            "file": t.path.file_name().map(|f| f.to_string_lossy().into_owned()),
-            "bytes": t.bytes,
-            "sha256": t.sha256,
-            "bigtiff": t.bigtiff,
-            "compression": compression,
-            "rows_per_strip": i.layout.rows_per_strip,
-            "strips": t.strips,
-            "photometric": "min-is-black",
-        }),
-        OutputRecord::Fields {
-            manifest,
-            count,
-            field_px,
-        } => json!({
-            "fields_manifest": manifest.file_name().map(|f| f.to_string_lossy().into_owned()),
-            "fields": count,
-            "field_px": field_px,
-            "compression": compression,
-            "rows_per_strip": i.layout.rows_per_strip,
-            "photometric": "min-is-black",
-        }),
-    };
-    json!({
-        "format": "fringemill-sidecar",
-        "format_version": FORMAT_VERSION,
-        "tool": {"name": "fringemill", "version": env!("CARGO_PKG_VERSION")},
-        "job": {"file": i.spec.path.file_name().map(|f| f.to_string_lossy().into_owned()), "sha256": i.spec.sha256},
-        "hologram": {
-            "width_px": p.width, "height_px": p.height,
-            "pitch_um": [p.pitch[0] * 1e6, p.pitch[1] * 1e6],
-            "wavelength_nm": p.wavelength * 1e9,
-            "size_mm": [p.size()[0] * 1e3, p.size()[1] * 1e3],
-            "max_half_angle_deg": [p.max_half_angle()[0].to_degrees(), p.max_half_angle()[1].to_degrees()],
-            "pixel_centre": "x = (j - (W-1)/2) px, y = ((H-1)/2 - i) py; row 0 is the top row; y up",
-        },
-        "reference": reference,
-        "objects": objects,
-        "iterative": i.extra,
-        "synthesis": {
-            "method": match i.spec.method { crate::job::spec::Method::PointSum => "point-sum", crate::job::spec::Method::Iterative(_) => "iterative" },
-            "approximation": s.approximation.name(),
-            "precision": s.precision.name(),
-            "path": i.sum_path.as_ref().map(|p| p.0),
-            "recording_plane": i.sum_path.as_ref().and_then(|p| p.1.clone()),
-            "obliquity": s.obliquity,
-            "anti_aliasing": "emitter j contributes where |(d_j - d_R)_x| <= lambda / (2 px) and likewise in y (d: local direction cosines)",
-            "fringe_term": "F = O conj(R), O = sum a_j exp(i (k r_j + phi_j)) / r_j",
-            "emitters": i.emitters,
-            "emitters_without_support": i.unreachable,
-            "point_pixel_updates": i.updates,
-        },
-        "encoding": encoding,
-        "output": output,
-    })
+/// `job`
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct JobRecord {
+    /// File name of the job.
+    pub file: Option<String>,
+    /// SHA-256 of the job file's bytes.
+    pub sha256: String,
 }
 
-/// Writes the sidecar under a temporary name and renames it into place.
-pub fn write(path: &Path, i: &SidecarInput) -> Result<()> {
-    let text = serde_json::to_string_pretty(&to_json(i)).expect("JSON of plain values") + "\n";
-    write_atomically(path, text.as_bytes())
+/// `hologram`
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct HologramRecord {
+    /// Columns.
+    pub width_px: u32,
+    /// Rows.
+    pub height_px: u32,
+    /// Pitch [x, y], micrometres.
+    pub pitch_um: [f64; 2],
+    /// Wavelength, nanometres.
+    pub wavelength_nm: f64,
+    /// Size [x, y], millimetres.
+    pub size_mm: [f64; 2],
+    /// asin(lambda / 2p) per axis, degrees.
+    pub max_half_angle_deg: [f64; 2],
+    /// Where pixel centres are.
+    pub pixel_centre: String,
 }
 
-/// Writes `bytes` to `path.partial`, syncs, renames to `path`; removes the partial on failure.
-pub fn write_atomically(path: &Path, bytes: &[u8]) -> Result<()> {
-    use std::io::Write;
-    let tmp = super::tiff::partial_path(path);
-    let res = (|| -> std::io::Result<()> {
-        let mut f = std::fs::File::create(&tmp)?;
-        f.write_all(bytes)?;
-        f.sync_all()?;
-        std::fs::rename(&tmp, path)
-    })();
-    res.map_err(|e| {
-        let _ = std::fs::remove_file(&tmp);
-        Error::io(path, e)
-    })
+/// `viewing`: physics.md, "Viewing side".
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct ViewingRecord {
+    /// Where the viewer stands.
+    pub viewer: String,
+    /// How meshes are turned into plate coordinates.
+    pub meshes: String,
+    /// How point files are placed.
+    pub points: String,
+    /// How `reconstruct` draws its images.
+    pub replay_images: String,
+}
+
+impl ViewingRecord {
+    /// The conventions this tool follows.
+    pub fn this() -> ViewingRecord {
+        ViewingRecord {
+            viewer: "stands on the side opposite the scene (z < 0) and looks towards +z through the plate at the virtual image; plate +x is the viewer's left".into(),
+            meshes: "the model's front (front key, +Z by default) is turned to plate -z and its up (+Y, or +Z for a front along Y) to plate +y, so the model faces the viewer right-reading (for +Z a half turn about y: model +X to plate -x); then rotation_deg, scale or fit_mm, offset_mm".into(),
+            points: "point files are in plate coordinates as given".into(),
+            replay_images: "depth replays are drawn as the viewer sees them (image right = plate -x, image up = plate +y); Fourier replays on the FFT lattice (optical axis on sample floor(N/2), image right = +x of the focal plane)".into(),
+        }
+    }
+}
+
+/// `reference` (and an object's own reference).
+#[derive(Clone, Copy, Debug, PartialEq, Serialize, Deserialize)]
+#[serde(tag = "kind", rename_all = "kebab-case")]
+pub enum ReferenceRecord {
+    /// Plane wave.
+    Plane {
+        /// Tilts [x, y], degrees.
+        tilt_deg: [f64; 2],
+    },
+    /// Spherical wave.
+    Spherical {
+        /// Source position, millimetres.
+        position_mm: [f64; 3],
+    },
+}
+
+/// One `[[object]]`.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct ObjectRecord {
+    /// The source and its placement.
+    #[serde(flatten)]
+    pub source: ObjectSourceRecord,
+    /// Amplitude factor.
+    pub gain: f64,
+    /// Own reference (a separate channel), if any.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub reference: Option<ReferenceRecord>,
+}
+
+/// What an object is made of.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[serde(untagged)]
+pub enum ObjectSourceRecord {
+    /// A target image of iterative synthesis.
+    Image {
+        /// File name.
+        image: Option<String>,
+        /// Distance of its plane (Fresnel geometry), millimetres.
+        distance_mm: Option<f64>,
+        /// Shift from the axis [right, up], replay samples.
+        shift_px: [i64; 2],
+    },
+    /// A point cloud.
+    Points {
+        /// File name.
+        points: Option<String>,
+        /// Offset, millimetres.
+        offset_mm: [f64; 3],
+        /// Scale.
+        scale: f64,
+    },
+    /// A mesh.
+    Mesh(Box<MeshRecord>),
+}
+
+/// A mesh object's placement, sampling and shading.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct MeshRecord {
+    /// File name.
+    pub mesh: Option<String>,
+    /// Millimetres per file unit.
+    pub unit_mm: f64,
+    /// The model axis turned to face the viewer.
+    pub front: String,
+    /// Rotations about x, y, z after the turn, degrees.
+    pub rotation_deg: [f64; 3],
+    /// Scale (when not fitted).
+    pub scale: Option<f64>,
+    /// Largest extent, millimetres (when fitted).
+    pub fit_mm: Option<f64>,
+    /// Offset, millimetres.
+    pub offset_mm: [f64; 3],
+    /// Emitter density, in words.
+    pub density: String,
+    /// "stratified" or "random".
+    pub pattern: String,
+    /// Sampling seed.
+    pub seed: u64,
+    /// Direction towards the light, plate coordinates.
+    pub light_dir: [f64; 3],
+    /// Ambient share.
+    pub ambient: f64,
+    /// Smooth (vertex) normals.
+    pub smooth_normals: bool,
+    /// "random" or "constant R" (radians).
+    pub phase: String,
+    /// "none", "centre" or "tiles".
+    pub occlusion: String,
+}
+
+/// `iterative`
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct IterativeRecord {
+    /// "fourier" or "fresnel".
+    pub geometry: String,
+    /// Focal length (Fourier geometry), millimetres.
+    pub focal_mm: Option<f64>,
+    /// "gs", "weighted-gs" or "mixed-region".
+    pub algorithm: String,
+    /// Mixed-region: the share of the free region's amplitude kept.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub mix: Option<f64>,
+    /// Where the optical axis sits on the replay planes.
+    pub replay_lattice: String,
+    /// Iterations done.
+    pub iterations_run: usize,
+    /// Stopped before the iteration count.
+    pub stopped_early: bool,
+    /// Error after each iteration (first: the start).
+    pub error_per_iteration: Vec<f64>,
+    /// Cell size [w, h].
+    pub cell_px: [usize; 2],
+    /// Replay-plane pitch per image, micrometres.
+    pub replay_pitch_um: Vec<[f64; 2]>,
+    /// Blazed carrier, degrees.
+    pub carrier_deg: [f64; 2],
+    /// Lens term, millimetres.
+    pub lens_mm: Option<f64>,
+    /// Seed of the start phases.
+    pub seed: u64,
+    /// Quantized iterations at the end.
+    pub quantize_last: usize,
+}
+
+/// `synthesis`
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct SynthesisRecord {
+    /// "point-sum" or "iterative".
+    pub method: String,
+    /// "exact" or "fresnel".
+    pub approximation: String,
+    /// "f64" or "f32": which kernel ran.
+    pub precision: String,
+    /// "direct" or "recording-plane" (point sums).
+    pub path: Option<String>,
+    /// The recording plane, when that path ran.
+    pub recording_plane: Option<RecordingPlaneRecord>,
+    /// Obliquity factor z / r included.
+    pub obliquity: bool,
+    /// The anti-aliasing rule.
+    pub anti_aliasing: String,
+    /// The fringe term.
+    pub fringe_term: String,
+    /// Emitters summed.
+    pub emitters: usize,
+    /// Emitters with no support on the plate.
+    pub emitters_without_support: usize,
+    /// Point-pixel updates done.
+    pub point_pixel_updates: u64,
+}
+
+/// `synthesis.recording_plane`
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct RecordingPlaneRecord {
+    /// Distance plate -> plane, millimetres.
+    pub distance_mm: f64,
+    /// Margins of the plane's grid [x, y], pixels.
+    pub grid_margins_px: [usize; 2],
+    /// Rows per band.
+    pub band_rows: usize,
+    /// Start of the soft support edge, as a share of the half band.
+    pub edge_taper_from: f64,
+    /// The method in words.
+    pub method: String,
+}
+
+/// `encoding`
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[serde(tag = "kind", rename_all = "kebab-case")]
+pub enum EncodingRecord {
+    /// N phase levels (with a modulator's calibration table, if any).
+    Phase {
+        /// N.
+        levels: u32,
+        /// 8 or 16.
+        bits_per_sample: u8,
+        /// The formula.
+        stored_value: String,
+        /// The calibration applied.
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        calibration: Option<CalibrationRecord>,
+    },
+    /// 1 bit, phase 0 or pi.
+    BinaryPhase {
+        /// 1.
+        bits_per_sample: u8,
+        /// The formula.
+        stored_value: String,
+    },
+    /// 1 bit, opaque or clear.
+    BinaryAmplitude {
+        /// 1.
+        bits_per_sample: u8,
+        /// The formula.
+        stored_value: String,
+    },
+    /// Grey bipolar intensity.
+    Amplitude {
+        /// 8 or 16.
+        bits_per_sample: u8,
+        /// B0.
+        bipolar_scale: f64,
+        /// The formula.
+        stored_value: String,
+    },
+}
+
+/// A modulator calibration, as applied.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct CalibrationRecord {
+    /// Measured (grey, phase in radians) pairs.
+    pub table: Vec<(u16, f64)>,
+    /// Grey written for each level.
+    pub level_to_grey: Vec<u16>,
+}
+
+/// `output`
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[serde(untagged)]
+pub enum OutputFiles {
+    /// One TIFF.
+    Tiff {
+        /// File name.
+        file: Option<String>,
+        /// Size.
+        bytes: u64,
+        /// SHA-256 of the whole file.
+        sha256: String,
+        /// BigTIFF.
+        bigtiff: bool,
+        /// "none" or "deflate".
+        compression: String,
+        /// Rows per strip.
+        rows_per_strip: u32,
+        /// Strips.
+        strips: u32,
+        /// "min-is-black".
+        photometric: String,
+    },
+    /// Field files with a manifest.
+    Fields {
+        /// The manifest's file name.
+        fields_manifest: Option<String>,
+        /// Number of fields.
+        fields: usize,
+        /// Field size [w, h].
+        field_px: [u32; 2],
+        /// "none" or "deflate".
+        compression: String,
+        /// Rows per strip.
+        rows_per_strip: u32,
+        /// "min-is-black".
+        photometric: String,
+    },
+}
+
+impl Sidecar {
+    /// The sidecar as JSON text (pretty, with a final newline).
+    pub fn to_text(&self) -> String {
+        serde_json::to_string_pretty(self).expect("JSON of plain values") + "\n"
+    }
+
+    /// Reads and checks a sidecar: JSON, the format name and version, every field of its type.
+    pub fn read(path: &Path) -> Result<Sidecar> {
+        let bytes = std::fs::read(path).map_err(|e| Error::io(path, e))?;
+        let v: serde_json::Value = serde_json::from_slice(&bytes)
+            .map_err(|e| Error::input(path, format!("not JSON: {e}")))?;
+        if v["format"] != FORMAT_NAME {
+            return Err(Error::input(
+                path,
+                "not a fringemill sidecar (format field)",
+            ));
+        }
+        if v["format_version"] != FORMAT_VERSION {
+            return Err(Error::input(
+                path,
+                format!(
+                    "sidecar format_version {} is not the {FORMAT_VERSION} this version reads: rerun the job with this version",
+                    v["format_version"]
+                ),
+            ));
+        }
+        serde_json::from_value(v).map_err(|e| Error::input(path, format!("sidecar field: {e}")))
+    }
+
+    /// Writes the sidecar under a temporary name and renames it into place.
+    pub fn write(&self, path: &Path) -> Result<()> {
+        write_atomically(path, self.to_text().as_bytes())
+    }
+}
+
+#[cfg(test)]
+mod unit_tests {
+    use super::*;
+
+    fn sample() -> Sidecar {
+        Sidecar {
+            format: FORMAT_NAME.into(),
+            format_version: FORMAT_VERSION,
+            tool: ToolRecord::this(),
+            job: JobRecord {
+                file: Some("j.toml".into()),
+                sha256: "ab".into(),
+            },
+            hologram: HologramRecord {
+                width_px: 4,
+                height_px: 3,
+                pitch_um: [1.0, 2.0],
+                wavelength_nm: 532.0,
+                size_mm: [0.004, 0.006],
+                max_half_angle_deg: [15.4, 7.6],
+                pixel_centre: "centres".into(),
+            },
+            viewing: ViewingRecord::this(),
+            reference: ReferenceRecord::Plane {
+                tilt_deg: [0.0, 30.0],
+            },
+            objects: vec![
+                ObjectRecord {
+                    source: ObjectSourceRecord::Points {
+                        points: Some("p.csv".into()),
+                        offset_mm: [0.0, 0.0, 5.0],
+                        scale: 1.0,
+                    },
+                    gain: 1.0,
+                    reference: Some(ReferenceRecord::Spherical {
+                        position_mm: [0.0, 0.0, -50.0],
+                    }),
+                },
+                ObjectRecord {
+                    source: ObjectSourceRecord::Image {
+                        image: Some("t.png".into()),
+                        distance_mm: None,
+                        shift_px: [1, -2],
+                    },
+                    gain: 1.0,
+                    reference: None,
+                },
+            ],
+            iterative: None,
+            synthesis: SynthesisRecord {
+                method: "point-sum".into(),
+                approximation: "exact".into(),
+                precision: "f32".into(),
+                path: Some("direct".into()),
+                recording_plane: None,
+                obliquity: false,
+                anti_aliasing: "a".into(),
+                fringe_term: "f".into(),
+                emitters: 1,
+                emitters_without_support: 0,
+                point_pixel_updates: 12,
+            },
+            encoding: EncodingRecord::Phase {
+                levels: 8,
+                bits_per_sample: 8,
+                stored_value: "s".into(),
+                calibration: None,
+            },
+            output: OutputFiles::Tiff {
+                file: Some("p.tif".into()),
+                bytes: 100,
+                sha256: "cd".into(),
+                bigtiff: false,
+                compression: "none".into(),
+                rows_per_strip: 3,
+                strips: 1,
+                photometric: "min-is-black".into(),
+            },
+        }
+    }
+
+    #[test]
+    fn round_trips_through_its_own_text() {
+        let s = sample();
+        let text = s.to_text();
+        let v: serde_json::Value = serde_json::from_str(&text).unwrap();
+        // The documented layout: tagged kinds, flattened objects, null for absent sections.
+        assert_eq!(v["reference"]["kind"], "plane");
+        assert_eq!(v["objects"][0]["points"], "p.csv");
+        assert_eq!(v["objects"][0]["reference"]["kind"], "spherical");
+        assert_eq!(v["objects"][1]["image"], "t.png");
+        assert!(v["iterative"].is_null());
+        assert_eq!(v["encoding"]["kind"], "phase");
+        assert_eq!(v["output"]["strips"], 1);
+        let back: Sidecar = serde_json::from_value(v).unwrap();
+        assert_eq!(back, s);
+    }
+
+    #[test]
+    fn read_refuses_other_formats_and_versions() {
+        let d = tempfile::tempdir().unwrap();
+        let p = d.path().join("s.json");
+        let mut v = serde_json::to_value(sample()).unwrap();
+        v["format_version"] = 1.into();
+        std::fs::write(&p, v.to_string()).unwrap();
+        let e = Sidecar::read(&p).unwrap_err().to_string();
+        assert!(e.contains("format_version 1"), "{e}");
+        v["format"] = "other".into();
+        std::fs::write(&p, v.to_string()).unwrap();
+        assert!(Sidecar::read(&p)
+            .unwrap_err()
+            .to_string()
+            .contains("format field"));
+        std::fs::write(&p, "{").unwrap();
+        assert!(Sidecar::read(&p)
+            .unwrap_err()
+            .to_string()
+            .contains("not JSON"));
+        let mut v = serde_json::to_value(sample()).unwrap();
+        v["hologram"]["width_px"] = "wide".into();
+        std::fs::write(&p, v.to_string()).unwrap();
+        assert!(Sidecar::read(&p)
+            .unwrap_err()
+            .to_string()
+            .contains("sidecar field"));
+        sample().write(&p).unwrap();
+        assert_eq!(Sidecar::read(&p).unwrap(), sample());
+    }
 }

@@ -77,7 +77,7 @@ pub fn write_png(
         wr.write_image_data(&data)
             .map_err(|e| Error::input(path, e.to_string()))?;
     }
-    crate::output::sidecar::write_atomically(path, &buf)
+    crate::output::atomic::write_atomically(path, &buf)
 }
 
 /// Reads a grey (or colour, converted to luminance) 8/16-bit PNG as intensities in [0, 1].

@@ -23,6 +23,7 @@ use crate::encoding::Encoding;
 use crate::error::{Error, Result};
 use crate::optics::propagation::{Grid, PropagationPlanner};
 use crate::optics::{Plate, Reference};
+use crate::output::sidecar::{EncodingRecord, ReferenceRecord, Sidecar};
 
 /// A plate on disk with what its sidecar says about it.
 #[derive(Clone, Debug)]
@@ -70,15 +71,6 @@ impl Window {
     }
 }
 
-fn num(v: &serde_json::Value, path: &Path, key: &str) -> Result<f64> {
-    v.as_f64().filter(|x| x.is_finite()).ok_or_else(|| {
-        Error::input(
-            path,
-            format!("sidecar field {key} is missing or not a number"),
-        )
-    })
-}
-
 /// Sidecar path of a TIFF (`NAME.json`).
 pub fn sidecar_of(tif: &Path) -> PathBuf {
     tif.with_extension("json")
@@ -88,81 +80,81 @@ impl PlateFile {
     /// Opens a plate: reads its sidecar (`NAME.json` beside `NAME.tif`) and checks the TIFF's size.
     pub fn open(tif: &Path) -> Result<PlateFile> {
         let sc = sidecar_of(tif);
-        let bytes = std::fs::read(&sc).map_err(|e| Error::io(&sc, e))?;
-        let v: serde_json::Value = serde_json::from_slice(&bytes)
-            .map_err(|e| Error::input(&sc, format!("not JSON: {e}")))?;
-        if v["format"] != "fringemill-sidecar" {
-            return Err(Error::input(&sc, "not a fringemill sidecar (format field)"));
-        }
-        let h = &v["hologram"];
-        let plate = Plate {
-            width: num(&h["width_px"], &sc, "hologram.width_px")? as u32,
-            height: num(&h["height_px"], &sc, "hologram.height_px")? as u32,
-            pitch: [
-                num(&h["pitch_um"][0], &sc, "hologram.pitch_um")? * 1e-6,
-                num(&h["pitch_um"][1], &sc, "hologram.pitch_um")? * 1e-6,
-            ],
-            wavelength: num(&h["wavelength_nm"], &sc, "hologram.wavelength_nm")? * 1e-9,
-        };
-        let r = &v["reference"];
-        let reference = match r["kind"].as_str() {
-            Some("plane") => Reference::Plane {
-                tilt: [
-                    num(&r["tilt_deg"][0], &sc, "reference.tilt_deg")?.to_radians(),
-                    num(&r["tilt_deg"][1], &sc, "reference.tilt_deg")?.to_radians(),
-                ],
-            },
-            Some("spherical") => {
-                let p = |i: usize| {
-                    num(&r["position_mm"][i], &sc, "reference.position_mm").map(|x| x * 1e-3)
-                };
-                Reference::Spherical {
-                    position: [p(0)?, p(1)?, p(2)?],
-                }
-            }
-            _ => {
-                return Err(Error::input(
+        let side = Sidecar::read(&sc)?;
+        let h = &side.hologram;
+        let positive = |v: f64, key: &str| -> Result<f64> {
+            if v.is_finite() && v > 0.0 {
+                Ok(v)
+            } else {
+                Err(Error::input(
                     &sc,
-                    "reference.kind is not plane or spherical",
+                    format!("sidecar field {key} = {v} must be > 0"),
                 ))
             }
         };
-        let e = &v["encoding"];
-        let encoding = match e["kind"].as_str() {
-            Some("phase") => {
-                let levels = num(&e["levels"], &sc, "encoding.levels")? as u32;
-                match e["calibration"]["table"].as_array() {
-                    None => Encoding::Phase { levels },
-                    Some(rows) => {
-                        let table = rows
-                            .iter()
-                            .map(|r| Some((r[0].as_u64()? as u16, r[1].as_f64()?)))
-                            .collect::<Option<Vec<_>>>()
-                            .ok_or_else(|| {
-                                Error::input(&sc, "encoding.calibration.table is malformed")
-                            })?;
-                        let bits = if levels <= 256 { 8 } else { 16 };
-                        let calibration = crate::encoding::Calibration::new(table, levels, bits)
-                            .map_err(|m| Error::input(&sc, m))?;
-                        Encoding::CalibratedPhase {
-                            levels,
-                            calibration: std::sync::Arc::new(calibration),
-                        }
+        let plate = Plate {
+            width: h.width_px,
+            height: h.height_px,
+            pitch: [
+                positive(h.pitch_um[0], "hologram.pitch_um")? * 1e-6,
+                positive(h.pitch_um[1], "hologram.pitch_um")? * 1e-6,
+            ],
+            wavelength: positive(h.wavelength_nm, "hologram.wavelength_nm")? * 1e-9,
+        };
+        let finite = |v: &[f64], key: &str| -> Result<()> {
+            if v.iter().all(|x| x.is_finite()) {
+                Ok(())
+            } else {
+                Err(Error::input(
+                    &sc,
+                    format!("sidecar field {key} is not finite"),
+                ))
+            }
+        };
+        let reference = match side.reference {
+            ReferenceRecord::Plane { tilt_deg } => {
+                finite(&tilt_deg, "reference.tilt_deg")?;
+                Reference::Plane {
+                    tilt: tilt_deg.map(f64::to_radians),
+                }
+            }
+            ReferenceRecord::Spherical { position_mm } => {
+                finite(&position_mm, "reference.position_mm")?;
+                Reference::Spherical {
+                    position: position_mm.map(|v| v * 1e-3),
+                }
+            }
+        };
+        let encoding = match side.encoding {
+            EncodingRecord::Phase {
+                levels,
+                calibration,
+                ..
+            } => match calibration {
+                None => Encoding::Phase { levels },
+                Some(c) => {
+                    let calibration = crate::encoding::Calibration::new(
+                        c.table,
+                        levels,
+                        crate::encoding::phase_bits(levels),
+                    )
+                    .map_err(|m| Error::input(&sc, m))?;
+                    Encoding::CalibratedPhase {
+                        levels,
+                        calibration: std::sync::Arc::new(calibration),
                     }
                 }
-            }
-            Some("binary-phase") => Encoding::BinaryPhase,
-            Some("binary-amplitude") => Encoding::BinaryAmplitude,
-            Some("amplitude") => Encoding::Amplitude {
-                bits: num(&e["bits_per_sample"], &sc, "encoding.bits_per_sample")? as u8,
-                scale: num(&e["bipolar_scale"], &sc, "encoding.bipolar_scale")?,
             },
-            _ => {
-                return Err(Error::input(
-                    &sc,
-                    "encoding.kind is not one this tool writes",
-                ))
-            }
+            EncodingRecord::BinaryPhase { .. } => Encoding::BinaryPhase,
+            EncodingRecord::BinaryAmplitude { .. } => Encoding::BinaryAmplitude,
+            EncodingRecord::Amplitude {
+                bits_per_sample,
+                bipolar_scale,
+                ..
+            } => Encoding::Amplitude {
+                bits: bits_per_sample,
+                scale: positive(bipolar_scale, "encoding.bipolar_scale")?,
+            },
         };
         let f = std::fs::File::open(tif).map_err(|e| Error::io(tif, e))?;
         let mut d = Decoder::new(std::io::BufReader::new(f))
@@ -536,7 +528,7 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
         "planes": planes,
     });
     let jp = req.out.with_extension("json");
-    crate::output::sidecar::write_atomically(
+    crate::output::atomic::write_atomically(
         &jp,
         (serde_json::to_string_pretty(&json).expect("plain data") + "\n").as_bytes(),
     )?;

@@ -67,8 +67,9 @@ pub struct Shading {
 }
 
 impl Default for Shading {
-    /// Light from the viewer's side of the plate, slightly above and left (`[-0.3, 0.4, -1]`),
-    /// ambient 0.2, smooth normals.
+    /// Light from the viewer's side of the plate (z < 0), slightly above and to the viewer's
+    /// right (`[-0.3, 0.4, -1]` in plate coordinates: plate -x is the viewer's right, physics.md
+    /// "Viewing side"), ambient 0.2, smooth normals.
     fn default() -> Self {
         Shading {
             light_dir: [-0.3, 0.4, -1.0],

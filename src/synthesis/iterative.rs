@@ -156,7 +156,7 @@ fn start_phase(seed: u64, index: usize) -> f64 {
 /// The phase the phase encoding shows for a phase `phi` in [0, 2 pi) with `levels` levels:
 /// `g = round(N phi / 2 pi) mod N`, `s = round(g 2^b / N)`, result `2 pi s / 2^b`.
 pub fn shown_phase(phi: f64, levels: u32) -> f64 {
-    let b: u32 = if levels <= 256 { 8 } else { 16 };
+    let b = crate::encoding::phase_bits(levels) as u32;
     TAU * shown_sample(phi, levels) as f64 / (1u64 << b) as f64
 }
 
@@ -165,7 +165,7 @@ pub fn shown_phase(phi: f64, levels: u32) -> f64 {
 fn shown_sample(phi: f64, levels: u32) -> usize {
     let n = levels as u64;
     let g = ((levels as f64 * phi / TAU).round() as u64) % n;
-    let b: u32 = if levels <= 256 { 8 } else { 16 };
+    let b = crate::encoding::phase_bits(levels) as u32;
     ((2 * (g << b) + n) / (2 * n)) as usize
 }
 

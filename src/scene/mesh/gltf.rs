@@ -7,7 +7,8 @@
 //! skipped). A node whose transform mirrors (negative determinant) has its winding reversed,
 //! so that front faces stay front faces, as the specification asks.
 //!
-//! Read attributes: `POSITION` (millimetres), `NORMAL` (transformed by the inverse transpose),
+//! Read attributes: `POSITION` (metres, glTF 2.0 sec. 3.4; kept in file units here, scaled when
+//! placed), `NORMAL` (transformed by the inverse transpose),
 //! `COLOR_0` (linear RGB, alpha dropped) and the `TEXCOORD_n` set used by the base colour
 //! texture. Materials give `baseColorFactor`, `baseColorTexture` (PNG or JPEG, embedded in a
 //! buffer view, a `data:` URI, or a file beside the glTF file) with its sampler's filter and

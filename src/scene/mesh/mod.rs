@@ -42,7 +42,7 @@ pub mod stl;
 /// A triangle mesh with optional per-vertex attributes and per-triangle materials.
 #[derive(Clone, Debug)]
 pub struct Mesh {
-    /// Vertex positions: millimetres as read from a file, metres in plate coordinates after
+    /// Vertex positions: the file's own unit as read, metres in plate coordinates after
     /// [`Mesh::placed`].
     pub positions: Vec<[f64; 3]>,
     /// Triangles as indices into `positions` (anticlockwise seen from the front).
@@ -321,7 +321,7 @@ pub fn unit_mm(name: &str) -> Option<f64> {
 /// How the size of a placed mesh is chosen.
 #[derive(Clone, Copy, Debug, PartialEq)]
 pub enum PlacementSize {
-    /// File units are millimetres times this factor (1 keeps the file's millimetres).
+    /// Millimetres per file unit ([`Placement::unit_mm`]) times this factor.
     Scale(f64),
     /// The largest bounding-box extent of the rotated mesh becomes this many millimetres.
     FitMm(f64),

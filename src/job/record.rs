@@ -1,0 +1,315 @@
+//! What a job's sidecar records: the job's parameters, how they were run and what was written,
+//! as an [`output::sidecar::Sidecar`](crate::output::sidecar::Sidecar). Every value the file
+//! holds is a number or a word chosen here (the job file's own spelling where there is one),
+//! never a program's `Debug` text.
+
+use std::path::Path;
+
+use super::iterative::IterationRecord;
+use super::spec::{
+    AlgorithmChoice, Geometry, IterativeSpec, JobSpec, Method, ObjectSource, Occlusion,
+};
+use crate::encoding::Encoding;
+use crate::optics::Reference;
+use crate::output::sidecar::{
+    CalibrationRecord, EncodingRecord, HologramRecord, IterativeRecord, JobRecord, MeshRecord,
+    ObjectRecord, ObjectSourceRecord, OutputFiles, RecordingPlaneRecord, ReferenceRecord, Sidecar,
+    SynthesisRecord, ToolRecord, ViewingRecord, FORMAT_NAME, FORMAT_VERSION,
+};
+use crate::output::tiff::{Compression, FinishedTiff, TiffLayout};
+use crate::scene::mesh::PlacementSize;
+use crate::scene::sampling::{Density, Pattern, PhaseMode};
+
+/// What a run wrote: one TIFF, or a set of field files with their manifest.
+pub enum Written<'a> {
+    /// One TIFF.
+    Tiff(&'a FinishedTiff),
+    /// Field files.
+    Fields {
+        /// The manifest file.
+        manifest: &'a Path,
+        /// Number of fields.
+        count: usize,
+        /// Field size.
+        field_px: [u32; 2],
+    },
+}
+
+/// Everything the sidecar records besides the job itself.
+pub struct RunRecord<'a> {
+    /// Encoding as written (amplitude scale resolved).
+    pub encoding: &'a Encoding,
+    /// TIFF layout.
+    pub layout: &'a TiffLayout,
+    /// What was written.
+    pub written: Written<'a>,
+    /// Emitters summed.
+    pub emitters: usize,
+    /// Emitters with no support on the plate.
+    pub unreachable: usize,
+    /// Point-pixel updates done.
+    pub updates: u64,
+    /// The iterative run, for iterative jobs.
+    pub iterative: Option<IterativeRecord>,
+    /// How the point sum was computed ("direct" or "recording-plane", with the plane), for
+    /// point sums.
+    pub sum_path: Option<(&'static str, Option<RecordingPlaneRecord>)>,
+}
+
+/// The reference as recorded.
+pub fn reference_record(r: &Reference) -> ReferenceRecord {
+    match *r {
+        Reference::Plane { tilt } => ReferenceRecord::Plane {
+            tilt_deg: [tilt[0].to_degrees(), tilt[1].to_degrees()],
+        },
+        Reference::Spherical { position } => ReferenceRecord::Spherical {
+            position_mm: position.map(|v| v * 1e3),
+        },
+    }
+}
+
+/// The encoding as recorded.
+pub fn encoding_record(e: &Encoding) -> EncodingRecord {
+    let bits = e.bits_per_sample();
+    match *e {
+        Encoding::CalibratedPhase {
+            levels,
+            ref calibration,
+        } => EncodingRecord::Phase {
+            levels,
+            bits_per_sample: bits,
+            stored_value: "the grey value of the calibration table whose measured phase is nearest (mod 2 pi) to 2 pi g / N, g = round(N arg(F) / 2 pi) mod N".into(),
+            calibration: Some(CalibrationRecord {
+                table: calibration.table.clone(),
+                level_to_grey: calibration.level_to_grey.clone(),
+            }),
+        },
+        Encoding::Phase { levels } => EncodingRecord::Phase {
+            levels,
+            bits_per_sample: bits,
+            stored_value: "s = round(g 2^b / N), g = round(N arg(F) / 2 pi) mod N; displayed phase 2 pi s / 2^b".into(),
+            calibration: None,
+        },
+        Encoding::BinaryPhase => EncodingRecord::BinaryPhase {
+            bits_per_sample: 1,
+            stored_value: "1 (phase pi) where Re F < 0, else 0".into(),
+        },
+        Encoding::BinaryAmplitude => EncodingRecord::BinaryAmplitude {
+            bits_per_sample: 1,
+            stored_value: "1 (clear) where Re F >= 0, else 0 (opaque)".into(),
+        },
+        Encoding::Amplitude { bits, scale } => EncodingRecord::Amplitude {
+            bits_per_sample: bits,
+            bipolar_scale: scale,
+            stored_value: "s = round((1 + Re F / bipolar_scale) / 2 (2^b - 1)), clipped".into(),
+        },
+    }
+}
+
+fn density_words(d: Option<Density>) -> String {
+    match d {
+        None => "replay cell lambda z / D".into(),
+        Some(Density::Count(n)) => format!("{n} emitters"),
+        Some(Density::SpacingM(s)) => format!("spacing {} um", s * 1e6),
+    }
+}
+
+fn pattern_name(p: Pattern) -> &'static str {
+    match p {
+        Pattern::Random => "random",
+        Pattern::Stratified => "stratified",
+    }
+}
+
+fn phase_words(p: PhaseMode) -> String {
+    match p {
+        PhaseMode::Random => "random".into(),
+        PhaseMode::Constant(v) => format!("constant {v} rad"),
+    }
+}
+
+/// The job-file spelling of an occlusion mode.
+pub fn occlusion_name(o: Occlusion) -> &'static str {
+    match o {
+        Occlusion::None => "none",
+        Occlusion::Centre => "centre",
+        Occlusion::Tiles => "tiles",
+    }
+}
+
+/// The job-file spelling of an iterative algorithm.
+pub fn algorithm_name(a: AlgorithmChoice) -> &'static str {
+    match a {
+        AlgorithmChoice::Gs => "gs",
+        AlgorithmChoice::WeightedGs => "weighted-gs",
+        AlgorithmChoice::MixedRegion(_) => "mixed-region",
+    }
+}
+
+fn file_name(p: &Path) -> Option<String> {
+    p.file_name().map(|f| f.to_string_lossy().into_owned())
+}
+
+fn objects(spec: &JobSpec) -> Vec<ObjectRecord> {
+    spec.objects
+        .iter()
+        .map(|o| {
+            let file = file_name(&o.points);
+            let source = match &o.source {
+                ObjectSource::Image { distance, shift_px } => ObjectSourceRecord::Image {
+                    image: file,
+                    distance_mm: distance.map(|d| d * 1e3),
+                    shift_px: *shift_px,
+                },
+                ObjectSource::Points => ObjectSourceRecord::Points {
+                    points: file,
+                    offset_mm: o.offset.map(|v| v * 1e3),
+                    scale: o.scale,
+                },
+                ObjectSource::Mesh(m) => {
+                    let pl = &m.placement;
+                    let (scale, fit_mm) = match pl.size {
+                        PlacementSize::Scale(s) => (Some(s), None),
+                        PlacementSize::FitMm(f) => (None, Some(f)),
+                    };
+                    ObjectSourceRecord::Mesh(Box::new(MeshRecord {
+                        mesh: file,
+                        unit_mm: pl.unit_mm,
+                        front: m.front.name().into(),
+                        rotation_deg: pl.rotation_deg,
+                        scale,
+                        fit_mm,
+                        offset_mm: pl.offset_mm,
+                        density: density_words(m.density),
+                        pattern: pattern_name(m.pattern).into(),
+                        seed: m.seed,
+                        light_dir: m.shading.light_dir,
+                        ambient: m.shading.ambient,
+                        smooth_normals: m.shading.smooth_normals,
+                        phase: phase_words(m.phase),
+                        occlusion: occlusion_name(m.occlusion).into(),
+                    }))
+                }
+            };
+            ObjectRecord {
+                source,
+                gain: o.gain,
+                reference: o.reference.as_ref().map(reference_record),
+            }
+        })
+        .collect()
+}
+
+/// The iterative section of a run.
+pub fn iterative_record(it: &IterativeSpec, rec: &IterationRecord) -> IterativeRecord {
+    IterativeRecord {
+        geometry: match it.geometry {
+            Geometry::Fourier(_) => "fourier",
+            Geometry::Fresnel => "fresnel",
+        }
+        .into(),
+        focal_mm: match it.geometry {
+            Geometry::Fourier(f) => Some(f * 1e3),
+            Geometry::Fresnel => None,
+        },
+        algorithm: algorithm_name(it.algorithm).into(),
+        mix: match it.algorithm {
+            AlgorithmChoice::MixedRegion(m) => Some(m),
+            _ => None,
+        },
+        replay_lattice: "Fourier and single-FFT Fresnel planes: optical axis on sample floor(N/2) per axis (a plain FFT after fftshift); angular-spectrum planes: the plate's pixel centres".into(),
+        iterations_run: rec.errors.len().saturating_sub(1),
+        stopped_early: rec.stopped_early,
+        error_per_iteration: rec.errors.clone(),
+        cell_px: rec.cell,
+        replay_pitch_um: rec
+            .replay_pitch
+            .iter()
+            .map(|p| [p[0] * 1e6, p[1] * 1e6])
+            .collect(),
+        carrier_deg: [it.carrier[0].to_degrees(), it.carrier[1].to_degrees()],
+        lens_mm: it.lens.map(|f| f * 1e3),
+        seed: it.seed,
+        quantize_last: it.quantize_last,
+    }
+}
+
+/// The sidecar of a run of `spec`.
+pub fn sidecar(spec: &JobSpec, run: RunRecord) -> Sidecar {
+    let p = &spec.plate;
+    let s = &spec.synthesis;
+    let compression = match run.layout.compression {
+        Compression::None => "none",
+        Compression::Deflate => "deflate",
+    }
+    .to_string();
+    let output = match run.written {
+        Written::Tiff(t) => OutputFiles::Tiff {
+            file: file_name(&t.path),
+            bytes: t.bytes,
+            sha256: t.sha256.clone(),
+            bigtiff: t.bigtiff,
+            compression,
+            rows_per_strip: run.layout.rows_per_strip,
+            strips: t.strips,
+            photometric: "min-is-black".into(),
+        },
+        Written::Fields {
+            manifest,
+            count,
+            field_px,
+        } => OutputFiles::Fields {
+            fields_manifest: file_name(manifest),
+            fields: count,
+            field_px,
+            compression,
+            rows_per_strip: run.layout.rows_per_strip,
+            photometric: "min-is-black".into(),
+        },
+    };
+    let (path, recording_plane) = match run.sum_path {
+        Some((name, plane)) => (Some(name.to_string()), plane),
+        None => (None, None),
+    };
+    Sidecar {
+        format: FORMAT_NAME.into(),
+        format_version: FORMAT_VERSION,
+        tool: ToolRecord::this(),
+        job: JobRecord {
+            file: file_name(&spec.path),
+            sha256: spec.sha256.clone(),
+        },
+        hologram: HologramRecord {
+            width_px: p.width,
+            height_px: p.height,
+            pitch_um: [p.pitch[0] * 1e6, p.pitch[1] * 1e6],
+            wavelength_nm: p.wavelength * 1e9,
+            size_mm: [p.size()[0] * 1e3, p.size()[1] * 1e3],
+            max_half_angle_deg: p.max_half_angle().map(f64::to_degrees),
+            pixel_centre: "x = (j - (W-1)/2) px, y = ((H-1)/2 - i) py; row 0 is the top row; y up".into(),
+        },
+        viewing: ViewingRecord::this(),
+        reference: reference_record(&spec.reference),
+        objects: objects(spec),
+        iterative: run.iterative,
+        synthesis: SynthesisRecord {
+            method: match spec.method {
+                Method::PointSum => "point-sum",
+                Method::Iterative(_) => "iterative",
+            }
+            .into(),
+            approximation: s.approximation.name().into(),
+            precision: s.precision.name().into(),
+            path,
+            recording_plane,
+            obliquity: s.obliquity,
+            anti_aliasing: "emitter j contributes where |(d_j - d_R)_x| <= lambda / (2 px) and likewise in y (d: local direction cosines)".into(),
+            fringe_term: "F = O conj(R), O = sum a_j exp(i (k r_j + phi_j)) / r_j".into(),
+            emitters: run.emitters,
+            emitters_without_support: run.unreachable,
+            point_pixel_updates: run.updates,
+        },
+        encoding: encoding_record(run.encoding),
+        output,
+    }
+}
