@@ -28,6 +28,7 @@
 //! let updates = sum.compute_band(0, 8, &mut f, &mut BandScratch::default());
 //! assert_eq!(updates, 64 * 8); // every pixel lies inside this point's support
 //! ```
+pub mod cpu;
 pub mod encoding;
 pub mod error;
 pub mod job;

@@ -299,7 +299,12 @@ pub fn sidecar(spec: &JobSpec, run: RunRecord) -> Sidecar {
             }
             .into(),
             approximation: s.approximation.name().into(),
-            precision: s.precision.name().into(),
+            // The iterative loop and its FFTs run in f32 whatever the key says.
+            precision: match spec.method {
+                Method::PointSum => s.precision.name(),
+                Method::Iterative(_) => "f32",
+            }
+            .into(),
             path,
             recording_plane,
             obliquity: s.obliquity,

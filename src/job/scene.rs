@@ -166,9 +166,11 @@ pub fn build_scene(spec: &JobSpec) -> Result<Scene> {
                     }
                 }
                 notes.push(format!(
-                    "object #{n}: mesh {}, {} triangles, placed in x {:.3}..{:.3}, y {:.3}..{:.3}, z {:.3}..{:.3} mm, {} emitters",
+                    "object #{n}: mesh {}, {} triangles, file unit {} mm, front {} turned to the viewer, placed in x {:.3}..{:.3}, y {:.3}..{:.3}, z {:.3}..{:.3} mm, {} emitters",
                     o.points.display(),
                     mesh.triangles.len(),
+                    m.placement.unit_mm,
+                    m.front.name(),
                     lo[0] * 1e3,
                     hi[0] * 1e3,
                     lo[1] * 1e3,

@@ -9,8 +9,6 @@
 //! plane once per strip, one 4 KiB page per row, which costs a page walk per row once a plane is
 //! larger than the TLB reaches; with 2 MiB pages a 2048^2 complex f32 plane is 16 pages.
 
-use std::sync::OnceLock;
-
 use num_complex::Complex;
 
 #[inline(always)]
@@ -27,18 +25,7 @@ unsafe fn mul_by_avx2(v: &mut [Complex<f32>], fac: &[Complex<f32>], scale: Compl
 }
 
 fn use_avx2() -> bool {
-    static AVX2: OnceLock<bool> = OnceLock::new();
-    *AVX2.get_or_init(|| {
-        #[cfg(target_arch = "x86_64")]
-        {
-            std::env::var_os("FRINGEMILL_PORTABLE").is_none()
-                && std::arch::is_x86_feature_detected!("avx2")
-        }
-        #[cfg(not(target_arch = "x86_64"))]
-        {
-            false
-        }
-    })
+    crate::cpu::avx2_fma()
 }
 
 /// `v[k] *= fac[k] * scale` over the common length.
