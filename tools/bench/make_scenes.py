@@ -6,6 +6,8 @@
                    3 mm (supports a few hundred pixels across: the band-limited case).
   cloud9.ply       9216 points over the same volume: placed 3 mm away, their band-limited
                    supports add up to about the updates of cloud.ply at 30 mm.
+  cloud1000.ply    1000 points over the same volume: the 4096^2 x 1000-point Fresnel job (the shape
+                   of pointsum_numpy.py's whole-job GEMM).
   dense.csv        5000 points 2.0-2.5 mm in front of a 2 x 2 mm plate: the recording-plane scene.
 
 Usage: make_scenes.py DIR
@@ -33,6 +35,7 @@ def main():
     os.makedirs(out, exist_ok=True)
     write_cloud(os.path.join(out, "cloud.ply"), 1024, 7)
     write_cloud(os.path.join(out, "cloud9.ply"), 9216, 9)
+    write_cloud(os.path.join(out, "cloud1000.ply"), 1000, 13)
     rng = random.Random(11)
     with open(os.path.join(out, "dense.csv"), "w", encoding="ascii") as f:
         f.write("x_mm,y_mm,z_mm,amplitude\n")

@@ -91,6 +91,20 @@ for v in "cloud_fresnel_f32 30.0 fresnel cloud" "cloud_near_fresnel_f32 3.0 fres
     done
 done
 
+section "whole job: 4096^2 plate, 1000 points, Fresnel f32 (the numpy whole-job GEMM's shape)"
+# cloud1000.ply 30-34 mm before a 4096^2 plate at 1 um, 532 nm, on-axis reference: every support
+# covers the plate (16.8 G updates, as pointsum_numpy.py's fresnel_gemm_4096x4096_p1000), 256
+# phase levels and binary amplitude, uncompressed; three runs each, the best kept.
+for v in "fresnel4096_phase phase" "fresnel4096_binary binary-amplitude"; do
+    set -- $v
+    enc='kind = "phase"\nlevels = 256'; [ "$2" = binary-amplitude ] && enc='kind = "binary-amplitude"'
+    printf "[hologram]\nwidth_px = 4096\nheight_px = 4096\npitch_um = 1.0\nwavelength_nm = 532\n[reference]\nkind = \"plane\"\n[[object]]\npoints = \"cloud1000.ply\"\noffset_mm = [0, 0, 30]\n[synthesis]\napproximation = \"fresnel\"\nprecision = \"f32\"\n[encoding]\n$enc\n[output]\npath = \"out/$1.tif\"\ncompression = \"none\"\n" > "$tmp/$1.toml"
+    for r in 1 2 3; do
+        log "JOB $1 threads=2"
+        run "$bin" run "$tmp/$1.toml" --restart --stats --threads 2 -q
+    done
+done
+
 section "recording plane against the direct sum (dense scene)"
 # 5000 emitters 2.0-2.5 mm in front of a 2048^2 plate at 1 um, 256 phase levels, 2 threads.
 for v in "dense_direct_f64 direct f64" "dense_direct_f32 direct f32" "dense_plane recording-plane f64" \

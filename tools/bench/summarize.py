@@ -106,6 +106,12 @@ def main():
               jn and jn["gups"] * 1e9, bv, gs(jn and jn["gups"] * 1e9), gs(bv))
         ratio("Fresnel speed kept with band-limited supports: 9216 points at 3 mm vs 1024 at 30 mm (G updates/s)",
               jn and jn["gups"], jc and jc["gups"], jn and f"{jn['gups']:.3f} G/s", jc and f"{jc['gups']:.3f} G/s")
+    whole = res.get("fresnel_gemm_4096x4096_p1000")
+    for name, label in [("fresnel4096_phase", "256 phase levels"), ("fresnel4096_binary", "binary amplitude")]:
+        jw = jobs.get((name, 2))
+        ratio(f"Fresnel whole job 4096^2 x 1000 points f32 ({label}, read, encode, write, hash), 2 threads vs the "
+              "strongest numpy form (float32 cos/sin factors, one complex64 GEMM, 2 BLAS threads, sum only)",
+              jw and jw["gups"] * 1e9, whole and whole * 1e9, gs(jw and jw["gups"] * 1e9), gs(whole and whole * 1e9))
     jx = jobs.get(("cloud_exact_f32", 2))
     ratio("exact: 1024-point cloud job f32, 2 threads vs careful numpy (1 core)",
           jx and jx["gups"] * 1e9, careful and careful * 1e9, gs(jx and jx["gups"] * 1e9), gs(careful and careful * 1e9))
