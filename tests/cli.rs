@@ -224,6 +224,10 @@ fn plan_reports_without_writing() {
     // asin(633 nm / (2 x 2 um)) = 9.105 deg (physics.md, Sampling limits).
     assert!(out.contains("9.105 deg"), "{out}");
     assert!(out.contains("emitters: 3"), "{out}");
+    // User units and words, no program text; a time estimate.
+    assert!(out.contains("reference: plane wave, tilted"), "{out}");
+    assert!(!out.contains('{') && !out.contains("Some("), "{out}");
+    assert!(out.contains("time: about"), "{out}");
     assert!(!d.path().join("o.tif").exists());
 }
 

@@ -406,3 +406,98 @@ fn fields_resume_after_kill_9() {
         .collect();
     assert!(left.is_empty(), "{left:?}");
 }
+
+/// Occlusion is decided on a tile grid fixed in plate pixels: the bytes of an occluded mesh plate
+/// do not change with the strip height, the band height, the thread count or a shard split (and
+/// occlusion does change them, so the comparison sees it).
+#[test]
+fn occlusion_does_not_depend_on_bands_strips_threads_or_shards() {
+    let mesh = Path::new(env!("CARGO_MANIFEST_DIR")).join("samples/lantern.glb");
+    let mk = |dir: &Path, occlusion: &str, output_extra: &str, synthesis_extra: &str| {
+        std::fs::copy(&mesh, dir.join("m.glb")).unwrap();
+        let text = format!(
+            "[hologram]\nwidth_px = 520\nheight_px = 300\npitch_um = 1.0\nwavelength_nm = 532\n\
+             [reference]\nkind = \"plane\"\ntilt_deg = [1.0, 2.0]\n\
+             [[object]]\nmesh = \"m.glb\"\nfit_mm = 1.2\nrotation_deg = [20, 35, 0]\noffset_mm = [0, 0, 4]\n\
+             emitters = 600\nseed = 3\nocclusion = \"{occlusion}\"\n\
+             [synthesis]\n{synthesis_extra}\n\
+             [encoding]\nkind = \"phase\"\nlevels = 256\n\
+             [output]\npath = \"out/plate.tif\"\n{output_extra}\n"
+        );
+        let p = dir.join("job.toml");
+        std::fs::write(&p, text).unwrap();
+        p
+    };
+    let plate = |occlusion: &str, out: &str, syn: &str, args: &[&str]| {
+        let d = tempfile::tempdir().unwrap();
+        let j = mk(d.path(), occlusion, out, syn);
+        let mut a = vec!["run", "-q"];
+        a.extend_from_slice(args);
+        a.push(j.to_str().unwrap());
+        let o = run(&a);
+        assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+        std::fs::read(d.path().join("out/plate.tif")).unwrap()
+    };
+    let pixels = |tif: &[u8]| {
+        let d = tempfile::tempdir().unwrap();
+        let p = d.path().join("p.tif");
+        std::fs::write(&p, tif).unwrap();
+        common::decode(&p).2
+    };
+    // plan counts the visibility tests in its time estimate.
+    let d = tempfile::tempdir().unwrap();
+    let j = mk(d.path(), "tiles", "", "");
+    let o = run(&["plan", j.to_str().unwrap()]);
+    let text = String::from_utf8_lossy(&o.stdout);
+    assert!(
+        text.contains("256 x 64 px tile") && text.contains("tests"),
+        "{text}"
+    );
+    assert!(text.contains("time: about"), "{text}");
+    let reference = pixels(&plate("tiles", "", "", &[]));
+    assert_ne!(
+        reference,
+        pixels(&plate("none", "", "", &[])),
+        "occlusion hides nothing here"
+    );
+    for (out, syn, args, what) in [
+        ("rows_per_strip = 12", "", vec![], "rows_per_strip 12"),
+        (
+            "rows_per_strip = 7",
+            "band_rows = 7",
+            vec![],
+            "7-row strips and bands",
+        ),
+        (
+            "",
+            "band_rows = 3",
+            vec!["--threads", "1"],
+            "3-row bands, one thread",
+        ),
+        ("", "", vec!["--threads", "2"], "two threads"),
+    ] {
+        assert!(
+            pixels(&plate("tiles", out, syn, &args)) == reference,
+            "{what}"
+        );
+    }
+    // Three shards, then assemble.
+    let d = tempfile::tempdir().unwrap();
+    let j = mk(d.path(), "tiles", "rows_per_strip = 16", "");
+    for k in 1..=3 {
+        let o = run(&[
+            "run",
+            "-q",
+            "--shard",
+            &format!("{k}/3"),
+            j.to_str().unwrap(),
+        ]);
+        assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    }
+    let o = run(&["assemble", "-q", j.to_str().unwrap()]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    assert!(
+        pixels(&std::fs::read(d.path().join("out/plate.tif")).unwrap()) == reference,
+        "3 shards"
+    );
+}

@@ -353,7 +353,7 @@ fn hidden_emitters_contribute_nothing() {
         tilt: [2f64.to_radians(), 0.0],
     };
     let with_hook = PointSum::new(plate, r, all, PointSumOptions::default())
-        .with_visibility(std::sync::Arc::new(HideOdd), 16);
+        .with_occlusion_tiles(std::sync::Arc::new(HideOdd), [16, 5]);
     let plain = PointSum::new(plate, r, even, PointSumOptions::default());
     let a = whole_plate(&with_hook, 7);
     let b = whole_plate(&plain, 7);

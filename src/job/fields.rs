@@ -147,7 +147,8 @@ pub struct FieldSink {
     grid: FieldGrid,
     /// Field row of `writers`.
     row: u32,
-    writers: Vec<StripWriter>,
+    /// (field column, its writer) of the current field row.
+    writers: Vec<(u32, StripWriter)>,
     /// Finished fields.
     pub done: Vec<FieldEntry>,
 }
@@ -158,6 +159,8 @@ impl FieldSink {
         let state = state.unwrap_or_default();
         let mut row = next_row / grid.field[1];
         let mut writers = Vec::new();
+        let mut done = state.done;
+        let mut complete_row = false;
         if !state.writers.is_empty() {
             row = state.row;
             let rows = (row * grid.field[1]..((row + 1) * grid.field[1]).min(grid.plate.height))
@@ -172,21 +175,34 @@ impl FieldSink {
                     ),
                 ));
             }
+            let complete = next_row == row * grid.field[1] + rows;
+            complete_row = complete;
             for (col, ws) in state.writers.into_iter().enumerate() {
                 let col = col as u32;
-                writers.push(StripWriter::resume(
-                    &grid.path(row, col),
-                    grid.layout(row, col),
-                    ws,
-                )?);
+                let path = grid.path(row, col);
+                // A complete row's field may have been finished (renamed from its partial) after
+                // the last checkpoint, before a kill: the finished file is then the field.
+                if complete && !crate::output::tiff::partial_path(&path).exists() && path.is_file()
+                {
+                    let (bytes, sha) = crate::output::tiff::hash_path(&path)?;
+                    done.push(grid.entry(row, col, bytes, sha, &path));
+                    continue;
+                }
+                writers.push((col, StripWriter::resume(&path, grid.layout(row, col), ws)?));
             }
         }
-        Ok(FieldSink {
+        let mut sink = FieldSink {
             grid,
             row,
             writers,
-            done: state.done,
-        })
+            done,
+        };
+        if complete_row {
+            // Every row of it is written: finish its fields now, so the sink holds whole field
+            // rows only and no writer list with gaps reaches a later journal.
+            sink.finish_row()?;
+        }
+        Ok(sink)
     }
 
     /// Appends the band starting at plate row `row0`: one block of encoded rows per field column.
@@ -197,14 +213,14 @@ impl FieldSink {
             self.finish_row()?;
             self.row = fr;
             for col in 0..self.grid.counts()[0] {
-                self.writers.push(StripWriter::create(
-                    &self.grid.path(fr, col),
-                    self.grid.layout(fr, col),
-                )?);
+                self.writers.push((
+                    col,
+                    StripWriter::create(&self.grid.path(fr, col), self.grid.layout(fr, col))?,
+                ));
             }
         }
         for (w, b) in self.writers.iter_mut().zip(blocks) {
-            w.write_rows(b)?;
+            w.1.write_rows(b)?;
         }
         Ok(())
     }
@@ -212,18 +228,19 @@ impl FieldSink {
     /// Finishes the writers of the current field row (all rows written).
     pub fn finish_row(&mut self) -> Result<()> {
         let row = self.row;
-        for (col, w) in std::mem::take(&mut self.writers).into_iter().enumerate() {
+        for (col, w) in std::mem::take(&mut self.writers) {
             let f = w.finish()?;
-            let e = self.grid.entry(row, col as u32, f.bytes, f.sha256, &f.path);
+            let e = self.grid.entry(row, col, f.bytes, f.sha256, &f.path);
             self.done.push(e);
         }
+        self.done.sort_by_key(|e| (e.row, e.col));
         Ok(())
     }
 
     /// Syncs the writers and returns the resume state.
     pub fn checkpoint(&mut self) -> Result<FieldsState> {
         let mut ws = Vec::new();
-        for w in &mut self.writers {
+        for (_, w) in &mut self.writers {
             ws.push(w.checkpoint()?);
         }
         Ok(FieldsState {
@@ -235,7 +252,7 @@ impl FieldSink {
 
     /// Removes the partial files of the current row (failure before any checkpoint).
     pub fn abandon(self) {
-        for w in self.writers {
+        for (_, w) in self.writers {
             let _ = w.abandon();
         }
     }
@@ -354,6 +371,43 @@ mod tests {
         s.finish_row().unwrap();
         assert_eq!(s.done.len(), 4);
         assert_eq!(files(cut.path()), files(whole.path()));
+    }
+
+    /// A kill after a complete field row's fields were finished (renamed from their partials)
+    /// but before the next checkpoint: the journal still lists the row's writers. Resuming adopts
+    /// the finished files (all of them, or only some when the kill fell between two fields)
+    /// and goes on, with the same files and entries as an uninterrupted run.
+    #[test]
+    fn fields_finished_after_the_last_checkpoint_are_adopted() {
+        let whole = tempfile::tempdir().unwrap();
+        let mut s = FieldSink::new(grid(whole.path()), 0, None).unwrap();
+        for r in 0..6 {
+            s.write_band(r, &band(r)).unwrap();
+        }
+        s.finish_row().unwrap();
+        let want = s.done.clone();
+        for finished_before_kill in [1usize, 2] {
+            let cut = tempfile::tempdir().unwrap();
+            let mut s = FieldSink::new(grid(cut.path()), 0, None).unwrap();
+            for r in 0..3 {
+                s.write_band(r, &band(r)).unwrap();
+            }
+            let state = s.checkpoint().unwrap();
+            // Finish the first fields of row 0 only, as a kill inside finish_row leaves them.
+            let rest = s.writers.split_off(finished_before_kill);
+            for (_, w) in std::mem::take(&mut s.writers) {
+                w.finish().unwrap();
+            }
+            drop(rest);
+            drop(s);
+            let mut s = FieldSink::new(grid(cut.path()), 3, Some(state)).unwrap();
+            for r in 3..6 {
+                s.write_band(r, &band(r)).unwrap();
+            }
+            s.finish_row().unwrap();
+            assert_eq!(s.done, want, "{finished_before_kill} finished");
+            assert_eq!(files(cut.path()), files(whole.path()));
+        }
     }
 
     /// A journal whose writers' row cannot hold the next plate row is refused, not misapplied.

@@ -156,7 +156,7 @@ pub fn build_emitters(spec: &JobSpec) -> Result<Vec<Emitter>> {
 fn point_sum(spec: &JobSpec, scene: Scene) -> PointSum {
     let sum = PointSum::with_channels(spec.plate, scene.channels, spec.synthesis);
     match scene.visibility {
-        Some(v) => sum.with_visibility(v, OCCLUSION_TILE_COLS),
+        Some(v) => sum.with_visibility(v),
         None => sum,
     }
 }
@@ -344,9 +344,6 @@ impl Source {
         }
     }
 }
-
-/// Columns of an occlusion tile (its rows are a band).
-pub const OCCLUSION_TILE_COLS: usize = 256;
 
 /// Rows per band: about 4 MiB of complex field per band, at most 64 rows.
 pub fn default_band_rows(width: u32) -> usize {
@@ -1383,6 +1380,7 @@ pub fn plan(spec: &JobSpec) -> Result<PlanReport> {
         scene.channels.len()
     ));
     lines.extend(scene.notes.iter().cloned());
+    let n_channels = scene.channels.len();
     let (source, path_lines) = choose_sum(spec, scene)?;
     let sum = match &source {
         Source::Points(s) => s,
@@ -1428,6 +1426,45 @@ pub fn plan(spec: &JobSpec) -> Result<PlanReport> {
         "work: about {:.3e} point-pixel updates ({:.1} per pixel on average)",
         updates,
         updates / p.pixels() as f64
+    ));
+    let tests = sum
+        .occlusion()
+        .map_or(0, |o| o.tests_needed(sum.row_ranges()));
+    let mut visible_updates = updates;
+    if let Some(o) = sum.occlusion() {
+        let share = o.sampled_visible_share(sum.row_ranges(), 4000);
+        visible_updates = updates * share;
+        lines.push(format!(
+            "occlusion: visibility tested from the centre of each {} x {} px tile (a grid fixed in plate pixels): about {:.3e} tests; about {:.0} % of emitter-tile pairs visible (4000 sampled), so about {:.3e} updates",
+            o.tile()[0],
+            o.tile()[1],
+            tests as f64,
+            share * 100.0,
+            visible_updates
+        ));
+    }
+    let threads = rayon::current_num_threads();
+    let sep = spec.synthesis.approximation == Approximation::Fresnel
+        && sum.occlusion().is_none()
+        && n_channels == 1
+        && matches!(spec.reference, crate::optics::Reference::Plane { .. });
+    let per_update = super::estimate::seconds_per_update(
+        spec.synthesis.approximation,
+        spec.synthesis.precision,
+        sep,
+    );
+    let secs = super::estimate::wall_seconds(
+        visible_updates * per_update,
+        tests as f64,
+        p.pixels() as f64,
+        threads,
+    );
+    lines.push(format!(
+        "time: about {} on {threads} thread(s) for the direct sum ({:.2} ns per update, {:.1} us per visibility test, {:.0} ns per pixel written, per thread, as measured on the development machine: see BENCHMARKS.md)",
+        super::estimate::human(secs),
+        per_update * 1e9,
+        super::estimate::SECONDS_PER_VISIBILITY_TEST * 1e6,
+        super::estimate::SECONDS_PER_PIXEL_WRITTEN * 1e9
     ));
     lines.extend(path_lines);
     let encoding = match &spec.encoding {

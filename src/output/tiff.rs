@@ -1140,6 +1140,12 @@ fn check_state(
     Ok(())
 }
 
+/// Size and lowercase hex SHA-256 of a whole file on disk.
+pub fn hash_path(path: &Path) -> Result<(u64, String)> {
+    let mut f = File::open(path).map_err(|e| Error::io(path, e))?;
+    hash_file(&mut f).map_err(|e| Error::io(path, e))
+}
+
 /// Hashes the whole file from its start; returns (bytes read, lowercase hex SHA-256).
 fn hash_file(file: &mut File) -> io::Result<(u64, String)> {
     file.seek(SeekFrom::Start(0))?;

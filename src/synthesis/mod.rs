@@ -6,6 +6,7 @@
 
 pub mod iterative;
 pub mod kernels;
+pub mod occlusion;
 pub mod phase_cell;
 pub mod point_sum;
 pub mod recording_plane;

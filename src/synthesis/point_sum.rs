@@ -13,6 +13,7 @@
 use num_complex::Complex64;
 
 use super::kernels::{self, EmitterRow, KernelIsa, Row32, RowInputs, PAD};
+use super::occlusion::{self, OcclusionGrid, TileRow};
 use super::support::{direction_window, plate_rows, row_columns, row_hole_columns};
 use super::{Approximation, Emitter, PointSumOptions, Precision};
 
@@ -95,9 +96,8 @@ pub struct PointSum {
     /// x of every column centre.
     xs: Vec<f64>,
     isa: KernelIsa,
-    /// Occlusion tested from the centre of each tile (band x `tile_cols` columns), if any.
-    visibility: Option<std::sync::Arc<dyn Visibility>>,
-    tile_cols: usize,
+    /// Occlusion tested from the centre of each tile of a grid fixed in plate pixels, if any.
+    occlusion: Option<OcclusionGrid>,
     /// Use the separable Fresnel path where it applies (plane reference, one channel, no occlusion).
     separable: bool,
     /// f32 exact kernel: distances from which the polynomial path's segment widths apply.
@@ -138,8 +138,6 @@ pub struct BandScratch {
     col_phasor: Vec<Complex64>,
     rdx32: Vec<f32>,
     rdy32: Vec<f32>,
-    /// visible[k * tiles + t]: candidate k seen from tile t's centre.
-    visible: Vec<bool>,
 }
 
 impl PointSum {
@@ -200,8 +198,7 @@ impl PointSum {
             half_band,
             xs,
             isa: kernels::detect(),
-            visibility: None,
-            tile_cols: 512,
+            occlusion: None,
             separable: true,
             poly_min_distance: kernels::exact32::POLY_WIDTHS
                 .map(|l| kernels::poly_min_distance(l, plate.pitch[0], plate.wavelength)),
@@ -215,13 +212,32 @@ impl PointSum {
         self
     }
 
-    /// Occlusion, tested per tile: an emitter contributes to a tile (a band of rows by `tile_cols`
-    /// columns) only if it is visible from the tile's centre on the plate (parallax-correct to the
-    /// tile size).
-    pub fn with_visibility(mut self, v: std::sync::Arc<dyn Visibility>, tile_cols: usize) -> Self {
-        self.visibility = Some(v);
-        self.tile_cols = tile_cols.max(1);
+    /// Occlusion, tested per tile of [`occlusion::TILE_COLS`] x [`occlusion::TILE_ROWS`] plate
+    /// pixels: an emitter contributes to a tile only if it is visible from the tile's centre on
+    /// the plate (parallax-correct to the tile size). The grid is fixed in plate pixels, so the
+    /// bits do not depend on how the plate is cut into bands.
+    pub fn with_visibility(self, v: std::sync::Arc<dyn Visibility>) -> Self {
+        self.with_occlusion_tiles(v, [occlusion::TILE_COLS, occlusion::TILE_ROWS])
+    }
+
+    /// As [`with_visibility`](Self::with_visibility) with tiles of `tile` = [columns, rows].
+    pub fn with_occlusion_tiles(
+        mut self,
+        v: std::sync::Arc<dyn Visibility>,
+        tile: [usize; 2],
+    ) -> Self {
+        self.occlusion = Some(OcclusionGrid::new(v, self.plate, tile));
         self
+    }
+
+    /// The occlusion grid, when the sum has one.
+    pub fn occlusion(&self) -> Option<&OcclusionGrid> {
+        self.occlusion.as_ref()
+    }
+
+    /// Emitters' conservative row ranges (None: no row of the plate).
+    pub fn row_ranges(&self) -> &[Option<(usize, usize)>] {
+        &self.rows
     }
 
     /// Soft support edges: each emitter's wave weighted by a smooth step of its support margin,
@@ -337,7 +353,7 @@ impl PointSum {
         if self.separable
             && self.opts.anti_alias
             && self.opts.approximation == Approximation::Fresnel
-            && self.visibility.is_none()
+            && self.occlusion.is_none()
             && self.channels.len() == 1
             && matches!(self.channels[0].reference, Reference::Plane { .. })
         {
@@ -358,20 +374,10 @@ impl PointSum {
         ] {
             v.resize(w, 0.0);
         }
-        // Occlusion per tile, from the tile's centre on the plate.
-        let tiles = w.div_ceil(self.tile_cols);
-        if let Some(vis) = &self.visibility {
-            let yc = self.plate.y_of_row(row0 as f64 + (rows as f64 - 1.0) / 2.0);
-            scratch.visible.clear();
-            for &j in &cands {
-                for t in 0..tiles {
-                    let c0 = t * self.tile_cols;
-                    let c1 = ((t + 1) * self.tile_cols).min(w);
-                    let xc = self.plate.x_of_col((c0 + c1 - 1) as f64 / 2.0);
-                    scratch.visible.push(vis.visible(j as usize, [xc, yc, 0.0]));
-                }
-            }
-        }
+        // Occlusion per tile of the plate's fixed grid, from the tile's centre; the tile row
+        // of each band row is looked up (a band may straddle two).
+        let tile_cols = self.occlusion.as_ref().map_or(w, |o| o.tile()[0]);
+        let mut tile_row: Option<(usize, std::sync::Arc<TileRow>)> = None;
         let fast = self.opts.approximation == Approximation::Exact
             && self.opts.precision == Precision::F32;
         if fast {
@@ -395,6 +401,12 @@ impl PointSum {
             let y = self.plate.y_of_row(row as f64);
             if !single {
                 orow.fill(Complex64::new(0.0, 0.0));
+            }
+            if let Some(o) = &self.occlusion {
+                let rt = row / o.tile()[1];
+                if tile_row.as_ref().is_none_or(|t| t.0 != rt) {
+                    tile_row = Some((rt, o.row(rt, &self.rows)));
+                }
             }
             for ch in &self.channels {
                 scratch.re.fill(0.0);
@@ -453,7 +465,7 @@ impl PointSum {
                 let mut touched = (w, 0usize);
                 let k0 = cands.partition_point(|&j| (j as usize) < ch.start);
                 let k1 = cands.partition_point(|&j| (j as usize) < ch.end);
-                for (k, &j) in cands.iter().enumerate().take(k1).skip(k0) {
+                for &j in cands.iter().take(k1).skip(k0) {
                     let e = &self.emitters[j as usize];
                     // Rows outside the emitter's row range hold none of its support (the range
                     // is a tested superset); in a tall band most candidates miss most rows.
@@ -513,13 +525,11 @@ impl PointSum {
                         if c0 >= c1 {
                             continue;
                         }
-                        if self.visibility.is_some() {
-                            for t in c0 / self.tile_cols..=(c1 - 1) / self.tile_cols {
-                                if scratch.visible[k * tiles + t] {
-                                    updates += add(
-                                        c0.max(t * self.tile_cols),
-                                        c1.min((t + 1) * self.tile_cols),
-                                    );
+                        if let Some((_, tr)) = &tile_row {
+                            for t in c0 / tile_cols..=(c1 - 1) / tile_cols {
+                                if tr.visible(j as usize, t) {
+                                    updates +=
+                                        add(c0.max(t * tile_cols), c1.min((t + 1) * tile_cols));
                                 }
                             }
                         } else {
