@@ -50,6 +50,7 @@ fn run_one(path: &Path, opts: &RunOptions) -> fringemill::Result<job::RunSummary
 }
 
 fn main() -> ExitCode {
+    let t_start = std::time::Instant::now();
     let cli = match cli::Cli::try_parse() {
         Ok(c) => c,
         Err(e) => {
@@ -186,6 +187,17 @@ fn main() -> ExitCode {
                 }
                 Ok(req) => match replay::reconstruct(&req) {
                     Ok(files) => {
+                        if cli.common.stats {
+                            let peak = job::progress::peak_rss_bytes()
+                                .map(|b| format!("{:.1} MiB", b as f64 / 1048576.0))
+                                .unwrap_or_else(|| "unknown".into());
+                            eprintln!(
+                                "fringemill: stats: reconstruct {}: {:.3} s, {} file(s) written, peak memory {peak}",
+                                req.tif.display(),
+                                t_start.elapsed().as_secs_f64(),
+                                files.len()
+                            );
+                        }
                         for f in files {
                             println!("{}", f.display());
                         }

@@ -501,3 +501,55 @@ fn occlusion_does_not_depend_on_bands_strips_threads_or_shards() {
         "3 shards"
     );
 }
+
+/// A long run in a batch log: a progress line comes after the first band (not after a wave of
+/// bands), and SIGTERM stops it once the bands in flight are done, not after the wave, with the
+/// whole strips done saved. The job's wave is long (one strip of 2048 rows: the whole plate,
+/// seconds at f64), its bands short (16 rows, under 0.1 s each here).
+#[test]
+fn sigterm_stops_within_the_bands_in_flight_and_progress_starts_at_once() {
+    let d = tempfile::tempdir().unwrap();
+    let pts = Path::new(env!("CARGO_MANIFEST_DIR")).join("samples/badge_points.ply");
+    std::fs::copy(pts, d.path().join("pts.ply")).unwrap();
+    let j = d.path().join("job.toml");
+    std::fs::write(
+        &j,
+        "[hologram]\nwidth_px = 2048\nheight_px = 2048\npitch_um = 2.0\nwavelength_nm = 532\n\
+         [reference]\nkind = \"plane\"\ntilt_deg = [4.0, 0.0]\n\
+         [[object]]\npoints = \"pts.ply\"\noffset_mm = [0, 0, 30]\n\
+         [synthesis]\nprecision = \"f64\"\nband_rows = 16\n\
+         [encoding]\nkind = \"binary-amplitude\"\n\
+         [output]\npath = \"out/plate.tif\"\nrows_per_strip = 2048\n",
+    )
+    .unwrap();
+    let start = std::time::Instant::now();
+    let child = Command::new(BIN)
+        .args(["run", "--log-progress", j.to_str().unwrap()])
+        .stdout(Stdio::null())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap();
+    std::thread::sleep(Duration::from_millis(700));
+    // SAFETY: plain kill(2) on our own child's pid.
+    unsafe { libc::kill(child.id() as i32, libc::SIGTERM) };
+    let signalled = start.elapsed();
+    let o = child.wait_with_output().unwrap();
+    let stopped = start.elapsed() - signalled;
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(
+        !d.path().join("out/plate.tif").exists(),
+        "the run finished before SIGTERM: make the job heavier"
+    );
+    assert!(!o.status.success(), "{err}");
+    assert!(err.contains("run the same command again"), "{err}");
+    assert!(
+        err.contains("% elapsed"),
+        "no progress line before the stop: {err}"
+    );
+    // The bands in flight (two of 16 rows) take under 0.1 s here; waiting for the wave took 4-5 s.
+    // Generous for a loaded machine.
+    assert!(
+        stopped < Duration::from_millis(1500),
+        "stopped {stopped:?} after SIGTERM"
+    );
+}

@@ -27,6 +27,8 @@ pub struct Progress {
     log_every: Duration,
     bar: Option<ProgressBar>,
     log: bool,
+    /// No log line yet: the first piece of work done prints one at once.
+    first: bool,
 }
 
 fn fmt_secs(s: f64) -> String {
@@ -69,6 +71,7 @@ impl Progress {
             log_every: Duration::from_secs(10),
             bar,
             log,
+            first: true,
         }
     }
 
@@ -77,14 +80,16 @@ impl Progress {
         self.log_every = d;
     }
 
-    /// Adds `work` units done.
+    /// Adds `work` units done. With log lines, the first call prints one at once (a long run
+    /// shows it is under way after its first piece of work), then one per interval.
     pub fn advance(&mut self, work: f64) {
         self.done = (self.done + work).min(self.total);
         let frac = self.done / self.total;
         if let Some(bar) = &self.bar {
             bar.set_position((frac * 1_000_000.0) as u64);
         }
-        if self.log && self.last_log.elapsed() >= self.log_every {
+        if self.log && (self.first || self.last_log.elapsed() >= self.log_every) {
+            self.first = false;
             self.last_log = Instant::now();
             let el = self.start.elapsed().as_secs_f64();
             let eta = if frac > 0.0 { el / frac - el } else { f64::NAN };

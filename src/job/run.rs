@@ -997,7 +997,13 @@ fn stream_rows(ctx: &StreamCtx, sink: &mut Sink, opts: &RunOptions) -> Result<u6
         Some([k, n]) => format!("plate, shard {}/{}", k + 1, n),
     };
     let mut progress = Progress::new(&label, total, opts.progress);
-    progress.advance(ctx.updates_before as f64);
+    if ctx.updates_before > 0 {
+        progress.advance(ctx.updates_before as f64);
+    }
+    // Workers report each band as it is done (not each wave), so a long run shows progress
+    // from its first band.
+    let progress = std::sync::Mutex::new(progress);
+    let lock_progress = || progress.lock().unwrap_or_else(|p| p.into_inner());
     let blocks = &prep.blocks;
     let mut updates = ctx.updates_before;
     let mut rows_done = ctx.rows_before;
@@ -1010,9 +1016,14 @@ fn stream_rows(ctx: &StreamCtx, sink: &mut Sink, opts: &RunOptions) -> Result<u6
         .map(|_| std::sync::Mutex::new((BandScratch::default(), Vec::new())))
         .collect();
     for chunk in bands.chunks(wave) {
-        let done: Vec<(usize, usize, Vec<Vec<u8>>, u64)> = chunk
+        let done: Vec<Option<(usize, usize, Vec<Vec<u8>>, u64)>> = chunk
             .par_iter()
             .map(|&(r0, n)| {
+                // After a stop request (Ctrl-C, SIGTERM) no band starts: the run stops once the
+                // bands in flight are done, not the whole wave.
+                if opts.stop.load(Ordering::SeqCst) {
+                    return None;
+                }
                 let slot =
                     rayon::current_thread_index().map_or(pool.len() - 1, |i| i.min(pool.len() - 1));
                 // A thread that takes up another band while its own waits inside nested parallel
@@ -1045,14 +1056,22 @@ fn stream_rows(ctx: &StreamCtx, sink: &mut Sink, opts: &RunOptions) -> Result<u6
                         bytes
                     })
                     .collect();
-                (r0, n, out, u)
+                lock_progress().advance(u as f64);
+                Some((r0, n, out, u))
             })
             .collect();
-        for (r0, n, bytes, u) in done {
+        // Bands are written in order: the whole wave, or after a stop the whole strips at its
+        // start that are complete (the journal's unit); the rest is computed again on resume.
+        let complete = done.iter().take_while(|d| d.is_some()).count();
+        let keep = if complete == done.len() {
+            complete
+        } else {
+            complete / bands_per_strip * bands_per_strip
+        };
+        for (r0, n, bytes, u) in done.into_iter().take(keep).flatten() {
             sink.write_band(r0 as u32, &bytes)?;
             updates += u;
             rows_done += n as u32;
-            progress.advance(u as f64);
         }
         let stop = opts.stop.load(Ordering::SeqCst);
         let finished = start - ctx.rows_before + rows_done >= end;
@@ -1071,7 +1090,10 @@ fn stream_rows(ctx: &StreamCtx, sink: &mut Sink, opts: &RunOptions) -> Result<u6
             .write(ctx.journal)?;
             last_checkpoint = Instant::now();
             if stop {
-                progress.abandon();
+                progress
+                    .into_inner()
+                    .unwrap_or_else(|p| p.into_inner())
+                    .abandon();
                 return Err(Error::Interrupted(format!(
                     "interrupted after {rows_done} rows; the work so far is saved in {}: run the same command again to continue",
                     ctx.journal.display()
@@ -1079,7 +1101,10 @@ fn stream_rows(ctx: &StreamCtx, sink: &mut Sink, opts: &RunOptions) -> Result<u6
             }
         }
     }
-    progress.finish();
+    progress
+        .into_inner()
+        .unwrap_or_else(|p| p.into_inner())
+        .finish();
     Ok(updates)
 }
 

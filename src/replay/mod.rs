@@ -23,7 +23,7 @@ use crate::encoding::Encoding;
 use crate::error::{Error, Result};
 use crate::optics::propagation::{Grid, PropagationPlanner};
 use crate::optics::{Plate, Reference};
-use crate::output::sidecar::{EncodingRecord, ReferenceRecord, Sidecar};
+use crate::output::sidecar::{EncodingRecord, OutputFiles, ReferenceRecord, Sidecar};
 
 /// A plate on disk with what its sidecar says about it.
 #[derive(Clone, Debug)]
@@ -36,6 +36,27 @@ pub struct PlateFile {
     pub reference: Reference,
     /// The encoding of its samples.
     pub encoding: Encoding,
+    /// Field files (a plate written as fields), or empty for one TIFF.
+    pub fields: Vec<FieldFile>,
+}
+
+/// One field file of a plate written as fields, from the fields manifest.
+#[derive(Clone, Debug, PartialEq, Eq, serde::Deserialize)]
+pub struct FieldFile {
+    /// File name, beside the manifest.
+    pub file: String,
+    /// Plate pixel of its top-left corner [column, row].
+    pub first_px: [u32; 2],
+    /// Its size [columns, rows].
+    pub size_px: [u32; 2],
+}
+
+/// The part of the fields manifest replay reads.
+#[derive(serde::Deserialize)]
+struct FieldsManifest {
+    format: String,
+    plate_px: [u32; 2],
+    fields: Vec<FieldFile>,
 }
 
 /// A rectangle of plate pixels: first column, first row, width, height.
@@ -79,6 +100,11 @@ pub fn sidecar_of(tif: &Path) -> PathBuf {
 impl PlateFile {
     /// Opens a plate: reads its sidecar (`NAME.json` beside `NAME.tif`) and checks the TIFF's size.
     pub fn open(tif: &Path) -> Result<PlateFile> {
+        // A plate written as fields may be named by its manifest NAME.fields.json.
+        let tif = &match tif.to_str().and_then(|t| t.strip_suffix(".fields.json")) {
+            Some(stem) => PathBuf::from(format!("{stem}.tif")),
+            None => tif.to_path_buf(),
+        };
         let sc = sidecar_of(tif);
         let side = Sidecar::read(&sc)?;
         let h = &side.hologram;
@@ -156,26 +182,56 @@ impl PlateFile {
                 scale: positive(bipolar_scale, "encoding.bipolar_scale")?,
             },
         };
-        let f = std::fs::File::open(tif).map_err(|e| Error::io(tif, e))?;
-        let mut d = Decoder::new(std::io::BufReader::new(f))
-            .map_err(|e| Error::input(tif, format!("not a readable TIFF: {e}")))?;
-        let (w, hh) = d
-            .dimensions()
-            .map_err(|e| Error::input(tif, e.to_string()))?;
-        if (w, hh) != (plate.width, plate.height) {
-            return Err(Error::input(
-                tif,
-                format!(
-                    "is {w} x {hh} px but its sidecar says {} x {}",
-                    plate.width, plate.height
-                ),
-            ));
-        }
+        let fields = match &side.output {
+            OutputFiles::Tiff { .. } => {
+                check_tiff_size(tif, [plate.width, plate.height])?;
+                Vec::new()
+            }
+            OutputFiles::Fields {
+                fields_manifest, ..
+            } => {
+                let name = fields_manifest
+                    .as_deref()
+                    .ok_or_else(|| Error::input(&sc, "output.fields_manifest is missing"))?;
+                let mp = tif.with_file_name(name);
+                let bytes = std::fs::read(&mp).map_err(|e| Error::io(&mp, e))?;
+                let m: FieldsManifest = serde_json::from_slice(&bytes)
+                    .map_err(|e| Error::input(&mp, format!("not a fields manifest: {e}")))?;
+                if m.format != "fringemill-fields" || m.plate_px != [plate.width, plate.height] {
+                    return Err(Error::input(
+                        &mp,
+                        format!(
+                            "not the fields manifest of this {} x {} plate",
+                            plate.width, plate.height
+                        ),
+                    ));
+                }
+                // The fields must tile the plate exactly, each file of its stated size.
+                let mut covered = 0u64;
+                for f in &m.fields {
+                    let fits = f.first_px[0] as u64 + f.size_px[0] as u64 <= plate.width as u64
+                        && f.first_px[1] as u64 + f.size_px[1] as u64 <= plate.height as u64;
+                    if !fits || f.file.contains('/') || f.file.contains('\\') {
+                        return Err(Error::input(
+                            &mp,
+                            format!("field {} leaves the plate", f.file),
+                        ));
+                    }
+                    check_tiff_size(&tif.with_file_name(&f.file), f.size_px)?;
+                    covered += f.size_px[0] as u64 * f.size_px[1] as u64;
+                }
+                if covered != plate.pixels() {
+                    return Err(Error::input(&mp, "the fields do not cover the plate once"));
+                }
+                m.fields
+            }
+        };
         Ok(PlateFile {
             tif: tif.to_path_buf(),
             plate,
             reference,
             encoding,
+            fields,
         })
     }
 
@@ -193,12 +249,46 @@ impl PlateFile {
                 ),
             ));
         }
-        let f = std::fs::File::open(&self.tif).map_err(|e| Error::io(&self.tif, e))?;
+        if self.fields.is_empty() {
+            return self.read_tiff_window(&self.tif, win);
+        }
+        // Fields: each one overlapping the window gives its part.
+        let mut out = vec![0u16; win.w as usize * win.h as usize];
+        for f in &self.fields {
+            let x0 = win.x.max(f.first_px[0]);
+            let y0 = win.y.max(f.first_px[1]);
+            let x1 = (win.x + win.w).min(f.first_px[0] + f.size_px[0]);
+            let y1 = (win.y + win.h).min(f.first_px[1] + f.size_px[1]);
+            if x0 >= x1 || y0 >= y1 {
+                continue;
+            }
+            let part = self.read_tiff_window(
+                &self.tif.with_file_name(&f.file),
+                Window {
+                    x: x0 - f.first_px[0],
+                    y: y0 - f.first_px[1],
+                    w: x1 - x0,
+                    h: y1 - y0,
+                },
+            )?;
+            let pw = (x1 - x0) as usize;
+            for (r, row) in part.chunks_exact(pw).enumerate() {
+                let o = (y0 - win.y) as usize + r;
+                let c = (x0 - win.x) as usize;
+                out[o * win.w as usize + c..][..pw].copy_from_slice(row);
+            }
+        }
+        Ok(out)
+    }
+
+    /// Stored samples of a window of one TIFF (the plate's, or one field's, in its own pixels).
+    fn read_tiff_window(&self, tif: &Path, win: Window) -> Result<Vec<u16>> {
+        let f = std::fs::File::open(tif).map_err(|e| Error::io(tif, e))?;
         let mut d = Decoder::new(std::io::BufReader::new(f))
-            .map_err(|e| Error::input(&self.tif, e.to_string()))?;
+            .map_err(|e| Error::input(tif, e.to_string()))?;
         let (_, rps) = d.chunk_dimensions();
         let rps = rps.max(1);
-        let bad = |e: tiff::TiffError| Error::input(&self.tif, format!("cannot read strip: {e}"));
+        let bad = |e: tiff::TiffError| Error::input(tif, format!("cannot read strip: {e}"));
         let mut out = Vec::with_capacity(win.w as usize * win.h as usize);
         let bits = self.encoding.bits_per_sample();
         for s in win.y / rps..=(win.y + win.h - 1) / rps {
@@ -226,7 +316,7 @@ impl PlateFile {
                     }
                     _ => {
                         return Err(Error::input(
-                            &self.tif,
+                            tif,
                             format!(
                                 "sample type does not match the {bits}-bit encoding of its sidecar"
                             ),
@@ -237,6 +327,26 @@ impl PlateFile {
         }
         Ok(out)
     }
+}
+
+/// Checks that `tif` is a readable TIFF of `size` = [columns, rows].
+fn check_tiff_size(tif: &Path, size: [u32; 2]) -> Result<()> {
+    let f = std::fs::File::open(tif).map_err(|e| Error::io(tif, e))?;
+    let mut d = Decoder::new(std::io::BufReader::new(f))
+        .map_err(|e| Error::input(tif, format!("not a readable TIFF: {e}")))?;
+    let (w, h) = d
+        .dimensions()
+        .map_err(|e| Error::input(tif, e.to_string()))?;
+    if [w, h] != size {
+        return Err(Error::input(
+            tif,
+            format!(
+                "is {w} x {h} px but its sidecar says {} x {}",
+                size[0], size[1]
+            ),
+        ));
+    }
+    Ok(())
 }
 
 /// How the plate is lit.
