@@ -61,6 +61,7 @@ fn opts(algorithm: Algorithm, iterations: usize) -> IterOptions {
         levels: None,
         quantize_last: 0,
         stall_tolerance: 0.0,
+        min_iterations: 0,
     }
 }
 
@@ -338,13 +339,62 @@ fn stall_tolerance_stops_early() {
     target[(N / 2) * N + N / 2 + 8] = 1.0;
     let plane = fourier_plane(target);
     let o = IterOptions {
-        stall_tolerance: 1e-6,
+        stall_tolerance: 1e-3,
+        min_iterations: 5,
         ..opts(Algorithm::GerchbergSaxton, 100)
     };
     let r = run(std::slice::from_ref(&plane), &o);
     assert!(r.stopped_early);
-    assert!(r.errors.len() < 20, "{} iterations", r.errors.len());
+    assert!(r.errors.len() < 25, "{} iterations", r.errors.len());
     assert!(*r.errors.last().unwrap() < 1e-2);
+    // Not before min_iterations.
+    let r = run(
+        std::slice::from_ref(&plane),
+        &IterOptions {
+            min_iterations: 40,
+            ..o
+        },
+    );
+    assert!(
+        r.stopped_early && r.errors.len() > 40,
+        "{} iterations",
+        r.errors.len()
+    );
+}
+
+/// The stall test on error histories: an error still falling 0.6 % per iteration never stops
+/// (the window's best is 6 % below the best before it); a plateau stops once the window and
+/// `min_iterations` have passed; an error that wavers while its best still improves goes on;
+/// no stop in the first `min_iterations`.
+#[test]
+fn stall_test_measures_relative_improvement_over_a_window() {
+    use fringemill::synthesis::iterative::{stalled, STALL_WINDOW};
+    let falling: Vec<f64> = (0..200).map(|k| 0.5 * 0.994f64.powi(k)).collect();
+    for m in 1..=falling.len() {
+        assert!(
+            !stalled(&falling[..m], 1e-3, 30),
+            "falling error stopped at {m}"
+        );
+    }
+    let mut plateau: Vec<f64> = (0..20).map(|k| 0.5 * 0.9f64.powi(k)).collect();
+    plateau.extend(std::iter::repeat(plateau[19]).take(40));
+    // The plateau starts at entry 19: the window holds only plateau values once it starts at 20.
+    let first = (1..=plateau.len()).find(|&m| stalled(&plateau[..m], 1e-3, 0));
+    assert_eq!(first, Some(20 + STALL_WINDOW), "plateau");
+    // errors[0] is the start: 30 iterations have run at 31 entries.
+    let first = (1..=plateau.len()).find(|&m| stalled(&plateau[..m], 1e-3, 30));
+    assert_eq!(first, Some(31), "plateau with min_iterations 30");
+    assert_eq!(
+        (1..=plateau.len()).find(|&m| stalled(&plateau[..m], 1e-3, 45)),
+        Some(46),
+        "plateau with min_iterations 45"
+    );
+    // Wavering: every other iteration 3 % worse, the best still falling 0.5 % per iteration.
+    let waver: Vec<f64> = (0..120)
+        .map(|k| 0.4 * 0.995f64.powi(k) * if k % 2 == 1 { 1.03 } else { 1.0 })
+        .collect();
+    assert!((1..=waver.len()).all(|m| !stalled(&waver[..m], 1e-3, 0)));
+    assert!(!stalled(&plateau[..25], 0.0, 0), "tolerance 0 never stops");
 }
 
 #[test]
@@ -477,6 +527,7 @@ fn transposed_layout_matches_row_major_loop() {
             levels,
             quantize_last: if levels.is_some() { 4 } else { 0 },
             stall_tolerance: 0.0,
+            min_iterations: 0,
         };
         let t = optimise(&planes(false), &g, &o, &mut |_, _| {});
         let r = optimise(&planes(true), &g, &o, &mut |_, _| {});

@@ -226,76 +226,61 @@ fn resolution_tags_give_physical_size() {
     }
 }
 
-/// A modulator calibration table: the identity table (phase 2 pi s / 256 for grey s) leaves the plate
-/// unchanged; a non-linear one writes, for every pixel, the grey value whose measured phase is
-/// nearest (mod 2 pi) to the pixel's level phase 2 pi g / N (computed here independently).
-#[test]
-fn calibration_table_is_applied_exactly() {
+/// physics.md-independent rule for a calibrated level -> grey map, by brute force: the table's
+/// points joined by straight lines at every integer grey, the one branch from the lowest grey
+/// whose phase counted from it stays below 2 pi, and for level l the grey of that branch whose
+/// phase is nearest (circular distance) to 2 pi l / N, ties to the lower grey.
+fn brute_level_to_grey(table: &[(u32, f64)], levels: u32) -> Vec<u16> {
     let two_pi = 2.0 * std::f64::consts::PI;
-    let dir = tempfile::tempdir().unwrap();
-    let plain = {
-        let job = write_job(dir.path(), "kind = \"phase\"\nlevels = 16", "");
-        let spec = JobSpec::load(&job).unwrap();
-        decode(
-            &run_job(&spec, &RunOptions::new(ProgressMode::Quiet))
-                .unwrap()
-                .tiff,
-        )
-        .2
+    let (g0, p0) = table[0];
+    let (gl, _) = table[table.len() - 1];
+    let phase = |g: u32| {
+        let k = table.iter().position(|&(t, _)| t >= g).unwrap();
+        if table[k].0 == g {
+            return table[k].1;
+        }
+        let ((ga, pa), (gb, pb)) = (table[k - 1], table[k]);
+        pa + (pb - pa) * (g - ga) as f64 / (gb - ga) as f64
     };
-    let mut ident = String::from("grey,phase_rad\n");
-    for s in 0..256 {
-        ident += &format!("{s},{}\n", two_pi * s as f64 / 256.0);
-    }
-    std::fs::write(dir.path().join("ident.csv"), ident).unwrap();
-    let job = write_job(
-        dir.path(),
-        "kind = \"phase\"\nlevels = 16\ncalibration = \"ident.csv\"",
-        "",
-    );
+    let branch: Vec<(u32, f64)> = (g0..=gl)
+        .map(|g| (g, phase(g) - p0))
+        .take_while(|&(_, u)| u < two_pi)
+        .collect();
+    (0..levels)
+        .map(|l| {
+            let want = two_pi * l as f64 / levels as f64;
+            let mut best = (f64::INFINITY, 0u32);
+            for &(g, u) in &branch {
+                let d = (u - want).rem_euclid(two_pi);
+                let d = d.min(two_pi - d);
+                if d < best.0 {
+                    best = (d, g);
+                }
+            }
+            best.1 as u16
+        })
+        .collect()
+}
+
+/// Runs the 53 x 41 plate of [`write_job`] with `encoding` and returns its samples.
+fn plate_with(dir: &Path, encoding: &str) -> Vec<u16> {
+    let job = write_job(dir, encoding, "");
     let spec = JobSpec::load(&job).unwrap();
-    let with_ident = decode(
+    decode(
         &run_job(&spec, &RunOptions::new(ProgressMode::Quiet))
             .unwrap()
             .tiff,
     )
-    .2;
-    assert!(
-        with_ident == plain,
-        "identity calibration changed the plate"
-    );
-    // A gamma-like response reaching 2.2 pi at grey 255, sampled every 3 grey values.
-    let response = |s: u32| 2.2 * std::f64::consts::PI * (s as f64 / 255.0).powf(1.6);
-    let mut table = String::from("# measured response\ngrey,phase_rad\n");
-    for s in (0..256).step_by(3) {
-        table += &format!("{s},{}\n", response(s));
-    }
-    std::fs::write(dir.path().join("lut.csv"), table).unwrap();
-    let job = write_job(
-        dir.path(),
-        "kind = \"phase\"\nlevels = 16\ncalibration = \"lut.csv\"",
-        "",
-    );
+    .2
+}
+
+/// The level (0..N) of every pixel of the [`write_job`] plate, from the slow reference sum.
+fn reference_levels(dir: &Path, levels: u32) -> Vec<u32> {
+    let two_pi = 2.0 * std::f64::consts::PI;
+    let job = write_job(dir, "kind = \"phase\"\nlevels = 16", "");
     let spec = JobSpec::load(&job).unwrap();
-    let out = decode(
-        &run_job(&spec, &RunOptions::new(ProgressMode::Quiet))
-            .unwrap()
-            .tiff,
-    )
-    .2;
-    let nearest = |g: u32| {
-        let want = two_pi * g as f64 / 16.0;
-        (0..256u32)
-            .step_by(3)
-            .map(|s| {
-                let d = (response(s) - want).rem_euclid(two_pi);
-                (d.min(two_pi - d), s)
-            })
-            .min_by(|a, b| a.0.total_cmp(&b.0).then(a.1.cmp(&b.1)))
-            .unwrap()
-            .1 as u16
-    };
     let emitters = fringemill::job::build_emitters(&spec).unwrap();
+    let mut out = Vec::new();
     for i in 0..41u32 {
         for j in 0..53u32 {
             let f = fringe_at(
@@ -310,14 +295,115 @@ fn calibration_table_is_applied_exactly() {
             if phi < 0.0 {
                 phi += two_pi;
             }
-            let g = ((16.0 * phi / two_pi).round() as u32) % 16;
-            assert_eq!(
-                out[(i * 53 + j) as usize],
-                nearest(g),
-                "pixel ({i}, {j}) level {g}"
-            );
+            out.push(((levels as f64 * phi / two_pi).round() as u32) % levels);
         }
     }
+    out
+}
+
+/// A modulator calibration table: the identity table (phase 2 pi s / 256 for grey s) leaves the plate
+/// unchanged; a non-linear one, sampled sparsely, writes for every pixel the grey of one monotonic
+/// branch whose interpolated phase is nearest to the pixel's level phase 2 pi g / N (computed here
+/// independently, by brute force over every grey).
+#[test]
+fn calibration_table_is_applied_exactly() {
+    let two_pi = 2.0 * std::f64::consts::PI;
+    let dir = tempfile::tempdir().unwrap();
+    let plain = plate_with(dir.path(), "kind = \"phase\"\nlevels = 16");
+    let mut ident = String::from("grey,phase_rad\n");
+    for s in 0..256 {
+        ident += &format!("{s},{}\n", two_pi * s as f64 / 256.0);
+    }
+    std::fs::write(dir.path().join("ident.csv"), ident).unwrap();
+    let with_ident = plate_with(
+        dir.path(),
+        "kind = \"phase\"\nlevels = 16\ncalibration = \"ident.csv\"",
+    );
+    assert!(
+        with_ident == plain,
+        "identity calibration changed the plate"
+    );
+    // A gamma-like response reaching 2.2 pi at grey 255, sampled every 3 grey values (rows given
+    // out of order: the table is sorted by grey).
+    let response = |s: u32| 2.2 * std::f64::consts::PI * (s as f64 / 255.0).powf(1.6);
+    let mut rows: Vec<(u32, f64)> = (0..256).step_by(3).map(|s| (s, response(s))).collect();
+    let mut table = String::from("# measured response\ngrey,phase_rad\n");
+    for &(s, p) in rows.iter().rev() {
+        table += &format!("{s},{p}\n");
+    }
+    std::fs::write(dir.path().join("lut.csv"), table).unwrap();
+    let out = plate_with(
+        dir.path(),
+        "kind = \"phase\"\nlevels = 16\ncalibration = \"lut.csv\"",
+    );
+    rows.sort_by_key(|r| r.0);
+    let map = brute_level_to_grey(&rows, 16);
+    // One branch: the map rises with the level, and no grey of the branch's far end (phase past
+    // 2 pi from grey 0) is used.
+    assert!(map.windows(2).all(|w| w[0] < w[1]), "{map:?}");
+    let levels = reference_levels(dir.path(), 16);
+    for (k, &g) in levels.iter().enumerate() {
+        assert_eq!(
+            out[k],
+            map[g as usize],
+            "pixel ({}, {}) level {g}",
+            k / 53,
+            k % 53
+        );
+    }
+    // A table every 8th grey is interpolated: 64 levels use 64 distinct greys, not the 32 tabulated.
+    let sparse: Vec<(u32, f64)> = (0..=255).step_by(8).map(|s| (s, response(s))).collect();
+    let mut text = String::from("grey,phase_rad\n");
+    for &(s, p) in &sparse {
+        text += &format!("{s},{p}\n");
+    }
+    std::fs::write(dir.path().join("sparse.csv"), text).unwrap();
+    let out = plate_with(
+        dir.path(),
+        "kind = \"phase\"\nlevels = 64\ncalibration = \"sparse.csv\"",
+    );
+    let map = brute_level_to_grey(&sparse, 64);
+    let mut distinct = map.clone();
+    distinct.dedup();
+    assert_eq!(distinct.len(), 64, "{map:?}");
+    let levels = reference_levels(dir.path(), 64);
+    for (k, &g) in levels.iter().enumerate() {
+        assert_eq!(out[k], map[g as usize], "sparse table, pixel {k} level {g}");
+    }
+    // A table measured at 532 nm used at 633 nm: phases scale by 532 / 633 (retardance ~ 1 / lambda,
+    // common practice), so the 2 pi grey moves up.
+    let out = plate_with(
+        dir.path(),
+        "kind = \"phase\"\nlevels = 16\ncalibration = \"sparse.csv\"\ncalibration_nm = 532",
+    );
+    let scaled: Vec<(u32, f64)> = sparse
+        .iter()
+        .map(|&(s, p)| (s, p * 532.0 / 633.0))
+        .collect();
+    let map = brute_level_to_grey(&scaled, 16);
+    let levels = reference_levels(dir.path(), 16);
+    for (k, &g) in levels.iter().enumerate() {
+        assert_eq!(
+            out[k], map[g as usize],
+            "calibration_nm, pixel {k} level {g}"
+        );
+    }
+    // A response that turns back by more than noise is refused, naming the grey.
+    std::fs::write(
+        dir.path().join("turn.csv"),
+        "grey,phase_rad\n0,0\n64,2.0\n128,3.5\n192,2.5\n255,6.5\n",
+    )
+    .unwrap();
+    let job = write_job(
+        dir.path(),
+        "kind = \"phase\"\nlevels = 16\ncalibration = \"turn.csv\"",
+        "",
+    );
+    let e = JobSpec::load(&job).unwrap_err().to_string();
+    assert!(
+        e.contains("turn.csv") && e.contains("grey 192") && e.contains("monotonic"),
+        "{e}"
+    );
     // A malformed table is a one-line error naming the file and line.
     std::fs::write(dir.path().join("bad.csv"), "grey,phase_rad\n3,x\n").unwrap();
     let job = write_job(
@@ -327,4 +413,71 @@ fn calibration_table_is_applied_exactly() {
     );
     let e = JobSpec::load(&job).unwrap_err().to_string();
     assert!(e.contains("bad.csv") && e.contains("line 2"), "{e}");
+}
+
+/// A linear panel calibrated to reach 2 pi at grey G (`two_pi_grey`): level l of N is written as
+/// round(l G / N), halves down; 10-bit levels can be written right-justified (`justify = "right"`,
+/// s = l in 16-bit samples, as panels take them) and replay reads them back.
+#[test]
+fn linear_panels_and_right_justified_levels() {
+    let dir = tempfile::tempdir().unwrap();
+    let levels = reference_levels(dir.path(), 16);
+    let out = plate_with(
+        dir.path(),
+        "kind = \"phase\"\nlevels = 16\ntwo_pi_grey = 200",
+    );
+    for (k, &l) in levels.iter().enumerate() {
+        // 12.5 l, halves down (common practice: ties to the lower grey).
+        let want = (l as f64 * 200.0 / 16.0 - 0.5).ceil() as u16;
+        assert_eq!(out[k], want, "two_pi_grey, pixel {k} level {l}");
+    }
+    let levels = reference_levels(dir.path(), 1024);
+    let job = write_job(
+        dir.path(),
+        "kind = \"phase\"\nlevels = 1024\njustify = \"right\"",
+        "",
+    );
+    let spec = JobSpec::load(&job).unwrap();
+    let tif = run_job(&spec, &RunOptions::new(ProgressMode::Quiet))
+        .unwrap()
+        .tiff;
+    let mut d = Decoder::new(std::fs::File::open(&tif).unwrap()).unwrap();
+    assert_eq!(d.colortype().unwrap(), tiff::ColorType::Gray(16));
+    let out = decode(&tif).2;
+    for (k, &l) in levels.iter().enumerate() {
+        assert_eq!(out[k] as u32, l, "right-justified, pixel {k}");
+    }
+    // The tool's own replay reads the right-justified samples as phases 2 pi s / 1024: the
+    // replayed field at the plate (distance 0 is refused, so compare transmittances directly).
+    let pf = fringemill::replay::PlateFile::open(&tif).unwrap();
+    for s in [0u16, 1, 512, 1023] {
+        let t = pf.encoding.transmittance(s);
+        let want =
+            num_complex::Complex64::from_polar(1.0, 2.0 * std::f64::consts::PI * s as f64 / 1024.0);
+        assert!((t - want).norm() < 1e-12, "sample {s}: {t} vs {want}");
+    }
+    // Conflicting or misplaced keys are refused.
+    for (enc, what) in [
+        (
+            "kind = \"phase\"\nlevels = 16\ntwo_pi_grey = 200\njustify = \"right\"",
+            "give one",
+        ),
+        (
+            "kind = \"phase\"\nlevels = 16\ntwo_pi_grey = 1",
+            "two_pi_grey",
+        ),
+        (
+            "kind = \"phase\"\nlevels = 16\njustify = \"middle\"",
+            "justify",
+        ),
+        ("kind = \"binary-phase\"\njustify = \"right\"", "justify"),
+        (
+            "kind = \"phase\"\nlevels = 16\ncalibration_nm = 532",
+            "calibration_nm",
+        ),
+    ] {
+        let job = write_job(dir.path(), enc, "");
+        let e = JobSpec::load(&job).unwrap_err().to_string();
+        assert!(e.contains(what), "{enc}: {e}");
+    }
 }

@@ -295,3 +295,271 @@ fn blank_plate_zero_order_on_the_axis_sample() {
         assert!(pk["y_mm"].as_f64().unwrap().abs() < 1e-12);
     }
 }
+
+/// Intensity of a phase plate's samples under a plain DFT (physics.md: phase 2 pi s / 2^8).
+fn dft_intensity_256(s: &[u16], n: usize) -> Vec<f64> {
+    let t: Vec<Complex64> = s
+        .iter()
+        .map(|&s| Complex64::from_polar(1.0, 2.0 * PI * s as f64 / 256.0))
+        .collect();
+    dft2(&t, n, n).iter().map(|v| v.norm_sqr()).collect()
+}
+
+/// A 25 x 25 target of nine isolated spots (pixels (2 + 8a, 2 + 8b)), as a lab draws a spot array.
+fn spot_target(dir: &Path) -> Vec<(usize, usize)> {
+    let mut v = vec![0u8; 25 * 25];
+    let mut spots = Vec::new();
+    for a in 0..3 {
+        for b in 0..3 {
+            let (r, c) = (2 + 8 * a, 2 + 8 * b);
+            v[r * 25 + c] = 255;
+            spots.push((r, c));
+        }
+    }
+    write_grey_png(&dir.join("spots.png"), 25, 25, &v);
+    spots
+}
+
+fn spot_job(dir: &Path, n: usize, extra: &str) -> std::path::PathBuf {
+    let job = dir.join("job.toml");
+    std::fs::write(
+        &job,
+        format!(
+            "[hologram]\nwidth_px = {n}\nheight_px = {n}\npitch_um = 8.0\nwavelength_nm = 532\n\
+             [reference]\nkind = \"plane\"\n[[object]]\nimage = \"spots.png\"\n\
+             [synthesis]\nmethod = \"iterative\"\ngeometry = \"fourier\"\nfocal_mm = 200\n\
+             algorithm = \"weighted-gs\"\niterations = 40\nseed = 2\n{extra}\n\
+             [encoding]\nkind = \"phase\"\nlevels = 256\n[output]\npath = \"p.tif\"\n"
+        ),
+    )
+    .unwrap();
+    job
+}
+
+/// A 64 x 64 cell tiled 2 x 2 over a 128 x 128 plate replays only on every other sample of the
+/// plate's lattice (a periodic pattern must); the cell's spots are designed on those samples, so
+/// under a plain DFT each designed spot is one sample, floor(128/2) + 2 (c - floor(64/2)), holding
+/// nearly all the light of its neighbourhood (physics.md, "Replay lattices").
+#[test]
+fn tiled_cell_replays_each_spot_as_one_sample() {
+    let d = tempfile::tempdir().unwrap();
+    let spots = spot_target(d.path());
+    let job = spot_job(d.path(), 128, "cell_px = [64, 64]");
+    run(&["run", "-q", job.to_str().unwrap()]);
+    let (_, _, s) = decode(&d.path().join("p.tif"));
+    // The plate is the cell repeated.
+    for i in 0..128 {
+        for j in 0..128 {
+            assert_eq!(s[i * 128 + j], s[(i % 64) * 128 + j % 64], "({i}, {j})");
+        }
+    }
+    let dd = dft_intensity_256(&s, 128);
+    let total: f64 = dd.iter().sum();
+    let at = |m: i64, n: i64| dd[shifted(m as usize, n as usize, 128, 128)];
+    // Target pixel (r, c) of the 25 x 25 image sits on cell sample (32 - 12 + r, 32 - 12 + c).
+    let mut in_spots = 0.0;
+    let mut powers = Vec::new();
+    for &(r, c) in &spots {
+        let (cm, cn) = (20 + r as i64, 20 + c as i64);
+        let (m, n) = (64 + 2 * (cm - 32), 64 + 2 * (cn - 32));
+        let p = at(m, n);
+        let mut hood = 0.0;
+        for dm in -2..=2 {
+            for dn in -2..=2 {
+                hood += at(m + dm, n + dn);
+            }
+        }
+        assert!(
+            p >= 0.95 * hood,
+            "spot ({r}, {c}) at ({m}, {n}): {:.4} of its 5 x 5 neighbourhood",
+            p / hood
+        );
+        in_spots += p;
+        powers.push(p);
+    }
+    let (lo, hi) = powers
+        .iter()
+        .fold((f64::MAX, 0.0f64), |(a, b), &p| (a.min(p), b.max(p)));
+    eprintln!(
+        "tiled cell: efficiency {:.4}, min/max {:.4}",
+        in_spots / total,
+        lo / hi
+    );
+    assert!(in_spots / total > 0.7, "efficiency {}", in_spots / total);
+    assert!(lo / hi > 0.8, "uniformity min/max {}", lo / hi);
+}
+
+/// A carrier is snapped to a whole number m of the plate's replay samples (sin t = m lambda /
+/// (N p)): the sidecar and `plan` say so, and the replay under a plain DFT moves by exactly m
+/// samples (x right, y up), so a lab's own FFT samples the moved image at the designed points.
+#[test]
+fn carrier_moves_the_replay_by_whole_samples() {
+    let n = 128usize;
+    let d = tempfile::tempdir().unwrap();
+    let spots = spot_target(d.path());
+    let job = spot_job(d.path(), n, "carrier_deg = [0.9, 0.5]");
+    let o = Command::new(BIN)
+        .args(["plan", job.to_str().unwrap()])
+        .output()
+        .unwrap();
+    let plan =
+        String::from_utf8_lossy(&o.stdout).into_owned() + &String::from_utf8_lossy(&o.stderr);
+    assert!(o.status.success(), "{plan}");
+    // step = lambda / (N p); m = round(sin t / step).
+    let step = 532e-9 / (n as f64 * 8e-6);
+    let m = [
+        (0.9f64.to_radians().sin() / step).round() as i64,
+        (0.5f64.to_radians().sin() / step).round() as i64,
+    ];
+    assert_eq!(m, [30, 17]);
+    assert!(
+        plan.contains("snapped") && plan.contains(&format!("[{}, {}] whole samples", m[0], m[1])),
+        "{plan}"
+    );
+    run(&["run", "-q", job.to_str().unwrap()]);
+    let side: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(d.path().join("p.json")).unwrap()).unwrap();
+    let it = &side["iterative"];
+    assert_eq!(
+        it["carrier_samples"],
+        serde_json::json!([m[0], m[1]]),
+        "{it}"
+    );
+    assert_eq!(
+        it["carrier_asked_deg"],
+        serde_json::json!([0.9, 0.5]),
+        "{it}"
+    );
+    let applied = it["carrier_deg"][0].as_f64().unwrap();
+    assert!(((applied.to_radians().sin()) - m[0] as f64 * step).abs() < 1e-12);
+    let (_, _, s) = decode(&d.path().join("p.tif"));
+    let dd = dft_intensity_256(&s, n);
+    let total: f64 = dd.iter().sum();
+    let mut in_spots = 0.0;
+    for &(r, c) in &spots {
+        let (row, col) = (64 - 12 + r as i64 - m[1], 64 - 12 + c as i64 + m[0]);
+        let p = dd[shifted(row as usize, col as usize, n, n)];
+        // One sample per spot: its 3 x 3 neighbours hold little.
+        let mut hood = 0.0;
+        for dm in -1..=1i64 {
+            for dn in -1..=1i64 {
+                hood += dd[shifted((row + dm) as usize, (col + dn) as usize, n, n)];
+            }
+        }
+        assert!(
+            p > 0.9 * hood,
+            "spot ({r}, {c}): {:.4} of its 3 x 3",
+            p / hood
+        );
+        in_spots += p;
+    }
+    assert!(in_spots / total > 0.7, "efficiency {}", in_spots / total);
+}
+
+/// `cell_px` larger than the plate is refused (it cannot repeat over it), by `plan` and `run`.
+#[test]
+fn cell_larger_than_the_plate_is_refused() {
+    let d = tempfile::tempdir().unwrap();
+    spot_target(d.path());
+    let job = spot_job(d.path(), 128, "cell_px = [128, 192]");
+    for cmd in ["plan", "run"] {
+        let o = Command::new(BIN)
+            .args([cmd, job.to_str().unwrap()])
+            .output()
+            .unwrap();
+        let e = String::from_utf8_lossy(&o.stderr);
+        assert!(!o.status.success(), "{cmd} accepted it");
+        assert!(e.contains("cell_px") && e.contains("larger than"), "{e}");
+        assert_eq!(e.trim().lines().count(), 1, "{e}");
+    }
+    assert!(!d.path().join("p.tif").exists());
+}
+
+/// An iterative plate in Fresnel geometry is designed for a real image at +D: a lab's own
+/// single-FFT Fresnel replay by +D (Goodman, Introduction to Fourier Optics, eq. 4-17: chirp
+/// exp(i pi x^2 / (lambda z)) on the plate, then a plain DFT, axis on sample floor(N/2)) shows
+/// the target, by -D it does not; `reconstruct --distance-mm D` uses the design's sign and says so.
+#[test]
+fn fresnel_iterative_plate_replays_at_plus_d() {
+    let n = 128usize;
+    let (p, lambda, z) = (8e-6, 532e-9, 0.1);
+    let d = tempfile::tempdir().unwrap();
+    // An invented target filling the lattice: a ring and a bar on black.
+    let mut v = vec![0u8; n * n];
+    for r in 0..n {
+        for c in 0..n {
+            let (dx, dy) = (c as f64 - 54.0, r as f64 - 64.0);
+            let rr = (dx * dx + dy * dy).sqrt();
+            if (14.0..22.0).contains(&rr) || ((80..92).contains(&c) && (40..90).contains(&r)) {
+                v[r * n + c] = 255;
+            }
+        }
+    }
+    write_grey_png(&d.path().join("t.png"), n, n, &v);
+    let job = d.path().join("job.toml");
+    std::fs::write(
+        &job,
+        format!(
+            "[hologram]\nwidth_px = {n}\nheight_px = {n}\npitch_um = 8.0\nwavelength_nm = 532\n\
+             [reference]\nkind = \"plane\"\n[[object]]\nimage = \"t.png\"\ndistance_mm = 100\n\
+             [synthesis]\nmethod = \"iterative\"\ngeometry = \"fresnel\"\n\
+             iterations = 60\nseed = 3\n\
+             [encoding]\nkind = \"phase\"\nlevels = 256\n[output]\npath = \"p.tif\"\n"
+        ),
+    )
+    .unwrap();
+    run(&["run", "-q", job.to_str().unwrap()]);
+    let (_, _, s) = decode(&d.path().join("p.tif"));
+    let target: Vec<f64> = v.iter().map(|&g| g as f64).collect();
+    let c0 = (n / 2) as f64;
+    let own = |sign: f64| {
+        let t: Vec<Complex64> = s
+            .iter()
+            .enumerate()
+            .map(|(k, &s)| {
+                let (x, y) = (((k % n) as f64 - c0) * p, (c0 - (k / n) as f64) * p);
+                let chirp = sign * PI * (x * x + y * y) / (lambda * z);
+                Complex64::from_polar(1.0, 2.0 * PI * s as f64 / 256.0 + chirp)
+            })
+            .collect();
+        // Propagating by -z conjugates the kernel: the DFT's sign flips, i.e. the image is
+        // the inverse DFT, read here as the forward DFT at index -k.
+        let dd = dft2(&t, n, n);
+        let got: Vec<f64> = (0..n * n)
+            .map(|k| {
+                let (m, q) = (k / n, k % n);
+                let (m, q) = if sign > 0.0 {
+                    (m, q)
+                } else {
+                    ((n - m) % n, (n - q) % n)
+                };
+                dd[shifted(m, q, n, n)].norm_sqr()
+            })
+            .collect();
+        correlation(&got, &target)
+    };
+    let (plus, minus) = (own(1.0), own(-1.0));
+    eprintln!("own Fresnel replay: correlation {plus:.4} at +D, {minus:.4} at -D");
+    assert!(plus > 0.85, "correlation {plus} at +D");
+    assert!(minus < 0.5, "correlation {minus} at -D");
+    let out = d.path().join("r.png");
+    run(&[
+        "reconstruct",
+        d.path().join("p.tif").to_str().unwrap(),
+        "--distance-mm",
+        "100",
+        "--target",
+        d.path().join("t.png").to_str().unwrap(),
+        "--out",
+        out.to_str().unwrap(),
+    ]);
+    let m: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(d.path().join("r.json")).unwrap()).unwrap();
+    let corr = m["planes"][0]["target"]["correlation"].as_f64().unwrap();
+    assert!(corr > 0.85, "reconstruct correlation {corr}: {m}");
+    assert!(
+        m["depth_convention"].as_str().unwrap().contains("+D"),
+        "{}",
+        m["depth_convention"]
+    );
+}

@@ -12,64 +12,177 @@
 
 use num_complex::Complex64;
 
-/// A modulator's measured grey-to-phase response, applied when writing N-level phase:
-/// level g (phase 2 pi g / N) is written as the grey value whose measured phase is nearest to it
-/// modulo 2 pi (phase wrap 2 pi).
+/// A modulator's grey-to-phase response, applied when writing N-level phase.
+///
+/// The response is the table's points joined by straight lines (every integer grey between two
+/// tabulated ones gets the interpolated phase). It must be monotonic in grey (rising or falling);
+/// reversals of up to [`Calibration::REVERSAL_TOLERANCE`] rad, as measurement noise gives, are
+/// flattened. One branch is used: the greys from the lowest tabulated one whose phase, counted
+/// from that grey's phase, lies in [0, 2 pi). Level g (phase 2 pi g / N, up to the constant
+/// phase of the lowest grey, which no replay sees) is written as the grey of that branch whose
+/// phase is nearest to it modulo 2 pi, ties (within 1e-9 rad) to the lower grey; so neighbouring levels get
+/// neighbouring greys and the level -> grey map rises (or, for a falling response, is read
+/// backwards) with one wrap at most. A stroke short of 2 pi sends the unreachable levels to the
+/// nearer end of the branch.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Calibration {
-    /// Bits of the stored grey values (8 or 16).
+    /// Bits of the stored grey values: 8 when every grey used fits, else 16.
     pub bits: u8,
-    /// Measured (grey, phase in radians) pairs, as given.
+    /// The response as used: (grey, phase in radians) by rising grey, scaled when the table was
+    /// measured at another wavelength.
     pub table: Vec<(u16, f64)>,
     /// Grey value written for each level g = 0..N.
     pub level_to_grey: Vec<u16>,
+    /// Phase covered by the branch, radians (2 pi or less).
+    pub stroke: f64,
+    /// Where the response came from, in words (for the sidecar).
+    pub source: String,
 }
 
 impl Calibration {
-    /// Builds the level -> grey map for `levels` levels from measured pairs.
+    /// Reversals of the response up to this (radians) are taken as measurement noise and
+    /// flattened; larger ones refuse the table.
+    pub const REVERSAL_TOLERANCE: f64 = 0.05;
+
+    /// Builds the level -> grey map for `levels` levels from a response table.
     ///
     /// # Errors
-    /// A message when the table is empty or a grey value exceeds the bit depth.
-    pub fn new(table: Vec<(u16, f64)>, levels: u32, bits: u8) -> Result<Calibration, String> {
+    /// A message when the table is empty, has one grey twice, or is not monotonic.
+    pub fn new(
+        table: Vec<(u16, f64)>,
+        levels: u32,
+        source: impl Into<String>,
+    ) -> Result<Calibration, String> {
+        let two_pi = 2.0 * std::f64::consts::PI;
+        let mut table = table;
+        table.sort_by_key(|&(g, _)| g);
         if table.is_empty() {
             return Err("the calibration table is empty".into());
         }
-        let max = if bits == 8 { 255 } else { 65535 };
-        if let Some(&(g, _)) = table.iter().find(|&&(g, _)| g as u32 > max) {
-            return Err(format!(
-                "grey value {g} exceeds the {bits}-bit range of {levels} levels"
-            ));
+        if let Some(w) = table.windows(2).find(|w| w[0].0 == w[1].0) {
+            return Err(format!("grey {} is given twice", w[0].0));
         }
-        let two_pi = 2.0 * std::f64::consts::PI;
-        let level_to_grey = (0..levels)
-            .map(|g| {
-                let want = two_pi * g as f64 / levels as f64;
-                let mut best = (f64::INFINITY, 0u16);
-                for &(grey, ph) in &table {
-                    let d = (ph - want).rem_euclid(two_pi);
-                    let d = d.min(two_pi - d);
-                    // Nearest phase; ties go to the lower grey value.
-                    if d < best.0 || (d == best.0 && grey < best.1) {
-                        best = (d, grey);
+        if table.iter().any(|&(_, p)| !p.is_finite()) {
+            return Err("a phase is not a finite number".into());
+        }
+        if table.len() < 2 {
+            return Err("the calibration table needs at least two greys".into());
+        }
+        // Direction of the response: the sign of its overall change.
+        let (g0, p0) = table[0];
+        let rise = table[table.len() - 1].1 - p0;
+        if rise == 0.0 {
+            return Err("the measured phase does not change with grey".into());
+        }
+        let sign = rise.signum();
+        // u: phase counted from the lowest grey, in the direction of the response; flattened
+        // where noise makes it step back a little.
+        let mut knots: Vec<(u32, f64)> = Vec::with_capacity(table.len());
+        let mut top = 0.0f64;
+        for &(g, p) in &table {
+            let u = sign * (p - p0);
+            if u < top - Self::REVERSAL_TOLERANCE {
+                return Err(format!(
+                    "the response is not monotonic: the phase at grey {g} ({p:.4} rad) turns back by {:.3} rad; use one monotonic branch (smooth the measurement)",
+                    top - u
+                ));
+            }
+            top = top.max(u);
+            knots.push((g as u32, top));
+        }
+        // Every integer grey of the branch with its interpolated phase.
+        let mut u_of = Vec::new();
+        'outer: for w in knots.windows(2) {
+            let ((ga, ua), (gb, ub)) = (w[0], w[1]);
+            for g in ga..gb {
+                let u = ua + (ub - ua) * (g - ga) as f64 / (gb - ga) as f64;
+                if u >= two_pi {
+                    break 'outer;
+                }
+                u_of.push(u);
+            }
+        }
+        let (gl, ul) = knots[knots.len() - 1];
+        if ul < two_pi && u_of.len() == (gl - g0 as u32) as usize {
+            u_of.push(ul);
+        }
+        let stroke = *u_of.last().expect("at least the lowest grey");
+        let level_to_grey: Vec<u16> = (0..levels)
+            .map(|l| {
+                let theta = two_pi * l as f64 / levels as f64;
+                // The level's phase in the response's direction, in [0, 2 pi).
+                let want = if sign > 0.0 || l == 0 {
+                    theta
+                } else {
+                    two_pi - theta
+                };
+                let dist = |u: f64| {
+                    let d = (u - want).abs();
+                    d.min(two_pi - d)
+                };
+                // u_of rises: the nearest is next to the first grey at or above `want`, or the
+                // lowest grey (whose phase is want - 2 pi away the other way round).
+                const TIE: f64 = 1e-9;
+                let k = u_of.partition_point(|&u| u < want);
+                let mut best = (dist(u_of[0]), 0usize);
+                for c in [k.saturating_sub(1), k.min(u_of.len() - 1)] {
+                    let d = dist(u_of[c]);
+                    // Distances within TIE rad are ties (a linear panel's half-way levels
+                    // differ only by rounding), won by the lower grey.
+                    if d < best.0 - TIE || (d <= best.0 + TIE && c < best.1) {
+                        best = (d, c);
                     }
                 }
-                best.1
+                (g0 as usize + best.1) as u16
             })
             .collect();
+        let bits = if levels > 256 || level_to_grey.iter().any(|&g| g > 255) {
+            16
+        } else {
+            8
+        };
         Ok(Calibration {
             bits,
             table,
             level_to_grey,
+            stroke,
+            source: source.into(),
         })
     }
 
-    /// Measured phase of a grey value (the nearest tabulated grey if it is not in the table).
+    /// A linear response reaching 2 pi at grey `two_pi_grey` (phase 2 pi s / two_pi_grey): level
+    /// g is written as round(g two_pi_grey / N), halves down.
+    ///
+    /// # Errors
+    /// When `two_pi_grey` is below 2.
+    pub fn linear(
+        two_pi_grey: u16,
+        levels: u32,
+        source: impl Into<String>,
+    ) -> Result<Calibration, String> {
+        if two_pi_grey < 2 {
+            return Err(format!("two_pi_grey = {two_pi_grey} must be at least 2"));
+        }
+        Calibration::new(
+            vec![(0, 0.0), (two_pi_grey, 2.0 * std::f64::consts::PI)],
+            levels,
+            source,
+        )
+    }
+
+    /// Measured phase of a grey value: the response interpolated between tabulated greys, held
+    /// at the ends.
     pub fn phase_of(&self, grey: u16) -> f64 {
-        self.table
-            .iter()
-            .min_by_key(|&&(g, _)| (g as i64 - grey as i64).abs())
-            .map(|&(_, p)| p)
-            .unwrap_or(0.0)
+        let t = &self.table;
+        let k = t.partition_point(|&(g, _)| g < grey);
+        if k == 0 {
+            return t[0].1;
+        }
+        if k == t.len() {
+            return t[t.len() - 1].1;
+        }
+        let ((ga, pa), (gb, pb)) = (t[k - 1], t[k]);
+        pa + (pb - pa) * (grey - ga) as f64 / (gb - ga) as f64
     }
 }
 
@@ -115,9 +228,10 @@ impl Encoding {
     /// Bits per stored sample: 1, 8 or 16.
     pub fn bits_per_sample(&self) -> u8 {
         match *self {
-            Encoding::Phase { levels } | Encoding::CalibratedPhase { levels, .. } => {
-                phase_bits(levels)
-            }
+            Encoding::Phase { levels } => phase_bits(levels),
+            Encoding::CalibratedPhase {
+                ref calibration, ..
+            } => calibration.bits,
             Encoding::BinaryPhase | Encoding::BinaryAmplitude => 1,
             Encoding::Amplitude { bits, .. } => bits,
         }
@@ -518,13 +632,14 @@ mod unit_tests {
             Encoding::CalibratedPhase {
                 levels: 16,
                 calibration: std::sync::Arc::new(
-                    Calibration::new(vec![(0, 0.0), (100, 3.0), (255, 6.2)], 16, 8).unwrap(),
+                    Calibration::new(vec![(0, 0.0), (100, 3.0), (255, 6.2)], 16, "test").unwrap(),
                 ),
             },
             Encoding::CalibratedPhase {
                 levels: 300,
                 calibration: std::sync::Arc::new(
-                    Calibration::new(vec![(0, 0.0), (30000, 3.0), (65535, 6.2)], 300, 16).unwrap(),
+                    Calibration::new(vec![(0, 0.0), (30000, 3.0), (65535, 6.2)], 300, "test")
+                        .unwrap(),
                 ),
             },
             Encoding::Amplitude {

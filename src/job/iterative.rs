@@ -190,6 +190,7 @@ pub fn build_cell(
             0
         },
         stall_tolerance: it.stall_tolerance,
+        min_iterations: it.min_iterations,
     };
     let mut progress = Progress::new("iterations", it.iterations as f64, mode);
     let mut last = 0usize;

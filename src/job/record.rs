@@ -78,9 +78,11 @@ pub fn encoding_record(e: &Encoding) -> EncodingRecord {
         } => EncodingRecord::Phase {
             levels,
             bits_per_sample: bits,
-            stored_value: "the grey value of the calibration table whose measured phase is nearest (mod 2 pi) to 2 pi g / N, g = round(N arg(F) / 2 pi) mod N".into(),
+            stored_value: "s = level_to_grey[g], g = round(N arg(F) / 2 pi) mod N: the grey of the response's one monotonic branch (table joined by straight lines, phase counted from its lowest grey in [0, 2 pi)) nearest (mod 2 pi) to 2 pi g / N".into(),
             calibration: Some(CalibrationRecord {
+                source: calibration.source.clone(),
                 table: calibration.table.clone(),
+                stroke_rad: calibration.stroke,
                 level_to_grey: calibration.level_to_grey.clone(),
             }),
         },
@@ -228,6 +230,8 @@ pub fn iterative_record(it: &IterativeSpec, rec: &IterationRecord) -> IterativeR
             .map(|p| [p[0] * 1e6, p[1] * 1e6])
             .collect(),
         carrier_deg: [it.carrier[0].to_degrees(), it.carrier[1].to_degrees()],
+        carrier_asked_deg: it.carrier_asked_deg,
+        carrier_samples: it.carrier_samples,
         lens_mm: it.lens.map(|f| f * 1e3),
         seed: it.seed,
         quantize_last: it.quantize_last,

@@ -1316,6 +1316,17 @@ fn plan_iterative(spec: &JobSpec, it: &IterativeSpec) -> Result<PlanReport> {
             p.wavelength * f / p.pitch[1] * 1e3
         ));
     }
+    if it.carrier_samples != [0, 0] || it.carrier_asked_deg != [0.0, 0.0] {
+        lines.push(format!(
+            "carrier: asked [{}, {}] deg, snapped to [{:.5}, {:.5}] deg = [{}, {}] whole samples of the plate's replay lattice (sin t = m lambda / (N p))",
+            it.carrier_asked_deg[0],
+            it.carrier_asked_deg[1],
+            it.carrier[0].to_degrees(),
+            it.carrier[1].to_degrees(),
+            it.carrier_samples[0],
+            it.carrier_samples[1]
+        ));
+    }
     for o in &spec.objects {
         let (w, h, _) = super::iterative::read_target(&o.points)?;
         lines.push(format!("target {}: {} x {} px", o.points.display(), w, h));

@@ -135,8 +135,11 @@ pub struct RawSynthesis {
     pub mix: Option<f64>,
     /// Iterative: last iterations projected onto the encoding's phase levels (default 5).
     pub quantize_last: Option<i64>,
-    /// Iterative: stop when the error improves less than this over 5 iterations (default 1e-5, 0 = never).
+    /// Iterative: stop when the best error of the last 10 iterations is less than this share
+    /// below the best before them (default 1e-3, 0 = never).
     pub stall_tolerance: Option<f64>,
+    /// Iterative: no early stop before this many iterations (default 30).
+    pub min_iterations: Option<i64>,
     /// Iterative: size of the computed cell, repeated over the plate (default: the whole plate).
     pub cell_px: Option<[i64; 2]>,
     /// Iterative: blazed carrier tilts, degrees (moves the image off the zero order).
@@ -157,6 +160,14 @@ pub struct RawEncoding {
     pub bipolar_scale: Option<f64>,
     /// Phase encoding: a modulator's measured grey-to-phase table (CSV `grey,phase_rad`).
     pub calibration: Option<String>,
+    /// Phase encoding with `calibration`: the wavelength the table was measured at, nm (its phases
+    /// are scaled by calibration_nm / wavelength_nm).
+    pub calibration_nm: Option<f64>,
+    /// Phase encoding: a linear panel reaching 2 pi at this grey (instead of a table).
+    pub two_pi_grey: Option<i64>,
+    /// Phase encoding: "left" (default, s = round(g 2^b / N)) or "right" (s = g, as 10- and
+    /// 12-bit panels take it in 16-bit samples).
+    pub justify: Option<String>,
 }
 
 /// `[output]`
@@ -297,8 +308,15 @@ pub struct IterativeSpec {
     pub algorithm: AlgorithmChoice,
     /// Quantized final iterations.
     pub quantize_last: usize,
-    /// Early-stop tolerance.
+    /// Early-stop tolerance (relative improvement over the stall window).
     pub stall_tolerance: f64,
+    /// No early stop before this many iterations.
+    pub min_iterations: usize,
+    /// The carrier as the job asked for it, degrees (before snapping).
+    pub carrier_asked_deg: [f64; 2],
+    /// The carrier's shift in whole replay samples of the plate's FFT lattice [x, y]
+    /// (`carrier` is snapped to it: sin t = m lambda / (N p)).
+    pub carrier_samples: [i64; 2],
     /// Cell size, if smaller than the plate.
     pub cell_px: Option<[u32; 2]>,
     /// Carrier tilts, radians.
@@ -532,6 +550,7 @@ impl JobSpec {
             ("mix", s.mix.is_some()),
             ("quantize_last", s.quantize_last.is_some()),
             ("stall_tolerance", s.stall_tolerance.is_some()),
+            ("min_iterations", s.min_iterations.is_some()),
             ("cell_px", s.cell_px.is_some()),
             ("carrier_deg", s.carrier_deg.is_some()),
             ("lens_mm", s.lens_mm.is_some()),
@@ -561,7 +580,7 @@ impl JobSpec {
                             .into(),
                     ));
                 }
-                Method::Iterative(iterative_spec(s, &objects, &bad)?)
+                Method::Iterative(iterative_spec(s, &objects, &plate, &bad)?)
             }
             other => {
                 return Err(bad(format!(
@@ -636,19 +655,55 @@ impl JobSpec {
                 if !(2..=65536).contains(&levels) {
                     return Err(bad(format!("[encoding] levels = {levels} is outside 2..=65536")));
                 }
-                match &e.calibration {
-                    None => EncodingRequest::Fixed(Encoding::Phase { levels: levels as u32 }),
-                    Some(c) => {
-                        let path = dir.join(c);
-                        let table = read_calibration(&path)?;
-                        let bits = crate::encoding::phase_bits(levels as u32);
-                        let cal = crate::encoding::Calibration::new(table, levels as u32, bits).map_err(|m| Error::input(&path, m))?;
-                        EncodingRequest::Fixed(Encoding::CalibratedPhase { levels: levels as u32, calibration: std::sync::Arc::new(cal) })
+                let levels = levels as u32;
+                let justify = e.justify.as_deref().unwrap_or("left");
+                if !matches!(justify, "left" | "right") {
+                    return Err(bad(format!("[encoding] justify = \"{justify}\" is not one of \"left\", \"right\"")));
+                }
+                if e.calibration.is_some() as u8 + e.two_pi_grey.is_some() as u8 + (justify == "right") as u8 > 1 {
+                    return Err(bad("[encoding] calibration, two_pi_grey and justify = \"right\" each set the grey of every level: give one of them".into()));
+                }
+                if e.calibration_nm.is_some() && e.calibration.is_none() {
+                    return Err(bad("[encoding] calibration_nm needs a calibration table".into()));
+                }
+                let calibrated = |c: std::result::Result<crate::encoding::Calibration, String>, at: &Path| -> Result<EncodingRequest> {
+                    let cal = c.map_err(|m| Error::input(at, m))?;
+                    Ok(EncodingRequest::Fixed(Encoding::CalibratedPhase { levels, calibration: std::sync::Arc::new(cal) }))
+                };
+                if let Some(c) = &e.calibration {
+                    let path = dir.join(c);
+                    let mut table = read_calibration(&path)?;
+                    let mut source = format!("table {}", path.file_name().map(|f| f.to_string_lossy().into_owned()).unwrap_or_default());
+                    if let Some(nm) = e.calibration_nm {
+                        if !(finite("[encoding] calibration_nm", nm)? > 0.0) {
+                            return Err(bad(format!("[encoding] calibration_nm = {nm} must be > 0")));
+                        }
+                        // A liquid-crystal retardance 2 pi dn d / lambda: phase scales as 1 / lambda
+                        // when the dispersion of dn is neglected (common practice for a first
+                        // correction; a table measured at the working wavelength is better).
+                        let scale = nm * 1e-9 / plate.wavelength;
+                        for r in &mut table {
+                            r.1 *= scale;
+                        }
+                        source += &format!(", measured at {nm} nm, phases scaled by {scale:.6}");
                     }
+                    calibrated(crate::encoding::Calibration::new(table, levels, source), &path)?
+                } else if let Some(g) = e.two_pi_grey {
+                    if !(2..=65535).contains(&g) {
+                        return Err(bad(format!("[encoding] two_pi_grey = {g} is outside 2..=65535")));
+                    }
+                    calibrated(crate::encoding::Calibration::linear(g as u16, levels, format!("linear, 2 pi at grey {g}")), path)?
+                } else if justify == "right" && levels < 65536 {
+                    calibrated(crate::encoding::Calibration::linear(levels as u16, levels, "right-justified: s = g"), path)?
+                } else {
+                    EncodingRequest::Fixed(Encoding::Phase { levels })
                 }
             }
             "binary-phase" | "binary-amplitude" => {
                 only("calibration", e.calibration.is_some(), "\"phase\"")?;
+                only("calibration_nm", e.calibration_nm.is_some(), "\"phase\"")?;
+                only("two_pi_grey", e.two_pi_grey.is_some(), "\"phase\"")?;
+                only("justify", e.justify.is_some(), "\"phase\"")?;
                 only("levels", e.levels.is_some(), "\"phase\"")?;
                 only("bits", e.bits.is_some(), "\"amplitude\"")?;
                 only("bipolar_scale", e.bipolar_scale.is_some(), "\"amplitude\"")?;
@@ -656,6 +711,9 @@ impl JobSpec {
             }
             "amplitude" => {
                 only("calibration", e.calibration.is_some(), "\"phase\"")?;
+                only("calibration_nm", e.calibration_nm.is_some(), "\"phase\"")?;
+                only("two_pi_grey", e.two_pi_grey.is_some(), "\"phase\"")?;
+                only("justify", e.justify.is_some(), "\"phase\"")?;
                 only("levels", e.levels.is_some(), "\"phase\"")?;
                 let bits = match e.bits.unwrap_or(8) {
                     8 => 8u8,
@@ -805,6 +863,7 @@ fn parse_reference(
 fn iterative_spec(
     s: &RawSynthesis,
     objects: &[ObjectSpec],
+    plate: &Plate,
     bad: &dyn Fn(String) -> Error,
 ) -> Result<IterativeSpec> {
     let geometry = match s.geometry.as_deref() {
@@ -895,7 +954,15 @@ fn iterative_spec(
             )))
         }
     };
-    let stall_tolerance = s.stall_tolerance.unwrap_or(1e-5);
+    let stall_tolerance = s.stall_tolerance.unwrap_or(1e-3);
+    let min_iterations = match s.min_iterations.unwrap_or(30) {
+        m if m >= 0 => m as usize,
+        m => {
+            return Err(bad(format!(
+                "[synthesis] min_iterations = {m} must be >= 0"
+            )))
+        }
+    };
     if !(stall_tolerance.is_finite() && stall_tolerance >= 0.0) {
         return Err(bad(format!(
             "[synthesis] stall_tolerance = {stall_tolerance} must be >= 0"
@@ -903,6 +970,12 @@ fn iterative_spec(
     }
     let cell_px = match s.cell_px {
         None => None,
+        Some(c) if c[0] > plate.width as i64 || c[1] > plate.height as i64 => {
+            return Err(bad(format!(
+                "[synthesis] cell_px = [{}, {}] is larger than the {} x {} plate: the cell repeats over the plate, so it must fit in it",
+                c[0], c[1], plate.width, plate.height
+            )))
+        }
         Some(c) if c.iter().all(|&v| (1..=8192).contains(&v)) => Some([c[0] as u32, c[1] as u32]),
         Some(c) => {
             return Err(bad(format!(
@@ -910,12 +983,33 @@ fn iterative_spec(
             )))
         }
     };
-    let carrier = s.carrier_deg.unwrap_or([0.0, 0.0]);
-    if carrier.iter().any(|t| !(t.is_finite() && t.abs() < 90.0)) {
+    let asked = s.carrier_deg.unwrap_or([0.0, 0.0]);
+    if asked.iter().any(|t| !(t.is_finite() && t.abs() < 90.0)) {
         return Err(bad(format!(
-            "[synthesis] carrier_deg = {carrier:?} must be between -90 and 90"
+            "[synthesis] carrier_deg = {asked:?} must be between -90 and 90"
         )));
     }
+    // Snap the carrier to a whole number of replay samples of the plate's FFT lattice:
+    // sin t = m lambda / (N p) moves the replay by exactly m samples.
+    let n = [plate.width as f64, plate.height as f64];
+    let mut carrier_samples = [0i64; 2];
+    let mut carrier = [0.0f64; 2];
+    for a in 0..2 {
+        let step = plate.wavelength / (n[a] * plate.pitch[a]);
+        let m = (asked[a].to_radians().sin() / step).round();
+        let sin = m * step;
+        if sin.abs() > plate.wavelength / (2.0 * plate.pitch[a]) {
+            return Err(bad(format!(
+                "[synthesis] carrier_deg = {} in {} is beyond the {:.3} deg half-angle the pitch holds: the carrier would alias",
+                asked[a],
+                ["x", "y"][a],
+                (plate.wavelength / (2.0 * plate.pitch[a])).asin().to_degrees()
+            )));
+        }
+        carrier_samples[a] = m as i64;
+        carrier[a] = sin.asin().to_degrees();
+    }
+    let carrier_asked = asked;
     let lens = match s.lens_mm {
         None => None,
         Some(f) if f.is_finite() && f != 0.0 => Some(f * 1e-3),
@@ -932,8 +1026,11 @@ fn iterative_spec(
         algorithm,
         quantize_last,
         stall_tolerance,
+        min_iterations,
         cell_px,
         carrier: [carrier[0].to_radians(), carrier[1].to_radians()],
+        carrier_asked_deg: carrier_asked,
+        carrier_samples,
         lens,
     })
 }

@@ -238,8 +238,12 @@ pub struct IterativeRecord {
     pub cell_px: [usize; 2],
     /// Replay-plane pitch per image, micrometres.
     pub replay_pitch_um: Vec<[f64; 2]>,
-    /// Blazed carrier, degrees.
+    /// Blazed carrier as applied, degrees (snapped to whole replay samples).
     pub carrier_deg: [f64; 2],
+    /// The carrier the job asked for, degrees.
+    pub carrier_asked_deg: [f64; 2],
+    /// The carrier's shift in whole samples of the plate's FFT replay lattice [x, y].
+    pub carrier_samples: [i64; 2],
     /// Lens term, millimetres.
     pub lens_mm: Option<f64>,
     /// Seed of the start phases.
@@ -334,8 +338,15 @@ pub enum EncodingRecord {
 /// A modulator calibration, as applied.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct CalibrationRecord {
-    /// Measured (grey, phase in radians) pairs.
+    /// Where the response came from: a table (and the wavelength it was measured at), a linear
+    /// panel (`two_pi_grey`) or right-justified samples.
+    #[serde(default)]
+    pub source: String,
+    /// The response as used: (grey, phase in radians) by rising grey.
     pub table: Vec<(u16, f64)>,
+    /// Phase covered by the branch of greys used, radians.
+    #[serde(default)]
+    pub stroke_rad: f64,
     /// Grey written for each level.
     pub level_to_grey: Vec<u16>,
 }

@@ -38,6 +38,11 @@ pub struct PlateFile {
     pub encoding: Encoding,
     /// Field files (a plate written as fields), or empty for one TIFF.
     pub fields: Vec<FieldFile>,
+    /// The plate was designed for a real image at +D (iterative synthesis in Fresnel
+    /// geometry: its target planes lie at +D along the propagation); depth replays then
+    /// propagate by +D and draw the plane as the target was given, instead of the virtual image
+    /// at -D seen by the viewer.
+    pub real_image: bool,
 }
 
 /// One field file of a plate written as fields, from the fields manifest.
@@ -159,12 +164,14 @@ impl PlateFile {
             } => match calibration {
                 None => Encoding::Phase { levels },
                 Some(c) => {
-                    let calibration = crate::encoding::Calibration::new(
-                        c.table,
-                        levels,
-                        crate::encoding::phase_bits(levels),
-                    )
-                    .map_err(|m| Error::input(&sc, m))?;
+                    let calibration = crate::encoding::Calibration::new(c.table, levels, c.source)
+                        .map_err(|m| Error::input(&sc, format!("encoding.calibration: {m}")))?;
+                    if calibration.level_to_grey != c.level_to_grey {
+                        return Err(Error::input(
+                            &sc,
+                            "encoding.calibration.level_to_grey does not follow from its table by this version's rule; replay the plate with the version that wrote it",
+                        ));
+                    }
                     Encoding::CalibratedPhase {
                         levels,
                         calibration: std::sync::Arc::new(calibration),
@@ -226,12 +233,17 @@ impl PlateFile {
                 m.fields
             }
         };
+        let real_image = side
+            .iterative
+            .as_ref()
+            .is_some_and(|i| i.geometry == "fresnel");
         Ok(PlateFile {
             tif: tif.to_path_buf(),
             plate,
             reference,
             encoding,
             fields,
+            real_image,
         })
     }
 
@@ -470,7 +482,9 @@ pub fn replay_planes(
                 format!("replay distance {} mm must be > 0", d * 1e3),
             ));
         }
-        let prop = planner.plan(&grid, -d);
+        // A design's own sign for real-image plates (iterative Fresnel geometry), else the
+        // virtual image (module docs).
+        let prop = planner.plan(&grid, if pf.real_image { d } else { -d });
         let mut field = lit.clone();
         prop.propagate(&mut field);
         out.push(ReplayImage {
@@ -560,7 +574,7 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
     // viewer stands at z < 0 looking towards +z, so the image's right is plate -x and its columns
     // run opposite to the grid's. Fourier planes keep the FFT lattice (column = +x of the focal
     // plane, as a plain FFT after fftshift shows it), on which targets are designed.
-    let mirrored = req.focal.is_none();
+    let mirrored = req.focal.is_none() && !pf.real_image;
     for img in &images {
         let (w, h) = (img.grid.nx, img.grid.ny);
         let drawn: Vec<f32> = if mirrored {
@@ -633,8 +647,8 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
             Illumination::Recorded => serde_json::json!("recorded reference"),
             Illumination::Plane(t) => serde_json::json!({"plane_tilt_deg": [t[0].to_degrees(), t[1].to_degrees()]}),
         },
-        "drawn_as": if mirrored { "seen by the plate's viewer (standing at z < 0, looking towards +z through the plate): image right = plate -x, image up = plate +y; peak col/row count in the image" } else { "the FFT lattice of the focal plane (optical axis on sample floor(N/2), as a plain FFT after fftshift): image right = +x of the focal plane, image up = +y" },
-        "depth_convention": if req.focal.is_some() { "focal plane of a lens of focal length focal_mm behind the plate (Fourier geometry); centre_mm is the optical axis" } else { "distance D shows the plane z = D in front of the plate (field propagated by -D)" },
+        "drawn_as": if pf.real_image && req.focal.is_none() { "the design plane of an iterative Fresnel plate: the field propagated by +D (the real image its targets describe), drawn as the targets are given (image right = +x of the plane)" } else if mirrored { "seen by the plate's viewer (standing at z < 0, looking towards +z through the plate): image right = plate -x, image up = plate +y; peak col/row count in the image" } else { "the FFT lattice of the focal plane (optical axis on sample floor(N/2), as a plain FFT after fftshift): image right = +x of the focal plane, image up = +y" },
+        "depth_convention": if req.focal.is_some() { "focal plane of a lens of focal length focal_mm behind the plate (Fourier geometry); centre_mm is the optical axis" } else if pf.real_image { "distance D is the design plane of the plate's targets, a real image at +D (field propagated by +D)" } else { "distance D shows the plane z = D in front of the plate (field propagated by -D)" },
         "planes": planes,
     });
     let jp = req.out.with_extension("json");

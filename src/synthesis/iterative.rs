@@ -104,9 +104,12 @@ pub struct IterOptions {
     /// How many of the last iterations project the phase onto the levels (ignored without
     /// `levels`). They always run, also after an early stop.
     pub quantize_last: usize,
-    /// Early stop of the unquantized iterations when the error improved by less than this over the
-    /// last 5 iterations; <= 0 disables it.
+    /// Early stop of the unquantized iterations when the best error of the last
+    /// [`STALL_WINDOW`] iterations is less than this share below the best one before them (a
+    /// relative improvement); <= 0 disables it. See [`stalled`].
     pub stall_tolerance: f64,
+    /// No early stop before this many iterations.
+    pub min_iterations: usize,
 }
 
 impl Default for IterOptions {
@@ -118,6 +121,7 @@ impl Default for IterOptions {
             levels: None,
             quantize_last: 0,
             stall_tolerance: 0.0,
+            min_iterations: 30,
         }
     }
 }
@@ -135,7 +139,28 @@ pub struct IterResult {
 }
 
 /// Window of iterations over which the stall test measures the improvement.
-const STALL_WINDOW: usize = 5;
+pub const STALL_WINDOW: usize = 10;
+
+/// The stall test on an error history (`errors[0]` before the first iteration, then one per
+/// iteration): true when at least `min_iterations` (and a window) have run and the best error of
+/// the last [`STALL_WINDOW`] is less than `tolerance` (relative) below the best before them.
+/// Comparing bests, not the last values, keeps an algorithm whose error wavers while it still
+/// improves (mixed region) from stopping on one bad iteration.
+pub fn stalled(errors: &[f64], tolerance: f64, min_iterations: usize) -> bool {
+    let m = errors.len();
+    if !(tolerance > 0.0) || m < 1 + min_iterations.max(STALL_WINDOW) {
+        return false;
+    }
+    let best = |e: &[f64]| e.iter().copied().fold(f64::INFINITY, f64::min);
+    let (before, recent) = (
+        best(&errors[..m - STALL_WINDOW]),
+        best(&errors[m - STALL_WINDOW..]),
+    );
+    if !(before > 0.0) {
+        return true;
+    }
+    (before - recent) / before < tolerance
+}
 
 /// SplitMix64 output number `index` of the stream seeded with `seed` (Steele, Lea and Flood,
 /// OOPSLA 2014): a pure function of (seed, index).
@@ -705,10 +730,7 @@ pub fn optimise(
             progress,
         );
         let m = errors.len();
-        if opts.stall_tolerance > 0.0
-            && m > STALL_WINDOW
-            && errors[m - 1 - STALL_WINDOW] - errors[m - 1] < opts.stall_tolerance
-        {
+        if stalled(&errors, opts.stall_tolerance, opts.min_iterations) {
             stopped_early = m < free_iters;
             break;
         }
