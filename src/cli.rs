@@ -99,6 +99,10 @@ pub enum Command {
         /// Number of intensity peaks to report.
         #[arg(long, default_value_t = 10)]
         peaks: usize,
+        /// Fourier replays: also replay K times finer (zero padding; K = 2..8), written as
+        /// OUT-osK.png, with the target's flat top measured between the designed samples.
+        #[arg(long, value_name = "K")]
+        oversample: Option<usize>,
     },
     /// Writes a job's emitters (position, amplitude, phase, normal, channel) as a PLY point cloud.
     Sample {

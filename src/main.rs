@@ -167,6 +167,7 @@ fn main() -> ExitCode {
             region,
             target,
             peaks,
+            oversample,
         } => {
             match reconstruct_request(
                 plate,
@@ -180,6 +181,7 @@ fn main() -> ExitCode {
                 region,
                 target,
                 peaks,
+                oversample,
             ) {
                 Err(m) => {
                     eprintln!("fringemill: error: {m}");
@@ -252,6 +254,7 @@ fn reconstruct_request(
     region: Option<String>,
     target: Option<PathBuf>,
     peaks: usize,
+    oversample: Option<usize>,
 ) -> Result<replay::ReconstructRequest, String> {
     let distances = match distance_mm {
         Some(d) => replay::parse_distances_mm(d).map_err(|m| format!("--distance-mm {m}"))?,
@@ -313,6 +316,7 @@ fn reconstruct_request(
         region,
         target,
         peaks,
+        oversample,
     })
 }
 

@@ -563,3 +563,194 @@ fn fresnel_iterative_plate_replays_at_plus_d() {
         m["depth_convention"]
     );
 }
+
+fn plan_text(job: &Path) -> String {
+    let o = Command::new(BIN)
+        .args(["plan", job.to_str().unwrap()])
+        .output()
+        .unwrap();
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    String::from_utf8_lossy(&o.stdout).into_owned() + &String::from_utf8_lossy(&o.stderr)
+}
+
+/// `reconstruct --target` on a spot target reports what a lab reads (Di Leonardo, Ianni and
+/// Ruocco, Optics Express 15, 1913, 2007): intensity per spot, efficiency sum I_m / total and
+/// spread (I_max - I_min) / (I_max + I_min), with uniformity 1 - spread; the figures equal those
+/// of a plain DFT of the plate's samples. `plan` warns when a target covers the zero order, and
+/// when the plate is not a whole number of cells.
+#[test]
+fn spot_figures_and_zero_order_warning() {
+    let n = 128usize;
+    let d = tempfile::tempdir().unwrap();
+    let spots = spot_target(d.path());
+    let job = spot_job(d.path(), n, "");
+    assert!(plan_text(&job).contains("covers the zero order"));
+    // A carrier of 30 x 17 samples takes the 25 x 25 window off the axis.
+    let moved = spot_job(d.path(), n, "carrier_deg = [0.9, 0.5]");
+    let text = plan_text(&moved);
+    assert!(!text.contains("zero order"), "{text}");
+    let cut = spot_job(d.path(), n, "cell_px = [48, 48]");
+    assert!(plan_text(&cut).contains("not a whole number"));
+    let job = spot_job(d.path(), n, "");
+    run(&["run", "-q", job.to_str().unwrap()]);
+    // The target as the replay image shows it: 128 x 128, the 25 x 25 spots around the axis.
+    let mut full = vec![0u8; n * n];
+    for &(r, c) in &spots {
+        full[(64 - 12 + r) * n + 64 - 12 + c] = 255;
+    }
+    write_grey_png(&d.path().join("full.png"), n, n, &full);
+    let out = d.path().join("r.png");
+    run(&[
+        "reconstruct",
+        d.path().join("p.tif").to_str().unwrap(),
+        "--focal-mm",
+        "200",
+        "--target",
+        d.path().join("full.png").to_str().unwrap(),
+        "--out",
+        out.to_str().unwrap(),
+    ]);
+    let m: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(d.path().join("r.json")).unwrap()).unwrap();
+    let sp = &m["planes"][0]["spots"];
+    assert_eq!(sp["count"], 9, "{sp}");
+    let (_, _, s) = decode(&d.path().join("p.tif"));
+    let dd = dft_intensity_256(&s, n);
+    let total: f64 = dd.iter().sum();
+    let own: Vec<f64> = spots
+        .iter()
+        .map(|&(r, c)| dd[shifted(64 - 12 + r, 64 - 12 + c, n, n)])
+        .collect();
+    let eff = own.iter().sum::<f64>() / total;
+    let (lo, hi) = own
+        .iter()
+        .fold((f64::MAX, 0.0f64), |(a, b), &v| (a.min(v), b.max(v)));
+    let spread = (hi - lo) / (hi + lo);
+    let get = |k: &str| sp[k].as_f64().unwrap();
+    eprintln!("spots: efficiency {eff:.4}, spread {spread:.5}");
+    assert!((get("efficiency") - eff).abs() < 1e-4 * eff, "{sp} vs {eff}");
+    assert!((get("spread") - spread).abs() < 1e-4, "{sp} vs {spread}");
+    assert!((get("uniformity") - (1.0 - spread)).abs() < 1e-4, "{sp}");
+    let mean = own.iter().sum::<f64>() / 9.0;
+    for (k, v) in own.iter().enumerate() {
+        let rel = sp["spots"][k]["relative"].as_f64().unwrap();
+        assert!((rel - v / mean).abs() < 1e-4, "spot {k}: {rel} vs {}", v / mean);
+    }
+}
+
+/// `reconstruct --oversample 2` replays a Fourier plate on a lattice twice as fine (zero padding):
+/// its even samples are the plain lattice, and the flat top of a top-hat target is measured on
+/// the designed samples and between them, as a lab's own 2x padded FFT shows it.
+#[test]
+fn oversampled_replay_measures_between_samples() {
+    let n = 128usize;
+    let d = tempfile::tempdir().unwrap();
+    // A 30 x 20 top-hat, offset from the axis by a carrier-free shift.
+    let (tw, th) = (30usize, 20usize);
+    write_grey_png(&d.path().join("hat.png"), tw, th, &vec![255u8; tw * th]);
+    let job = d.path().join("job.toml");
+    std::fs::write(
+        &job,
+        format!(
+            "[hologram]\nwidth_px = {n}\nheight_px = {n}\npitch_um = 8.0\nwavelength_nm = 532\n\
+             [reference]\nkind = \"plane\"\n[[object]]\nimage = \"hat.png\"\nshift_px = [30, 0]\n\
+             [synthesis]\nmethod = \"iterative\"\ngeometry = \"fourier\"\nfocal_mm = 200\n\
+             algorithm = \"mixed-region\"\niterations = 60\nseed = 5\n\
+             [encoding]\nkind = \"phase\"\nlevels = 256\n[output]\npath = \"p.tif\"\n"
+        ),
+    )
+    .unwrap();
+    run(&["run", "-q", job.to_str().unwrap()]);
+    // Placed as the tool places it: middle pixel on the axis, moved 30 right.
+    let (x0, y0) = (64 - tw / 2 + 30, 64 - th / 2);
+    let mut full = vec![0u8; n * n];
+    for r in 0..th {
+        for c in 0..tw {
+            full[(y0 + r) * n + x0 + c] = 255;
+        }
+    }
+    write_grey_png(&d.path().join("full.png"), n, n, &full);
+    let out = d.path().join("r.png");
+    run(&[
+        "reconstruct",
+        d.path().join("p.tif").to_str().unwrap(),
+        "--focal-mm",
+        "200",
+        "--target",
+        d.path().join("full.png").to_str().unwrap(),
+        "--oversample",
+        "2",
+        "--out",
+        out.to_str().unwrap(),
+    ]);
+    let m: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(d.path().join("r.json")).unwrap()).unwrap();
+    let os = &m["oversampled"];
+    assert_eq!(os["factor"], 2);
+    assert_eq!((os["width_px"].clone(), os["height_px"].clone()), (256.into(), 256.into()));
+    assert!(d.path().join("r-os2.png").exists());
+    // Own 2x padded DFT (numpy habit: np.fft.fft2(t, s=(2N, 2N)), fftshift).
+    let (_, _, s) = decode(&d.path().join("p.tif"));
+    let mut padded = vec![Complex64::new(0.0, 0.0); 4 * n * n];
+    for (k, &v) in s.iter().enumerate() {
+        padded[(k / n) * 2 * n + k % n] = Complex64::from_polar(1.0, 2.0 * PI * v as f64 / 256.0);
+    }
+    let fine: Vec<f64> = dft2(&padded, 2 * n, 2 * n)
+        .iter()
+        .map(|v| v.norm_sqr())
+        .collect();
+    let at = |r: usize, c: usize| fine[shifted(r, c, 2 * n, 2 * n)];
+    let stats = |v: &[f64]| {
+        let mean = v.iter().sum::<f64>() / v.len() as f64;
+        let var = v.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / v.len() as f64;
+        let lo = v.iter().cloned().fold(f64::MAX, f64::min);
+        (lo / mean, var.sqrt() / mean)
+    };
+    // Flat cells: pixels of the hat whose right and lower neighbours are in it too.
+    let (mut on, mut between) = (Vec::new(), Vec::new());
+    for r in y0..y0 + th - 1 {
+        for c in x0..x0 + tw - 1 {
+            // Plain sample (r, c) is fine sample 2 r, 2 c (N even: floor(2N/2) = 2 floor(N/2)).
+            on.push(at(2 * r, 2 * c));
+            for dr in 0..2 {
+                for dc in 0..2 {
+                    between.push(at(2 * r + dr, 2 * c + dc));
+                }
+            }
+        }
+    }
+    let flat = &os["flat"];
+    assert_eq!(flat["cells"], (tw - 1) * (th - 1));
+    let (on_min, on_rms) = stats(&on);
+    let (all_min, all_rms) = stats(&between);
+    eprintln!("top-hat: on samples min {on_min:.3} rms {on_rms:.3}; between min {all_min:.3} rms {all_rms:.3}");
+    let g = |a: &str, b: &str| flat[a][b].as_f64().unwrap();
+    assert!((g("on_samples", "rms_relative") - on_rms).abs() < 1e-3, "{flat}");
+    assert!((g("on_samples", "min_relative") - on_min).abs() < 1e-3, "{flat}");
+    assert!((g("between_samples", "rms_relative") - all_rms).abs() < 1e-3, "{flat}");
+    assert!((g("between_samples", "min_relative") - all_min).abs() < 1e-3, "{flat}");
+    // The plain lattice's figures are the even samples of the fine one.
+    let plain = dft_intensity_256(&s, n);
+    let scale = at(2 * y0, 2 * x0) / plain[shifted(y0, x0, n, n)];
+    for r in (y0..y0 + th).step_by(7) {
+        for c in (x0..x0 + tw).step_by(5) {
+            let a = at(2 * r, 2 * c);
+            let b = plain[shifted(r, c, n, n)] * scale;
+            assert!((a - b).abs() < 1e-9 * a.max(b).max(1.0), "({r}, {c}): {a} vs {b}");
+        }
+    }
+    // Without a lens there is no lattice to oversample: a one-line error.
+    let o = Command::new(BIN)
+        .args([
+            "reconstruct",
+            d.path().join("p.tif").to_str().unwrap(),
+            "--distance-mm",
+            "100",
+            "--oversample",
+            "2",
+        ])
+        .output()
+        .unwrap();
+    let e = String::from_utf8_lossy(&o.stderr);
+    assert!(!o.status.success() && e.contains("--oversample") && e.trim().lines().count() == 1, "{e}");
+}

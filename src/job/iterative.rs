@@ -210,3 +210,44 @@ pub fn build_cell(
         record,
     ))
 }
+
+/// Warnings `plan` gives about where light lands (Fourier geometry): a target window that covers
+/// the zero order (the undiffracted light of fill factor and phase errors, which stays on the
+/// optical axis of the plate's lattice: a carrier moves the image, not the zero order), and a
+/// plate that is not a whole number of cells (the cut tiling spreads each designed sample).
+pub fn placement_warnings(spec: &JobSpec, it: &IterativeSpec) -> Result<Vec<String>> {
+    let p = &spec.plate;
+    let cell = it.cell_px.unwrap_or([p.width, p.height]);
+    let mut out = Vec::new();
+    if p.width % cell[0] != 0 || p.height % cell[1] != 0 {
+        out.push(format!(
+            "warning: the {} x {} plate is not a whole number of {} x {} cells: the repeated cell is cut at the plate's edge, so a designed sample spreads over its neighbours in the plate's replay",
+            p.width, p.height, cell[0], cell[1]
+        ));
+    }
+    if !matches!(it.geometry, Geometry::Fourier(_)) || it.lens.is_some() {
+        return Ok(out);
+    }
+    let (nx, ny) = (cell[0] as usize, cell[1] as usize);
+    // The zero order relative to the image, in cell samples: the carrier moves the image by m
+    // plate samples = m Nc / Np cell samples (x right, y up).
+    let zx = (nx / 2) as f64 - it.carrier_samples[0] as f64 * nx as f64 / p.width as f64;
+    let zy = (ny / 2) as f64 + it.carrier_samples[1] as f64 * ny as f64 / p.height as f64;
+    for o in &spec.objects {
+        let ObjectSource::Image { shift_px, .. } = o.source else {
+            continue;
+        };
+        let (w, h, _) = read_target(&o.points)?;
+        let x0 = (nx / 2) as f64 - (w / 2) as f64 + shift_px[0] as f64;
+        let y0 = (ny / 2) as f64 - (h / 2) as f64 - shift_px[1] as f64;
+        if zx > x0 - 0.5 && zx < x0 + w as f64 - 0.5 && zy > y0 - 0.5 && zy < y0 + h as f64 - 0.5 {
+            out.push(format!(
+                "warning: target {} covers the zero order (undiffracted light on the optical axis, at its pixel ({:.0}, {:.0})): move the image off it with carrier_deg or shift_px",
+                o.points.display(),
+                zx - x0,
+                zy - y0
+            ));
+        }
+    }
+    Ok(out)
+}

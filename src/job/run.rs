@@ -1331,6 +1331,7 @@ fn plan_iterative(spec: &JobSpec, it: &IterativeSpec) -> Result<PlanReport> {
         let (w, h, _) = super::iterative::read_target(&o.points)?;
         lines.push(format!("target {}: {} x {} px", o.points.display(), w, h));
     }
+    lines.extend(super::iterative::placement_warnings(spec, it)?);
     let layout = tiff_layout(
         spec,
         &match &spec.encoding {

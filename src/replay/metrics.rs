@@ -301,3 +301,170 @@ mod unit_tests {
         assert!((c.correlation - 1.0).abs() < 1e-9 && c.rmse < 1e-6);
     }
 }
+
+/// One spot of a spot target, as replayed.
+#[derive(Clone, Debug, Serialize, PartialEq)]
+pub struct SpotReading {
+    /// Column of the spot in the replay image (and the target).
+    pub col: usize,
+    /// Row of the spot.
+    pub row: usize,
+    /// The target's value there (its designed weight), 0..1.
+    pub target: f64,
+    /// Replayed intensity at the spot sample, divided by the target weight.
+    pub intensity: f64,
+    /// `intensity` over the mean of all spots.
+    pub relative: f64,
+}
+
+/// Spot-array figures (Di Leonardo, Ianni and Ruocco, Optics Express 15, 1913, 2007): intensity
+/// I_m at each designed spot sample (divided by the spot's target weight), efficiency
+/// sum I_m / total power, and the spread (I_max - I_min) / (I_max + I_min), whose complement
+/// 1 - spread is the paper's uniformity u.
+#[derive(Clone, Debug, Serialize, PartialEq)]
+pub struct SpotStats {
+    /// Number of spots.
+    pub count: usize,
+    /// Share of the replay image's total power on the spot samples.
+    pub efficiency: f64,
+    /// (I_max - I_min) / (I_max + I_min) over the spots (0 for equal spots).
+    pub spread: f64,
+    /// 1 - spread (Di Leonardo et al. 2007, "uniformity").
+    pub uniformity: f64,
+    /// I_min / I_max.
+    pub min_over_max: f64,
+    /// Standard deviation / mean of the spot intensities.
+    pub rms_relative: f64,
+    /// Every spot, in row-major order.
+    pub spots: Vec<SpotReading>,
+}
+
+/// Largest number of spots a target is read as a spot array with.
+pub const MAX_SPOTS: usize = 100_000;
+
+/// The lit pixels of a target when it is a spot array: every lit pixel (value > 0) has no lit
+/// pixel among its 8 neighbours, and there are 1..=[`MAX_SPOTS`] of them. Returns (col, row,
+/// value) in row-major order, or None for a target that is not a spot array.
+pub fn spot_target(w: usize, h: usize, target: &[f64]) -> Option<Vec<(usize, usize, f64)>> {
+    let lit = |r: i64, c: i64| {
+        r >= 0 && c >= 0 && r < h as i64 && c < w as i64 && target[r as usize * w + c as usize] > 0.0
+    };
+    let mut spots = Vec::new();
+    for r in 0..h {
+        for c in 0..w {
+            let v = target[r * w + c];
+            if v <= 0.0 {
+                continue;
+            }
+            for dr in -1i64..=1 {
+                for dc in -1i64..=1 {
+                    if (dr, dc) != (0, 0) && lit(r as i64 + dr, c as i64 + dc) {
+                        return None;
+                    }
+                }
+            }
+            spots.push((c, r, v));
+            if spots.len() > MAX_SPOTS {
+                return None;
+            }
+        }
+    }
+    (!spots.is_empty()).then_some(spots)
+}
+
+/// Spot figures of replay intensities `i` (w x h) for the spots of [`spot_target`].
+pub fn spot_stats(w: usize, i: &[f32], spots: &[(usize, usize, f64)]) -> SpotStats {
+    let total: f64 = i.iter().map(|&v| v as f64).sum();
+    let raw: Vec<f64> = spots.iter().map(|&(c, r, _)| i[r * w + c] as f64).collect();
+    let top = spots.iter().map(|s| s.2).fold(0.0f64, f64::max);
+    let weighted: Vec<f64> = raw
+        .iter()
+        .zip(spots)
+        .map(|(&v, s)| v / (s.2 / top))
+        .collect();
+    let n = weighted.len() as f64;
+    let mean = weighted.iter().sum::<f64>() / n;
+    let var = weighted.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / n;
+    let (lo, hi) = weighted
+        .iter()
+        .fold((f64::INFINITY, 0.0f64), |(a, b), &v| (a.min(v), b.max(v)));
+    let spread = if hi + lo > 0.0 { (hi - lo) / (hi + lo) } else { 0.0 };
+    SpotStats {
+        count: spots.len(),
+        efficiency: if total > 0.0 { raw.iter().sum::<f64>() / total } else { 0.0 },
+        spread,
+        uniformity: 1.0 - spread,
+        min_over_max: if hi > 0.0 { lo / hi } else { 0.0 },
+        rms_relative: if mean > 0.0 { var.sqrt() / mean } else { 0.0 },
+        spots: spots
+            .iter()
+            .zip(&weighted)
+            .map(|(&(c, r, t), &v)| SpotReading {
+                col: c,
+                row: r,
+                target: t,
+                intensity: v,
+                relative: if mean > 0.0 { v / mean } else { 0.0 },
+            })
+            .collect(),
+    }
+}
+
+/// Intensity figures of a flat part of a replay: min, max and rms relative to the mean.
+#[derive(Clone, Debug, Serialize, PartialEq)]
+pub struct FlatStats {
+    /// Samples looked at.
+    pub samples: usize,
+    /// min / mean.
+    pub min_relative: f64,
+    /// max / mean.
+    pub max_relative: f64,
+    /// Standard deviation / mean.
+    pub rms_relative: f64,
+}
+
+impl FlatStats {
+    /// Figures of a set of intensities (None when empty).
+    pub fn of(v: impl Iterator<Item = f64>) -> Option<FlatStats> {
+        let (mut n, mut s, mut s2, mut lo, mut hi) = (0usize, 0.0, 0.0, f64::INFINITY, 0.0f64);
+        for x in v {
+            n += 1;
+            s += x;
+            s2 += x * x;
+            lo = lo.min(x);
+            hi = hi.max(x);
+        }
+        if n == 0 {
+            return None;
+        }
+        let mean = s / n as f64;
+        let var = (s2 / n as f64 - mean * mean).max(0.0);
+        let rel = |x: f64| if mean > 0.0 { x / mean } else { 0.0 };
+        Some(FlatStats {
+            samples: n,
+            min_relative: rel(lo),
+            max_relative: rel(hi),
+            rms_relative: rel(var.sqrt()),
+        })
+    }
+}
+
+/// The flat top of a target: the pixels at its maximum value whose right, lower and lower-right
+/// neighbours are at the maximum too, so that everything between them (on an oversampled
+/// replay) lies inside the flat part. (col, row) in row-major order.
+pub fn flat_cells(w: usize, h: usize, target: &[f64]) -> Vec<(usize, usize)> {
+    let top = target.iter().cloned().fold(0.0f64, f64::max);
+    if top <= 0.0 {
+        return Vec::new();
+    }
+    let at_top = |r: usize, c: usize| target[r * w + c] >= top * (1.0 - 1e-9);
+    let mut out = Vec::new();
+    for r in 0..h.saturating_sub(1) {
+        for c in 0..w.saturating_sub(1) {
+            if at_top(r, c) && at_top(r, c + 1) && at_top(r + 1, c) && at_top(r + 1, c + 1) {
+                out.push((c, r));
+            }
+        }
+    }
+    out
+}

@@ -497,6 +497,64 @@ pub fn replay_planes(
     Ok(out)
 }
 
+/// Largest oversampled Fourier replay, in samples (512 MiB of single-precision field).
+pub const MAX_OVERSAMPLED_SAMPLES: usize = 8192 * 8192;
+
+/// The focal plane of a Fourier replay sampled `factor` times finer: the lit window zero-padded
+/// to factor N x factor M before the transform, so the replay pitch is lambda f / (factor N p)
+/// and the optical axis is sample floor(factor N / 2). Sample floor(factor N / 2) + factor a of
+/// the fine lattice is sample floor(N / 2) + a of the plain one (the DFT of a zero-padded
+/// sequence at index factor a is the DFT of the sequence at index a); the samples in between
+/// show what the plain lattice never samples (vortices, dips between designed points).
+pub fn replay_fourier_oversampled(
+    pf: &PlateFile,
+    win: Window,
+    ill: Illumination,
+    focal: f64,
+    factor: usize,
+) -> Result<ReplayImage> {
+    let (w, h) = (win.w as usize, win.h as usize);
+    let (fw, fh) = (w * factor, h * factor);
+    if fw * fh > MAX_OVERSAMPLED_SAMPLES {
+        return Err(Error::job(
+            &pf.tif,
+            format!("the {factor}x oversampled replay would be {fw} x {fh} samples; at most {MAX_OVERSAMPLED_SAMPLES} at once (a smaller --window or --oversample)"),
+        ));
+    }
+    if !(focal.is_finite() && focal > 0.0) {
+        return Err(Error::job(
+            &pf.tif,
+            format!("focal length {} mm must be > 0", focal * 1e3),
+        ));
+    }
+    let lit = lit_window(pf, win, ill)?;
+    let mut field = vec![Complex::new(0.0f32, 0.0); fw * fh];
+    for (r, row) in lit.chunks_exact(w).enumerate() {
+        field[r * fw..r * fw + w].copy_from_slice(row);
+    }
+    drop(lit);
+    let grid = Grid {
+        nx: fw,
+        ny: fh,
+        pitch: pf.plate.pitch,
+        wavelength: pf.plate.wavelength,
+        lattice: Default::default(),
+    };
+    let mut planner = PropagationPlanner::<f32>::new();
+    let prop = planner.plan_recipe(
+        &grid,
+        0.0,
+        crate::optics::propagation::PropagationRecipe::Fourier { focal },
+    );
+    prop.propagate(&mut field);
+    Ok(ReplayImage {
+        distance: focal,
+        grid: prop.output(),
+        centre: [0.0, 0.0],
+        intensity: field.iter().map(|c| c.norm_sqr()).collect(),
+    })
+}
+
 /// Distances from `D` or a stack `A:B:S` (millimetres, inclusive of B when it falls on the grid).
 pub fn parse_distances_mm(s: &str) -> std::result::Result<Vec<f64>, String> {
     let parts: Vec<&str> = s.split(':').collect();
@@ -551,6 +609,8 @@ pub struct ReconstructRequest {
     pub target: Option<PathBuf>,
     /// How many peaks to report.
     pub peaks: usize,
+    /// Fourier replays: also replay on a lattice this many times finer (zero padding).
+    pub oversample: Option<usize>,
 }
 
 /// Runs a reconstruction: writes one PNG per depth and one JSON of metrics (`OUT.json`).
@@ -567,6 +627,20 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
         Some(t) => Some(metrics::read_png_grey(t)?),
         None => None,
     };
+    if let Some(k) = req.oversample {
+        if req.focal.is_none() {
+            return Err(Error::job(
+                &req.tif,
+                "--oversample applies to Fourier replays (--focal-mm)",
+            ));
+        }
+        if !(2..=8).contains(&k) {
+            return Err(Error::job(
+                &req.tif,
+                format!("--oversample {k}: expected 2..=8"),
+            ));
+        }
+    }
     let images = replay_planes(&pf, win, req.illumination, &req.distances, req.focal)?;
     let mut written = Vec::new();
     let mut planes = Vec::new();
@@ -627,6 +701,12 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
             }
             None => None,
         };
+        // A target of isolated lit pixels is a spot array: figures per spot.
+        let spots = match &target {
+            Some((tw, _, t)) if *tw == w => metrics::spot_target(w, h, t)
+                .map(|sp| metrics::spot_stats(w, &drawn, &sp)),
+            _ => None,
+        };
         planes.push(serde_json::json!({
             "image": path.file_name().map(|f| f.to_string_lossy().into_owned()),
             "distance_mm": if req.focal.is_some() { None } else { Some(img.distance * 1e3) },
@@ -638,6 +718,52 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
             "peaks": pk,
             "region": region,
             "target": cmp,
+            "spots": spots,
+        }));
+    }
+    let mut oversampled = None;
+    if let (Some(k), Some(f)) = (req.oversample, req.focal) {
+        let img = replay_fourier_oversampled(&pf, win, req.illumination, f, k)?;
+        let (fw, fh) = (img.grid.nx, img.grid.ny);
+        let stem = req
+            .out
+            .file_stem()
+            .map(|s| s.to_string_lossy().into_owned())
+            .unwrap_or_else(|| "replay".into());
+        let path = req.out.with_file_name(format!("{stem}-os{k}.png"));
+        metrics::write_png(&path, fw, fh, &img.intensity, req.scale, req.bits)?;
+        written.push(path.clone());
+        // The target's flat top, on the designed samples and on everything between them.
+        let flat = match &target {
+            Some((tw, th, t)) => {
+                let cells = metrics::flat_cells(*tw, *th, t);
+                let (w, h) = (*tw, *th);
+                let fine = |r: usize, c: usize, dr: usize, dc: usize| {
+                    let fr = fh / 2 + k * r + dr - k * (h / 2);
+                    let fc = fw / 2 + k * c + dc - k * (w / 2);
+                    img.intensity[fr * fw + fc] as f64
+                };
+                let on = metrics::FlatStats::of(cells.iter().map(|&(c, r)| fine(r, c, 0, 0)));
+                let all = metrics::FlatStats::of(cells.iter().flat_map(|&(c, r)| {
+                    (0..k).flat_map(move |dr| (0..k).map(move |dc| (dr, dc)))
+                        .map(move |(dr, dc)| fine(r, c, dr, dc))
+                }));
+                on.map(|on| serde_json::json!({
+                    "cells": cells.len(),
+                    "what": "the target's flat top (pixels at its maximum whose right, lower and lower-right neighbours are too): on the designed samples, and on every fine sample of the cells they span",
+                    "on_samples": on,
+                    "between_samples": all,
+                }))
+            }
+            None => None,
+        };
+        oversampled = Some(serde_json::json!({
+            "factor": k,
+            "image": path.file_name().map(|f| f.to_string_lossy().into_owned()),
+            "width_px": fw, "height_px": fh,
+            "pitch_um": [img.grid.pitch[0] * 1e6, img.grid.pitch[1] * 1e6],
+            "lattice": "the plate window zero-padded to factor N before the transform: axis on sample floor(factor N / 2); fine sample floor(factor N / 2) + factor a is plain sample floor(N / 2) + a",
+            "flat": flat,
         }));
     }
     let json = serde_json::json!({
@@ -650,6 +776,7 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
         "drawn_as": if pf.real_image && req.focal.is_none() { "the design plane of an iterative Fresnel plate: the field propagated by +D (the real image its targets describe), drawn as the targets are given (image right = +x of the plane)" } else if mirrored { "seen by the plate's viewer (standing at z < 0, looking towards +z through the plate): image right = plate -x, image up = plate +y; peak col/row count in the image" } else { "the FFT lattice of the focal plane (optical axis on sample floor(N/2), as a plain FFT after fftshift): image right = +x of the focal plane, image up = +y" },
         "depth_convention": if req.focal.is_some() { "focal plane of a lens of focal length focal_mm behind the plate (Fourier geometry); centre_mm is the optical axis" } else if pf.real_image { "distance D is the design plane of the plate's targets, a real image at +D (field propagated by +D)" } else { "distance D shows the plane z = D in front of the plate (field propagated by -D)" },
         "planes": planes,
+        "oversampled": oversampled,
     });
     let jp = req.out.with_extension("json");
     crate::output::atomic::write_atomically(
