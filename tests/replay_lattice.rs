@@ -628,13 +628,20 @@ fn spot_figures_and_zero_order_warning() {
     let spread = (hi - lo) / (hi + lo);
     let get = |k: &str| sp[k].as_f64().unwrap();
     eprintln!("spots: efficiency {eff:.4}, spread {spread:.5}");
-    assert!((get("efficiency") - eff).abs() < 1e-4 * eff, "{sp} vs {eff}");
+    assert!(
+        (get("efficiency") - eff).abs() < 1e-4 * eff,
+        "{sp} vs {eff}"
+    );
     assert!((get("spread") - spread).abs() < 1e-4, "{sp} vs {spread}");
     assert!((get("uniformity") - (1.0 - spread)).abs() < 1e-4, "{sp}");
     let mean = own.iter().sum::<f64>() / 9.0;
     for (k, v) in own.iter().enumerate() {
         let rel = sp["spots"][k]["relative"].as_f64().unwrap();
-        assert!((rel - v / mean).abs() < 1e-4, "spot {k}: {rel} vs {}", v / mean);
+        assert!(
+            (rel - v / mean).abs() < 1e-4,
+            "spot {k}: {rel} vs {}",
+            v / mean
+        );
     }
 }
 
@@ -687,7 +694,10 @@ fn oversampled_replay_measures_between_samples() {
         serde_json::from_slice(&std::fs::read(d.path().join("r.json")).unwrap()).unwrap();
     let os = &m["oversampled"];
     assert_eq!(os["factor"], 2);
-    assert_eq!((os["width_px"].clone(), os["height_px"].clone()), (256.into(), 256.into()));
+    assert_eq!(
+        (os["width_px"].clone(), os["height_px"].clone()),
+        (256.into(), 256.into())
+    );
     assert!(d.path().join("r-os2.png").exists());
     // Own 2x padded DFT (numpy habit: np.fft.fft2(t, s=(2N, 2N)), fftshift).
     let (_, _, s) = decode(&d.path().join("p.tif"));
@@ -725,10 +735,22 @@ fn oversampled_replay_measures_between_samples() {
     let (all_min, all_rms) = stats(&between);
     eprintln!("top-hat: on samples min {on_min:.3} rms {on_rms:.3}; between min {all_min:.3} rms {all_rms:.3}");
     let g = |a: &str, b: &str| flat[a][b].as_f64().unwrap();
-    assert!((g("on_samples", "rms_relative") - on_rms).abs() < 1e-3, "{flat}");
-    assert!((g("on_samples", "min_relative") - on_min).abs() < 1e-3, "{flat}");
-    assert!((g("between_samples", "rms_relative") - all_rms).abs() < 1e-3, "{flat}");
-    assert!((g("between_samples", "min_relative") - all_min).abs() < 1e-3, "{flat}");
+    assert!(
+        (g("on_samples", "rms_relative") - on_rms).abs() < 1e-3,
+        "{flat}"
+    );
+    assert!(
+        (g("on_samples", "min_relative") - on_min).abs() < 1e-3,
+        "{flat}"
+    );
+    assert!(
+        (g("between_samples", "rms_relative") - all_rms).abs() < 1e-3,
+        "{flat}"
+    );
+    assert!(
+        (g("between_samples", "min_relative") - all_min).abs() < 1e-3,
+        "{flat}"
+    );
     // The plain lattice's figures are the even samples of the fine one.
     let plain = dft_intensity_256(&s, n);
     let scale = at(2 * y0, 2 * x0) / plain[shifted(y0, x0, n, n)];
@@ -736,7 +758,10 @@ fn oversampled_replay_measures_between_samples() {
         for c in (x0..x0 + tw).step_by(5) {
             let a = at(2 * r, 2 * c);
             let b = plain[shifted(r, c, n, n)] * scale;
-            assert!((a - b).abs() < 1e-9 * a.max(b).max(1.0), "({r}, {c}): {a} vs {b}");
+            assert!(
+                (a - b).abs() < 1e-9 * a.max(b).max(1.0),
+                "({r}, {c}): {a} vs {b}"
+            );
         }
     }
     // Without a lens there is no lattice to oversample: a one-line error.
@@ -752,5 +777,8 @@ fn oversampled_replay_measures_between_samples() {
         .output()
         .unwrap();
     let e = String::from_utf8_lossy(&o.stderr);
-    assert!(!o.status.success() && e.contains("--oversample") && e.trim().lines().count() == 1, "{e}");
+    assert!(
+        !o.status.success() && e.contains("--oversample") && e.trim().lines().count() == 1,
+        "{e}"
+    );
 }

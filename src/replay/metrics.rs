@@ -347,7 +347,11 @@ pub const MAX_SPOTS: usize = 100_000;
 /// value) in row-major order, or None for a target that is not a spot array.
 pub fn spot_target(w: usize, h: usize, target: &[f64]) -> Option<Vec<(usize, usize, f64)>> {
     let lit = |r: i64, c: i64| {
-        r >= 0 && c >= 0 && r < h as i64 && c < w as i64 && target[r as usize * w + c as usize] > 0.0
+        r >= 0
+            && c >= 0
+            && r < h as i64
+            && c < w as i64
+            && target[r as usize * w + c as usize] > 0.0
     };
     let mut spots = Vec::new();
     for r in 0..h {
@@ -388,10 +392,18 @@ pub fn spot_stats(w: usize, i: &[f32], spots: &[(usize, usize, f64)]) -> SpotSta
     let (lo, hi) = weighted
         .iter()
         .fold((f64::INFINITY, 0.0f64), |(a, b), &v| (a.min(v), b.max(v)));
-    let spread = if hi + lo > 0.0 { (hi - lo) / (hi + lo) } else { 0.0 };
+    let spread = if hi + lo > 0.0 {
+        (hi - lo) / (hi + lo)
+    } else {
+        0.0
+    };
     SpotStats {
         count: spots.len(),
-        efficiency: if total > 0.0 { raw.iter().sum::<f64>() / total } else { 0.0 },
+        efficiency: if total > 0.0 {
+            raw.iter().sum::<f64>() / total
+        } else {
+            0.0
+        },
         spread,
         uniformity: 1.0 - spread,
         min_over_max: if hi > 0.0 { lo / hi } else { 0.0 },

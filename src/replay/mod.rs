@@ -703,8 +703,9 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
         };
         // A target of isolated lit pixels is a spot array: figures per spot.
         let spots = match &target {
-            Some((tw, _, t)) if *tw == w => metrics::spot_target(w, h, t)
-                .map(|sp| metrics::spot_stats(w, &drawn, &sp)),
+            Some((tw, _, t)) if *tw == w => {
+                metrics::spot_target(w, h, t).map(|sp| metrics::spot_stats(w, &drawn, &sp))
+            }
             _ => None,
         };
         planes.push(serde_json::json!({
@@ -745,7 +746,8 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
                 };
                 let on = metrics::FlatStats::of(cells.iter().map(|&(c, r)| fine(r, c, 0, 0)));
                 let all = metrics::FlatStats::of(cells.iter().flat_map(|&(c, r)| {
-                    (0..k).flat_map(move |dr| (0..k).map(move |dc| (dr, dc)))
+                    (0..k)
+                        .flat_map(move |dr| (0..k).map(move |dc| (dr, dc)))
                         .map(move |(dr, dc)| fine(r, c, dr, dc))
                 }));
                 on.map(|on| serde_json::json!({
