@@ -56,6 +56,29 @@ pub struct RunRecord<'a> {
     pub sum_path: Option<(&'static str, Option<RecordingPlaneRecord>)>,
 }
 
+/// `synthesis.path` and the recording plane's record, for point sums (None for a phase cell).
+pub fn path_record(
+    path: &crate::synthesis::source::SourcePath,
+) -> Option<(&'static str, Option<RecordingPlaneRecord>)> {
+    use crate::synthesis::source::SourcePath;
+    let plane = match *path {
+        SourcePath::PhaseCell => return None,
+        SourcePath::Direct => None,
+        SourcePath::RecordingPlane {
+            distance,
+            margins,
+            band_rows,
+        } => Some(RecordingPlaneRecord {
+            distance_mm: distance * 1e3,
+            grid_margins_px: margins,
+            band_rows,
+            edge_taper_from: crate::synthesis::recording_plane::TAPER_START,
+            method: "emitters summed on a plane parallel to the plate (supports weighted by a quintic smooth step from 80 % of the half band to the Nyquist limit), carried to the plate by a band-limited angular-spectrum step centred on the reference's frequency".into(),
+        }),
+    };
+    path.name().map(|n| (n, plane))
+}
+
 /// The reference as recorded.
 pub fn reference_record(r: &Reference) -> ReferenceRecord {
     match *r {

@@ -94,16 +94,7 @@ pub struct RawObject {
     pub shift_px: Option<[i64; 2]>,
 }
 
-/// How a point sum is computed (`[synthesis] path`).
-#[derive(Clone, Copy, Debug, PartialEq, Eq)]
-pub enum SumPath {
-    /// Every emitter summed on the plate itself.
-    Direct,
-    /// Emitters summed on a recording plane near them, carried to the plate by an FFT step.
-    RecordingPlane,
-    /// The cheaper of the two by the estimates `plan` prints.
-    Auto,
-}
+pub use crate::synthesis::planner::SumPath;
 
 /// `[synthesis]`
 #[derive(Deserialize, Debug, Clone, Default)]
@@ -208,6 +199,20 @@ pub enum EncodingRequest {
         /// 8 or 16.
         bits: u8,
     },
+}
+
+impl EncodingRequest {
+    /// The encoding a run writes: the fixed one, or the amplitude encoding with B0 from `scale`
+    /// (measured on the plate's field; `plan` passes a nominal 1).
+    pub fn resolve(&self, scale: impl FnOnce() -> f64) -> Encoding {
+        match self {
+            EncodingRequest::Fixed(e) => e.clone(),
+            EncodingRequest::AmplitudeAuto { bits } => Encoding::Amplitude {
+                bits: *bits,
+                scale: scale(),
+            },
+        }
+    }
 }
 
 /// Where an object's emitters come from.

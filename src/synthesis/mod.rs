@@ -8,9 +8,11 @@ pub mod iterative;
 pub mod kernels;
 pub mod occlusion;
 pub mod phase_cell;
+pub mod planner;
 pub mod point_sum;
 pub mod recording_plane;
 pub mod reference;
+pub mod source;
 pub mod support;
 
 /// One point source on the object side of the plate, in plate coordinates (metres).

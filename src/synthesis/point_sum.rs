@@ -206,6 +206,25 @@ impl PointSum {
         }
     }
 
+    /// Number of channels (references).
+    pub fn channel_count(&self) -> usize {
+        self.channels.len()
+    }
+
+    /// The options the sum runs with.
+    pub fn options(&self) -> &PointSumOptions {
+        &self.opts
+    }
+
+    /// The one channel's reference and emitters, when the sum has one channel and no occlusion
+    /// (what the recording plane can take over).
+    pub fn single_channel(&self) -> Option<(Reference, &[Emitter])> {
+        match (&self.channels[..], &self.occlusion) {
+            ([c], None) => Some((c.reference, &self.emitters[c.start..c.end])),
+            _ => None,
+        }
+    }
+
     /// Forces one copy of the inner loops (tests compare them).
     pub fn with_isa(mut self, isa: KernelIsa) -> Self {
         self.isa = isa;

@@ -70,6 +70,8 @@ pub struct RecordingPlane {
     tile_cols: usize,
     /// Preferred rows per band.
     band_rows: usize,
+    /// Emitters whose support misses the plate (counted by the direct sum's supports).
+    unreachable: usize,
     plans: Mutex<HashMap<(usize, usize), Arc<GridPlan>>>,
 }
 
@@ -181,8 +183,19 @@ impl RecordingPlane {
             tan_max,
             tile_cols,
             band_rows,
+            unreachable: 0,
             plans: Mutex::new(HashMap::new()),
         })
+    }
+
+    /// Records how many emitters miss the plate (the direct sum's count, for the sidecar).
+    pub fn with_unreachable(mut self, n: usize) -> Self {
+        self.unreachable = n;
+        self
+    }
+    /// Emitters whose support misses the plate, as recorded by [`Self::with_unreachable`].
+    pub fn unreachable(&self) -> usize {
+        self.unreachable
     }
 
     /// The plate.

@@ -1,0 +1,232 @@
+//! `plan`: what a run would do (sizes, supports, work, time, path, output), without computing.
+
+use super::prepare::{point_sum_and_path, sidecar_path, tiff_layout};
+use super::spec::{IterativeSpec, JobSpec, Method};
+use crate::error::Result;
+use crate::synthesis::Approximation;
+
+/// `plan` for iterative synthesis: sizes and replay sampling, without iterating.
+fn plan_iterative(spec: &JobSpec, it: &IterativeSpec) -> Result<PlanReport> {
+    let p = spec.plate;
+    let cell = it.cell_px.unwrap_or([p.width, p.height]);
+    let mut lines = vec![
+        format!("job: {}", spec.path.display()),
+        format!("plate: {} x {} px, pitch {:.4} x {:.4} um, wavelength {:.2} nm", p.width, p.height, p.pitch[0] * 1e6, p.pitch[1] * 1e6, p.wavelength * 1e9),
+        format!("iterative synthesis: {}, {} iterations at most, cell {} x {} px repeated over the plate", super::record::algorithm_name(it.algorithm), it.iterations, cell[0], cell[1]),
+    ];
+    if let super::spec::Geometry::Fourier(f) = it.geometry {
+        lines.push(format!(
+            "fourier geometry, f = {:.3} mm: replay pitch lambda f / (N p) = {:.3} x {:.3} um, replay field {:.3} x {:.3} mm",
+            f * 1e3,
+            p.wavelength * f / (cell[0] as f64 * p.pitch[0]) * 1e6,
+            p.wavelength * f / (cell[1] as f64 * p.pitch[1]) * 1e6,
+            p.wavelength * f / p.pitch[0] * 1e3,
+            p.wavelength * f / p.pitch[1] * 1e3
+        ));
+    }
+    if it.carrier_samples != [0, 0] || it.carrier_asked_deg != [0.0, 0.0] {
+        lines.push(format!(
+            "carrier: asked [{}, {}] deg, snapped to [{:.5}, {:.5}] deg = [{}, {}] whole samples of the plate's replay lattice (sin t = m lambda / (N p))",
+            it.carrier_asked_deg[0],
+            it.carrier_asked_deg[1],
+            it.carrier[0].to_degrees(),
+            it.carrier[1].to_degrees(),
+            it.carrier_samples[0],
+            it.carrier_samples[1]
+        ));
+    }
+    for o in &spec.objects {
+        let (w, h, _) = super::iterative::read_target(&o.points)?;
+        lines.push(format!("target {}: {} x {} px", o.points.display(), w, h));
+    }
+    lines.extend(super::iterative::placement_warnings(spec, it)?);
+    let layout = tiff_layout(spec, &spec.encoding.resolve(|| 1.0));
+    let bytes = layout.estimated_file_bytes();
+    lines.push(format!(
+        "output: {} ({:.3} MB)",
+        spec.output.display(),
+        bytes as f64 / 1e6
+    ));
+    Ok(PlanReport {
+        lines,
+        unreachable: 0,
+        updates: p.pixels() as f64,
+        bytes,
+    })
+}
+
+/// What `plan` reports.
+#[derive(Clone, Debug)]
+pub struct PlanReport {
+    /// Text lines for the user.
+    pub lines: Vec<String>,
+    /// Emitters whose support misses the plate.
+    pub unreachable: usize,
+    /// Estimated point-pixel updates.
+    pub updates: f64,
+    /// Estimated bytes on disk (uncompressed size for deflate).
+    pub bytes: u64,
+}
+
+/// Validates a job without computing the plate and says what a run will do.
+pub fn plan(spec: &JobSpec) -> Result<PlanReport> {
+    if let Method::Iterative(it) = &spec.method {
+        return plan_iterative(spec, it);
+    }
+    let (sum, choice, notes) = point_sum_and_path(spec)?;
+    let emitters = sum.emitters();
+    let p = spec.plate;
+    let mut lines = Vec::new();
+    let size = p.size();
+    lines.push(format!("job: {}", spec.path.display()));
+    lines.push(format!(
+        "plate: {} x {} px = {:.3} Mpx, pitch {:.4} x {:.4} um, {:.3} x {:.3} mm, wavelength {:.2} nm",
+        p.width,
+        p.height,
+        p.pixels() as f64 / 1e6,
+        p.pitch[0] * 1e6,
+        p.pitch[1] * 1e6,
+        size[0] * 1e3,
+        size[1] * 1e3,
+        p.wavelength * 1e9
+    ));
+    let th = p.max_half_angle();
+    lines.push(format!(
+        "largest diffraction half-angle asin(lambda / 2p): {:.3} deg in x, {:.3} deg in y",
+        th[0].to_degrees(),
+        th[1].to_degrees()
+    ));
+    lines.push(format!("reference: {}", spec.reference.describe()));
+    if let crate::optics::Reference::Plane { tilt } = spec.reference {
+        for (axis, t, m) in [("x", tilt[0], th[0]), ("y", tilt[1], th[1])] {
+            if t.abs() > m {
+                lines.push(format!("warning: reference tilt in {axis} ({:.2} deg) exceeds the half-angle the pitch holds: the carrier aliases", t.to_degrees()));
+            }
+        }
+    }
+    let zs: Vec<f64> = {
+        let mut z: Vec<f64> = emitters.iter().map(|e| e.pos[2]).collect();
+        z.sort_by(f64::total_cmp);
+        z
+    };
+    lines.push(format!(
+        "emitters: {} from {} object(s) in {} channel(s)",
+        emitters.len(),
+        spec.objects.len(),
+        sum.channel_count()
+    ));
+    lines.extend(notes);
+    let n_channels = sum.channel_count();
+    // The direct sum's figures (supports, reach, work) are reported whichever path runs.
+    let sum = &sum;
+    let path_lines = choice.lines;
+    if !zs.is_empty() {
+        for (name, z) in [
+            ("nearest", zs[0]),
+            ("median", zs[zs.len() / 2]),
+            ("farthest", zs[zs.len() - 1]),
+        ] {
+            // Support half-widths on the foot row for a point on the axis at this depth.
+            let b = p.nyquist_cosines();
+            let rx = if b[0] >= 1.0 {
+                f64::INFINITY
+            } else {
+                z * b[0] / (1.0 - b[0] * b[0]).sqrt()
+            };
+            let ry = if b[1] >= 1.0 {
+                f64::INFINITY
+            } else {
+                z * b[1] / (1.0 - b[1] * b[1]).sqrt()
+            };
+            lines.push(format!(
+                "support radius at {name} depth z = {:.3} mm: {:.3} mm in x, {:.3} mm in y (z tan theta_max, before the reference shifts it)",
+                z * 1e3,
+                rx * 1e3,
+                ry * 1e3
+            ));
+        }
+    }
+    let unreachable = sum.unreachable();
+    if unreachable > 0 {
+        lines.push(format!("warning: {unreachable} emitter(s) lie outside the zone the plate can reproduce (no pixel passes the Nyquist test): they contribute nothing"));
+    } else {
+        lines.push("every emitter reaches the plate".into());
+    }
+    let updates = sum.estimate_updates(256);
+    lines.push(format!(
+        "work: about {:.3e} point-pixel updates ({:.1} per pixel on average)",
+        updates,
+        updates / p.pixels() as f64
+    ));
+    let tests = sum
+        .occlusion()
+        .map_or(0, |o| o.tests_needed(sum.row_ranges()));
+    let mut visible_updates = updates;
+    if let Some(o) = sum.occlusion() {
+        let share = o.sampled_visible_share(sum.row_ranges(), 4000);
+        visible_updates = updates * share;
+        lines.push(format!(
+            "occlusion: visibility tested from the centre of each {} x {} px tile (a grid fixed in plate pixels): about {:.3e} tests; about {:.0} % of emitter-tile pairs visible (4000 sampled), so about {:.3e} updates",
+            o.tile()[0],
+            o.tile()[1],
+            tests as f64,
+            share * 100.0,
+            visible_updates
+        ));
+    }
+    let threads = rayon::current_num_threads();
+    let sep = spec.synthesis.approximation == Approximation::Fresnel
+        && sum.occlusion().is_none()
+        && n_channels == 1
+        && matches!(spec.reference, crate::optics::Reference::Plane { .. });
+    let per_update = super::estimate::seconds_per_update(
+        spec.synthesis.approximation,
+        spec.synthesis.precision,
+        sep,
+    );
+    let secs = super::estimate::wall_seconds(
+        visible_updates * per_update,
+        tests as f64,
+        p.pixels() as f64,
+        threads,
+    );
+    lines.push(format!(
+        "time: about {} on {threads} thread(s) for the direct sum ({:.2} ns per update, {:.1} us per visibility test, {:.0} ns per pixel written, per thread, as measured on the development machine: see BENCHMARKS.md)",
+        super::estimate::human(secs),
+        per_update * 1e9,
+        super::estimate::SECONDS_PER_VISIBILITY_TEST * 1e6,
+        super::estimate::SECONDS_PER_PIXEL_WRITTEN * 1e9
+    ));
+    lines.extend(path_lines);
+    let encoding = spec.encoding.resolve(|| 1.0);
+    let layout = tiff_layout(spec, &encoding);
+    let bytes = layout.estimated_file_bytes();
+    lines.push(format!(
+        "output: {} ({} encoding, {} bit, {}, {:.3} MB{}{})",
+        spec.output.display(),
+        encoding.kind_name(),
+        encoding.bits_per_sample(),
+        match spec.compression {
+            crate::output::tiff::Compression::None => "uncompressed",
+            crate::output::tiff::Compression::Deflate => "deflate",
+        },
+        bytes as f64 / 1e6,
+        if matches!(spec.compression, crate::output::tiff::Compression::Deflate) {
+            " at most"
+        } else {
+            ""
+        },
+        if layout.uses_bigtiff() {
+            ", BigTIFF"
+        } else {
+            ""
+        }
+    ));
+    lines.push(format!("sidecar: {}", sidecar_path(&spec.output).display()));
+    Ok(PlanReport {
+        lines,
+        unreachable,
+        updates,
+        bytes,
+    })
+}

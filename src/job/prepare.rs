@@ -1,0 +1,198 @@
+//! Everything a run needs, prepared once: the synthesis path, the encoding (amplitude scale
+//! measured), the TIFF layout, strips, bands and field blocks.
+
+use std::path::{Path, PathBuf};
+
+use num_complex::Complex64;
+
+use super::fields::FieldGrid;
+use super::iterative::{build_cell, IterationRecord};
+use super::progress::ProgressMode;
+use super::scene::build_scene;
+use super::spec::{IterativeSpec, JobSpec, Method};
+use crate::encoding::Encoding;
+use crate::error::{Error, Result};
+use crate::output::tiff::TiffLayout;
+use crate::synthesis::planner::{choose_path, PathChoice};
+use crate::synthesis::point_sum::{BandScratch, PointSum};
+use crate::synthesis::source::FringeSource;
+
+/// Rows per band: about 4 MiB of complex field per band, at most 64 rows.
+pub fn default_band_rows(width: u32) -> usize {
+    ((4usize << 20) / (16 * width as usize)).clamp(1, 64)
+}
+
+/// B0 for the amplitude encoding: 3 x RMS of Re F over up to 16 evenly spread rows.
+fn measure_bipolar_scale(sum: &dyn FringeSource) -> f64 {
+    let p = *sum.plate();
+    let w = p.width as usize;
+    let n = (p.height as usize).min(16);
+    let mut scratch = BandScratch::default();
+    let mut buf = vec![Complex64::new(0.0, 0.0); w];
+    let (mut acc, mut cnt) = (0.0f64, 0usize);
+    for s in 0..n {
+        let row = (s * p.height as usize) / n;
+        sum.compute_band(row, 1, &mut buf, &mut scratch);
+        acc += buf.iter().map(|f| f.re * f.re).sum::<f64>();
+        cnt += w;
+    }
+    let rms = (acc / cnt as f64).sqrt();
+    if rms > 0.0 && rms.is_finite() {
+        3.0 * rms
+    } else {
+        1.0
+    }
+}
+
+/// The TIFF layout a job writes.
+pub fn tiff_layout(spec: &JobSpec, encoding: &Encoding) -> TiffLayout {
+    let bits = encoding.bits_per_sample();
+    TiffLayout {
+        width: spec.plate.width,
+        height: spec.plate.height,
+        bits_per_sample: bits,
+        compression: spec.compression,
+        rows_per_strip: spec
+            .rows_per_strip
+            .unwrap_or_else(|| TiffLayout::default_rows_per_strip(spec.plate.width, bits)),
+        pixel_pitch_m: (spec.plate.pitch[0], spec.plate.pitch[1]),
+        software: format!("fringemill {}", env!("CARGO_PKG_VERSION")),
+        description: Some(format!(
+            "fringe pattern, {} encoding; parameters in the JSON sidecar",
+            encoding.kind_name()
+        )),
+        bigtiff: spec.bigtiff,
+    }
+}
+
+/// Sidecar path: the TIFF path with its extension replaced by `.json`.
+pub fn sidecar_path(tiff: &Path) -> PathBuf {
+    tiff.with_extension("json")
+}
+
+/// Rows per band: the largest divisor of the strip height not above [`default_band_rows`], so
+/// that strips (the unit of checkpoints and shards) are whole numbers of bands.
+pub(super) fn band_rows_for(spec: &JobSpec, rows_per_strip: u32) -> usize {
+    let target = spec
+        .band_rows
+        .unwrap_or_else(|| default_band_rows(spec.plate.width))
+        .min(rows_per_strip as usize)
+        .max(1);
+    (1..=target)
+        .rev()
+        .find(|b| rows_per_strip as usize % b == 0)
+        .unwrap_or(1)
+}
+
+/// Everything a run of one job needs, prepared once.
+pub(super) struct Prepared {
+    /// The synthesis path.
+    pub source: Box<dyn FringeSource>,
+    /// The iterative run behind a phase cell, for the sidecar.
+    pub iteration: Option<(IterationRecord, IterativeSpec)>,
+    pub encoding: Encoding,
+    pub layout: TiffLayout,
+    pub emitters: usize,
+    /// Effective rows per strip.
+    pub rps: u32,
+    pub band_rows: usize,
+    /// Field files, when the job asks for them.
+    pub fields: Option<FieldGrid>,
+    /// Column ranges encoded separately: the field columns, or the whole width.
+    pub blocks: Vec<(usize, usize)>,
+    /// Rows of the unit shards are made of: a strip, or a field row.
+    pub unit_rows: u32,
+}
+
+/// The direct point sum of a job's scene (channels, occlusion when a mesh asks for it) and the
+/// path `[synthesis] path` chooses for it.
+/// Also the scene's lines for `plan`.
+pub(super) fn point_sum_and_path(spec: &JobSpec) -> Result<(PointSum, PathChoice, Vec<String>)> {
+    let scene = build_scene(spec)?;
+    let notes = scene.notes;
+    let sum = PointSum::with_channels(spec.plate, scene.channels, spec.synthesis);
+    let sum = match scene.visibility {
+        Some(v) => sum.with_visibility(v),
+        None => sum,
+    };
+    let choice = choose_path(&sum, spec.sum_path, spec.recording_plane_gap)
+        .map_err(|m| Error::job(&spec.path, m))?;
+    Ok((sum, choice, notes))
+}
+
+pub(super) fn prepare(spec: &JobSpec, mode: ProgressMode) -> Result<Prepared> {
+    let (sum, iteration, n): (Box<dyn FringeSource>, _, _) = match &spec.method {
+        Method::PointSum => {
+            let (sum, choice, _) = point_sum_and_path(spec)?;
+            let n = sum.emitters().len();
+            (choice.into_source(sum), None, n)
+        }
+        Method::Iterative(it) => {
+            let (cell, rec) = build_cell(spec, it, mode)?;
+            (Box::new(cell), Some((rec, it.clone())), 0)
+        }
+    };
+    let encoding = spec.encoding.resolve(|| measure_bipolar_scale(&*sum));
+    let mut layout = tiff_layout(spec, &encoding);
+    // A source with its own band height (the recording plane pays its margins once per band)
+    // gets strips of that height unless the job sets them.
+    if let (Some(b), None, None) = (
+        sum.preferred_band_rows(),
+        spec.rows_per_strip,
+        spec.field_px,
+    ) {
+        layout.rows_per_strip = b as u32;
+    }
+    let (fields, blocks, rps, unit_rows) = match spec.field_px {
+        None => {
+            let rps = layout.effective_rows_per_strip();
+            (None, vec![(0, spec.plate.width as usize)], rps, rps)
+        }
+        Some([fw, fh]) => {
+            // Strips must tile each field row exactly.
+            let target = spec
+                .rows_per_strip
+                .unwrap_or_else(|| {
+                    TiffLayout::default_rows_per_strip(fw, encoding.bits_per_sample())
+                })
+                .min(fh);
+            let rps = (1..=target).rev().find(|r| fh % r == 0).unwrap_or(1);
+            layout.rows_per_strip = rps;
+            let grid = FieldGrid {
+                field: [fw, fh],
+                plate: spec.plate,
+                output: spec.output.clone(),
+                layout: layout.clone(),
+            };
+            let blocks = grid.column_blocks();
+            (Some(grid), blocks, rps, fh)
+        }
+    };
+    let band_rows = match (sum.preferred_band_rows(), spec.band_rows) {
+        (Some(b), None) => {
+            let target = b.min(rps as usize).max(1);
+            (1..=target)
+                .rev()
+                .find(|d| rps as usize % d == 0)
+                .unwrap_or(1)
+        }
+        _ => band_rows_for(spec, rps),
+    };
+    Ok(Prepared {
+        source: sum,
+        iteration,
+        encoding,
+        layout,
+        emitters: n,
+        rps,
+        band_rows,
+        fields,
+        blocks,
+        unit_rows,
+    })
+}
+
+/// Number of shard units (strips, or field rows) of the plate.
+pub(super) fn unit_count(p: &Prepared) -> u32 {
+    p.source.plate().height.div_ceil(p.unit_rows)
+}

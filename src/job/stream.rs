@@ -1,0 +1,288 @@
+//! Streaming a plate: bands computed in parallel, encoded, appended in order to the sink (TIFF,
+//! part file or field files) with checkpoints, and the finished plate's sidecar.
+
+use std::fs::File;
+use std::io::Write;
+use std::path::{Path, PathBuf};
+use std::sync::atomic::Ordering;
+use std::time::Instant;
+
+use num_complex::Complex64;
+use rayon::prelude::*;
+
+use super::fields::{manifest_json, FieldEntry, FieldGrid, FieldSink, FieldsState};
+use super::journal::{Journal, FORMAT};
+use super::prepare::{sidecar_path, Prepared};
+use super::progress::Progress;
+use super::record::{self, RunRecord, Written};
+use super::run::{RunOptions, RunSummary};
+use super::spec::JobSpec;
+use crate::error::{Error, Result};
+use crate::output::atomic::write_atomically;
+use crate::output::tiff::StripWriter;
+use crate::synthesis::point_sum::BandScratch;
+
+/// Where one run writes its rows: the TIFF writer (whole plates), a raw part file (shards of a
+/// single-file plate) or field files.
+pub(super) enum Sink {
+    Tiff(StripWriter),
+    Part {
+        file: std::io::BufWriter<File>,
+        path: PathBuf,
+    },
+    Fields(FieldSink),
+}
+
+/// What a checkpoint of a sink records in the journal.
+type SinkState = (
+    Option<crate::output::tiff::WriterState>,
+    Option<FieldsState>,
+);
+
+impl Sink {
+    /// Appends a band starting at plate row `row0`, one block of encoded rows per column block.
+    pub(super) fn write_band(&mut self, row0: u32, blocks: &[Vec<u8>]) -> Result<()> {
+        match self {
+            Sink::Tiff(w) => w.write_rows(&blocks[0]),
+            Sink::Part { file, path } => {
+                file.write_all(&blocks[0]).map_err(|e| Error::io(&*path, e))
+            }
+            Sink::Fields(f) => f.write_band(row0, blocks),
+        }
+    }
+    /// Makes what was written durable; returns what the journal must record to continue.
+    pub(super) fn sync(&mut self) -> Result<SinkState> {
+        match self {
+            Sink::Tiff(w) => Ok((Some(w.checkpoint()?), None)),
+            Sink::Part { file, path } => {
+                file.flush()
+                    .and_then(|_| file.get_ref().sync_data())
+                    .map_err(|e| Error::io(&*path, e))?;
+                Ok((None, None))
+            }
+            Sink::Fields(f) => Ok((None, Some(f.checkpoint()?))),
+        }
+    }
+}
+
+pub(super) struct StreamCtx<'a> {
+    pub spec: &'a JobSpec,
+    pub prep: &'a Prepared,
+    pub journal: &'a Path,
+    pub shard: Option<[u32; 2]>,
+    /// Rows [start, end) still to compute.
+    pub rows: (u32, u32),
+    pub rows_before: u32,
+    pub updates_before: u64,
+}
+
+/// Computes rows in waves of whole strips, bands in parallel inside a wave, appends them in order,
+/// and checkpoints (sink sync, then journal) between waves. Returns the total updates.
+pub(super) fn stream_rows(ctx: &StreamCtx, sink: &mut Sink, opts: &RunOptions) -> Result<u64> {
+    let prep = ctx.prep;
+    let plate = *prep.source.plate();
+    let w = plate.width as usize;
+    let (start, end) = ctx.rows;
+    let band = prep.band_rows;
+    let bands: Vec<(usize, usize)> = (start as usize..end as usize)
+        .step_by(band)
+        .map(|r| (r, band.min(end as usize - r)))
+        .collect();
+    let bands_per_strip = (prep.rps as usize).div_ceil(band);
+    let strips_per_wave = (4 * rayon::current_num_threads())
+        .div_ceil(bands_per_strip)
+        .max(1);
+    let wave = strips_per_wave * bands_per_strip;
+    let total = prep.source.estimate_work(64).max(1.0);
+    let label = match ctx.shard {
+        None => "plate".to_string(),
+        Some([k, n]) => format!("plate, shard {}/{}", k + 1, n),
+    };
+    let mut progress = Progress::new(&label, total, opts.progress);
+    if ctx.updates_before > 0 {
+        progress.advance(ctx.updates_before as f64);
+    }
+    // Workers report each band as it is done (not each wave), so a long run shows progress
+    // from its first band.
+    let progress = std::sync::Mutex::new(progress);
+    let lock_progress = || progress.lock().unwrap_or_else(|p| p.into_inner());
+    let blocks = &prep.blocks;
+    let mut updates = ctx.updates_before;
+    let mut rows_done = ctx.rows_before;
+    let mut last_checkpoint = Instant::now();
+    let encoding = &prep.encoding;
+    // Band buffers per worker thread, kept for the whole run: allocating them anew for each
+    // piece of work rayon splits off cost a page fault per fresh page (a tenth of a fast run).
+    let pool: Vec<std::sync::Mutex<(BandScratch, Vec<Complex64>)>> = (0
+        ..rayon::current_num_threads() + 1)
+        .map(|_| std::sync::Mutex::new((BandScratch::default(), Vec::new())))
+        .collect();
+    for chunk in bands.chunks(wave) {
+        let done: Vec<Option<(usize, usize, Vec<Vec<u8>>, u64)>> = chunk
+            .par_iter()
+            .map(|&(r0, n)| {
+                // After a stop request (Ctrl-C, SIGTERM) no band starts: the run stops once the
+                // bands in flight are done, not the whole wave.
+                if opts.stop.load(Ordering::SeqCst) {
+                    return None;
+                }
+                let slot =
+                    rayon::current_thread_index().map_or(pool.len() - 1, |i| i.min(pool.len() - 1));
+                // A thread that takes up another band while its own waits inside nested parallel
+                // work finds its slot held: it then works with buffers of its own.
+                let (mut guard, mut fresh);
+                let (scratch, field) = match pool[slot].try_lock() {
+                    Ok(g) => {
+                        guard = g;
+                        &mut *guard
+                    }
+                    Err(std::sync::TryLockError::Poisoned(p)) => {
+                        guard = p.into_inner();
+                        &mut *guard
+                    }
+                    Err(std::sync::TryLockError::WouldBlock) => {
+                        fresh = (BandScratch::default(), Vec::new());
+                        &mut fresh
+                    }
+                };
+                field.resize(n * w, Complex64::new(0.0, 0.0));
+                let u = prep.source.compute_band(r0, n, field, scratch);
+                let out = blocks
+                    .iter()
+                    .map(|&(c0, c1)| {
+                        let rb = encoding.row_bytes(c1 - c0);
+                        let mut bytes = vec![0u8; n * rb];
+                        for (f, o) in field.chunks_exact(w).zip(bytes.chunks_exact_mut(rb)) {
+                            encoding.encode_row(&f[c0..c1], o);
+                        }
+                        bytes
+                    })
+                    .collect();
+                lock_progress().advance(u as f64);
+                Some((r0, n, out, u))
+            })
+            .collect();
+        // Bands are written in order: the whole wave, or after a stop the whole strips at its
+        // start that are complete (the journal's unit); the rest is computed again on resume.
+        let complete = done.iter().take_while(|d| d.is_some()).count();
+        let keep = if complete == done.len() {
+            complete
+        } else {
+            complete / bands_per_strip * bands_per_strip
+        };
+        for (r0, n, bytes, u) in done.into_iter().take(keep).flatten() {
+            sink.write_band(r0 as u32, &bytes)?;
+            updates += u;
+            rows_done += n as u32;
+        }
+        let stop = opts.stop.load(Ordering::SeqCst);
+        let finished = start - ctx.rows_before + rows_done >= end;
+        if (stop || last_checkpoint.elapsed() >= opts.checkpoint_every) && !finished {
+            let (writer, fields) = sink.sync()?;
+            Journal {
+                format: FORMAT.into(),
+                job_sha256: ctx.spec.sha256.clone(),
+                job_toml: ctx.spec.text.clone(),
+                shard: ctx.shard,
+                rows_done,
+                updates,
+                writer,
+                fields,
+            }
+            .write(ctx.journal)?;
+            last_checkpoint = Instant::now();
+            if stop {
+                progress
+                    .into_inner()
+                    .unwrap_or_else(|p| p.into_inner())
+                    .abandon();
+                return Err(Error::Interrupted(format!(
+                    "interrupted after {rows_done} rows; the work so far is saved in {}: run the same command again to continue",
+                    ctx.journal.display()
+                )));
+            }
+        }
+    }
+    progress
+        .into_inner()
+        .unwrap_or_else(|p| p.into_inner())
+        .finish();
+    Ok(updates)
+}
+
+/// Finishes the single-file TIFF and writes its sidecar; if the sidecar fails, the TIFF is removed
+/// too, so no plate stands without its record.
+pub(super) fn finish_plate(
+    spec: &JobSpec,
+    prep: &Prepared,
+    writer: StripWriter,
+    updates: u64,
+) -> Result<RunSummary> {
+    let finished = writer.finish()?;
+    let sidecar = sidecar_path(&spec.output);
+    let side = record::sidecar(spec, run_record(prep, Written::Tiff(&finished), updates));
+    if let Err(e) = side.write(&sidecar) {
+        let _ = std::fs::remove_file(&finished.path);
+        return Err(e);
+    }
+    Ok(RunSummary {
+        tiff: finished.path,
+        sidecar,
+        emitters: prep.emitters,
+        updates,
+        encoding: prep.encoding.clone(),
+    })
+}
+
+/// Writes the field manifest and the plate's sidecar.
+pub(super) fn finish_fields(
+    spec: &JobSpec,
+    prep: &Prepared,
+    grid: &FieldGrid,
+    entries: &[FieldEntry],
+    updates: u64,
+) -> Result<RunSummary> {
+    let manifest = grid.manifest_path();
+    let text = serde_json::to_string_pretty(&manifest_json(grid, entries, &spec.sha256))
+        .expect("plain data")
+        + "\n";
+    write_atomically(&manifest, text.as_bytes())?;
+    let sidecar = sidecar_path(&spec.output);
+    record::sidecar(
+        spec,
+        run_record(
+            prep,
+            Written::Fields {
+                manifest: &manifest,
+                count: entries.len(),
+                field_px: grid.field,
+            },
+            updates,
+        ),
+    )
+    .write(&sidecar)?;
+    Ok(RunSummary {
+        tiff: manifest,
+        sidecar,
+        emitters: prep.emitters,
+        updates,
+        encoding: prep.encoding.clone(),
+    })
+}
+
+/// What the sidecar records of a finished run.
+fn run_record<'a>(prep: &'a Prepared, written: Written<'a>, updates: u64) -> RunRecord<'a> {
+    RunRecord {
+        encoding: &prep.encoding,
+        layout: &prep.layout,
+        written,
+        emitters: prep.emitters,
+        unreachable: prep.source.unreachable(),
+        updates,
+        iterative: prep
+            .iteration
+            .as_ref()
+            .map(|(rec, it)| record::iterative_record(it, rec)),
+        sum_path: record::path_record(&prep.source.path()),
+    }
+}

@@ -1,0 +1,200 @@
+//! Which path computes a point sum: the decision as a plain recipe (testable without building
+//! anything, as `optics::propagation::PropagationRecipe` is), and the source it leads to.
+
+use super::point_sum::PointSum;
+use super::recording_plane::RecordingPlane;
+use super::source::FringeSource;
+use super::{Approximation, Precision};
+
+/// How a point sum is computed (`[synthesis] path`).
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum SumPath {
+    /// Every emitter summed on the plate itself.
+    Direct,
+    /// Emitters summed on a recording plane near them, carried to the plate by an FFT step.
+    RecordingPlane,
+    /// The cheaper of the two by the estimates `plan` prints.
+    Auto,
+}
+
+/// Rough cost weights, in units of one f64 exact update, measured on the benchmark machine
+/// (BENCHMARKS.md): an f32 exact update, and one element of one radix-2 pass of a complex f64 FFT.
+pub const F32_UPDATE_WEIGHT: f64 = 0.3;
+/// See [`F32_UPDATE_WEIGHT`].
+pub const FFT_PASS_WEIGHT: f64 = 0.27;
+/// `auto` takes the recording plane only when its estimate is this many times below the direct
+/// one: the estimate counts the updates inside the supports, while the kernels also walk the
+/// slack of the per-row spans (about 6x for emitters 0.25-0.75 mm from the plane in the test
+/// scene of BENCHMARKS.md, where the estimate said 2.8x and the run gave 1.6x).
+pub const AUTO_PLANE_MARGIN: f64 = 2.0;
+
+/// The decision.
+#[derive(Clone, Debug, PartialEq)]
+pub enum SumRecipe {
+    /// The direct sum, and why.
+    Direct(DirectBecause),
+    /// The recording plane.
+    RecordingPlane,
+}
+
+/// Why the direct sum was taken.
+#[derive(Clone, Debug, PartialEq)]
+pub enum DirectBecause {
+    /// The job asks for it.
+    Asked,
+    /// The recording plane does not apply to the job (the reason).
+    PlaneNotApplicable(String),
+    /// `auto`: the plane's estimate is not [`AUTO_PLANE_MARGIN`] times below the direct one.
+    Cheaper,
+}
+
+/// Costs of the two paths, in f64 exact updates.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct PathCosts {
+    /// The direct sum.
+    pub direct: f64,
+    /// The recording plane.
+    pub plane: f64,
+}
+
+/// Picks the path. `plane` is the recording plane's cost, or why it does not apply. Errors
+/// when the job asks for the recording plane and it does not apply.
+pub fn choose(ask: SumPath, plane: Result<PathCosts, String>) -> Result<SumRecipe, String> {
+    match (ask, plane) {
+        (SumPath::Direct, _) => Ok(SumRecipe::Direct(DirectBecause::Asked)),
+        (SumPath::RecordingPlane, Err(why)) => {
+            Err(format!("[synthesis] path = \"recording-plane\": {why}"))
+        }
+        (SumPath::RecordingPlane, Ok(_)) => Ok(SumRecipe::RecordingPlane),
+        (SumPath::Auto, Err(why)) => Ok(SumRecipe::Direct(DirectBecause::PlaneNotApplicable(why))),
+        (SumPath::Auto, Ok(c)) => Ok(if c.plane * AUTO_PLANE_MARGIN < c.direct {
+            SumRecipe::RecordingPlane
+        } else {
+            SumRecipe::Direct(DirectBecause::Cheaper)
+        }),
+    }
+}
+
+/// The path chosen for a point sum, with the recording plane when it was built, and lines for
+/// `plan` (costs and choice).
+pub struct PathChoice {
+    /// The decision.
+    pub recipe: SumRecipe,
+    /// The recording plane, when the recipe takes it.
+    pub plane: Option<RecordingPlane>,
+    /// What `plan` prints about the choice.
+    pub lines: Vec<String>,
+}
+
+impl PathChoice {
+    /// The source the choice leads to: the recording plane, or the direct sum itself.
+    pub fn into_source(self, sum: PointSum) -> Box<dyn FringeSource> {
+        match self.plane {
+            Some(p) => Box::new(p.with_unreachable(sum.unreachable())),
+            None => Box::new(sum),
+        }
+    }
+}
+
+/// Chooses the path of a prepared direct sum (`[synthesis] path = ask`), building the recording
+/// plane where it applies and is asked for or cheaper.
+pub fn choose_path(
+    sum: &PointSum,
+    ask: SumPath,
+    plane_gap: Option<f64>,
+) -> Result<PathChoice, String> {
+    let mut lines = Vec::new();
+    let opts = *sum.options();
+    let plane = if ask == SumPath::Direct {
+        Err(String::new())
+    } else {
+        match sum.single_channel() {
+            Some((reference, emitters)) => {
+                RecordingPlane::new(*sum.plate(), reference, emitters.to_vec(), opts, plane_gap)
+            }
+            None => Err("the recording plane takes one reference and no occlusion".to_string()),
+        }
+    };
+    let unit = if opts.precision == Precision::F32 && opts.approximation == Approximation::Exact {
+        F32_UPDATE_WEIGHT
+    } else {
+        1.0
+    };
+    let costs = plane.as_ref().map_err(String::clone).map(|p| {
+        // The plane's updates run in the precision the job asks for too (soft edges in f32 since
+        // the per-pixel f32 path takes them).
+        let c = PathCosts {
+            direct: sum.estimate_updates(64) * unit,
+            plane: p.estimate_cost(unit, FFT_PASS_WEIGHT),
+        };
+        lines.push(format!(
+            "estimated cost (f64 exact updates): direct {:.3e}, recording plane {:.3e} (plane {:.3} mm from the plate, grid margins {} x {} px, bands of {} rows)",
+            c.direct,
+            c.plane,
+            p.distance() * 1e3,
+            p.margins()[0],
+            p.margins()[1],
+            p.band_rows()
+        ));
+        c
+    });
+    let recipe = choose(ask, costs)?;
+    lines.push(match &recipe {
+        SumRecipe::Direct(DirectBecause::Asked) => "path: direct point sum".into(),
+        SumRecipe::Direct(DirectBecause::PlaneNotApplicable(why)) => {
+            format!("path: direct point sum (recording plane not applicable: {why})")
+        }
+        SumRecipe::Direct(DirectBecause::Cheaper) => {
+            "path: direct point sum (auto takes the recording plane below half the direct estimate)"
+                .into()
+        }
+        SumRecipe::RecordingPlane => "path: recording plane".into(),
+    });
+    let plane = match recipe {
+        SumRecipe::RecordingPlane => plane.ok(),
+        SumRecipe::Direct(_) => None,
+    };
+    Ok(PathChoice {
+        recipe,
+        plane,
+        lines,
+    })
+}
+
+#[cfg(test)]
+mod unit_tests {
+    use super::*;
+
+    #[test]
+    fn recipe_follows_the_request_and_the_margin() {
+        let c = |direct, plane| Ok(PathCosts { direct, plane });
+        assert_eq!(
+            choose(SumPath::Direct, c(1.0, 0.001)),
+            Ok(SumRecipe::Direct(DirectBecause::Asked))
+        );
+        assert_eq!(
+            choose(SumPath::RecordingPlane, c(1.0, 100.0)),
+            Ok(SumRecipe::RecordingPlane)
+        );
+        let e = choose(SumPath::RecordingPlane, Err("occlusion".into())).unwrap_err();
+        assert!(
+            e.contains("recording-plane") && e.contains("occlusion"),
+            "{e}"
+        );
+        // auto: the plane only below half the direct estimate.
+        assert_eq!(
+            choose(SumPath::Auto, c(10.0, 4.9)),
+            Ok(SumRecipe::RecordingPlane)
+        );
+        assert_eq!(
+            choose(SumPath::Auto, c(10.0, 5.0)),
+            Ok(SumRecipe::Direct(DirectBecause::Cheaper))
+        );
+        assert_eq!(
+            choose(SumPath::Auto, Err("two references".into())),
+            Ok(SumRecipe::Direct(DirectBecause::PlaneNotApplicable(
+                "two references".into()
+            )))
+        );
+    }
+}
