@@ -511,8 +511,7 @@ fn mesh_units_key_overrides_the_format_default() {
     // An unknown unit is refused, by the library and the CLI, on one line naming the key.
     let job = write_job(d, "furlong", "tri.gltf", &object("units = \"furlong\""));
     let e = JobSpec::load(&job)
-        .err()
-        .expect("units = \"furlong\" must be refused")
+        .expect_err("units = \"furlong\" must be refused")
         .to_string();
     assert!(
         e.contains("units") && e.contains("furlong") && !e.contains('\n'),

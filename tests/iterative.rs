@@ -377,7 +377,7 @@ fn stall_test_measures_relative_improvement_over_a_window() {
         );
     }
     let mut plateau: Vec<f64> = (0..20).map(|k| 0.5 * 0.9f64.powi(k)).collect();
-    plateau.extend(std::iter::repeat(plateau[19]).take(40));
+    plateau.extend(std::iter::repeat_n(plateau[19], 40));
     // The plateau starts at entry 19: the window holds only plateau values once it starts at 20.
     let first = (1..=plateau.len()).find(|&m| stalled(&plateau[..m], 1e-3, 0));
     assert_eq!(first, Some(20 + STALL_WINDOW), "plateau");

@@ -157,11 +157,11 @@ fn bounds_json(v: &[[f64; 3]]) -> (serde_json::Value, serde_json::Value) {
 /// A GLB container around `doc` and `bin` (chunks padded as the specification asks).
 fn glb_bytes(doc: &serde_json::Value, bin: &[u8]) -> Vec<u8> {
     let mut js = serde_json::to_vec(doc).unwrap();
-    while js.len() % 4 != 0 {
+    while !js.len().is_multiple_of(4) {
         js.push(b' ');
     }
     let mut bd = bin.to_vec();
-    while bd.len() % 4 != 0 {
+    while !bd.len().is_multiple_of(4) {
         bd.push(0);
     }
     let total = 12 + 8 + js.len() + if bd.is_empty() { 0 } else { 8 + bd.len() };
@@ -343,7 +343,7 @@ fn textured_square_glb(image: &[u8], mime: &str) -> Vec<u8> {
     for part in [&normals, &colors, &uv, &idx] {
         views.push(json!({"buffer": 0, "byteOffset": bin.len(), "byteLength": part.len()}));
         bin.extend(part.iter());
-        while bin.len() % 4 != 0 {
+        while !bin.len().is_multiple_of(4) {
             bin.push(0);
         }
     }
@@ -1336,7 +1336,7 @@ fn brute_first_hit(m: &Mesh, o: [f64; 3], d: [f64; 3], t_max: f64) -> Option<(f6
     for (k, t) in m.triangles.iter().enumerate() {
         let [a, b, c] = m.corners(t);
         if let Some((t, _, _)) = ray_triangle(o, d, a, b, c) {
-            if t > 0.0 && t < t_max && best.map_or(true, |(bt, _)| t < bt) {
+            if t > 0.0 && t < t_max && best.is_none_or(|(bt, _)| t < bt) {
                 best = Some((t, k as u32));
             }
         }

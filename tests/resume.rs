@@ -233,7 +233,10 @@ fn disk_full_mid_run_then_resume() {
     let journal = d.path().join("out/plate.tif.partial.journal");
     let jv: serde_json::Value = serde_json::from_slice(&std::fs::read(&journal).unwrap()).unwrap();
     let rows = jv["rows_done"].as_u64().unwrap();
-    assert!(rows > 0 && rows < 640 && rows % 16 == 0, "rows_done {rows}");
+    assert!(
+        rows > 0 && rows < 640 && rows.is_multiple_of(16),
+        "rows_done {rows}"
+    );
     // The journal never claims more than the file holds.
     let len = std::fs::metadata(d.path().join("out/plate.tif.partial"))
         .unwrap()

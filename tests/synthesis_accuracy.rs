@@ -86,7 +86,7 @@ fn point_sum_matches_reference_sum() {
                 };
                 let sum = PointSum::new(plate, reference, emitters.clone(), opts);
                 let portable = PointSum::new(plate, reference, emitters.clone(), opts)
-                    .with_isa(KernelIsa::Portable);
+                    .with_isa(KernelIsa::PORTABLE);
                 let mut maxref = 0.0f64;
                 let reference_field: Vec<Complex64> = (0..plate.height)
                     .flat_map(|i| (0..plate.width).map(move |j| (i, j)))
@@ -337,7 +337,7 @@ fn hidden_emitters_contribute_nothing() {
     struct HideOdd;
     impl fringemill::synthesis::point_sum::Visibility for HideOdd {
         fn visible(&self, j: usize, _eye: [f64; 3]) -> bool {
-            j % 2 == 0
+            j.is_multiple_of(2)
         }
     }
     let mut rng = Rng(99);

@@ -47,7 +47,7 @@ fn image_bytes(layout: &TiffLayout, seed: u64) -> Vec<u8> {
             state ^= state << 17;
             data.push((state >> 24) as u8);
         }
-        if layout.bits_per_sample == 1 && layout.width % 8 != 0 {
+        if layout.bits_per_sample == 1 && !layout.width.is_multiple_of(8) {
             let keep = layout.width % 8;
             let last = data.len() - 1;
             data[last] &= 0xFFu8 << (8 - keep);

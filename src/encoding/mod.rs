@@ -468,7 +468,7 @@ fn approx_level(v: Complex64, n: f64) -> f64 {
     let t = p * (n / (2.0 * PI));
     let t = if t < 0.0 { t + n } else { t };
     // Non-finite F gives NaN (zero F already does, 0 / 0).
-    if (x - x) + (y - y) == 0.0 {
+    if x.is_finite() && y.is_finite() {
         t
     } else {
         f64::NAN

@@ -219,7 +219,7 @@ pub fn placement_warnings(spec: &JobSpec, it: &IterativeSpec) -> Result<Vec<Stri
     let p = &spec.plate;
     let cell = it.cell_px.unwrap_or([p.width, p.height]);
     let mut out = Vec::new();
-    if p.width % cell[0] != 0 || p.height % cell[1] != 0 {
+    if !p.width.is_multiple_of(cell[0]) || !p.height.is_multiple_of(cell[1]) {
         out.push(format!(
             "warning: the {} x {} plate is not a whole number of {} x {} cells: the repeated cell is cut at the plate's edge, so a designed sample spreads over its neighbours in the plate's replay",
             p.width, p.height, cell[0], cell[1]

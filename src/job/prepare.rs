@@ -80,7 +80,7 @@ pub(super) fn band_rows_for(spec: &JobSpec, rows_per_strip: u32) -> usize {
         .max(1);
     (1..=target)
         .rev()
-        .find(|b| rows_per_strip as usize % b == 0)
+        .find(|b| (rows_per_strip as usize).is_multiple_of(*b))
         .unwrap_or(1)
 }
 
@@ -173,7 +173,7 @@ pub(super) fn prepare(spec: &JobSpec, mode: ProgressMode) -> Result<Prepared> {
             let target = b.min(rps as usize).max(1);
             (1..=target)
                 .rev()
-                .find(|d| rps as usize % d == 0)
+                .find(|d| (rps as usize).is_multiple_of(*d))
                 .unwrap_or(1)
         }
         _ => band_rows_for(spec, rps),

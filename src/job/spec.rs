@@ -429,7 +429,7 @@ impl JobSpec {
             ("[hologram] width_px", h.width_px),
             ("[hologram] height_px", h.height_px),
         ] {
-            if v < 1 || v > MAX_SIDE_PX {
+            if !(1..=MAX_SIDE_PX).contains(&v) {
                 return Err(bad(format!("{name} = {v} is outside 1..={MAX_SIDE_PX}")));
             }
         }

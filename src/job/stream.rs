@@ -65,6 +65,9 @@ impl Sink {
     }
 }
 
+/// A band computed and encoded: first row, rows, encoded bytes per column block, work done.
+type EncodedBand = (usize, usize, Vec<Vec<u8>>, u64);
+
 pub(super) struct StreamCtx<'a> {
     pub spec: &'a JobSpec,
     pub prep: &'a Prepared,
@@ -118,7 +121,7 @@ pub(super) fn stream_rows(ctx: &StreamCtx, sink: &mut Sink, opts: &RunOptions) -
         .map(|_| std::sync::Mutex::new((BandScratch::default(), Vec::new())))
         .collect();
     for chunk in bands.chunks(wave) {
-        let done: Vec<Option<(usize, usize, Vec<Vec<u8>>, u64)>> = chunk
+        let done: Vec<Option<EncodedBand>> = chunk
             .par_iter()
             .map(|&(r0, n)| {
                 // After a stop request (Ctrl-C, SIGTERM) no band starts: the run stops once the

@@ -400,7 +400,7 @@ pub(crate) fn transpose_into<V: Copy + Send + Sync>(
     fill: Option<V>,
 ) {
     assert!(
-        dst_stride > 0 && dst.len() % dst_stride == 0,
+        dst_stride > 0 && dst.len().is_multiple_of(dst_stride),
         "transpose: ragged destination"
     );
     let n = dst.len() / dst_stride;

@@ -14,7 +14,7 @@ use num_complex::Complex;
 #[inline(always)]
 fn mul_by_generic(v: &mut [Complex<f32>], fac: &[Complex<f32>], scale: Complex<f32>) {
     for (a, &b) in v.iter_mut().zip(fac) {
-        *a = *a * (b * scale);
+        *a *= b * scale;
     }
 }
 
@@ -45,21 +45,14 @@ pub fn large_buffer<T: Copy>(n: usize, value: T) -> Vec<T> {
     let mut v: Vec<T> = Vec::with_capacity(n);
     #[cfg(target_os = "linux")]
     {
-        const HUGE: usize = 2 << 20;
         let bytes = n.saturating_mul(std::mem::size_of::<T>());
-        if bytes >= 2 * HUGE {
-            let start = v.as_mut_ptr() as usize;
-            let (lo, hi) = (
-                (start + HUGE - 1) & !(HUGE - 1),
-                (start + bytes) & !(HUGE - 1),
-            );
-            if hi > lo {
-                // SAFETY: [lo, hi) lies inside the vector's own allocation (capacity n, not yet
-                // written); MADV_HUGEPAGE only asks the kernel to back the range with large pages
-                // and never changes memory contents or validity. A refusal is harmless.
-                unsafe {
-                    libc::madvise(lo as *mut libc::c_void, hi - lo, libc::MADV_HUGEPAGE);
-                }
+        if let Some((lo, hi)) = huge_page_range(v.as_mut_ptr() as usize, bytes) {
+            // SAFETY: [lo, hi) lies inside the vector's own allocation (capacity n, not yet
+            // written; `huge_page_range` keeps inside [start, start + bytes)); MADV_HUGEPAGE only
+            // asks the kernel to back the range with large pages and never changes memory
+            // contents or validity. A refusal is harmless.
+            unsafe {
+                libc::madvise(lo as *mut libc::c_void, hi - lo, libc::MADV_HUGEPAGE);
             }
         }
     }
@@ -67,11 +60,27 @@ pub fn large_buffer<T: Copy>(n: usize, value: T) -> Vec<T> {
     v
 }
 
+/// Size of the large pages asked for (2 MiB, x86-64 and most arm64 kernels).
+const HUGE_PAGE: usize = 2 << 20;
+
+/// The whole large pages inside [start, start + bytes), if the buffer is at least two large pages:
+/// the range [lo, hi) with lo the first page boundary at or after start and hi the last at or
+/// before the end.
+fn huge_page_range(start: usize, bytes: usize) -> Option<(usize, usize)> {
+    if bytes < 2 * HUGE_PAGE {
+        return None;
+    }
+    let lo = start.checked_add(HUGE_PAGE - 1)? & !(HUGE_PAGE - 1);
+    let hi = start.checked_add(bytes)? & !(HUGE_PAGE - 1);
+    (hi > lo).then_some((lo, hi))
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
 
-    /// The dispatched copy against the plain product, bit for bit (IEEE products, no contraction).
+    /// Each copy (portable, and AVX2 where the CPU has it) against the plain product written
+    /// here, bit for bit (IEEE products, no contraction), and the dispatched call likewise.
     #[test]
     fn dispatched_copy_matches_plain_product() {
         let fac: Vec<Complex<f32>> = (0..37)
@@ -81,10 +90,53 @@ mod tests {
             .map(|k| Complex::new(1.0 / (k as f32 + 0.5), (k as f32).sqrt() - 3.0))
             .collect();
         let scale = Complex::new(0.6f32, -0.8);
-        let mut fast = v0.clone();
-        mul_by_f32(&mut fast, &fac, scale);
-        let slow: Vec<Complex<f32>> = v0.iter().zip(&fac).map(|(a, b)| a * (b * scale)).collect();
-        assert_eq!(fast, slow);
+        let slow: Vec<Complex<f32>> = v0
+            .iter()
+            .zip(&fac)
+            .map(|(a, b)| {
+                let p = Complex::new(
+                    b.re * scale.re - b.im * scale.im,
+                    b.re * scale.im + b.im * scale.re,
+                );
+                Complex::new(a.re * p.re - a.im * p.im, a.re * p.im + a.im * p.re)
+            })
+            .collect();
+        let mut portable = v0.clone();
+        mul_by_generic(&mut portable, &fac, scale);
+        assert_eq!(portable, slow, "portable copy");
+        let mut dispatched = v0.clone();
+        mul_by_f32(&mut dispatched, &fac, scale);
+        assert_eq!(dispatched, slow, "dispatched copy");
+        #[cfg(target_arch = "x86_64")]
+        if std::arch::is_x86_feature_detected!("avx2") {
+            let mut wide = v0.clone();
+            // SAFETY: AVX2 was just reported by the CPU.
+            unsafe { mul_by_avx2(&mut wide, &fac, scale) };
+            assert_eq!(wide, slow, "AVX2 copy");
+        } else {
+            eprintln!("no AVX2 on this CPU: the portable copy alone was compared");
+        }
+    }
+
+    /// The advised range: whole 2 MiB pages inside the buffer, none for small buffers (common
+    /// practice: an allocation hint must stay inside the allocation).
+    #[test]
+    fn huge_page_range_stays_inside_the_buffer() {
+        let m = HUGE_PAGE;
+        assert_eq!(huge_page_range(0x1000, 2 * m - 1), None);
+        assert_eq!(huge_page_range(4 * m, 2 * m), Some((4 * m, 6 * m)));
+        assert_eq!(huge_page_range(4 * m + 8, 3 * m), Some((5 * m, 7 * m)));
+        // Less than one whole page inside after alignment.
+        assert_eq!(huge_page_range(4 * m + 8, 2 * m), Some((5 * m, 6 * m)));
+        assert_eq!(huge_page_range(usize::MAX - m, 2 * m), None);
+        for (start, bytes) in [(12345usize, 5 * m + 77), (m - 1, 2 * m + 1), (3 * m, 9 * m)] {
+            let (lo, hi) = huge_page_range(start, bytes).unwrap();
+            assert!(lo >= start && hi <= start + bytes && lo % m == 0 && hi % m == 0 && hi > lo);
+            assert!(
+                lo - start < m && start + bytes - hi < m,
+                "a whole page left out"
+            );
+        }
     }
 
     /// The advised buffer holds what a plain vector holds, for sizes below, at and above the

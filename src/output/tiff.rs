@@ -796,7 +796,7 @@ impl StripWriter {
     /// been written: both are bugs of the caller.
     pub fn write_rows(&mut self, rows: &[u8]) -> Result<()> {
         let row_bytes = self.geometry.row_bytes as usize;
-        if rows.len() % row_bytes != 0 {
+        if !rows.len().is_multiple_of(row_bytes) {
             not_whole_rows(rows.len(), row_bytes);
         }
         let count = (rows.len() / row_bytes) as u64;
@@ -1096,7 +1096,7 @@ fn check_state(
     let bad = |message: String| Err(Error::input(partial, format!("bad checkpoint: {message}")));
     let rows = state.rows_written;
     let rps = geometry.rows_per_strip;
-    if rows > layout.height || (rows % rps != 0 && rows != layout.height) {
+    if rows > layout.height || (!rows.is_multiple_of(rps) && rows != layout.height) {
         return bad(format!(
             "{rows} rows written is not a strip boundary of a {}-row image with {rps} rows per strip",
             layout.height

@@ -3,6 +3,7 @@
 
 use std::path::Path;
 
+use ndarray::{s, ArrayView2};
 use serde::Serialize;
 
 use crate::error::{Error, Result};
@@ -206,6 +207,14 @@ pub fn peaks(
     found
 }
 
+/// A row-major w x h image as a 2-D view (rows, columns).
+///
+/// # Panics
+/// If the slice does not hold w x h values.
+fn image_view<T>(w: usize, h: usize, v: &[T]) -> ArrayView2<'_, T> {
+    ArrayView2::from_shape((h, w), v).expect("image of w x h values")
+}
+
 /// Power fraction, min/max and speckle contrast inside `region`.
 pub fn region_stats(
     w: usize,
@@ -221,14 +230,12 @@ pub fn region_stats(
     }
     let total: f64 = i.iter().map(|&v| v as f64).sum();
     let (mut s, mut s2, mut mn, mut mx) = (0.0f64, 0.0f64, f64::INFINITY, 0.0f64);
-    for r in y..y + rh {
-        for &v in &i[r * w + x..r * w + x + rw] {
-            let v = v as f64;
-            s += v;
-            s2 += v * v;
-            mn = mn.min(v);
-            mx = mx.max(v);
-        }
+    for &v in image_view(w, h, i).slice(s![y..y + rh, x..x + rw]) {
+        let v = v as f64;
+        s += v;
+        s2 += v * v;
+        mn = mn.min(v);
+        mx = mx.max(v);
     }
     let n = (rw * rh) as f64;
     let mean = s / n;
@@ -250,14 +257,17 @@ pub fn compare(
     region: Option<Region>,
 ) -> TargetStats {
     let [x, y, rw, rh] = region.unwrap_or([0, 0, w, h]);
-    let mut a = Vec::with_capacity(rw * rh);
-    let mut b = Vec::with_capacity(rw * rh);
-    for r in y..y + rh {
-        for c in x..x + rw {
-            a.push(i[r * w + c] as f64);
-            b.push(target[r * w + c]);
-        }
-    }
+    let window = s![y..y + rh, x..x + rw];
+    let a: Vec<f64> = image_view(w, h, i)
+        .slice(window)
+        .iter()
+        .map(|&v| v as f64)
+        .collect();
+    let b: Vec<f64> = image_view(w, h, target)
+        .slice(window)
+        .iter()
+        .copied()
+        .collect();
     let n = a.len() as f64;
     let (ma, mb) = (a.iter().sum::<f64>() / n, b.iter().sum::<f64>() / n);
     let (mut sab, mut saa, mut sbb, mut se) = (0.0, 0.0, 0.0, 0.0);

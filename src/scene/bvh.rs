@@ -392,7 +392,7 @@ fn choose_split(
         }
         let cost =
             half_area(&left.0, &left.1) * n_left as f64 + right_area[s + 1] * (n - n_left) as f64;
-        if best.map_or(true, |(c, _)| cost < c) {
+        if best.is_none_or(|(c, _)| cost < c) {
             best = Some((cost, s));
         }
     }

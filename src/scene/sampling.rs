@@ -377,7 +377,7 @@ fn cell_point(cell: u64, m: u64, r1: f64, r2: f64) -> (f64, f64) {
     let k = cell - row * (2 * m - row);
     let (a, b) = fold(r1, r2);
     let (i, j) = ((k / 2) as f64, row as f64);
-    let (u, v) = if k % 2 == 0 {
+    let (u, v) = if k.is_multiple_of(2) {
         // Upright: corners (i, j), (i + 1, j), (i, j + 1).
         (i + a, j + b)
     } else {

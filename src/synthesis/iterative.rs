@@ -745,7 +745,6 @@ pub fn optimise(
             progress,
         );
     }
-    drop(step);
     if phase_stale {
         phase
             .par_iter_mut()

@@ -82,11 +82,7 @@ fn point_sum(c: &mut Criterion) {
     let isas: Vec<(&str, KernelIsa)> = kernels::available()
         .into_iter()
         .rev()
-        .map(|i| match i {
-            KernelIsa::Portable => ("portable", i),
-            KernelIsa::Avx2 => ("avx2", i),
-            KernelIsa::Avx512 => ("avx512", i),
-        })
+        .map(|i| (i.name(), i))
         .collect();
     for (aname, approximation, precision) in [
         ("exact_f32", Approximation::Exact, Precision::F32),
@@ -96,7 +92,7 @@ fn point_sum(c: &mut Criterion) {
     ] {
         for &(iname, isa) in &isas {
             // Only the f32 kernels have AVX-512 copies.
-            if isa == KernelIsa::Avx512 && precision != Precision::F32 {
+            if isa.level() == kernels::IsaLevel::Avx512 && precision != Precision::F32 {
                 continue;
             }
             let opts = PointSumOptions {
@@ -191,9 +187,12 @@ fn propagation(c: &mut Criterion) {
     g.finish();
 }
 
+/// A planned propagator.
+type Prop = Arc<dyn Propagator<f32>>;
+
 /// The GS benches' problem at n x n (as `gs_numpy.py` and `gs_fftw.c`): a Fourier lens of 0.1 m
 /// and its inverse, and a 64-pixel checkerboard target intensity.
-fn gs_problem(n: usize) -> (Arc<dyn Propagator<f32>>, Arc<dyn Propagator<f32>>, Vec<f64>) {
+fn gs_problem(n: usize) -> (Prop, Prop, Vec<f64>) {
     let g0 = grid(n);
     let mut planner = PropagationPlanner::<f32>::new();
     let focal = 0.1;
@@ -205,7 +204,7 @@ fn gs_problem(n: usize) -> (Arc<dyn Propagator<f32>>, Arc<dyn Propagator<f32>>, 
     );
     let target = (0..n * n)
         .map(|i| {
-            if (i / n / 64 + i % n / 64) % 2 == 0 {
+            if (i / n / 64 + i % n / 64).is_multiple_of(2) {
                 1.0
             } else {
                 0.0

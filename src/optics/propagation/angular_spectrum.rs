@@ -29,9 +29,9 @@
 
 use std::sync::Arc;
 
+use super::FieldFloat;
 use num_complex::Complex;
 use rayon::prelude::*;
-use rustfft::num_traits::Float;
 use rustfft::FftNum;
 
 use super::{check_len, cis_cycles, scratch_failed, to_t, Grid, Propagator};
@@ -58,7 +58,7 @@ pub struct AngularSpectrum<T: FftNum> {
     live: Vec<bool>,
 }
 
-impl<T: FftNum + Float> AngularSpectrum<T> {
+impl<T: FieldFloat> AngularSpectrum<T> {
     /// Plans propagation of `grid` over `distance` metres (any finite value; negative
     /// back-propagates), zero-padded by the factor `pad` (1 = no padding, 2 = the usual 2N), with or
     /// without the band limit. `fft` must be planned for the padded shape `(pad nx, pad ny)`.
@@ -151,7 +151,7 @@ impl<T: FftNum + Float> AngularSpectrum<T> {
     }
 }
 
-impl<T: FftNum + Float> Propagator<T> for AngularSpectrum<T> {
+impl<T: FieldFloat> Propagator<T> for AngularSpectrum<T> {
     fn input(&self) -> Grid {
         self.grid
     }

@@ -33,8 +33,8 @@
 
 use std::sync::Arc;
 
+use super::FieldFloat;
 use num_complex::Complex;
-use rustfft::num_traits::Float;
 use rustfft::FftNum;
 
 use super::{
@@ -91,7 +91,7 @@ fn axis_factors(
     (pre, post)
 }
 
-impl<T: FftNum + Float> CentredDft<T> {
+impl<T: FieldFloat> CentredDft<T> {
     /// Plans the transform from `input` to output pitch `out_pitch`. `constant` multiplies every
     /// output sample; `chirp_in` / `chirp_out` give extra phases in cycles as functions of the
     /// squared distance from the axis, `rho^2`, in square metres.
@@ -172,7 +172,7 @@ impl<T: FftNum + Float> CentredDft<T> {
     }
 }
 
-impl<T: FftNum + Float> CentredDft<T> {
+impl<T: FieldFloat> CentredDft<T> {
     /// [`apply`](Self::apply) reading `src` and leaving the output transposed in `out_t`
     /// ([`Propagator::propagate_into_transposed`]): the post factor and then `after_col` run on
     /// each output column.
@@ -234,7 +234,7 @@ pub struct Fourier<T: FftNum> {
     dft: CentredDft<T>,
 }
 
-impl<T: FftNum + Float> Fourier<T> {
+impl<T: FieldFloat> Fourier<T> {
     /// Plans the transform for `grid` and focal length `focal` (metres, non-zero; negative for the
     /// inverse transform). `fft` must be planned for the grid's shape.
     ///
@@ -273,7 +273,7 @@ impl<T: FftNum + Float> Fourier<T> {
     }
 }
 
-impl<T: FftNum + Float> Propagator<T> for Fourier<T> {
+impl<T: FieldFloat> Propagator<T> for Fourier<T> {
     fn input(&self) -> Grid {
         self.input
     }

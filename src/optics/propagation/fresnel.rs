@@ -25,8 +25,8 @@
 
 use std::sync::Arc;
 
+use super::FieldFloat;
 use num_complex::Complex;
-use rustfft::num_traits::Float;
 use rustfft::FftNum;
 
 use super::fourier::CentredDft;
@@ -42,7 +42,7 @@ pub struct SingleFftFresnel<T: FftNum> {
     dft: CentredDft<T>,
 }
 
-impl<T: FftNum + Float> SingleFftFresnel<T> {
+impl<T: FieldFloat> SingleFftFresnel<T> {
     /// Plans propagation of `grid` over `distance` metres (non-zero; negative back-propagates).
     /// `fft` must be planned for the grid's shape.
     ///
@@ -84,7 +84,7 @@ impl<T: FftNum + Float> SingleFftFresnel<T> {
     }
 }
 
-impl<T: FftNum + Float> Propagator<T> for SingleFftFresnel<T> {
+impl<T: FieldFloat> Propagator<T> for SingleFftFresnel<T> {
     fn input(&self) -> Grid {
         self.input
     }

@@ -141,7 +141,7 @@ impl Grid {
     ///
     /// # Panics
     /// If `field.len() != nx * ny`.
-    pub fn power<T: FftNum + Float>(&self, field: &[Complex<T>]) -> f64 {
+    pub fn power<T: FieldFloat>(&self, field: &[Complex<T>]) -> f64 {
         check_len(field.len(), self.len());
         let s: f64 = field
             .par_chunks(self.nx.max(1))
@@ -318,23 +318,32 @@ pub(crate) struct Separable<T> {
 }
 
 /// Applies `fac[k] * scale` to `v[k]`.
+/// The floating-point types fields are propagated in (f32 for the iterative loop, f64 for exact
+/// checks), each with the pointwise product it runs inside the FFT passes.
+pub trait FieldFloat: FftNum + Float {
+    /// `v[k] *= fac[k] * scale` over the common length.
+    fn mul_by(v: &mut [Complex<Self>], fac: &[Complex<Self>], scale: Complex<Self>);
+}
+
+impl FieldFloat for f32 {
+    /// The vectorized copy ([`crate::optics::pointwise`]), the same bits as the plain loop.
+    fn mul_by(v: &mut [Complex<f32>], fac: &[Complex<f32>], scale: Complex<f32>) {
+        crate::optics::pointwise::mul_by_f32(v, fac, scale)
+    }
+}
+
+impl FieldFloat for f64 {
+    fn mul_by(v: &mut [Complex<f64>], fac: &[Complex<f64>], scale: Complex<f64>) {
+        for (a, &b) in v.iter_mut().zip(fac) {
+            *a *= b * scale;
+        }
+    }
+}
+
+/// `v[k] *= fac[k] * scale` in the type's own way ([`FieldFloat::mul_by`]).
 #[inline]
-pub(crate) fn mul_by<T: FftNum>(v: &mut [Complex<T>], fac: &[Complex<T>], scale: Complex<T>) {
-    // f32 fields (the iterative loop's) take the vectorized copy.
-    if std::any::TypeId::of::<T>() == std::any::TypeId::of::<f32>() {
-        // SAFETY: T is f32, so these are the same slices and value with their own type.
-        let (v, fac, scale) = unsafe {
-            (
-                &mut *(v as *mut [Complex<T>] as *mut [Complex<f32>]),
-                &*(fac as *const [Complex<T>] as *const [Complex<f32>]),
-                *(&scale as *const Complex<T> as *const Complex<f32>),
-            )
-        };
-        return crate::optics::pointwise::mul_by_f32(v, fac, scale);
-    }
-    for (a, &b) in v.iter_mut().zip(fac) {
-        *a = *a * (b * scale);
-    }
+pub(crate) fn mul_by<T: FieldFloat>(v: &mut [Complex<T>], fac: &[Complex<T>], scale: Complex<T>) {
+    T::mul_by(v, fac, scale)
 }
 
 #[cold]

@@ -17,10 +17,9 @@
 use std::collections::HashMap;
 use std::sync::Arc;
 
-use rustfft::num_traits::Float;
 use rustfft::{FftNum, FftPlanner};
 
-use super::{AngularSpectrum, Fourier, Grid, Propagator, SingleFftFresnel};
+use super::{AngularSpectrum, FieldFloat, Fourier, Grid, Propagator, SingleFftFresnel};
 use crate::optics::fft2d::Fft2d;
 
 /// What a propagator does, as data.
@@ -50,13 +49,13 @@ pub struct PropagationPlanner<T: FftNum> {
     cache: HashMap<(usize, usize), Arc<Fft2d<T>>>,
 }
 
-impl<T: FftNum + Float> Default for PropagationPlanner<T> {
+impl<T: FieldFloat> Default for PropagationPlanner<T> {
     fn default() -> Self {
         Self::new()
     }
 }
 
-impl<T: FftNum + Float> PropagationPlanner<T> {
+impl<T: FieldFloat> PropagationPlanner<T> {
     /// An empty planner.
     pub fn new() -> Self {
         PropagationPlanner {

@@ -467,7 +467,7 @@ impl<'a> Reader<'a> {
         let mut local: Vec<[u32; 3]> = Vec::new();
         match mode {
             Mode::Triangles => {
-                if m % 3 != 0 {
+                if !m.is_multiple_of(3) {
                     return Err(
                         self.err(format!("{place}: {m} indices do not make whole triangles"))
                     );
@@ -729,7 +729,7 @@ impl<'a> Reader<'a> {
         let slash = uri.find('/');
         if let Some(c) = scheme_end {
             // A colon before any slash is a URI scheme (http:, file:...); not read.
-            if slash.map_or(true, |s| c < s) {
+            if slash.is_none_or(|s| c < s) {
                 return Err(unsupported_error(
                     self.path,
                     format!(
@@ -814,7 +814,7 @@ impl<'a> Reader<'a> {
         let buf_len = self.buffers[b].as_ref().expect("loaded").len() as u64;
         let start = view.byte_offset.map(|o| o.0).unwrap_or(0);
         let len = view.byte_length.0;
-        if start.checked_add(len).map_or(true, |end| end > buf_len) {
+        if start.checked_add(len).is_none_or(|end| end > buf_len) {
             return Err(self.err(format!(
                 "bufferViews[{v}]: bytes {start}..{} lie outside buffer {b} ({buf_len} bytes)",
                 start.saturating_add(len)

@@ -1,9 +1,12 @@
-//! Inner loops of the point sum: one emitter added to one row span, branch-free so the compiler
-//! vectorizes them, compiled twice — a portable twin and an AVX2 copy chosen at run time.
+//! Inner loops of the point sum and the iterative loop: one emitter added to one row span,
+//! branch-free so the compiler vectorizes them, each compiled as a portable copy and copies with
+//! wider vector units enabled (AVX2 + FMA, and AVX-512 F/VL/DQ where a kernel gains from it),
+//! chosen at run time through a [`KernelIsa`] token.
 //!
-//! Both copies run the very same IEEE operations in the same order (no fused multiply-add, no
-//! reassociation), so they give bit-identical results on any machine; the AVX2 copy only works on
-//! four pixels at a time. The support test is applied as a 0/1 weight, so the pixel set equals the
+//! Every copy compiles the same source: Rust does not contract a * b + c into a fused
+//! multiply-add or reassociate sums on its own, so all copies run the very same IEEE operations
+//! in the same order and give bit-identical results on any machine (tested in `unit_tests`);
+//! a wider copy only works on more pixels at a time. The support test is applied as a 0/1 weight, so the pixel set equals the
 //! exact per-pixel test of [`super::support::in_support`].
 //!
 //! Phase: the number of cycles t = r / lambda + phi / 2 pi is formed in f64 and reduced to
@@ -14,8 +17,13 @@
 //! each unit phasor is within 3e-11 of libm's (tested in `unit_tests`); the f64 rounding of t adds at most
 //! 2^-52 t cycles, about 1e-11 rad for r = 1 m at 400 nm.
 //!
-//! This is the only module with `unsafe`: the calls into the `#[target_feature]` copies, made only
-//! after the CPU has been checked for the features.
+//! Soundness: calling a `#[target_feature]` copy is `unsafe` because it must not run on a CPU
+//! without those features. A [`KernelIsa`] names the copy to run and can only be made by
+//! [`detect`] or [`available`] after the CPU reported the features of its level (its field is
+//! private; [`KernelIsa::PORTABLE`] needs none), and every call into a copy goes through the
+//! one `dispatch!` macro below, which holds the safety argument once. (`encoding` and
+//! `optics::pointwise` keep AVX2 copies of their own hot loops behind `crate::cpu`'s detection,
+//! with the same environment rule.)
 
 use num_complex::Complex64;
 
@@ -23,6 +31,67 @@ pub mod exact32;
 pub mod fresnel32;
 pub mod pointwise;
 pub use exact32::{poly_min_distance, Row32, AMBIGUOUS, LANES, PAD};
+
+/// The vector level a copy of the kernels is compiled for.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum IsaLevel {
+    /// Portable code (SSE2 on x86-64).
+    Portable,
+    /// AVX2 and FMA: four f64 or eight f32 lanes.
+    Avx2,
+    /// AVX-512 (F, VL, DQ) besides AVX2 and FMA: the f32 kernels in sixteen lanes; the f64
+    /// kernels run their AVX2 copies.
+    Avx512,
+}
+
+/// Which copy of the kernels runs: a token that only [`detect`] and [`available`] make, after
+/// the CPU reported the features of its level, so holding one proves the copy can run here.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct KernelIsa {
+    level: IsaLevel,
+}
+
+impl KernelIsa {
+    /// The portable copy, which runs on any CPU.
+    pub const PORTABLE: KernelIsa = KernelIsa {
+        level: IsaLevel::Portable,
+    };
+
+    /// The level this token names.
+    pub fn level(self) -> IsaLevel {
+        self.level
+    }
+
+    /// "portable", "avx2" or "avx512".
+    pub fn name(self) -> &'static str {
+        match self.level {
+            IsaLevel::Portable => "portable",
+            IsaLevel::Avx2 => "avx2",
+            IsaLevel::Avx512 => "avx512",
+        }
+    }
+}
+
+/// Runs the copy a [`KernelIsa`] names: `dispatch!(isa, avx2 call, avx512 call, portable call)`.
+///
+/// SAFETY (for every use): a `KernelIsa` at level `Avx2` exists only after the CPU reported AVX2
+/// and FMA, and at level `Avx512` only after it reported AVX-512 F, VL and DQ besides (the token's
+/// field is private and only `detect` and `available` set it); the copies' bodies are the safe
+/// portable code (checked indexing) compiled with those features enabled. So the
+/// `#[target_feature]` functions named here never run on a CPU that lacks their features.
+macro_rules! dispatch {
+    ($isa:expr, $avx2:expr, $avx512:expr, $portable:expr) => {
+        match $isa.level {
+            #[cfg(target_arch = "x86_64")]
+            // SAFETY: see the macro's documentation.
+            IsaLevel::Avx2 => unsafe { $avx2 },
+            #[cfg(target_arch = "x86_64")]
+            // SAFETY: see the macro's documentation.
+            IsaLevel::Avx512 => unsafe { $avx512 },
+            _ => $portable,
+        }
+    };
+}
 
 /// Per-row inputs shared by every emitter.
 pub struct RowInputs<'a> {
@@ -252,14 +321,12 @@ pub fn fresnel_columns(
         ure.len() == c1 - c0 && uim.len() == c1 - c0,
         "column factor length"
     );
-    match isa {
-        #[cfg(target_arch = "x86_64")]
-        // SAFETY: as in `accumulate_exact`.
-        KernelIsa::Avx2 | KernelIsa::Avx512 => unsafe {
-            fresnel_columns_avx2(ri, xj, z, amplitude, c0, c1, ure, uim)
-        },
-        _ => fresnel_columns_generic(ri, xj, z, amplitude, c0, c1, ure, uim),
-    }
+    dispatch!(
+        isa,
+        fresnel_columns_avx2(ri, xj, z, amplitude, c0, c1, ure, uim),
+        fresnel_columns_avx2(ri, xj, z, amplitude, c0, c1, ure, uim),
+        fresnel_columns_generic(ri, xj, z, amplitude, c0, c1, ure, uim)
+    )
 }
 
 /// re + i im += (cr + i ci) (ure + i uim).
@@ -279,12 +346,12 @@ pub fn mac(
         uim.len() == ure.len() && re.len() == ure.len() && im.len() == ure.len(),
         "mac length"
     );
-    match isa {
-        #[cfg(target_arch = "x86_64")]
-        // SAFETY: as in `accumulate_exact`.
-        KernelIsa::Avx2 | KernelIsa::Avx512 => unsafe { mac_avx2(cr, ci, ure, uim, re, im) },
-        _ => mac_generic(cr, ci, ure, uim, re, im),
-    }
+    dispatch!(
+        isa,
+        mac_avx2(cr, ci, ure, uim, re, im),
+        mac_avx2(cr, ci, ure, uim, re, im),
+        mac_generic(cr, ci, ure, uim, re, im)
+    )
 }
 
 /// out = (re + i im) exp(-i 2 pi t) per pixel: the sum times conj(R), R's phase given in cycles.
@@ -311,12 +378,12 @@ pub fn conj_reference(isa: KernelIsa, t: &[f64], re: &[f64], im: &[f64], out: &m
         t.len() == out.len() && re.len() == out.len() && im.len() == out.len(),
         "row length"
     );
-    match isa {
-        #[cfg(target_arch = "x86_64")]
-        // SAFETY: as in `accumulate_exact`.
-        KernelIsa::Avx2 | KernelIsa::Avx512 => unsafe { conj_reference_avx2(t, re, im, out) },
-        _ => conj_reference_generic(t, re, im, out),
-    }
+    dispatch!(
+        isa,
+        conj_reference_avx2(t, re, im, out),
+        conj_reference_avx2(t, re, im, out),
+        conj_reference_generic(t, re, im, out)
+    )
 }
 
 #[cfg(target_arch = "x86_64")]
@@ -347,18 +414,6 @@ unsafe fn fresnel_avx2(
     im: &mut [f64],
 ) -> u64 {
     fresnel_generic(ri, e, c0, c1, re, im)
-}
-
-/// Which copy of the kernels runs.
-#[derive(Clone, Copy, Debug, PartialEq, Eq)]
-pub enum KernelIsa {
-    /// Portable code (SSE2 on x86-64).
-    Portable,
-    /// AVX2 and FMA: four f64 or eight f32 lanes.
-    Avx2,
-    /// AVX-512 (F, VL, DQ) besides AVX2 and FMA: the f32 exact kernel in sixteen lanes; the
-    /// other kernels run their AVX2 copies.
-    Avx512,
 }
 
 #[cfg(target_arch = "x86_64")]
@@ -414,23 +469,20 @@ pub fn accumulate_exact32(
             && ri.xs.len() >= c1,
         "f32 row buffers must be padded by PAD"
     );
-    match (isa, e.obliquity) {
-        #[cfg(target_arch = "x86_64")]
-        // SAFETY: as in `accumulate_exact` (`detect` checks AVX2 and FMA).
-        (KernelIsa::Avx2, false) => unsafe { exact32_avx2::<false>(ri, r32, e, c0, c1, re, im) },
-        #[cfg(target_arch = "x86_64")]
-        // SAFETY: as above.
-        (KernelIsa::Avx2, true) => unsafe { exact32_avx2::<true>(ri, r32, e, c0, c1, re, im) },
-        #[cfg(target_arch = "x86_64")]
-        // SAFETY: `KernelIsa::Avx512` comes from `detect` after AVX-512 F, VL, DQ, AVX2 and FMA.
-        (KernelIsa::Avx512, false) => unsafe {
-            exact32_avx512::<false>(ri, r32, e, c0, c1, re, im)
-        },
-        #[cfg(target_arch = "x86_64")]
-        // SAFETY: as above.
-        (KernelIsa::Avx512, true) => unsafe { exact32_avx512::<true>(ri, r32, e, c0, c1, re, im) },
-        (_, false) => exact32::exact32_generic::<false>(ri, r32, e, c0, c1, re, im),
-        (_, true) => exact32::exact32_generic::<true>(ri, r32, e, c0, c1, re, im),
+    if e.obliquity {
+        dispatch!(
+            isa,
+            exact32_avx2::<true>(ri, r32, e, c0, c1, re, im),
+            exact32_avx512::<true>(ri, r32, e, c0, c1, re, im),
+            exact32::exact32_generic::<true>(ri, r32, e, c0, c1, re, im)
+        )
+    } else {
+        dispatch!(
+            isa,
+            exact32_avx2::<false>(ri, r32, e, c0, c1, re, im),
+            exact32_avx512::<false>(ri, r32, e, c0, c1, re, im),
+            exact32::exact32_generic::<false>(ri, r32, e, c0, c1, re, im)
+        )
     }
 }
 
@@ -438,11 +490,13 @@ macro_rules! simd_copies {
     ($avx2:ident, $avx512:ident, $generic:path, ($($arg:ident: $ty:ty),*) -> $ret:ty) => {
         #[cfg(target_arch = "x86_64")]
         #[target_feature(enable = "avx2,fma")]
+        #[allow(clippy::too_many_arguments)]
         unsafe fn $avx2($($arg: $ty),*) -> $ret {
             $generic($($arg),*)
         }
         #[cfg(target_arch = "x86_64")]
         #[target_feature(enable = "avx2,fma,avx512f,avx512vl,avx512dq")]
+        #[allow(clippy::too_many_arguments)]
         unsafe fn $avx512($($arg: $ty),*) -> $ret {
             $generic($($arg),*)
         }
@@ -472,16 +526,7 @@ macro_rules! simd_kernel {
         $(#[$m])*
         #[allow(clippy::too_many_arguments)]
         pub fn $name(isa: KernelIsa, $($arg: $ty),*) -> $ret {
-            match isa {
-                #[cfg(target_arch = "x86_64")]
-                // SAFETY: `KernelIsa::Avx2` comes from `detect` or `available` after AVX2 and FMA
-                // were reported; the kernel body is safe code (its indexing is checked).
-                KernelIsa::Avx2 => unsafe { $avx2($($arg),*) },
-                #[cfg(target_arch = "x86_64")]
-                // SAFETY: as above, with AVX-512 F, VL and DQ reported as well.
-                KernelIsa::Avx512 => unsafe { $avx512($($arg),*) },
-                _ => $generic($($arg),*),
-            }
+            dispatch!(isa, $avx2($($arg),*), $avx512($($arg),*), $generic($($arg),*))
         }
     };
 }
@@ -554,8 +599,8 @@ fn mac_tile_for_isa(
 /// Columns per register tile for a copy of the Fresnel tile kernel; panels are laid out in
 /// multiples of it.
 pub fn tile_columns(isa: KernelIsa) -> usize {
-    match isa {
-        KernelIsa::Avx512 => 32,
+    match isa.level {
+        IsaLevel::Avx512 => 32,
         _ => 8,
     }
 }
@@ -585,19 +630,12 @@ pub fn mac_tile32(
     }
     assert!(c1 <= stride && re.len() == im.len(), "tile bounds");
     let nr = tile_columns(isa);
-    match isa {
-        #[cfg(target_arch = "x86_64")]
-        // SAFETY: as in `fresnel_columns32`; the kernel itself indexes with bounds checks.
-        KernelIsa::Avx2 => unsafe {
-            mac_tile_avx2(ks, coef, ure, uim, stride, c0, c1, rows, re, im, nr)
-        },
-        #[cfg(target_arch = "x86_64")]
-        // SAFETY: as in `fresnel_columns32`; the kernel itself indexes with bounds checks.
-        KernelIsa::Avx512 => unsafe {
-            mac_tile_avx512(ks, coef, ure, uim, stride, c0, c1, rows, re, im, nr)
-        },
-        _ => mac_tile_for_isa(ks, coef, ure, uim, stride, c0, c1, rows, re, im, nr),
-    }
+    dispatch!(
+        isa,
+        mac_tile_avx2(ks, coef, ure, uim, stride, c0, c1, rows, re, im, nr),
+        mac_tile_avx512(ks, coef, ure, uim, stride, c0, c1, rows, re, im, nr),
+        mac_tile_for_isa(ks, coef, ure, uim, stride, c0, c1, rows, re, im, nr)
+    )
 }
 
 /// The f32 Fresnel column factor of one emitter (see [`fresnel32`]); `ure`, `uim` hold
@@ -618,59 +656,50 @@ pub fn fresnel_columns32(
         ure.len() == c1 - c0 && uim.len() == c1 - c0 && c1 <= ri.xs.len(),
         "column factor length"
     );
-    match isa {
-        #[cfg(target_arch = "x86_64")]
-        // SAFETY: `KernelIsa::Avx2` comes from `detect` after AVX2 and FMA were reported.
-        KernelIsa::Avx2 => unsafe { columns32_avx2(ri, xj, z, amplitude, c0, c1, ure, uim) },
-        #[cfg(target_arch = "x86_64")]
-        // SAFETY: `KernelIsa::Avx512` comes from `detect` after AVX-512 F, VL, DQ, AVX2 and FMA.
-        KernelIsa::Avx512 => unsafe { columns32_avx512(ri, xj, z, amplitude, c0, c1, ure, uim) },
-        _ => fresnel32::columns32_generic(ri, xj, z, amplitude, c0, c1, ure, uim),
-    }
+    dispatch!(
+        isa,
+        columns32_avx2(ri, xj, z, amplitude, c0, c1, ure, uim),
+        columns32_avx512(ri, xj, z, amplitude, c0, c1, ure, uim),
+        fresnel32::columns32_generic(ri, xj, z, amplitude, c0, c1, ure, uim)
+    )
 }
 
-/// Every copy this CPU can run, portable first (tests and benches compare them).
+/// Every copy this CPU can run, portable first (tests and benches compare them), whatever the
+/// environment says.
 pub fn available() -> Vec<KernelIsa> {
-    let mut v = vec![KernelIsa::Portable];
+    let mut v = vec![KernelIsa::PORTABLE];
     #[cfg(target_arch = "x86_64")]
     {
         if std::arch::is_x86_feature_detected!("avx2") && std::arch::is_x86_feature_detected!("fma")
         {
-            v.push(KernelIsa::Avx2);
+            v.push(KernelIsa {
+                level: IsaLevel::Avx2,
+            });
             if std::arch::is_x86_feature_detected!("avx512f")
                 && std::arch::is_x86_feature_detected!("avx512vl")
                 && std::arch::is_x86_feature_detected!("avx512dq")
             {
-                v.push(KernelIsa::Avx512);
+                v.push(KernelIsa {
+                    level: IsaLevel::Avx512,
+                });
             }
         }
     }
     v
 }
 
-/// The best copy this CPU runs. In the environment, `FRINGEMILL_PORTABLE=1` forces the portable
-/// copy and `FRINGEMILL_NO_AVX512=1` stops at AVX2.
+/// The best copy this CPU runs, by the detection of [`crate::cpu`] (asked once per process): in
+/// the environment, `FRINGEMILL_PORTABLE=1` forces the portable copy and
+/// `FRINGEMILL_NO_AVX512=1` stops at AVX2.
 pub fn detect() -> KernelIsa {
-    if std::env::var_os("FRINGEMILL_PORTABLE").is_some_and(|v| v == "1") {
-        return KernelIsa::Portable;
-    }
-    #[cfg(target_arch = "x86_64")]
-    {
-        let avx2 = std::arch::is_x86_feature_detected!("avx2")
-            && std::arch::is_x86_feature_detected!("fma");
-        if avx2
-            && std::arch::is_x86_feature_detected!("avx512f")
-            && std::arch::is_x86_feature_detected!("avx512vl")
-            && std::arch::is_x86_feature_detected!("avx512dq")
-            && std::env::var_os("FRINGEMILL_NO_AVX512").is_none_or(|v| v != "1")
-        {
-            return KernelIsa::Avx512;
-        }
-        if avx2 {
-            return KernelIsa::Avx2;
-        }
-    }
-    KernelIsa::Portable
+    let level = if crate::cpu::avx512() {
+        IsaLevel::Avx512
+    } else if crate::cpu::avx2_fma() {
+        IsaLevel::Avx2
+    } else {
+        IsaLevel::Portable
+    };
+    KernelIsa { level }
 }
 
 /// Adds one emitter's exact spherical wave over columns [c0, c1) into `re`, `im`.
@@ -684,14 +713,16 @@ pub fn accumulate_exact(
     re: &mut [f64],
     im: &mut [f64],
 ) -> u64 {
-    match isa {
-        #[cfg(target_arch = "x86_64")]
-        // SAFETY: `KernelIsa::Avx2` is only produced by `detect` after the CPU reported AVX2
-        // (or by tests that check the same first).
-        KernelIsa::Avx2 | KernelIsa::Avx512 => unsafe { exact_avx2(ri, e, c0, c1, re, im) },
-        _ if ri.taper_start < 1.0 => exact_generic::<true>(ri, e, c0, c1, re, im),
-        _ => exact_generic::<false>(ri, e, c0, c1, re, im),
-    }
+    dispatch!(
+        isa,
+        exact_avx2(ri, e, c0, c1, re, im),
+        exact_avx2(ri, e, c0, c1, re, im),
+        if ri.taper_start < 1.0 {
+            exact_generic::<true>(ri, e, c0, c1, re, im)
+        } else {
+            exact_generic::<false>(ri, e, c0, c1, re, im)
+        }
+    )
 }
 
 /// Adds one emitter's Fresnel wave over columns [c0, c1) into `re`, `im`.
@@ -704,84 +735,13 @@ pub fn accumulate_fresnel(
     re: &mut [f64],
     im: &mut [f64],
 ) -> u64 {
-    match isa {
-        #[cfg(target_arch = "x86_64")]
-        // SAFETY: as in `accumulate_exact`.
-        KernelIsa::Avx2 | KernelIsa::Avx512 => unsafe { fresnel_avx2(ri, e, c0, c1, re, im) },
-        _ => fresnel_generic(ri, e, c0, c1, re, im),
-    }
+    dispatch!(
+        isa,
+        fresnel_avx2(ri, e, c0, c1, re, im),
+        fresnel_avx2(ri, e, c0, c1, re, im),
+        fresnel_generic(ri, e, c0, c1, re, im)
+    )
 }
 
 #[cfg(test)]
-mod unit_tests {
-    use super::*;
-
-    /// The polynomial phasor against libm's sin/cos on a dense sweep of reduced and large arguments.
-    #[test]
-    fn sincos_error_below_3e_11() {
-        let mut worst = 0.0f64;
-        for i in 0..200_001 {
-            let t = -3.0 + 6.0 * i as f64 / 200_000.0;
-            let (s, c) = sincos_cycles(t);
-            let a = 2.0 * std::f64::consts::PI * t;
-            worst = worst.max((s - a.sin()).abs()).max((c - a.cos()).abs());
-        }
-        for &t in &[12345.678_9, 98765.4321, 1.0e6 + 0.25, -4.0e5 - 0.125] {
-            let (s, c) = sincos_cycles(t);
-            let frac = t - t.floor();
-            let a = 2.0 * std::f64::consts::PI * frac;
-            worst = worst.max((s - a.sin()).abs()).max((c - a.cos()).abs());
-        }
-        assert!(worst < 3e-11, "worst {worst:e}");
-    }
-
-    /// The AVX2 copy and the portable copy give the same bits.
-    #[test]
-    fn isa_copies_are_bit_identical() {
-        if !available().contains(&KernelIsa::Avx2) {
-            return; // nothing to compare on this CPU
-        }
-        let n = 103;
-        let xs: Vec<f64> = (0..n).map(|i| (i as f64 - 51.0) * 1.3e-6).collect();
-        let rdx: Vec<f64> = (0..n).map(|i| 0.05 + 1e-4 * i as f64).collect();
-        let rdy = vec![-0.02; n];
-        let ri = RowInputs {
-            xs: &xs,
-            rdx: &rdx,
-            rdy: &rdy,
-            half_band: [0.2, 0.2],
-            inv_lambda: 1.0 / 633e-9,
-            taper_start: 1.0,
-        };
-        for obliquity in [false, true] {
-            let e = EmitterRow {
-                xj: 3e-6,
-                dy: -7e-6,
-                z: 90e-6,
-                amplitude: 0.7,
-                phase_cycles: 0.3,
-                obliquity,
-            };
-            let mut a = (vec![0.1; n], vec![0.2; n]);
-            let mut b = a.clone();
-            let na = accumulate_exact(KernelIsa::Portable, &ri, &e, 3, n - 2, &mut a.0, &mut a.1);
-            let nb = accumulate_exact(KernelIsa::Avx2, &ri, &e, 3, n - 2, &mut b.0, &mut b.1);
-            assert_eq!(na, nb);
-            assert!(a
-                .0
-                .iter()
-                .zip(&b.0)
-                .chain(a.1.iter().zip(&b.1))
-                .all(|(x, y)| x.to_bits() == y.to_bits()));
-            let na = accumulate_fresnel(KernelIsa::Portable, &ri, &e, 0, n, &mut a.0, &mut a.1);
-            let nb = accumulate_fresnel(KernelIsa::Avx2, &ri, &e, 0, n, &mut b.0, &mut b.1);
-            assert_eq!(na, nb);
-            assert!(a
-                .0
-                .iter()
-                .zip(&b.0)
-                .chain(a.1.iter().zip(&b.1))
-                .all(|(x, y)| x.to_bits() == y.to_bits()));
-        }
-    }
-}
+mod unit_tests;

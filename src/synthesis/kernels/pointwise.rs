@@ -70,10 +70,10 @@ pub fn constrain_row_generic(
     let n = row.len();
     let (a0, a1) = (a0.min(n), a1.min(n).max(a0.min(n)));
     for u in &mut row[..a0] {
-        *u = *u * outside;
+        *u *= outside;
     }
     for u in &mut row[a1..] {
-        *u = *u * outside;
+        *u *= outside;
     }
     let (row, amp) = (&mut row[a0..a1], &amp[a0..a1]);
     match weights {
@@ -210,7 +210,8 @@ mod tests {
     fn constraint_and_unit_phasors_match_formulas() {
         let (u, amp, w) = row(131);
         let (a0, a1, scale, outside) = (20, 100, 1.7, 0.25f32);
-        let mut first: Option<(Vec<Complex<f32>>, Vec<Complex<f32>>)> = None;
+        type Pair = (Vec<Complex<f32>>, Vec<Complex<f32>>);
+        let mut first: Option<Pair> = None;
         for isa in available() {
             for weighted in [false, true] {
                 let mut c = u.clone();
