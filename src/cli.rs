@@ -4,6 +4,8 @@
 use std::path::PathBuf;
 
 use clap::{Args, Parser, Subcommand};
+use fringemill::job::Shard;
+use fringemill::replay::{metrics::ToneScale, Illumination, Window};
 
 /// fringemill: computes fringe patterns (holograms) for mask writers and phase modulators.
 #[derive(Parser, Debug)]
@@ -30,7 +32,7 @@ pub struct Common {
     #[arg(long, global = true)]
     pub stats: bool,
     /// Worker threads (default: all cores).
-    #[arg(long, global = true, value_name = "N")]
+    #[arg(long, global = true, value_name = "N", value_parser = parse_threads)]
     pub threads: Option<usize>,
 }
 
@@ -47,11 +49,11 @@ pub enum Command {
         restart: bool,
         /// Compute only share K of N (1-based, e.g. 2/4) into a part file for `assemble`;
         /// `slurm` takes K and N from the job-array environment.
-        #[arg(long, value_name = "K/N|slurm")]
-        shard: Option<String>,
+        #[arg(long, value_name = "K/N|slurm", value_parser = parse_shard)]
+        shard: Option<Shard>,
         /// Least seconds between two checkpoints of the journal (default 30).
-        #[arg(long, value_name = "S", default_value_t = 30.0)]
-        checkpoint_secs: f64,
+        #[arg(long, value_name = "S", default_value = "30", value_parser = parse_seconds, allow_hyphen_values = true)]
+        checkpoint_secs: std::time::Duration,
     },
     /// Streams the finished shards' parts into the plate's TIFF and sidecar.
     Assemble {
@@ -69,30 +71,31 @@ pub enum Command {
             long,
             value_name = "D|A:B:STEP",
             required_unless_present = "focal_mm",
-            conflicts_with = "focal_mm"
+            conflicts_with = "focal_mm",
+            value_parser = parse_distances
         )]
-        distance_mm: Option<String>,
+        distance_mm: Option<Distances>,
         /// Replay through a lens of this focal length (mm) onto its focal plane (Fourier geometry).
-        #[arg(long, value_name = "F")]
+        #[arg(long, value_name = "F", value_parser = parse_focal_m, allow_hyphen_values = true)]
         focal_mm: Option<f64>,
         /// Replay only this window of the plate: first column, first row, width, height (pixels).
-        #[arg(long, value_name = "X,Y,W,H")]
-        window: Option<String>,
+        #[arg(long, value_name = "X,Y,W,H", value_parser = Window::parse)]
+        window: Option<Window>,
         /// Light the plate with a plane wave at these tilts (degrees) instead of the recorded reference.
-        #[arg(long, value_name = "TX,TY")]
-        illumination: Option<String>,
+        #[arg(long, value_name = "TX,TY", value_parser = parse_illumination, allow_hyphen_values = true)]
+        illumination: Option<Illumination>,
         /// Output PNG (default: PLATE-replay.png); metrics go to the same name with .json.
         #[arg(long, value_name = "FILE")]
         out: Option<PathBuf>,
         /// Grey mapping: linear, gamma or log.
-        #[arg(long, default_value = "gamma")]
-        scale: String,
+        #[arg(long, default_value = "gamma", value_parser = ToneScale::parse)]
+        scale: ToneScale,
         /// PNG bits per sample: 8 or 16.
-        #[arg(long, default_value_t = 8)]
+        #[arg(long, default_value = "8", value_parser = parse_png_bits)]
         bits: u8,
         /// Region of the replay image for power fraction, uniformity, speckle contrast: X,Y,W,H pixels.
-        #[arg(long, value_name = "X,Y,W,H")]
-        region: Option<String>,
+        #[arg(long, value_name = "X,Y,W,H", value_parser = Window::parse)]
+        region: Option<Window>,
         /// Target image (PNG, same size as the replay) for correlation and RMSE.
         #[arg(long, value_name = "PNG")]
         target: Option<PathBuf>,
@@ -101,8 +104,8 @@ pub enum Command {
         peaks: usize,
         /// Fourier replays: also replay K times finer (zero padding; K = 2..8), written as
         /// OUT-osK.png, with the target's flat top measured between the designed samples.
-        #[arg(long, value_name = "K")]
-        oversample: Option<usize>,
+        #[arg(long, value_name = "K", value_parser = clap::value_parser!(u8).range(2..=8))]
+        oversample: Option<u8>,
     },
     /// Writes a job's emitters (position, amplitude, phase, normal, channel) as a PLY point cloud.
     Sample {
@@ -121,9 +124,203 @@ pub enum Command {
     },
 }
 
+/// Replay depths, metres (from `--distance-mm D|A:B:STEP`).
+#[derive(Clone, Debug, PartialEq)]
+pub struct Distances(pub Vec<f64>);
+
+fn parse_distances(s: &str) -> Result<Distances, String> {
+    fringemill::replay::parse_distances_mm(s).map(Distances)
+}
+
+fn parse_threads(s: &str) -> Result<usize, String> {
+    match s.trim().parse::<usize>() {
+        Ok(n) if n >= 1 => Ok(n),
+        _ => Err(format!(
+            "'{s}': expected a whole number of threads, at least 1"
+        )),
+    }
+}
+
+fn parse_shard(s: &str) -> Result<Shard, String> {
+    Shard::parse(s)
+}
+
+fn parse_seconds(s: &str) -> Result<std::time::Duration, String> {
+    match s.trim().parse::<f64>() {
+        Ok(v) if v.is_finite() && v >= 0.0 => Ok(std::time::Duration::from_secs_f64(v)),
+        _ => Err(format!("'{s}': expected seconds >= 0")),
+    }
+}
+
+/// `--focal-mm F` in metres.
+fn parse_focal_m(s: &str) -> Result<f64, String> {
+    match s.trim().parse::<f64>() {
+        Ok(f) if f.is_finite() && f > 0.0 => Ok(f * 1e-3),
+        _ => Err(format!("'{s}': expected a focal length in mm, > 0")),
+    }
+}
+
+/// `--illumination TX,TY` (degrees) as a plane wave.
+fn parse_illumination(s: &str) -> Result<Illumination, String> {
+    let v: Vec<f64> = s
+        .split(',')
+        .map(|t| t.trim().parse::<f64>())
+        .collect::<Result<_, _>>()
+        .map_err(|_| format!("'{s}': expected TX,TY in degrees"))?;
+    if v.len() != 2 || v.iter().any(|t| !t.is_finite() || t.abs() >= 90.0) {
+        return Err(format!(
+            "'{s}': expected TX,TY in degrees, each between -90 and 90"
+        ));
+    }
+    Ok(Illumination::Plane([v[0].to_radians(), v[1].to_radians()]))
+}
+
+fn parse_png_bits(s: &str) -> Result<u8, String> {
+    match s.trim() {
+        "8" => Ok(8),
+        "16" => Ok(16),
+        _ => Err(format!("'{s}': expected 8 or 16")),
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    fn reconstruct(args: &[&str]) -> Result<Command, clap::Error> {
+        let mut all = vec!["fringemill", "reconstruct", "p.tif"];
+        all.extend_from_slice(args);
+        Cli::try_parse_from(all).map(|c| c.command)
+    }
+
+    #[test]
+    fn threads_must_be_positive() {
+        assert!(Cli::try_parse_from(["fringemill", "plan", "j.toml", "--threads", "0"]).is_err());
+        assert!(Cli::try_parse_from(["fringemill", "plan", "j.toml", "--threads", "x"]).is_err());
+        let c = Cli::try_parse_from(["fringemill", "plan", "j.toml", "--threads", "3"]).unwrap();
+        assert_eq!(c.common.threads, Some(3));
+    }
+
+    #[test]
+    fn shard_and_checkpoint_are_typed() {
+        let c = Cli::try_parse_from([
+            "fringemill",
+            "run",
+            "j.toml",
+            "--shard",
+            "2/4",
+            "--checkpoint-secs",
+            "1.5",
+        ])
+        .unwrap();
+        match c.command {
+            Command::Run {
+                shard,
+                checkpoint_secs,
+                ..
+            } => {
+                assert_eq!(shard, Some(Shard { index: 1, count: 4 }));
+                assert_eq!(checkpoint_secs, std::time::Duration::from_millis(1500));
+            }
+            _ => panic!("wrong command"),
+        }
+        for bad in [["--shard", "5/4"], ["--checkpoint-secs", "-1"]] {
+            let mut a = vec!["fringemill", "run", "j.toml"];
+            a.extend_from_slice(&bad);
+            let e = Cli::try_parse_from(a).unwrap_err().to_string();
+            assert!(e.contains(bad[0]), "{e}");
+        }
+    }
+
+    #[test]
+    fn distances_and_focal() {
+        match reconstruct(&["--distance-mm", "4:6:1"]).unwrap() {
+            Command::Reconstruct { distance_mm, .. } => {
+                let d = distance_mm.unwrap().0;
+                assert_eq!(d.len(), 3);
+                assert!((d[0] - 4e-3).abs() < 1e-15 && (d[2] - 6e-3).abs() < 1e-15);
+            }
+            _ => panic!(),
+        }
+        match reconstruct(&["--focal-mm", "200"]).unwrap() {
+            Command::Reconstruct { focal_mm, .. } => assert_eq!(focal_mm, Some(0.2)),
+            _ => panic!(),
+        }
+        assert!(reconstruct(&["--focal-mm", "-3"]).is_err());
+        assert!(reconstruct(&["--distance-mm", "x"]).is_err());
+        // One of the two is needed, not both.
+        assert!(reconstruct(&[]).is_err());
+        assert!(reconstruct(&["--distance-mm", "5", "--focal-mm", "200"]).is_err());
+    }
+
+    #[test]
+    fn window_region_illumination_scale_bits_oversample() {
+        match reconstruct(&[
+            "--distance-mm",
+            "5",
+            "--window",
+            "1,2,30,40",
+            "--region",
+            "0,0,8,9",
+            "--illumination",
+            "-3,-4",
+            "--scale",
+            "log",
+            "--bits",
+            "16",
+        ])
+        .unwrap()
+        {
+            Command::Reconstruct {
+                window,
+                region,
+                illumination,
+                scale,
+                bits,
+                oversample,
+                ..
+            } => {
+                assert_eq!(
+                    window,
+                    Some(Window {
+                        x: 1,
+                        y: 2,
+                        w: 30,
+                        h: 40
+                    })
+                );
+                assert_eq!(region.map(|r| (r.w, r.h)), Some((8, 9)));
+                assert_eq!(
+                    illumination,
+                    Some(Illumination::Plane([
+                        (-3f64).to_radians(),
+                        (-4f64).to_radians()
+                    ]))
+                );
+                assert_eq!(scale, ToneScale::Log);
+                assert_eq!(bits, 16);
+                assert_eq!(oversample, None);
+            }
+            _ => panic!(),
+        }
+        for bad in [
+            ["--illumination", "95,0"],
+            ["--illumination", "1"],
+            ["--focal-mm", "-200"],
+            ["--bits", "12"],
+            ["--scale", "cubic"],
+            ["--window", "1,2,3"],
+            ["--oversample", "9"],
+        ] {
+            let mut a = vec!["--distance-mm", "5"];
+            a.extend_from_slice(&bad);
+            assert!(reconstruct(&a).is_err(), "{bad:?} accepted");
+        }
+        match reconstruct(&["--focal-mm", "100", "--oversample", "2"]).unwrap() {
+            Command::Reconstruct { oversample, .. } => assert_eq!(oversample, Some(2)),
+            _ => panic!(),
+        }
+    }
 
     #[test]
     fn parses_run_with_several_jobs_and_threads() {

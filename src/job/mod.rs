@@ -1,6 +1,7 @@
 //! Jobs: the job file, running it end to end, planning it, and reporting progress.
 //! This is the only module that connects scenes, synthesis, encoding and output.
 
+pub mod batch;
 pub mod estimate;
 pub mod fields;
 pub mod iterative;
