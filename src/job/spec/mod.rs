@@ -1,0 +1,390 @@
+//! The job file (TOML): its raw form as written ([`raw`]), and the validated [`JobSpec`] every
+//! command uses, checked table by table ([`objects`], [`synthesis`], [`encoding`]).
+//!
+//! The keys of issue #2 are a contract; new keys may be added, none renamed. Unknown keys are
+//! errors that name the key and its line. Paths resolve against the job file's folder.
+
+mod encoding;
+mod objects;
+pub mod raw;
+mod synthesis;
+
+use std::path::{Path, PathBuf};
+
+use sha2::{Digest, Sha256};
+
+use crate::encoding::Encoding;
+use crate::error::{Error, Result};
+use crate::optics::{Plate, Reference};
+use crate::output::tiff::Compression;
+use crate::synthesis::PointSumOptions;
+
+pub use crate::synthesis::planner::SumPath;
+pub use encoding::read_calibration;
+pub use raw::*;
+
+/// Encoding as asked for in the job; the amplitude scale may still be open.
+#[derive(Clone, Debug, PartialEq)]
+pub enum EncodingRequest {
+    /// Fully known.
+    Fixed(Encoding),
+    /// Amplitude with B0 to be measured before streaming.
+    AmplitudeAuto {
+        /// 8 or 16.
+        bits: u8,
+    },
+}
+
+impl EncodingRequest {
+    /// The encoding a run writes: the fixed one, or the amplitude encoding with B0 from `scale`
+    /// (measured on the plate's field; `plan` passes a nominal 1).
+    pub fn resolve(&self, scale: impl FnOnce() -> f64) -> Encoding {
+        match self {
+            EncodingRequest::Fixed(e) => e.clone(),
+            EncodingRequest::AmplitudeAuto { bits } => Encoding::Amplitude {
+                bits: *bits,
+                scale: scale(),
+            },
+        }
+    }
+}
+
+/// Where an object's emitters come from.
+#[derive(Clone, Debug, PartialEq)]
+pub enum ObjectSource {
+    /// A target intensity image for iterative synthesis.
+    Image {
+        /// Plane distance, metres (fresnel geometry).
+        distance: Option<f64>,
+        /// Shift of the image centre, replay pixels [right, up].
+        shift_px: [i64; 2],
+    },
+    /// A point cloud file.
+    Points,
+    /// A mesh sampled into emitters.
+    Mesh(MeshObject),
+}
+
+/// How a mesh object is placed, sampled, shaded and occluded.
+#[derive(Clone, Debug, PartialEq)]
+pub struct MeshObject {
+    /// Placement (offset, turn, rotation, scale or fit).
+    pub placement: crate::scene::mesh::Placement,
+    /// The model axis turned to face the viewer (its matrix is the placement's orientation).
+    pub front: crate::scene::mesh::Front,
+    /// Emitter count or spacing (metres); None: derived from the plate's resolution at that depth.
+    pub density: Option<crate::scene::sampling::Density>,
+    /// Sampling pattern.
+    pub pattern: crate::scene::sampling::Pattern,
+    /// Seed.
+    pub seed: u64,
+    /// Lighting.
+    pub shading: crate::scene::sampling::Shading,
+    /// Phases.
+    pub phase: crate::scene::sampling::PhaseMode,
+    /// Occlusion.
+    pub occlusion: Occlusion,
+}
+
+/// How occlusion is decided for a mesh's emitters.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Occlusion {
+    /// Every emitter contributes everywhere.
+    None,
+    /// Emitters hidden from the plate centre are dropped.
+    Centre,
+    /// Visibility from the centre of each tile of the plate (parallax-correct to the tile).
+    Tiles,
+}
+
+/// One validated `[[object]]`.
+#[derive(Clone, Debug, PartialEq)]
+pub struct ObjectSpec {
+    /// Points or mesh file, resolved against the job's folder.
+    pub points: PathBuf,
+    /// Point cloud or mesh.
+    pub source: ObjectSource,
+    /// Added after scaling, metres (point clouds; meshes carry it in their placement too).
+    pub offset: [f64; 3],
+    /// Multiplies the file's coordinates.
+    pub scale: f64,
+    /// Multiplies the amplitudes.
+    pub gain: f64,
+    /// Own reference (a separate channel), or None for the job's.
+    pub reference: Option<Reference>,
+}
+
+/// Iterative synthesis geometry.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub enum Geometry {
+    /// Lens of this focal length (metres): the replay plane is its focal plane.
+    Fourier(f64),
+    /// Free-space propagation to each image's distance.
+    Fresnel,
+}
+
+/// Algorithm choice as written.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub enum AlgorithmChoice {
+    /// Gerchberg-Saxton.
+    Gs,
+    /// Weighted GS.
+    WeightedGs,
+    /// Mixed-region amplitude freedom with this mix.
+    MixedRegion(f64),
+}
+
+/// `[synthesis] method = "iterative"`, validated.
+#[derive(Clone, Debug, PartialEq)]
+pub struct IterativeSpec {
+    /// Geometry.
+    pub geometry: Geometry,
+    /// Iterations.
+    pub iterations: usize,
+    /// Seed.
+    pub seed: u64,
+    /// Algorithm.
+    pub algorithm: AlgorithmChoice,
+    /// Quantized final iterations.
+    pub quantize_last: usize,
+    /// Early-stop tolerance (relative improvement over the stall window).
+    pub stall_tolerance: f64,
+    /// No early stop before this many iterations.
+    pub min_iterations: usize,
+    /// The carrier as the job asked for it, degrees (before snapping).
+    pub carrier_asked_deg: [f64; 2],
+    /// The carrier's shift in whole replay samples of the plate's FFT lattice [x, y]
+    /// (`carrier` is snapped to it: sin t = m lambda / (N p)).
+    pub carrier_samples: [i64; 2],
+    /// Cell size, if smaller than the plate.
+    pub cell_px: Option<[u32; 2]>,
+    /// Carrier tilts, radians.
+    pub carrier: [f64; 2],
+    /// Lens focal length, metres.
+    pub lens: Option<f64>,
+}
+
+/// The synthesis method.
+#[derive(Clone, Debug, PartialEq)]
+pub enum Method {
+    /// Point-source summation.
+    PointSum,
+    /// Iterative phase retrieval from images.
+    Iterative(IterativeSpec),
+}
+
+/// A validated job.
+#[derive(Clone, Debug)]
+pub struct JobSpec {
+    /// The job file.
+    pub path: PathBuf,
+    /// SHA-256 of the job file's bytes, lowercase hex.
+    pub sha256: String,
+    /// The job file's text (journals keep it to name what changed).
+    pub text: String,
+    /// Pixel grid, pitch and wavelength.
+    pub plate: Plate,
+    /// Reference wave.
+    pub reference: Reference,
+    /// Objects, summed.
+    pub objects: Vec<ObjectSpec>,
+    /// Point-sum options.
+    pub synthesis: PointSumOptions,
+    /// The method.
+    pub method: Method,
+    /// Rows per band, if set.
+    pub band_rows: Option<usize>,
+    /// How the point sum is computed (`[synthesis] path`).
+    pub sum_path: SumPath,
+    /// Recording-plane gap, metres (None: the method's default).
+    pub recording_plane_gap: Option<f64>,
+    /// Encoding.
+    pub encoding: EncodingRequest,
+    /// Output TIFF path, resolved.
+    pub output: PathBuf,
+    /// TIFF compression.
+    pub compression: Compression,
+    /// TIFF rows per strip, if set.
+    pub rows_per_strip: Option<u32>,
+    /// Forced TIFF flavour, if set.
+    pub bigtiff: Option<bool>,
+    /// Field size [w, h], if the plate is split into field files.
+    pub field_px: Option<[u32; 2]>,
+}
+
+/// Largest accepted side, pixels (a 4 Gpx-wide row would not fit a TIFF strip).
+pub const MAX_SIDE_PX: i64 = 1 << 24;
+
+/// 1-based line of a byte offset.
+fn line_of(text: &str, offset: usize) -> usize {
+    text.as_bytes()[..offset.min(text.len())]
+        .iter()
+        .filter(|&&b| b == b'\n')
+        .count()
+        + 1
+}
+
+/// `v` when it is finite, else an error naming the key.
+fn finite(bad: &dyn Fn(String) -> Error, name: &str, v: f64) -> Result<f64> {
+    if v.is_finite() {
+        Ok(v)
+    } else {
+        Err(bad(format!("{name} = {v} is not a finite number")))
+    }
+}
+
+impl JobSpec {
+    /// Reads and validates a job file.
+    pub fn load(path: &Path) -> Result<JobSpec> {
+        let bytes = std::fs::read(path).map_err(|e| Error::io(path, e))?;
+        let text = String::from_utf8(bytes.clone()).map_err(|e| {
+            Error::input(
+                path,
+                format!("not UTF-8 text (byte {})", e.utf8_error().valid_up_to()),
+            )
+        })?;
+        let raw: RawJob = toml::from_str(&text).map_err(|e| {
+            let msg = e.message().trim().replace('\n', " ");
+            match e.span() {
+                Some(s) => Error::input(path, format!("line {}: {}", line_of(&text, s.start), msg)),
+                None => Error::input(path, msg),
+            }
+        })?;
+        let sha256 = hex(&Sha256::digest(&bytes));
+        let dir = path.parent().map(Path::to_path_buf).unwrap_or_default();
+        let mut spec = Self::from_raw(raw, path, &dir, sha256)?;
+        spec.text = text;
+        Ok(spec)
+    }
+
+    /// Validates a parsed job. `dir` is the folder paths resolve against.
+    pub fn from_raw(raw: RawJob, path: &Path, dir: &Path, sha256: String) -> Result<JobSpec> {
+        let bad = |m: String| Error::job(path, m);
+        let plate = parse_plate(&raw.hologram, &bad)?;
+        let reference = objects::parse_reference(&raw.reference, "[reference]", &bad)?;
+        let objects = objects::parse_objects(&raw.object, dir, &bad)?;
+        let s = &raw.synthesis;
+        let method = synthesis::parse_method(s, &objects, &plate, &bad)?;
+        let sum = synthesis::parse_point_sum(s, &bad)?;
+        let encoding = encoding::parse_encoding(&raw.encoding, dir, path, &plate, &bad)?;
+        let out = parse_output(&raw.output, &plate, path, dir, &bad)?;
+        Ok(JobSpec {
+            path: path.to_path_buf(),
+            sha256,
+            text: String::new(),
+            plate,
+            reference,
+            objects,
+            synthesis: sum.options,
+            method,
+            band_rows: sum.band_rows,
+            sum_path: sum.path,
+            recording_plane_gap: sum.plane_gap,
+            encoding,
+            output: out.path,
+            compression: out.compression,
+            rows_per_strip: out.rows_per_strip,
+            bigtiff: raw.output.bigtiff,
+            field_px: out.field_px,
+        })
+    }
+}
+
+/// Validates `[hologram]`.
+fn parse_plate(h: &RawHologram, bad: &dyn Fn(String) -> Error) -> Result<Plate> {
+    let finite = |name: &str, v: f64| finite(bad, name, v);
+    for (name, v) in [
+        ("[hologram] width_px", h.width_px),
+        ("[hologram] height_px", h.height_px),
+    ] {
+        if !(1..=MAX_SIDE_PX).contains(&v) {
+            return Err(bad(format!("{name} = {v} is outside 1..={MAX_SIDE_PX}")));
+        }
+    }
+    let pitch_um = match h.pitch_um {
+        OneOrTwo::One(p) => [p, p],
+        OneOrTwo::Two(p) => p,
+    };
+    for p in pitch_um {
+        if !(finite("[hologram] pitch_um", p)? > 0.0) {
+            return Err(bad(format!("[hologram] pitch_um = {p} must be > 0")));
+        }
+    }
+    let wl = finite("[hologram] wavelength_nm", h.wavelength_nm)?;
+    if wl <= 0.0 {
+        return Err(bad(format!("[hologram] wavelength_nm = {wl} must be > 0")));
+    }
+    Ok(Plate {
+        width: h.width_px as u32,
+        height: h.height_px as u32,
+        pitch: [pitch_um[0] * 1e-6, pitch_um[1] * 1e-6],
+        wavelength: wl * 1e-9,
+    })
+}
+
+/// `[output]` as validated.
+struct OutputKeys {
+    path: PathBuf,
+    compression: Compression,
+    rows_per_strip: Option<u32>,
+    field_px: Option<[u32; 2]>,
+}
+
+/// Validates `[output]`.
+fn parse_output(
+    o: &RawOutput,
+    plate: &Plate,
+    job: &Path,
+    dir: &Path,
+    bad: &dyn Fn(String) -> Error,
+) -> Result<OutputKeys> {
+    if o.path.trim().is_empty() {
+        return Err(bad("[output] path is empty".into()));
+    }
+    let output = dir.join(&o.path);
+    let compression = match o.compression.as_deref().unwrap_or("none") {
+        "none" => Compression::None,
+        "deflate" => Compression::Deflate,
+        other => {
+            return Err(bad(format!(
+                "[output] compression = \"{other}\" is not one of \"none\", \"deflate\""
+            )))
+        }
+    };
+    let rows_per_strip = match o.rows_per_strip {
+        None => None,
+        Some(r) if r >= 1 && r <= plate.height as i64 => Some(r as u32),
+        Some(r) => {
+            return Err(bad(format!(
+                "[output] rows_per_strip = {r} is outside 1..=height_px"
+            )))
+        }
+    };
+
+    let field_px = match o.field_px {
+        None => None,
+        Some(f) => {
+            let f = super::fields::validate(f, job)?;
+            if let Some(r) = rows_per_strip {
+                if f[1] % r != 0 {
+                    return Err(bad(format!(
+                        "[output] rows_per_strip = {r} must divide the field height {}",
+                        f[1]
+                    )));
+                }
+            }
+            Some([f[0].min(plate.width), f[1].min(plate.height)])
+        }
+    };
+    Ok(OutputKeys {
+        path: output,
+        compression,
+        rows_per_strip,
+        field_px,
+    })
+}
+
+/// Lowercase hex of bytes.
+pub fn hex(bytes: &[u8]) -> String {
+    bytes.iter().map(|b| format!("{b:02x}")).collect()
+}
