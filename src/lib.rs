@@ -40,6 +40,7 @@ pub mod error;
 pub mod job;
 pub mod optics;
 pub mod output;
+pub mod raster;
 pub mod replay;
 pub mod scene;
 pub mod synthesis;

@@ -107,7 +107,7 @@ fn iterative_image_replays_its_target() {
     )
     .unwrap()[0];
     // The target, centred on the 1024 x 1024 replay grid.
-    let (tw, th, t) = metrics::read_png_grey(&d.path().join("t.png")).unwrap();
+    let (tw, th, t) = fringemill::raster::read_grey(&d.path().join("t.png")).unwrap();
     let (x0, y0) = ((1024 - tw) / 2, (1024 - th) / 2);
     let mut canvas = vec![0.0; 1024 * 1024];
     for r in 0..th {

@@ -33,40 +33,9 @@ pub struct IterationRecord {
     pub replay_pitch: Vec<[f64; 2]>,
 }
 
-/// Reads a target image as intensities: 8/16-bit grey PNG, or TIFF.
+/// Reads a target image as intensities (PNG or TIFF; [`crate::raster::read_grey`]).
 pub fn read_target(path: &Path) -> Result<(usize, usize, Vec<f64>)> {
-    let ext = path
-        .extension()
-        .map(|e| e.to_string_lossy().to_ascii_lowercase())
-        .unwrap_or_default();
-    match ext.as_str() {
-        "png" => crate::replay::metrics::read_png_grey(path),
-        "tif" | "tiff" => {
-            let f = std::fs::File::open(path).map_err(|e| Error::io(path, e))?;
-            let bad = |e: tiff::TiffError| Error::input(path, format!("not a readable TIFF: {e}"));
-            let mut d = tiff::decoder::Decoder::new(std::io::BufReader::new(f)).map_err(bad)?;
-            let (w, h) = d.dimensions().map_err(bad)?;
-            let v: Vec<f64> = match d.read_image().map_err(bad)? {
-                tiff::decoder::DecodingResult::U8(b) if b.len() == (w * h) as usize => {
-                    b.iter().map(|&x| x as f64 / 255.0).collect()
-                }
-                tiff::decoder::DecodingResult::U16(b) if b.len() == (w * h) as usize => {
-                    b.iter().map(|&x| x as f64 / 65535.0).collect()
-                }
-                _ => {
-                    return Err(Error::unsupported(
-                        path,
-                        "target TIFF must be 8- or 16-bit grey, one sample per pixel",
-                    ))
-                }
-            };
-            Ok((w as usize, h as usize, v))
-        }
-        other => Err(Error::unsupported(
-            path,
-            format!("target image type '.{other}': use PNG or TIFF"),
-        )),
-    }
+    crate::raster::read_grey(path)
 }
 
 /// Places an image on an nx x ny replay lattice, shifted by [right, up] pixels: with no shift the

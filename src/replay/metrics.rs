@@ -81,44 +81,6 @@ pub fn write_png(
     crate::output::atomic::write_atomically(path, &buf)
 }
 
-/// Reads a grey (or colour, converted to luminance) 8/16-bit PNG as intensities in [0, 1].
-pub fn read_png_grey(path: &Path) -> Result<(usize, usize, Vec<f64>)> {
-    let f = std::fs::File::open(path).map_err(|e| Error::io(path, e))?;
-    let mut dec = png::Decoder::new(std::io::BufReader::new(f));
-    dec.set_transformations(png::Transformations::EXPAND);
-    let mut r = dec
-        .read_info()
-        .map_err(|e| Error::input(path, format!("not a readable PNG: {e}")))?;
-    let size = r
-        .output_buffer_size()
-        .ok_or_else(|| Error::input(path, "image too large"))?;
-    let mut buf = vec![0u8; size];
-    let info = r
-        .next_frame(&mut buf)
-        .map_err(|e| Error::input(path, format!("damaged PNG: {e}")))?;
-    let (w, h) = (info.width as usize, info.height as usize);
-    let ch = info.color_type.samples();
-    let wide = info.bit_depth == png::BitDepth::Sixteen;
-    let sample = |i: usize| {
-        if wide {
-            u16::from_be_bytes([buf[2 * i], buf[2 * i + 1]]) as f64 / 65535.0
-        } else {
-            buf[i] as f64 / 255.0
-        }
-    };
-    let mut out = Vec::with_capacity(w * h);
-    for p in 0..w * h {
-        let v = match ch {
-            1 | 2 => sample(p * ch),
-            _ => {
-                0.2126 * sample(p * ch) + 0.7152 * sample(p * ch + 1) + 0.0722 * sample(p * ch + 2)
-            }
-        };
-        out.push(v);
-    }
-    Ok((w, h, out))
-}
-
 /// A pixel rectangle of the replay image: first column, first row, width, height.
 pub type Region = [usize; 4];
 

@@ -624,7 +624,7 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
         h: pf.plate.height,
     });
     let target = match &req.target {
-        Some(t) => Some(metrics::read_png_grey(t)?),
+        Some(t) => Some(crate::raster::read_grey(t)?),
         None => None,
     };
     if let Some(k) = req.oversample {
