@@ -1,0 +1,347 @@
+//! A plate as written: its TIFF (or field files) and sidecar, opened and checked, read window by
+//! window (only the strips a window needs).
+
+use std::path::{Path, PathBuf};
+
+use tiff::decoder::{Decoder, DecodingResult};
+
+use crate::encoding::Encoding;
+use crate::error::{Error, Result};
+use crate::optics::{Plate, Reference};
+use crate::output::sidecar::{EncodingRecord, OutputFiles, ReferenceRecord, Sidecar};
+
+/// A plate on disk with what its sidecar says about it.
+#[derive(Clone, Debug)]
+pub struct PlateFile {
+    /// The TIFF.
+    pub tif: PathBuf,
+    /// Geometry and wavelength.
+    pub plate: Plate,
+    /// The reference it was computed with.
+    pub reference: Reference,
+    /// The encoding of its samples.
+    pub encoding: Encoding,
+    /// Field files (a plate written as fields), or empty for one TIFF.
+    pub fields: Vec<FieldFile>,
+    /// The plate was designed for a real image at +D (iterative synthesis in Fresnel
+    /// geometry: its target planes lie at +D along the propagation); depth replays then
+    /// propagate by +D and draw the plane as the target was given, instead of the virtual image
+    /// at -D seen by the viewer.
+    pub real_image: bool,
+}
+
+/// One field file of a plate written as fields, from the fields manifest.
+#[derive(Clone, Debug, PartialEq, Eq, serde::Deserialize)]
+pub struct FieldFile {
+    /// File name, beside the manifest.
+    pub file: String,
+    /// Plate pixel of its top-left corner [column, row].
+    pub first_px: [u32; 2],
+    /// Its size [columns, rows].
+    pub size_px: [u32; 2],
+}
+
+/// The part of the fields manifest replay reads.
+#[derive(serde::Deserialize)]
+struct FieldsManifest {
+    format: String,
+    plate_px: [u32; 2],
+    fields: Vec<FieldFile>,
+}
+
+/// A rectangle of plate pixels: first column, first row, width, height.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct Window {
+    /// First column.
+    pub x: u32,
+    /// First row (0 = top).
+    pub y: u32,
+    /// Columns.
+    pub w: u32,
+    /// Rows.
+    pub h: u32,
+}
+
+impl Window {
+    /// Parses `X,Y,W,H`.
+    pub fn parse(s: &str) -> std::result::Result<Window, String> {
+        let v: Vec<u32> = s
+            .split(',')
+            .map(|t| t.trim().parse::<u32>())
+            .collect::<std::result::Result<_, _>>()
+            .map_err(|_| format!("'{s}': expected X,Y,W,H in whole pixels"))?;
+        if v.len() != 4 || v[2] == 0 || v[3] == 0 {
+            return Err(format!("'{s}': expected X,Y,W,H with W, H > 0"));
+        }
+        Ok(Window {
+            x: v[0],
+            y: v[1],
+            w: v[2],
+            h: v[3],
+        })
+    }
+}
+
+/// Sidecar path of a TIFF (`NAME.json`).
+pub fn sidecar_of(tif: &Path) -> PathBuf {
+    tif.with_extension("json")
+}
+
+impl PlateFile {
+    /// Opens a plate: reads its sidecar (`NAME.json` beside `NAME.tif`) and checks the TIFF's size.
+    pub fn open(tif: &Path) -> Result<PlateFile> {
+        // A plate written as fields may be named by its manifest NAME.fields.json.
+        let tif = &match tif.to_str().and_then(|t| t.strip_suffix(".fields.json")) {
+            Some(stem) => PathBuf::from(format!("{stem}.tif")),
+            None => tif.to_path_buf(),
+        };
+        let sc = sidecar_of(tif);
+        let side = Sidecar::read(&sc)?;
+        let h = &side.hologram;
+        let positive = |v: f64, key: &str| -> Result<f64> {
+            if v.is_finite() && v > 0.0 {
+                Ok(v)
+            } else {
+                Err(Error::input(
+                    &sc,
+                    format!("sidecar field {key} = {v} must be > 0"),
+                ))
+            }
+        };
+        let plate = Plate {
+            width: h.width_px,
+            height: h.height_px,
+            pitch: [
+                positive(h.pitch_um[0], "hologram.pitch_um")? * 1e-6,
+                positive(h.pitch_um[1], "hologram.pitch_um")? * 1e-6,
+            ],
+            wavelength: positive(h.wavelength_nm, "hologram.wavelength_nm")? * 1e-9,
+        };
+        let finite = |v: &[f64], key: &str| -> Result<()> {
+            if v.iter().all(|x| x.is_finite()) {
+                Ok(())
+            } else {
+                Err(Error::input(
+                    &sc,
+                    format!("sidecar field {key} is not finite"),
+                ))
+            }
+        };
+        let reference = match side.reference {
+            ReferenceRecord::Plane { tilt_deg } => {
+                finite(&tilt_deg, "reference.tilt_deg")?;
+                Reference::Plane {
+                    tilt: tilt_deg.map(f64::to_radians),
+                }
+            }
+            ReferenceRecord::Spherical { position_mm } => {
+                finite(&position_mm, "reference.position_mm")?;
+                Reference::Spherical {
+                    position: position_mm.map(|v| v * 1e-3),
+                }
+            }
+        };
+        let encoding = match side.encoding {
+            EncodingRecord::Phase {
+                levels,
+                calibration,
+                ..
+            } => match calibration {
+                None => Encoding::Phase { levels },
+                Some(c) => {
+                    let calibration = crate::encoding::Calibration::new(c.table, levels, c.source)
+                        .map_err(|m| Error::input(&sc, format!("encoding.calibration: {m}")))?;
+                    if calibration.level_to_grey != c.level_to_grey {
+                        return Err(Error::input(
+                            &sc,
+                            "encoding.calibration.level_to_grey does not follow from its table by this version's rule; replay the plate with the version that wrote it",
+                        ));
+                    }
+                    Encoding::CalibratedPhase {
+                        levels,
+                        calibration: std::sync::Arc::new(calibration),
+                    }
+                }
+            },
+            EncodingRecord::BinaryPhase { .. } => Encoding::BinaryPhase,
+            EncodingRecord::BinaryAmplitude { .. } => Encoding::BinaryAmplitude,
+            EncodingRecord::Amplitude {
+                bits_per_sample,
+                bipolar_scale,
+                ..
+            } => Encoding::Amplitude {
+                bits: bits_per_sample,
+                scale: positive(bipolar_scale, "encoding.bipolar_scale")?,
+            },
+        };
+        let fields = match &side.output {
+            OutputFiles::Tiff { .. } => {
+                check_tiff_size(tif, [plate.width, plate.height])?;
+                Vec::new()
+            }
+            OutputFiles::Fields {
+                fields_manifest, ..
+            } => {
+                let name = fields_manifest
+                    .as_deref()
+                    .ok_or_else(|| Error::input(&sc, "output.fields_manifest is missing"))?;
+                let mp = tif.with_file_name(name);
+                let bytes = std::fs::read(&mp).map_err(|e| Error::io(&mp, e))?;
+                let m: FieldsManifest = serde_json::from_slice(&bytes)
+                    .map_err(|e| Error::input(&mp, format!("not a fields manifest: {e}")))?;
+                if m.format != "fringemill-fields" || m.plate_px != [plate.width, plate.height] {
+                    return Err(Error::input(
+                        &mp,
+                        format!(
+                            "not the fields manifest of this {} x {} plate",
+                            plate.width, plate.height
+                        ),
+                    ));
+                }
+                // The fields must tile the plate exactly, each file of its stated size.
+                let mut covered = 0u64;
+                for f in &m.fields {
+                    let fits = f.first_px[0] as u64 + f.size_px[0] as u64 <= plate.width as u64
+                        && f.first_px[1] as u64 + f.size_px[1] as u64 <= plate.height as u64;
+                    if !fits || f.file.contains('/') || f.file.contains('\\') {
+                        return Err(Error::input(
+                            &mp,
+                            format!("field {} leaves the plate", f.file),
+                        ));
+                    }
+                    check_tiff_size(&tif.with_file_name(&f.file), f.size_px)?;
+                    covered += f.size_px[0] as u64 * f.size_px[1] as u64;
+                }
+                if covered != plate.pixels() {
+                    return Err(Error::input(&mp, "the fields do not cover the plate once"));
+                }
+                m.fields
+            }
+        };
+        let real_image = side
+            .iterative
+            .as_ref()
+            .is_some_and(|i| i.geometry == "fresnel");
+        Ok(PlateFile {
+            tif: tif.to_path_buf(),
+            plate,
+            reference,
+            encoding,
+            fields,
+            real_image,
+        })
+    }
+
+    /// Stored samples of a window, row-major; reads only the strips that overlap it.
+    pub fn read_window(&self, win: Window) -> Result<Vec<u16>> {
+        let p = &self.plate;
+        if win.x as u64 + win.w as u64 > p.width as u64
+            || win.y as u64 + win.h as u64 > p.height as u64
+        {
+            return Err(Error::job(
+                &self.tif,
+                format!(
+                    "window {},{},{},{} leaves the {} x {} plate",
+                    win.x, win.y, win.w, win.h, p.width, p.height
+                ),
+            ));
+        }
+        if self.fields.is_empty() {
+            return self.read_tiff_window(&self.tif, win);
+        }
+        // Fields: each one overlapping the window gives its part.
+        let mut out = vec![0u16; win.w as usize * win.h as usize];
+        for f in &self.fields {
+            let x0 = win.x.max(f.first_px[0]);
+            let y0 = win.y.max(f.first_px[1]);
+            let x1 = (win.x + win.w).min(f.first_px[0] + f.size_px[0]);
+            let y1 = (win.y + win.h).min(f.first_px[1] + f.size_px[1]);
+            if x0 >= x1 || y0 >= y1 {
+                continue;
+            }
+            let part = self.read_tiff_window(
+                &self.tif.with_file_name(&f.file),
+                Window {
+                    x: x0 - f.first_px[0],
+                    y: y0 - f.first_px[1],
+                    w: x1 - x0,
+                    h: y1 - y0,
+                },
+            )?;
+            let pw = (x1 - x0) as usize;
+            for (r, row) in part.chunks_exact(pw).enumerate() {
+                let o = (y0 - win.y) as usize + r;
+                let c = (x0 - win.x) as usize;
+                out[o * win.w as usize + c..][..pw].copy_from_slice(row);
+            }
+        }
+        Ok(out)
+    }
+
+    /// Stored samples of a window of one TIFF (the plate's, or one field's, in its own pixels).
+    fn read_tiff_window(&self, tif: &Path, win: Window) -> Result<Vec<u16>> {
+        let f = std::fs::File::open(tif).map_err(|e| Error::io(tif, e))?;
+        let mut d = Decoder::new(std::io::BufReader::new(f))
+            .map_err(|e| Error::input(tif, e.to_string()))?;
+        let (_, rps) = d.chunk_dimensions();
+        let rps = rps.max(1);
+        let bad = |e: tiff::TiffError| Error::input(tif, format!("cannot read strip: {e}"));
+        let mut out = Vec::with_capacity(win.w as usize * win.h as usize);
+        let bits = self.encoding.bits_per_sample();
+        for s in win.y / rps..=(win.y + win.h - 1) / rps {
+            let chunk = d.read_chunk(s).map_err(bad)?;
+            let (cw, ch) = d.chunk_data_dimensions(s);
+            for r in 0..ch {
+                let row = s * rps + r;
+                if row < win.y || row >= win.y + win.h {
+                    continue;
+                }
+                let cols = win.x as usize..(win.x + win.w) as usize;
+                match (&chunk, bits) {
+                    (DecodingResult::U8(b), 1) => {
+                        let rb = (cw as usize).div_ceil(8);
+                        let base = r as usize * rb;
+                        out.extend(cols.map(|c| ((b[base + c / 8] >> (7 - c % 8)) & 1) as u16));
+                    }
+                    (DecodingResult::U8(b), 8) => {
+                        let base = r as usize * cw as usize;
+                        out.extend(cols.map(|c| b[base + c] as u16));
+                    }
+                    (DecodingResult::U16(b), 16) => {
+                        let base = r as usize * cw as usize;
+                        out.extend(cols.map(|c| b[base + c]));
+                    }
+                    _ => {
+                        return Err(Error::input(
+                            tif,
+                            format!(
+                                "sample type does not match the {bits}-bit encoding of its sidecar"
+                            ),
+                        ))
+                    }
+                }
+            }
+        }
+        Ok(out)
+    }
+}
+
+/// Checks that `tif` is a readable TIFF of `size` = [columns, rows].
+fn check_tiff_size(tif: &Path, size: [u32; 2]) -> Result<()> {
+    let f = std::fs::File::open(tif).map_err(|e| Error::io(tif, e))?;
+    let mut d = Decoder::new(std::io::BufReader::new(f))
+        .map_err(|e| Error::input(tif, format!("not a readable TIFF: {e}")))?;
+    let (w, h) = d
+        .dimensions()
+        .map_err(|e| Error::input(tif, e.to_string()))?;
+    if [w, h] != size {
+        return Err(Error::input(
+            tif,
+            format!(
+                "is {w} x {h} px but its sidecar says {} x {}",
+                size[0], size[1]
+            ),
+        ));
+    }
+    Ok(())
+}

@@ -1,0 +1,212 @@
+//! `reconstruct`: replay images written as PNG, with the figures a user reads (peaks, regions,
+//! agreement with a target, spot arrays, the oversampled lattice) in a JSON beside them.
+
+use std::path::PathBuf;
+
+use super::*;
+use crate::error::{Error, Result};
+
+/// Everything `fringemill reconstruct` asks for.
+#[derive(Clone, Debug)]
+pub struct ReconstructRequest {
+    /// The plate.
+    pub tif: PathBuf,
+    /// Depths, metres.
+    pub distances: Vec<f64>,
+    /// Replay through a lens of this focal length onto its focal plane instead (metres).
+    pub focal: Option<f64>,
+    /// Window of the plate; None for the whole plate.
+    pub window: Option<Window>,
+    /// Lighting.
+    pub illumination: Illumination,
+    /// Output PNG (a stack adds `-zD.DDDmm` before the extension).
+    pub out: PathBuf,
+    /// Grey mapping.
+    pub scale: metrics::ToneScale,
+    /// 8 or 16.
+    pub bits: u8,
+    /// Region of the replay image for power fraction, uniformity and speckle contrast.
+    pub region: Option<metrics::Region>,
+    /// Target image to compare with.
+    pub target: Option<PathBuf>,
+    /// How many peaks to report.
+    pub peaks: usize,
+    /// Fourier replays: also replay on a lattice this many times finer (zero padding).
+    pub oversample: Option<usize>,
+}
+
+/// Runs a reconstruction: writes one PNG per depth and one JSON of metrics (`OUT.json`).
+/// Returns the files written.
+pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
+    let pf = PlateFile::open(&req.tif)?;
+    let win = req.window.unwrap_or(Window {
+        x: 0,
+        y: 0,
+        w: pf.plate.width,
+        h: pf.plate.height,
+    });
+    let target = match &req.target {
+        Some(t) => Some(crate::raster::read_grey(t)?),
+        None => None,
+    };
+    if let Some(k) = req.oversample {
+        if req.focal.is_none() {
+            return Err(Error::job(
+                &req.tif,
+                "--oversample applies to Fourier replays (--focal-mm)",
+            ));
+        }
+        if !(2..=8).contains(&k) {
+            return Err(Error::job(
+                &req.tif,
+                format!("--oversample {k}: expected 2..=8"),
+            ));
+        }
+    }
+    let images = replay_planes(&pf, win, req.illumination, &req.distances, req.focal)?;
+    let mut written = Vec::new();
+    let mut planes = Vec::new();
+    // Depth planes are drawn as the plate's viewer sees them (physics.md, "Viewing side"): the
+    // viewer stands at z < 0 looking towards +z, so the image's right is plate -x and its columns
+    // run opposite to the grid's. Fourier planes keep the FFT lattice (column = +x of the focal
+    // plane, as a plain FFT after fftshift shows it), on which targets are designed.
+    let mirrored = req.focal.is_none() && !pf.real_image;
+    for img in &images {
+        let (w, h) = (img.grid.nx, img.grid.ny);
+        let drawn: Vec<f32> = if mirrored {
+            img.intensity
+                .chunks_exact(w)
+                .flat_map(|row| row.iter().rev().copied())
+                .collect()
+        } else {
+            img.intensity.clone()
+        };
+        let grid_col = |c: usize| if mirrored { w - 1 - c } else { c };
+        let path = if images.len() == 1 {
+            req.out.clone()
+        } else {
+            let stem = req
+                .out
+                .file_stem()
+                .map(|s| s.to_string_lossy().into_owned())
+                .unwrap_or_else(|| "replay".into());
+            req.out
+                .with_file_name(format!("{stem}-z{:.3}mm.png", img.distance * 1e3))
+        };
+        metrics::write_png(&path, w, h, &drawn, req.scale, req.bits)?;
+        written.push(path.clone());
+        let pk: Vec<metrics::Peak> = metrics::peaks(w, h, &drawn, req.peaks, 0.05)
+            .into_iter()
+            .map(|(c, r, rel)| metrics::Peak {
+                col: c,
+                row: r,
+                x_mm: (img.centre[0] + img.grid.x_of_col(grid_col(c))) * 1e3,
+                y_mm: (img.centre[1] + img.grid.y_of_row(r)) * 1e3,
+                relative: rel,
+            })
+            .collect();
+        let region = match req.region {
+            Some(rg) => {
+                Some(metrics::region_stats(w, h, &drawn, rg).map_err(|m| Error::job(&req.tif, m))?)
+            }
+            None => None,
+        };
+        let cmp = match &target {
+            Some((tw, th, t)) => {
+                if (*tw, *th) != (w, h) {
+                    return Err(Error::input(
+                        req.target.as_ref().unwrap(),
+                        format!("is {tw} x {th} px; the replay image is {w} x {h}"),
+                    ));
+                }
+                Some(metrics::compare(w, h, &drawn, t, req.region))
+            }
+            None => None,
+        };
+        // A target of isolated lit pixels is a spot array: figures per spot.
+        let spots = match &target {
+            Some((tw, _, t)) if *tw == w => {
+                metrics::spot_target(w, h, t).map(|sp| metrics::spot_stats(w, &drawn, &sp))
+            }
+            _ => None,
+        };
+        planes.push(serde_json::json!({
+            "image": path.file_name().map(|f| f.to_string_lossy().into_owned()),
+            "distance_mm": if req.focal.is_some() { None } else { Some(img.distance * 1e3) },
+            "focal_mm": req.focal.map(|f| f * 1e3),
+            "width_px": w, "height_px": h,
+            "pitch_um": [img.grid.pitch[0] * 1e6, img.grid.pitch[1] * 1e6],
+            "centre_mm": [img.centre[0] * 1e3, img.centre[1] * 1e3],
+            "total_power": img.intensity.iter().map(|&v| v as f64).sum::<f64>() * img.grid.pixel_area(),
+            "peaks": pk,
+            "region": region,
+            "target": cmp,
+            "spots": spots,
+        }));
+    }
+    let mut oversampled = None;
+    if let (Some(k), Some(f)) = (req.oversample, req.focal) {
+        let img = replay_fourier_oversampled(&pf, win, req.illumination, f, k)?;
+        let (fw, fh) = (img.grid.nx, img.grid.ny);
+        let stem = req
+            .out
+            .file_stem()
+            .map(|s| s.to_string_lossy().into_owned())
+            .unwrap_or_else(|| "replay".into());
+        let path = req.out.with_file_name(format!("{stem}-os{k}.png"));
+        metrics::write_png(&path, fw, fh, &img.intensity, req.scale, req.bits)?;
+        written.push(path.clone());
+        // The target's flat top, on the designed samples and on everything between them.
+        let flat = match &target {
+            Some((tw, th, t)) => {
+                let cells = metrics::flat_cells(*tw, *th, t);
+                let (w, h) = (*tw, *th);
+                let fine = |r: usize, c: usize, dr: usize, dc: usize| {
+                    let fr = fh / 2 + k * r + dr - k * (h / 2);
+                    let fc = fw / 2 + k * c + dc - k * (w / 2);
+                    img.intensity[fr * fw + fc] as f64
+                };
+                let on = metrics::FlatStats::of(cells.iter().map(|&(c, r)| fine(r, c, 0, 0)));
+                let all = metrics::FlatStats::of(cells.iter().flat_map(|&(c, r)| {
+                    (0..k)
+                        .flat_map(move |dr| (0..k).map(move |dc| (dr, dc)))
+                        .map(move |(dr, dc)| fine(r, c, dr, dc))
+                }));
+                on.map(|on| serde_json::json!({
+                    "cells": cells.len(),
+                    "what": "the target's flat top (pixels at its maximum whose right, lower and lower-right neighbours are too): on the designed samples, and on every fine sample of the cells they span",
+                    "on_samples": on,
+                    "between_samples": all,
+                }))
+            }
+            None => None,
+        };
+        oversampled = Some(serde_json::json!({
+            "factor": k,
+            "image": path.file_name().map(|f| f.to_string_lossy().into_owned()),
+            "width_px": fw, "height_px": fh,
+            "pitch_um": [img.grid.pitch[0] * 1e6, img.grid.pitch[1] * 1e6],
+            "lattice": "the plate window zero-padded to factor N before the transform: axis on sample floor(factor N / 2); fine sample floor(factor N / 2) + factor a is plain sample floor(N / 2) + a",
+            "flat": flat,
+        }));
+    }
+    let json = serde_json::json!({
+        "plate": req.tif.file_name().map(|f| f.to_string_lossy().into_owned()),
+        "window": [win.x, win.y, win.w, win.h],
+        "illumination": match req.illumination {
+            Illumination::Recorded => serde_json::json!("recorded reference"),
+            Illumination::Plane(t) => serde_json::json!({"plane_tilt_deg": [t[0].to_degrees(), t[1].to_degrees()]}),
+        },
+        "drawn_as": if pf.real_image && req.focal.is_none() { "the design plane of an iterative Fresnel plate: the field propagated by +D (the real image its targets describe), drawn as the targets are given (image right = +x of the plane)" } else if mirrored { "seen by the plate's viewer (standing at z < 0, looking towards +z through the plate): image right = plate -x, image up = plate +y; peak col/row count in the image" } else { "the FFT lattice of the focal plane (optical axis on sample floor(N/2), as a plain FFT after fftshift): image right = +x of the focal plane, image up = +y" },
+        "depth_convention": if req.focal.is_some() { "focal plane of a lens of focal length focal_mm behind the plate (Fourier geometry); centre_mm is the optical axis" } else if pf.real_image { "distance D is the design plane of the plate's targets, a real image at +D (field propagated by +D)" } else { "distance D shows the plane z = D in front of the plate (field propagated by -D)" },
+        "planes": planes,
+        "oversampled": oversampled,
+    });
+    let jp = req.out.with_extension("json");
+    crate::output::atomic::write_atomically(
+        &jp,
+        (serde_json::to_string_pretty(&json).expect("plain data") + "\n").as_bytes(),
+    )?;
+    written.push(jp);
+    Ok(written)
+}
