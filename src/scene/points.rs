@@ -27,10 +27,11 @@
 //! An ASCII PLY body must end with a line break so that a file cut inside its last number is
 //! detected; a binary body must end exactly where the header says it does.
 
-use std::fs::File;
-use std::io::{BufWriter, Read, Write};
+use std::io::Read;
 use std::path::Path;
 
+use super::ply::{self, AsciiRows, Encoding, Header, Row};
+use super::text::{input_error, lines_with_ends, shown, unsupported_error};
 use crate::error::{Error, Result};
 
 /// One point of a point cloud as read from a file, in the file's units (millimetres), before
@@ -88,32 +89,34 @@ pub fn read_points(path: &Path) -> Result<Vec<PointRecord>> {
 
 /// Reads a PLY point cloud from a file.
 pub fn read_ply(path: &Path) -> Result<Vec<PointRecord>> {
-    let data = std::fs::read(path).map_err(|e| Error::io(path, e))?;
-    parse_ply(&data, path)
+    parse_ply(&read_file(path)?, path)
 }
 
 /// Reads a PLY point cloud from `reader`; `path` only names the source in error messages.
-pub fn read_ply_from<R: Read>(mut reader: R, path: &Path) -> Result<Vec<PointRecord>> {
-    let mut data = Vec::new();
-    reader
-        .read_to_end(&mut data)
-        .map_err(|e| Error::io(path, e))?;
-    parse_ply(&data, path)
+pub fn read_ply_from<R: Read>(reader: R, path: &Path) -> Result<Vec<PointRecord>> {
+    parse_ply(&read_all(reader, path)?, path)
 }
 
 /// Reads a CSV point cloud from a file.
 pub fn read_csv(path: &Path) -> Result<Vec<PointRecord>> {
-    let data = std::fs::read(path).map_err(|e| Error::io(path, e))?;
-    parse_csv(&data, path)
+    parse_csv(&read_file(path)?, path)
 }
 
 /// Reads a CSV point cloud from `reader`; `path` only names the source in error messages.
-pub fn read_csv_from<R: Read>(mut reader: R, path: &Path) -> Result<Vec<PointRecord>> {
+pub fn read_csv_from<R: Read>(reader: R, path: &Path) -> Result<Vec<PointRecord>> {
+    parse_csv(&read_all(reader, path)?, path)
+}
+
+fn read_file(path: &Path) -> Result<Vec<u8>> {
+    std::fs::read(path).map_err(|e| Error::io(path, e))
+}
+
+fn read_all<R: Read>(mut reader: R, path: &Path) -> Result<Vec<u8>> {
     let mut data = Vec::new();
     reader
         .read_to_end(&mut data)
         .map_err(|e| Error::io(path, e))?;
-    parse_csv(&data, path)
+    Ok(data)
 }
 
 /// Writes `points` as a PLY file with `double` properties `x y z amplitude phase`, in ASCII or
@@ -121,43 +124,21 @@ pub fn read_csv_from<R: Read>(mut reader: R, path: &Path) -> Result<Vec<PointRec
 /// written as given: a non-finite value or an empty list produces a file that [`read_ply`]
 /// rejects.
 pub fn write_ply(path: &Path, points: &[PointRecord], binary: bool) -> Result<()> {
-    let file = File::create(path).map_err(|e| Error::io(path, e))?;
-    let mut w = BufWriter::new(file);
-    write_ply_to(&mut w, points, binary)
-        .and_then(|()| w.flush())
-        .map_err(|e| Error::io(path, e))
-}
-
-fn write_ply_to<W: Write>(w: &mut W, points: &[PointRecord], binary: bool) -> std::io::Result<()> {
-    let format = if binary {
-        "binary_little_endian"
+    let encoding = if binary {
+        Encoding::LittleEndian
     } else {
-        "ascii"
+        Encoding::Ascii
     };
-    write!(
-        w,
-        "ply\nformat {format} 1.0\ncomment point cloud, lengths in millimetres, phase in radians\n\
-         element vertex {}\nproperty double x\nproperty double y\nproperty double z\n\
-         property double amplitude\nproperty double phase\nend_header\n",
-        points.len()
-    )?;
-    for p in points {
-        let values = [p.x_mm, p.y_mm, p.z_mm, p.amplitude, p.phase_rad];
-        if binary {
-            for v in values {
-                w.write_all(&v.to_le_bytes())?;
-            }
-        } else {
-            // `{:?}` prints the shortest text that parses back to the same f64, using an
-            // exponent for very large or small magnitudes.
-            writeln!(
-                w,
-                "{:?} {:?} {:?} {:?} {:?}",
-                values[0], values[1], values[2], values[3], values[4]
-            )?;
-        }
-    }
-    Ok(())
+    ply::write_doubles(
+        path,
+        encoding,
+        "point cloud, lengths in millimetres, phase in radians",
+        "vertex",
+        ["x", "y", "z", "amplitude", "phase"],
+        points
+            .iter()
+            .map(|p| [p.x_mm, p.y_mm, p.z_mm, p.amplitude, p.phase_rad]),
+    )
 }
 
 // ---------------------------------------------------------------------------------------------
@@ -239,212 +220,13 @@ fn checked_point(
     })
 }
 
-/// An [`Error::Input`] whose message is kept on one line: control characters copied from the
-/// file are escaped.
-fn input_error(path: &Path, message: impl AsRef<str>) -> Error {
-    Error::input(path, one_line(message.as_ref()))
-}
-
-/// An [`Error::Unsupported`] with the same escaping as [`input_error`].
-fn unsupported_error(path: &Path, message: impl AsRef<str>) -> Error {
-    Error::unsupported(path, one_line(message.as_ref()))
-}
-
-fn one_line(message: &str) -> String {
-    let mut out = String::with_capacity(message.len());
-    for c in message.chars() {
-        if c.is_control() {
-            out.extend(c.escape_default());
-        } else {
-            out.push(c);
-        }
-    }
-    out
-}
-
-/// Text copied from a file into a message, shortened when long.
-fn shown(text: &str) -> String {
-    const MAX_CHARS: usize = 40;
-    match text.char_indices().nth(MAX_CHARS) {
-        Some((cut, _)) => format!("{}...", &text[..cut]),
-        None => text.to_string(),
-    }
-}
-
 fn no_points(path: &Path, detail: &str) -> Error {
     input_error(path, format!("no points ({detail})"))
-}
-
-/// Splits `data` into lines at `\n`, dropping a `\r` before it. Yields each line and whether it
-/// was terminated by `\n`.
-fn lines_with_ends(data: &[u8]) -> impl Iterator<Item = (&[u8], bool)> {
-    let mut rest = Some(data);
-    std::iter::from_fn(move || {
-        let d = rest?;
-        match d.iter().position(|&b| b == b'\n') {
-            Some(i) => {
-                rest = Some(&d[i + 1..]);
-                Some((strip_cr(&d[..i]), true))
-            }
-            None => {
-                rest = None;
-                if d.is_empty() {
-                    None
-                } else {
-                    Some((strip_cr(d), false))
-                }
-            }
-        }
-    })
-}
-
-fn strip_cr(line: &[u8]) -> &[u8] {
-    line.strip_suffix(b"\r").unwrap_or(line)
 }
 
 // ---------------------------------------------------------------------------------------------
 // PLY
 // ---------------------------------------------------------------------------------------------
-
-/// A PLY scalar type.
-#[derive(Clone, Copy, Debug, PartialEq, Eq)]
-enum Scalar {
-    I8,
-    U8,
-    I16,
-    U16,
-    I32,
-    U32,
-    F32,
-    F64,
-}
-
-impl Scalar {
-    fn from_name(name: &str) -> Option<Scalar> {
-        Some(match name {
-            "char" | "int8" => Scalar::I8,
-            "uchar" | "uint8" => Scalar::U8,
-            "short" | "int16" => Scalar::I16,
-            "ushort" | "uint16" => Scalar::U16,
-            "int" | "int32" => Scalar::I32,
-            "uint" | "uint32" => Scalar::U32,
-            "float" | "float32" => Scalar::F32,
-            "double" | "float64" => Scalar::F64,
-            _ => return None,
-        })
-    }
-
-    fn name(self) -> &'static str {
-        match self {
-            Scalar::I8 => "char",
-            Scalar::U8 => "uchar",
-            Scalar::I16 => "short",
-            Scalar::U16 => "ushort",
-            Scalar::I32 => "int",
-            Scalar::U32 => "uint",
-            Scalar::F32 => "float",
-            Scalar::F64 => "double",
-        }
-    }
-
-    fn size(self) -> usize {
-        match self {
-            Scalar::I8 | Scalar::U8 => 1,
-            Scalar::I16 | Scalar::U16 => 2,
-            Scalar::I32 | Scalar::U32 | Scalar::F32 => 4,
-            Scalar::F64 => 8,
-        }
-    }
-
-    /// Inclusive value range of an integer type; `None` for floating-point types.
-    fn int_range(self) -> Option<(i64, i64)> {
-        match self {
-            Scalar::I8 => Some((i8::MIN.into(), i8::MAX.into())),
-            Scalar::U8 => Some((0, u8::MAX.into())),
-            Scalar::I16 => Some((i16::MIN.into(), i16::MAX.into())),
-            Scalar::U16 => Some((0, u16::MAX.into())),
-            Scalar::I32 => Some((i32::MIN.into(), i32::MAX.into())),
-            Scalar::U32 => Some((0, u32::MAX.into())),
-            Scalar::F32 | Scalar::F64 => None,
-        }
-    }
-
-    /// Decodes one value from exactly `self.size()` bytes.
-    fn decode(self, b: &[u8], big_endian: bool) -> f64 {
-        macro_rules! num {
-            ($t:ty, $n:literal) => {{
-                let a: [u8; $n] = b.try_into().expect("caller passes exactly size() bytes");
-                if big_endian {
-                    <$t>::from_be_bytes(a)
-                } else {
-                    <$t>::from_le_bytes(a)
-                }
-            }};
-        }
-        match self {
-            Scalar::I8 => f64::from(b[0] as i8),
-            Scalar::U8 => f64::from(b[0]),
-            Scalar::I16 => f64::from(num!(i16, 2)),
-            Scalar::U16 => f64::from(num!(u16, 2)),
-            Scalar::I32 => f64::from(num!(i32, 4)),
-            Scalar::U32 => f64::from(num!(u32, 4)),
-            Scalar::F32 => f64::from(num!(f32, 4)),
-            Scalar::F64 => num!(f64, 8),
-        }
-    }
-
-    /// Parses one ASCII token: integer types take an integer within their range, floating
-    /// types any decimal number (including `nan` and `inf`, rejected later where they matter).
-    fn parse_text(self, token: &str) -> Option<f64> {
-        match self.int_range() {
-            Some((lo, hi)) => {
-                let v: i64 = token.parse().ok()?;
-                (lo..=hi).contains(&v).then_some(v as f64)
-            }
-            None => token.parse().ok(),
-        }
-    }
-}
-
-#[derive(Clone, Copy, Debug)]
-enum PropKind {
-    Scalar(Scalar),
-    List { count: Scalar, item: Scalar },
-}
-
-#[derive(Debug)]
-struct Property {
-    name: String,
-    kind: PropKind,
-    /// Header line declaring the property.
-    line: usize,
-}
-
-#[derive(Debug)]
-struct Element {
-    name: String,
-    count: u64,
-    props: Vec<Property>,
-    /// Header line declaring the element.
-    line: usize,
-}
-
-#[derive(Clone, Copy, Debug, PartialEq, Eq)]
-enum Encoding {
-    Ascii,
-    LittleEndian,
-    BigEndian,
-}
-
-#[derive(Debug)]
-struct Header {
-    encoding: Encoding,
-    elements: Vec<Element>,
-    /// Byte offset of the first body byte.
-    body_start: usize,
-    /// Line number of the first body line (ASCII bodies).
-    body_line: usize,
-}
 
 /// Where x, y, z, amplitude and phase sit among the vertex element's properties.
 struct VertexFields {
@@ -456,10 +238,11 @@ struct VertexFields {
 }
 
 impl VertexFields {
-    fn point(&self, vals: &[f64], path: &Path, place: &dyn Fn() -> String) -> Result<PointRecord> {
+    fn point(&self, row: &Row, path: &Path) -> Result<PointRecord> {
+        let vals = row.values;
         checked_point(
             path,
-            place,
+            &|| row.place(),
             &PLY_NAMES,
             [vals[self.x], vals[self.y], vals[self.z]],
             self.amplitude.map(|i| vals[i]),
@@ -469,8 +252,8 @@ impl VertexFields {
 }
 
 fn parse_ply(data: &[u8], path: &Path) -> Result<Vec<PointRecord>> {
-    let header = parse_ply_header(data, path)?;
-    let Some(vertex_index) = header.elements.iter().position(|e| e.name == "vertex") else {
+    let header = Header::parse(data, path)?;
+    let Some(vertex_index) = header.element("vertex") else {
         return Err(input_error(path, "PLY header declares no 'vertex' element"));
     };
     let vertex = &header.elements[vertex_index];
@@ -481,234 +264,20 @@ fn parse_ply(data: &[u8], path: &Path) -> Result<Vec<PointRecord>> {
             &format!("line {}: the vertex element has 0 rows", vertex.line),
         ));
     }
-    check_body_size(&header, data.len() - header.body_start, path)?;
-    match header.encoding {
-        Encoding::Ascii => parse_ascii_body(data, &header, vertex_index, &fields, path),
-        Encoding::LittleEndian => {
-            parse_binary_body(data, &header, vertex_index, &fields, false, path)
+    header.check_body_size(data, path)?;
+    // The count fits in the body (checked above), so this is bounded by the file size.
+    let mut points = Vec::with_capacity(vertex.count as usize);
+    ply::read_body(data, &header, AsciiRows::OnePerLine, path, |row| {
+        if row.element == vertex_index {
+            points.push(fields.point(row, path)?);
         }
-        Encoding::BigEndian => parse_binary_body(data, &header, vertex_index, &fields, true, path),
-    }
+        Ok(())
+    })?;
+    Ok(points)
 }
 
-fn parse_ply_header(data: &[u8], path: &Path) -> Result<Header> {
-    let bad =
-        |line: usize, msg: String| input_error(path, format!("PLY header line {line}: {msg}"));
-    let mut encoding = None;
-    let mut elements: Vec<Element> = Vec::new();
-    let mut pos = 0usize;
-    let mut line_no = 0usize;
-    loop {
-        if pos >= data.len() {
-            return Err(input_error(
-                path,
-                format!("PLY header has no 'end_header' line (file ends after line {line_no})"),
-            ));
-        }
-        let (raw, next, terminated) = match data[pos..].iter().position(|&b| b == b'\n') {
-            Some(i) => (&data[pos..pos + i], pos + i + 1, true),
-            None => (&data[pos..], data.len(), false),
-        };
-        pos = next;
-        line_no += 1;
-        let raw = strip_cr(raw).trim_ascii();
-        if line_no == 1 {
-            if raw != b"ply" {
-                return Err(bad(
-                    1,
-                    "not a PLY file (the first line must be 'ply')".into(),
-                ));
-            }
-            continue;
-        }
-        if !terminated && raw != b"end_header" {
-            return Err(bad(
-                line_no,
-                "the file ends inside the header, before 'end_header' (truncated?)".into(),
-            ));
-        }
-        let keyword = raw.split(|b| b.is_ascii_whitespace()).next().unwrap_or(b"");
-        if raw.is_empty() || keyword == b"comment" || keyword == b"obj_info" {
-            // Comments may hold any bytes; they are not decoded.
-            continue;
-        }
-        let text =
-            std::str::from_utf8(raw).map_err(|_| bad(line_no, "line is not valid text".into()))?;
-        let tokens: Vec<&str> = text.split_ascii_whitespace().collect();
-        match tokens[0] {
-            "format" => {
-                if encoding.is_some() {
-                    return Err(bad(line_no, "second 'format' line".into()));
-                }
-                if tokens.len() != 3 {
-                    return Err(bad(
-                        line_no,
-                        format!("expected 'format <encoding> 1.0', found '{}'", shown(text)),
-                    ));
-                }
-                encoding = Some(match tokens[1] {
-                    "ascii" => Encoding::Ascii,
-                    "binary_little_endian" => Encoding::LittleEndian,
-                    "binary_big_endian" => Encoding::BigEndian,
-                    other => {
-                        return Err(bad(
-                            line_no,
-                            format!(
-                                "unknown encoding '{}' (expected ascii, binary_little_endian \
-                                 or binary_big_endian)",
-                                shown(other)
-                            ),
-                        ))
-                    }
-                });
-                if tokens[2] != "1.0" {
-                    return Err(unsupported_error(
-                        path,
-                        format!(
-                            "PLY header line {line_no}: PLY version '{}' (only 1.0 is read)",
-                            shown(tokens[2])
-                        ),
-                    ));
-                }
-            }
-            "element" => {
-                if tokens.len() != 3 {
-                    return Err(bad(
-                        line_no,
-                        format!("expected 'element <name> <count>', found '{}'", shown(text)),
-                    ));
-                }
-                let name = tokens[1];
-                let count: u64 = tokens[2].parse().map_err(|_| {
-                    bad(
-                        line_no,
-                        format!(
-                            "element '{name}': count '{}' is not a non-negative integer",
-                            shown(tokens[2])
-                        ),
-                    )
-                })?;
-                if elements.iter().any(|e| e.name == name) {
-                    return Err(bad(line_no, format!("element '{name}' is declared twice")));
-                }
-                elements.push(Element {
-                    name: name.to_string(),
-                    count,
-                    props: Vec::new(),
-                    line: line_no,
-                });
-            }
-            "property" => {
-                let Some(element) = elements.last_mut() else {
-                    return Err(bad(line_no, "'property' before any 'element'".into()));
-                };
-                let scalar = |name: &str| {
-                    Scalar::from_name(name).ok_or_else(|| {
-                        bad(line_no, format!("unknown property type '{}'", shown(name)))
-                    })
-                };
-                let (kind, name) = if tokens.get(1) == Some(&"list") {
-                    if tokens.len() != 5 {
-                        return Err(bad(
-                            line_no,
-                            format!(
-                                "expected 'property list <count type> <item type> <name>', \
-                                 found '{}'",
-                                shown(text)
-                            ),
-                        ));
-                    }
-                    let count = scalar(tokens[2])?;
-                    if count.int_range().is_none() {
-                        return Err(bad(
-                            line_no,
-                            format!(
-                                "list length type '{}' is not an integer type",
-                                shown(tokens[2])
-                            ),
-                        ));
-                    }
-                    (
-                        PropKind::List {
-                            count,
-                            item: scalar(tokens[3])?,
-                        },
-                        tokens[4],
-                    )
-                } else {
-                    if tokens.len() != 3 {
-                        return Err(bad(
-                            line_no,
-                            format!("expected 'property <type> <name>', found '{}'", shown(text)),
-                        ));
-                    }
-                    (PropKind::Scalar(scalar(tokens[1])?), tokens[2])
-                };
-                if element.props.iter().any(|p| p.name == name) {
-                    return Err(bad(
-                        line_no,
-                        format!(
-                            "property '{name}' of element '{}' is declared twice",
-                            element.name
-                        ),
-                    ));
-                }
-                element.props.push(Property {
-                    name: name.to_string(),
-                    kind,
-                    line: line_no,
-                });
-            }
-            "end_header" => {
-                if tokens.len() != 1 {
-                    return Err(bad(
-                        line_no,
-                        format!("unexpected text after 'end_header': '{}'", shown(text)),
-                    ));
-                }
-                break;
-            }
-            other => return Err(bad(line_no, format!("unknown keyword '{}'", shown(other)))),
-        }
-    }
-    let Some(encoding) = encoding else {
-        return Err(input_error(path, "PLY header has no 'format' line"));
-    };
-    for e in &elements {
-        if e.props.is_empty() && e.count > 0 {
-            return Err(bad(
-                e.line,
-                format!(
-                    "element '{}' has {} rows but no properties",
-                    e.name, e.count
-                ),
-            ));
-        }
-    }
-    Ok(Header {
-        encoding,
-        elements,
-        body_start: pos,
-        body_line: line_no + 1,
-    })
-}
-
-fn vertex_fields(vertex: &Element, path: &Path) -> Result<VertexFields> {
-    let find = |name: &str| -> Result<Option<usize>> {
-        let Some(i) = vertex.props.iter().position(|p| p.name == name) else {
-            return Ok(None);
-        };
-        match vertex.props[i].kind {
-            PropKind::Scalar(_) => Ok(Some(i)),
-            PropKind::List { .. } => Err(input_error(
-                path,
-                format!(
-                    "PLY header line {}: vertex property '{name}' must be a scalar, not a list",
-                    vertex.props[i].line
-                ),
-            )),
-        }
-    };
+fn vertex_fields(vertex: &ply::Element, path: &Path) -> Result<VertexFields> {
+    let find = |name: &str| Ok(vertex.scalar(name, path)?.map(|(i, _)| i));
     let required = |name: &str| -> Result<usize> {
         find(name)?.ok_or_else(|| {
             input_error(
@@ -727,232 +296,6 @@ fn vertex_fields(vertex: &Element, path: &Path) -> Result<VertexFields> {
         amplitude: find("amplitude")?,
         phase: find("phase")?,
     })
-}
-
-/// Rejects a header whose row counts cannot fit in the bytes after it, before anything is
-/// allocated for the rows. Uses the smallest possible size of a row: binary rows with every list
-/// empty, ASCII rows of one-character values each followed by one separator or line break.
-fn check_body_size(header: &Header, body_len: usize, path: &Path) -> Result<()> {
-    let mut needed: u128 = 0;
-    for e in &header.elements {
-        let row_min: u128 = match header.encoding {
-            Encoding::Ascii => 2 * e.props.len() as u128,
-            Encoding::LittleEndian | Encoding::BigEndian => e
-                .props
-                .iter()
-                .map(|p| match p.kind {
-                    PropKind::Scalar(t) => t.size() as u128,
-                    PropKind::List { count, .. } => count.size() as u128,
-                })
-                .sum(),
-        };
-        needed += row_min * u128::from(e.count);
-        // An ASCII row ends with a line break, but a missing final one is reported by the row
-        // reader, which says so more clearly.
-        let slack = u128::from(header.encoding == Encoding::Ascii);
-        if needed > body_len as u128 + slack {
-            return Err(input_error(
-                path,
-                format!(
-                    "PLY header line {}: element '{}' declares {} rows, which need at least \
-                     {needed} bytes (with the elements before it), but only {body_len} bytes \
-                     follow the header",
-                    e.line, e.name, e.count
-                ),
-            ));
-        }
-    }
-    Ok(())
-}
-
-fn parse_binary_body(
-    data: &[u8],
-    header: &Header,
-    vertex_index: usize,
-    fields: &VertexFields,
-    big_endian: bool,
-    path: &Path,
-) -> Result<Vec<PointRecord>> {
-    let mut pos = header.body_start;
-    let mut points = Vec::new();
-    for (ei, element) in header.elements.iter().enumerate() {
-        let is_vertex = ei == vertex_index;
-        if is_vertex {
-            // The count fits in the body (checked above), so this is bounded by the file size.
-            points.reserve_exact(element.count as usize);
-        }
-        let mut vals = vec![0.0; element.props.len()];
-        for row in 0..element.count {
-            let row_start = pos;
-            let place = || format!("{} index {row} at byte offset {row_start}", element.name);
-            for (pi, prop) in element.props.iter().enumerate() {
-                let truncated = || {
-                    input_error(
-                        path,
-                        format!(
-                            "{}: file ends at byte {} inside property '{}' (truncated?)",
-                            place(),
-                            data.len(),
-                            prop.name
-                        ),
-                    )
-                };
-                match prop.kind {
-                    PropKind::Scalar(t) => {
-                        let bytes = data.get(pos..pos + t.size()).ok_or_else(truncated)?;
-                        vals[pi] = t.decode(bytes, big_endian);
-                        pos += t.size();
-                    }
-                    PropKind::List { count, item } => {
-                        let bytes = data.get(pos..pos + count.size()).ok_or_else(truncated)?;
-                        let n = count.decode(bytes, big_endian);
-                        pos += count.size();
-                        if n < 0.0 {
-                            return Err(input_error(
-                                path,
-                                format!(
-                                    "{}: list '{}' has negative length {n}",
-                                    place(),
-                                    prop.name
-                                ),
-                            ));
-                        }
-                        // n < 2^32 and item size <= 8, so this cannot overflow u64.
-                        let len = n as u64 * item.size() as u64;
-                        let end = (pos as u64).saturating_add(len);
-                        if end > data.len() as u64 {
-                            return Err(truncated());
-                        }
-                        pos = end as usize;
-                    }
-                }
-            }
-            if is_vertex {
-                points.push(fields.point(&vals, path, &place)?);
-            }
-        }
-    }
-    if pos != data.len() {
-        return Err(input_error(
-            path,
-            format!(
-                "{} unexpected byte(s) after the last element, from byte offset {pos} (the \
-                 header declares fewer rows or smaller types than the file holds)",
-                data.len() - pos
-            ),
-        ));
-    }
-    Ok(points)
-}
-
-fn parse_ascii_body(
-    data: &[u8],
-    header: &Header,
-    vertex_index: usize,
-    fields: &VertexFields,
-    path: &Path,
-) -> Result<Vec<PointRecord>> {
-    let mut lines = lines_with_ends(&data[header.body_start..])
-        .zip(header.body_line..)
-        .filter(|((line, _), _)| !line.trim_ascii().is_empty());
-    let mut last_line = header.body_line - 1;
-    let mut points = Vec::new();
-    for (ei, element) in header.elements.iter().enumerate() {
-        let is_vertex = ei == vertex_index;
-        if is_vertex {
-            // The count fits in the body (checked above), so this is bounded by the file size.
-            points.reserve_exact(element.count as usize);
-        }
-        let mut vals = vec![0.0; element.props.len()];
-        for row in 0..element.count {
-            let Some(((raw, terminated), line_no)) = lines.next() else {
-                return Err(input_error(
-                    path,
-                    format!(
-                        "line {last_line}: file ends after {row} of {} '{}' rows (truncated?)",
-                        element.count, element.name
-                    ),
-                ));
-            };
-            last_line = line_no;
-            let place = || format!("line {line_no} ({} index {row})", element.name);
-            let bad = |msg: String| input_error(path, format!("{}: {msg}", place()));
-            if !terminated {
-                return Err(bad(
-                    "the file ends without a final line break (truncated?)".into()
-                ));
-            }
-            let text =
-                std::str::from_utf8(raw).map_err(|_| bad("line is not valid text".into()))?;
-            let mut tokens = text.split_ascii_whitespace();
-            let missing = |what: String| bad(format!("too few values: {what} is missing"));
-            for (pi, prop) in element.props.iter().enumerate() {
-                match prop.kind {
-                    PropKind::Scalar(t) => {
-                        let tok = tokens
-                            .next()
-                            .ok_or_else(|| missing(format!("property '{}'", prop.name)))?;
-                        vals[pi] = t.parse_text(tok).ok_or_else(|| {
-                            bad(format!(
-                                "property '{}': '{}' is not a valid {}",
-                                prop.name,
-                                shown(tok),
-                                t.name()
-                            ))
-                        })?;
-                    }
-                    PropKind::List { count, item } => {
-                        let tok = tokens.next().ok_or_else(|| {
-                            missing(format!("the length of list '{}'", prop.name))
-                        })?;
-                        let n = count.parse_text(tok).filter(|n| *n >= 0.0).ok_or_else(|| {
-                            bad(format!(
-                                "list '{}': length '{}' is not a non-negative {}",
-                                prop.name,
-                                shown(tok),
-                                count.name()
-                            ))
-                        })?;
-                        // Each item consumes a token of this line, so a huge length fails at
-                        // the end of the line instead of looping.
-                        for k in 0..n as u64 {
-                            let tok = tokens.next().ok_or_else(|| {
-                                missing(format!("item {k} of list '{}'", prop.name))
-                            })?;
-                            item.parse_text(tok).ok_or_else(|| {
-                                bad(format!(
-                                    "list '{}' item {k}: '{}' is not a valid {}",
-                                    prop.name,
-                                    shown(tok),
-                                    item.name()
-                                ))
-                            })?;
-                        }
-                    }
-                }
-            }
-            if tokens.next().is_some() {
-                return Err(bad(format!(
-                    "more values than the {} properties the header declares for '{}'",
-                    element.props.len(),
-                    element.name
-                )));
-            }
-            if is_vertex {
-                points.push(fields.point(&vals, path, &place)?);
-            }
-        }
-    }
-    if let Some((_, line_no)) = lines.next() {
-        return Err(input_error(
-            path,
-            format!(
-                "line {line_no}: unexpected data after the last element (the header declares \
-                 fewer rows)"
-            ),
-        ));
-    }
-    Ok(points)
 }
 
 // ---------------------------------------------------------------------------------------------

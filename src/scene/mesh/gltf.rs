@@ -38,11 +38,9 @@ use json::mesh::{Mode, Semantic};
 use json::texture::{MagFilter, WrappingMode};
 use json::validation::Checked;
 
-use super::{
-    complete_normals, input_error, one_line, shown, unsupported_error, Material, Mesh, Texture,
-    TextureFilter, TextureWrap,
-};
+use super::{complete_normals, Material, Mesh, Texture, TextureFilter, TextureWrap};
 use crate::error::{Error, Result};
+use crate::scene::text::{input_error, one_line, shown, unsupported_error};
 
 /// Most vertices a scene may hold after instancing.
 pub const MAX_VERTICES: usize = 1 << 25;

@@ -33,11 +33,15 @@ use std::path::{Path, PathBuf};
 use std::sync::Arc;
 
 use crate::error::{Error, Result};
+use crate::scene::text::{input_error, shown, unsupported_error};
 
 pub mod gltf;
 pub mod obj;
 pub mod ply;
 pub mod stl;
+mod texture;
+
+pub use texture::{srgb_to_linear, srgb_unit_to_linear, Texture, TextureFilter, TextureWrap};
 
 /// A triangle mesh with optional per-vertex attributes and per-triangle materials.
 #[derive(Clone, Debug)]
@@ -82,134 +86,6 @@ impl Default for Material {
             texture: None,
             double_sided: false,
         }
-    }
-}
-
-/// How a texture is read between texel centres.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash)]
-pub enum TextureFilter {
-    /// The texel containing the point.
-    Nearest,
-    /// Bilinear interpolation of the four nearest texel centres (in linear colour).
-    Bilinear,
-}
-
-/// How texture coordinates outside `[0, 1]` are folded back.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash)]
-pub enum TextureWrap {
-    /// The image tiles the plane.
-    Repeat,
-    /// The image is mirrored at every integer.
-    MirroredRepeat,
-    /// The edge texels extend outwards.
-    ClampToEdge,
-}
-
-/// An RGBA8 image, sRGB-encoded colour and linear alpha, with its sampling rule.
-#[derive(Clone, Debug, PartialEq)]
-pub struct Texture {
-    /// Width in texels (at least 1).
-    pub width: u32,
-    /// Height in texels (at least 1).
-    pub height: u32,
-    /// `width * height * 4` bytes, row-major, top row first.
-    pub rgba: Vec<u8>,
-    /// Filter used by [`Texture::sample`].
-    pub filter: TextureFilter,
-    /// Wrapping in u (horizontal) and v (vertical).
-    pub wrap: [TextureWrap; 2],
-}
-
-impl Texture {
-    /// Linear RGBA colour at texture coordinates `uv` (glTF convention: `(0, 0)` is the
-    /// top-left corner of the image, texel `(i, j)` has its centre at
-    /// `((i + 0.5) / width, (j + 0.5) / height)`). Non-finite coordinates read as 0.
-    pub fn sample(&self, uv: [f32; 2]) -> [f32; 4] {
-        let (w, h) = (i64::from(self.width), i64::from(self.height));
-        let fin = |x: f32| if x.is_finite() { f64::from(x) } else { 0.0 };
-        let x = fin(uv[0]) * w as f64 - 0.5;
-        let y = fin(uv[1]) * h as f64 - 0.5;
-        match self.filter {
-            TextureFilter::Nearest => {
-                // Nearest texel centre; `as i64` saturates for huge coordinates.
-                let i = wrap_index((x + 0.5).floor() as i64, w, self.wrap[0]);
-                let j = wrap_index((y + 0.5).floor() as i64, h, self.wrap[1]);
-                self.texel(i, j)
-            }
-            TextureFilter::Bilinear => {
-                let (x0, y0) = (x.floor(), y.floor());
-                let (fx, fy) = ((x - x0) as f32, (y - y0) as f32);
-                let (x0, y0) = (x0 as i64, y0 as i64);
-                let i0 = wrap_index(x0, w, self.wrap[0]);
-                let i1 = wrap_index(x0.saturating_add(1), w, self.wrap[0]);
-                let j0 = wrap_index(y0, h, self.wrap[1]);
-                let j1 = wrap_index(y0.saturating_add(1), h, self.wrap[1]);
-                let (a, b, c, d) = (
-                    self.texel(i0, j0),
-                    self.texel(i1, j0),
-                    self.texel(i0, j1),
-                    self.texel(i1, j1),
-                );
-                let mut out = [0.0f32; 4];
-                for k in 0..4 {
-                    let top = a[k] + (b[k] - a[k]) * fx;
-                    let bottom = c[k] + (d[k] - c[k]) * fx;
-                    out[k] = top + (bottom - top) * fy;
-                }
-                out
-            }
-        }
-    }
-
-    /// Linear RGBA of texel (column `i`, row `j`), both in range.
-    fn texel(&self, i: usize, j: usize) -> [f32; 4] {
-        let o = 4 * (j * self.width as usize + i);
-        let p = &self.rgba[o..o + 4];
-        [
-            srgb_to_linear(p[0]),
-            srgb_to_linear(p[1]),
-            srgb_to_linear(p[2]),
-            f32::from(p[3]) / 255.0,
-        ]
-    }
-}
-
-/// Folds texel index `i` into `0..n` (n >= 1) by the wrapping rule.
-fn wrap_index(i: i64, n: i64, wrap: TextureWrap) -> usize {
-    let k = match wrap {
-        TextureWrap::Repeat => i.rem_euclid(n),
-        TextureWrap::ClampToEdge => i.clamp(0, n - 1),
-        TextureWrap::MirroredRepeat => {
-            let k = i.rem_euclid(2 * n);
-            if k >= n {
-                2 * n - 1 - k
-            } else {
-                k
-            }
-        }
-    };
-    k as usize
-}
-
-/// Decodes an 8-bit sRGB value to linear light in `[0, 1]` (IEC 61966-2-1 transfer function).
-pub fn srgb_to_linear(v: u8) -> f32 {
-    static TABLE: std::sync::OnceLock<[f32; 256]> = std::sync::OnceLock::new();
-    TABLE.get_or_init(|| {
-        let mut t = [0.0f32; 256];
-        for (i, e) in t.iter_mut().enumerate() {
-            *e = srgb_unit_to_linear(i as f64 / 255.0) as f32;
-        }
-        t
-    })[v as usize]
-}
-
-/// Decodes an sRGB-encoded value in `[0, 1]` to linear light (values outside are clamped).
-pub fn srgb_unit_to_linear(c: f64) -> f64 {
-    let c = c.clamp(0.0, 1.0);
-    if c <= 0.04045 {
-        c / 12.92
-    } else {
-        ((c + 0.055) / 1.055).powf(2.4)
     }
 }
 
@@ -622,12 +498,12 @@ fn mesh_format(path: &Path) -> Result<MeshFormat> {
     let ext = path.extension().map(|e| e.to_string_lossy().into_owned());
     match ext {
         Some(e) => MeshFormat::from_extension(&e).ok_or_else(|| {
-            Error::unsupported(
+            unsupported_error(
                 path,
-                one_line(&format!(
+                format!(
                     "mesh extension '.{}' (expected .glb, .gltf, .obj, .stl or .ply)",
                     shown(&e)
-                )),
+                ),
             )
         }),
         None => Err(Error::unsupported(
@@ -730,70 +606,6 @@ pub(crate) fn complete_normals(
             })
             .collect(),
     )
-}
-
-/// An [`Error::Input`] whose message is kept on one line.
-pub(crate) fn input_error(path: &Path, message: impl AsRef<str>) -> Error {
-    Error::input(path, one_line(message.as_ref()))
-}
-
-/// An [`Error::Unsupported`] whose message is kept on one line.
-pub(crate) fn unsupported_error(path: &Path, message: impl AsRef<str>) -> Error {
-    Error::unsupported(path, one_line(message.as_ref()))
-}
-
-/// Escapes control characters so that a message copied from a file stays on one line.
-pub(crate) fn one_line(message: &str) -> String {
-    let mut out = String::with_capacity(message.len());
-    for c in message.chars() {
-        if c.is_control() {
-            out.extend(c.escape_default());
-        } else {
-            out.push(c);
-        }
-    }
-    out
-}
-
-/// Text copied from a file into a message, shortened when long.
-pub(crate) fn shown(text: &str) -> String {
-    const MAX_CHARS: usize = 40;
-    match text.char_indices().nth(MAX_CHARS) {
-        Some((cut, _)) => format!("{}...", &text[..cut]),
-        None => text.to_string(),
-    }
-}
-
-/// Splits `data` into lines at `\n`, dropping a `\r` before it. Yields each line and whether it
-/// was terminated by `\n`.
-pub(crate) fn lines_with_ends(data: &[u8]) -> impl Iterator<Item = (&[u8], bool)> {
-    let mut rest = Some(data);
-    std::iter::from_fn(move || {
-        let d = rest?;
-        match d.iter().position(|&b| b == b'\n') {
-            Some(i) => {
-                rest = Some(&d[i + 1..]);
-                Some((strip_cr(&d[..i]), true))
-            }
-            None => {
-                rest = None;
-                if d.is_empty() {
-                    None
-                } else {
-                    Some((strip_cr(d), false))
-                }
-            }
-        }
-    })
-}
-
-fn strip_cr(line: &[u8]) -> &[u8] {
-    line.strip_suffix(b"\r").unwrap_or(line)
-}
-
-/// Parses a decimal number token, rejecting non-finite results.
-pub(crate) fn parse_finite(token: &str) -> Option<f64> {
-    token.parse::<f64>().ok().filter(|v| v.is_finite())
 }
 
 /// Triangles of a polygon given by its corner indices, as a fan around the first corner.

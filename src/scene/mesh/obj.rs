@@ -19,10 +19,9 @@
 use std::collections::HashMap;
 use std::path::Path;
 
-use super::{
-    complete_normals, input_error, lines_with_ends, parse_finite, shown, srgb_unit_to_linear, Mesh,
-};
+use super::{complete_normals, srgb_unit_to_linear, Mesh};
 use crate::error::Result;
+use crate::scene::text::{input_error, lines_with_ends, parse_finite, shown};
 
 /// Reads an OBJ file.
 pub fn read(path: &Path) -> Result<Mesh> {

@@ -16,8 +16,9 @@
 use std::collections::HashMap;
 use std::path::Path;
 
-use super::{fan, input_error, lines_with_ends, parse_finite, shown, Mesh};
+use super::{fan, Mesh};
 use crate::error::Result;
+use crate::scene::text::{input_error, lines_with_ends, parse_finite, shown};
 
 /// Reads an STL file.
 pub fn read(path: &Path) -> Result<Mesh> {
