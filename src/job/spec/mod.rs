@@ -1,5 +1,5 @@
 //! The job file (TOML): its raw form as written ([`raw`]), and the validated [`JobSpec`] every
-//! command uses, checked table by table ([`objects`], [`synthesis`], [`encoding`]).
+//! command uses, checked table by table (`objects`, `synthesis`, `encoding`).
 //!
 //! The keys of issue #2 are a contract; new keys may be added, none renamed. Unknown keys are
 //! errors that name the key and its line. Paths resolve against the job file's folder.

@@ -326,7 +326,7 @@ pub trait FieldFloat: FftNum + Float {
 }
 
 impl FieldFloat for f32 {
-    /// The vectorized copy ([`crate::optics::pointwise`]), the same bits as the plain loop.
+    /// The vectorized copy (`optics::pointwise`), the same bits as the plain loop.
     fn mul_by(v: &mut [Complex<f32>], fac: &[Complex<f32>], scale: Complex<f32>) {
         crate::optics::pointwise::mul_by_f32(v, fac, scale)
     }

@@ -1,6 +1,7 @@
 //! Unit tests of the kernels (a file of their own, beside `mod.rs`).
 
 use super::*;
+use num_complex::Complex64;
 
 /// The polynomial phasor against libm's sin/cos on a dense sweep of reduced and large arguments.
 #[test]
