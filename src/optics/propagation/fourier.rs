@@ -273,39 +273,4 @@ impl<T: FieldFloat> Fourier<T> {
     }
 }
 
-impl<T: FieldFloat> Propagator<T> for Fourier<T> {
-    fn input(&self) -> Grid {
-        self.input
-    }
-    fn output(&self) -> Grid {
-        self.output
-    }
-    fn scratch_len(&self) -> usize {
-        self.dft.scratch_len()
-    }
-    fn propagate_with_scratch(&self, field: &mut [Complex<T>], scratch: &mut [Complex<T>]) {
-        self.dft.apply(field, scratch);
-    }
-    fn transposes_natively(&self) -> bool {
-        true
-    }
-    fn propagate_into_transposed(
-        &self,
-        src: &[Complex<T>],
-        work: &mut [Complex<T>],
-        out_t: &mut [Complex<T>],
-        after_col: LineHook<'_, T>,
-    ) {
-        self.dft.apply_into_transposed(src, work, out_t, after_col);
-    }
-    fn propagate_from_transposed(
-        &self,
-        in_t: &mut [Complex<T>],
-        out: &mut [Complex<T>],
-        before_col: LineHook<'_, T>,
-        after_row: LineHook<'_, T>,
-    ) {
-        self.dft
-            .apply_from_transposed(in_t, out, before_col, after_row);
-    }
-}
+centred_dft_propagator!(Fourier);

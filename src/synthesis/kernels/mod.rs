@@ -91,6 +91,20 @@ macro_rules! dispatch {
     };
 }
 
+/// An AVX2 copy of a portable kernel: `avx2_copy!(name = portable, (args) -> ret)` compiles the
+/// portable body again with AVX2 enabled (the f64 kernels, which AVX-512 does not speed up).
+/// Call it only through `dispatch!`.
+macro_rules! avx2_copy {
+    ($name:ident = $generic:path, ($($arg:ident: $ty:ty),*) -> $ret:ty) => {
+        #[cfg(target_arch = "x86_64")]
+        #[target_feature(enable = "avx2")]
+        #[allow(clippy::too_many_arguments)]
+        unsafe fn $name($($arg: $ty),*) -> $ret {
+            $generic($($arg),*)
+        }
+    };
+}
+
 mod row64;
 pub use row64::{accumulate_exact, accumulate_fresnel, conj_reference, fresnel_columns, mac};
 

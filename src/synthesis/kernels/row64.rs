@@ -122,27 +122,15 @@ fn mac_generic(cr: f64, ci: f64, ure: &[f64], uim: &[f64], re: &mut [f64], im: &
     }
 }
 
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2")]
-#[allow(clippy::too_many_arguments)]
-unsafe fn fresnel_columns_avx2(
-    ri: &RowInputs,
-    xj: f64,
-    z: f64,
-    amplitude: f64,
-    c0: usize,
-    c1: usize,
-    ure: &mut [f64],
-    uim: &mut [f64],
-) -> u64 {
-    fresnel_columns_generic(ri, xj, z, amplitude, c0, c1, ure, uim)
-}
+avx2_copy!(
+    fresnel_columns_avx2 = fresnel_columns_generic,
+    (ri: &RowInputs, xj: f64, z: f64, amplitude: f64, c0: usize, c1: usize, ure: &mut [f64], uim: &mut [f64]) -> u64
+);
 
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2")]
-unsafe fn mac_avx2(cr: f64, ci: f64, ure: &[f64], uim: &[f64], re: &mut [f64], im: &mut [f64]) {
-    mac_generic(cr, ci, ure, uim, re, im)
-}
+avx2_copy!(
+    mac_avx2 = mac_generic,
+    (cr: f64, ci: f64, ure: &[f64], uim: &[f64], re: &mut [f64], im: &mut [f64]) -> ()
+);
 
 /// Fills the Fresnel column factor of one emitter (see `fresnel_columns_generic`); `ure`, `uim`
 /// hold `c1 - c0` values. Returns the columns inside the x support.
@@ -204,11 +192,10 @@ fn conj_reference_generic(t: &[f64], re: &[f64], im: &[f64], out: &mut [Complex6
     }
 }
 
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2")]
-unsafe fn conj_reference_avx2(t: &[f64], re: &[f64], im: &[f64], out: &mut [Complex64]) {
-    conj_reference_generic(t, re, im, out)
-}
+avx2_copy!(
+    conj_reference_avx2 = conj_reference_generic,
+    (t: &[f64], re: &[f64], im: &[f64], out: &mut [Complex64]) -> ()
+);
 
 /// Writes F = (re + i im) conj(R) into `out`, with R = exp(i 2 pi t).
 ///
@@ -227,9 +214,9 @@ pub fn conj_reference(isa: KernelIsa, t: &[f64], re: &[f64], im: &[f64], out: &m
     )
 }
 
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2")]
-unsafe fn exact_avx2(
+/// The exact kernel with the soft edge or the plain 0/1 support.
+#[inline(always)]
+fn exact_either(
     ri: &RowInputs,
     e: &EmitterRow,
     c0: usize,
@@ -244,18 +231,15 @@ unsafe fn exact_avx2(
     }
 }
 
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2")]
-unsafe fn fresnel_avx2(
-    ri: &RowInputs,
-    e: &EmitterRow,
-    c0: usize,
-    c1: usize,
-    re: &mut [f64],
-    im: &mut [f64],
-) -> u64 {
-    fresnel_generic(ri, e, c0, c1, re, im)
-}
+avx2_copy!(
+    exact_avx2 = exact_either,
+    (ri: &RowInputs, e: &EmitterRow, c0: usize, c1: usize, re: &mut [f64], im: &mut [f64]) -> u64
+);
+
+avx2_copy!(
+    fresnel_avx2 = fresnel_generic,
+    (ri: &RowInputs, e: &EmitterRow, c0: usize, c1: usize, re: &mut [f64], im: &mut [f64]) -> u64
+);
 
 /// Adds one emitter's exact spherical wave over columns [c0, c1) into `re`, `im`.
 /// Returns the number of pixels that passed the support test.
@@ -272,11 +256,7 @@ pub fn accumulate_exact(
         isa,
         exact_avx2(ri, e, c0, c1, re, im),
         exact_avx2(ri, e, c0, c1, re, im),
-        if ri.taper_start < 1.0 {
-            exact_generic::<true>(ri, e, c0, c1, re, im)
-        } else {
-            exact_generic::<false>(ri, e, c0, c1, re, im)
-        }
+        exact_either(ri, e, c0, c1, re, im)
     )
 }
 
