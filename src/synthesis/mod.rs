@@ -1,8 +1,12 @@
-//! Synthesis: from emitters to the complex fringe term F = O conj(R), band by band.
+//! Synthesis: from emitters (or targets) to the complex fringe term F = O conj(R), band by band.
 //!
-//! `point_sum` is the production point-source engine; `reference` is the slow, obviously correct
-//! per-pixel sum that every fast path is tested against; `support` bounds where each emitter may
-//! contribute without aliasing. This module depends on `optics` only.
+//! A synthesis path is a [`source::FringeSource`]: the direct point sum (`point_sum`, inner loops
+//! in `kernels`), the recording plane (`recording_plane`) or an iterated phase cell (`iterative`
+//! computes the cell, `phase_cell` lays it over the plate); `planner` chooses between the point-sum
+//! paths as a plain recipe. `reference` is the slow, obviously correct per-pixel sum that every
+//! fast path is tested against; `support` bounds where each emitter may contribute without
+//! aliasing; `occlusion` tests visibility on a tile grid fixed in plate pixels. This module
+//! depends on `optics`, `cpu` and `encoding` (the phase-level rule the iteration projects onto).
 
 pub mod iterative;
 pub mod kernels;
