@@ -132,9 +132,19 @@ fn parse_distances(s: &str) -> Result<Distances, String> {
     fringemill::replay::parse_distances_mm(s).map(Distances)
 }
 
+/// Most worker threads accepted: 8 per core (at least 64). More only thrash the machine.
+fn max_threads() -> usize {
+    let cores = std::thread::available_parallelism().map_or(1, |n| n.get());
+    (8 * cores).max(64)
+}
+
 fn parse_threads(s: &str) -> Result<usize, String> {
+    let cap = max_threads();
     match s.trim().parse::<usize>() {
-        Ok(n) if n >= 1 => Ok(n),
+        Ok(n) if (1..=cap).contains(&n) => Ok(n),
+        Ok(n) if n > cap => Err(format!(
+            "'{s}': at most {cap} threads on this machine (8 per core)"
+        )),
         _ => Err(format!(
             "'{s}': expected a whole number of threads, at least 1"
         )),
@@ -197,6 +207,10 @@ mod tests {
     fn threads_must_be_positive() {
         assert!(Cli::try_parse_from(["fringemill", "plan", "j.toml", "--threads", "0"]).is_err());
         assert!(Cli::try_parse_from(["fringemill", "plan", "j.toml", "--threads", "x"]).is_err());
+        let e = Cli::try_parse_from(["fringemill", "plan", "j.toml", "--threads", "100000"])
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("at most"), "{e}");
         let c = Cli::try_parse_from(["fringemill", "plan", "j.toml", "--threads", "3"]).unwrap();
         assert_eq!(c.common.threads, Some(3));
     }

@@ -154,17 +154,16 @@ fn main() -> ExitCode {
                 Err(e) => fail(&e),
             }
         }
-        cli::Command::Sample { job, out } => match JobSpec::load(&job)
-            .and_then(|s| job::scene::build_scene(&s))
-            .and_then(|sc| job::scene::write_emitters_ply(&out, &sc).map(|_| sc.normals.len()))
-        {
-            Ok(n) => {
-                eprintln!("fringemill: wrote {n} emitters to {}", out.display());
-                println!("{}", out.display());
-                ExitCode::SUCCESS
+        cli::Command::Sample { job, out } => {
+            match JobSpec::load(&job).and_then(|s| job::scene::sample(&s, &out)) {
+                Ok(n) => {
+                    eprintln!("fringemill: wrote {n} emitters to {}", out.display());
+                    println!("{}", out.display());
+                    ExitCode::SUCCESS
+                }
+                Err(e) => fail(&e),
             }
-            Err(e) => fail(&e),
-        },
+        }
         cli::Command::Plan { job } => match JobSpec::load(&job).and_then(|s| job::plan(&s)) {
             Ok(r) => {
                 for l in r.lines {

@@ -4,6 +4,7 @@
 pub mod batch;
 pub mod estimate;
 pub mod fields;
+pub mod guard;
 pub mod iterative;
 pub mod journal;
 pub mod plan;

@@ -66,6 +66,37 @@ pub struct RunSummary {
     pub encoding: Encoding,
 }
 
+/// Checks a job's outputs against its inputs and special files, before any work, and takes the
+/// output's lock (a shard locks its own part, so the shards of a split run side by side).
+pub(super) fn guard_outputs(
+    spec: &JobSpec,
+    shard: Option<Shard>,
+) -> Result<super::guard::OutputLock> {
+    let inputs = spec.inputs();
+    super::guard::check_output(&spec.output, "output plate", &inputs)?;
+    super::guard::check_output(
+        &super::prepare::sidecar_path(&spec.output),
+        "plate's sidecar",
+        &inputs,
+    )?;
+    if let Some(sh) = shard {
+        super::guard::check_output(&part_path(&spec.output, sh), "shard's part", &inputs)?;
+    }
+    if let Some(parent) = spec.output.parent().filter(|p| !p.as_os_str().is_empty()) {
+        if parent.exists() && !parent.is_dir() {
+            return Err(Error::job(
+                &spec.output,
+                format!("{} is not a folder", parent.display()),
+            ));
+        }
+    }
+    ensure_parent(&spec.output)?;
+    super::guard::lock_output(&match shard {
+        Some(sh) => part_path(&spec.output, sh),
+        None => spec.output.clone(),
+    })
+}
+
 /// All emitters of a job in summation order (every channel), placed in plate coordinates.
 pub fn build_emitters(spec: &JobSpec) -> Result<Vec<Emitter>> {
     Ok(build_scene(spec)?.emitters())
@@ -74,6 +105,7 @@ pub fn build_emitters(spec: &JobSpec) -> Result<Vec<Emitter>> {
 /// Runs one job end to end (or one shard of it). On any error nothing that looks finished is left
 /// behind; after a checkpoint, the partial file and its journal stay so the same command continues.
 pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
+    let _lock = guard_outputs(spec, opts.shard)?;
     let prep = prepare(spec, opts.progress)?;
     ensure_parent(&spec.output)?;
     let units = unit_count(&prep);

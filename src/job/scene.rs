@@ -242,6 +242,15 @@ pub fn build_scene(spec: &JobSpec) -> Result<Scene> {
     })
 }
 
+/// `sample`: builds the job's scene and writes its emitters to `out` (refused when `out` is one
+/// of the job's inputs, a folder or a special file). Returns the number of emitters.
+pub fn sample(spec: &JobSpec, out: &std::path::Path) -> Result<usize> {
+    super::guard::check_output(out, "point file", &spec.inputs())?;
+    let scene = build_scene(spec)?;
+    write_emitters_ply(out, &scene)?;
+    Ok(scene.normals.len())
+}
+
 /// Writes a scene's emitters as an ASCII PLY for point-cloud viewers: x y z in mm, amplitude, phase
 /// (radians), nx ny nz (0 for point clouds) and the channel index.
 pub fn write_emitters_ply(path: &std::path::Path, scene: &Scene) -> Result<()> {

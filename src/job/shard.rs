@@ -172,6 +172,7 @@ struct PartMeta {
 /// Streams the finished shards' part files into the plate's TIFF and writes its sidecar, then
 /// removes the parts. All parts of one split (same N, same job) must be present.
 pub fn assemble(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
+    let _lock = super::run::guard_outputs(spec, None)?;
     let prep = prepare(spec, opts.progress)?;
     if let Some(grid) = prep.fields.clone() {
         return assemble_fields(spec, &prep, &grid);

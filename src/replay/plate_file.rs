@@ -176,7 +176,7 @@ impl PlateFile {
         };
         let fields = match &side.output {
             OutputFiles::Tiff { .. } => {
-                check_tiff_size(tif, [plate.width, plate.height])?;
+                check_tiff_size(tif, [plate.width, plate.height], encoding.bits_per_sample())?;
                 Vec::new()
             }
             OutputFiles::Fields {
@@ -209,7 +209,11 @@ impl PlateFile {
                             format!("field {} leaves the plate", f.file),
                         ));
                     }
-                    check_tiff_size(&tif.with_file_name(&f.file), f.size_px)?;
+                    check_tiff_size(
+                        &tif.with_file_name(&f.file),
+                        f.size_px,
+                        encoding.bits_per_sample(),
+                    )?;
                     covered += f.size_px[0] as u64 * f.size_px[1] as u64;
                 }
                 if covered != plate.pixels() {
@@ -327,7 +331,7 @@ impl PlateFile {
 }
 
 /// Checks that `tif` is a readable TIFF of `size` = [columns, rows].
-fn check_tiff_size(tif: &Path, size: [u32; 2]) -> Result<()> {
+fn check_tiff_size(tif: &Path, size: [u32; 2], bits: u8) -> Result<()> {
     let f = std::fs::File::open(tif).map_err(|e| Error::io(tif, e))?;
     let mut d = Decoder::new(std::io::BufReader::new(f))
         .map_err(|e| Error::input(tif, format!("not a readable TIFF: {e}")))?;
@@ -342,6 +346,24 @@ fn check_tiff_size(tif: &Path, size: [u32; 2]) -> Result<()> {
                 size[0], size[1]
             ),
         ));
+    }
+    // The plate's own layout: one grey sample per pixel of the sidecar's bit depth, in strips
+    // (a tiled or colour TIFF is not a plate this tool wrote, whatever its sidecar says).
+    if d.get_tag_u32(tiff::tags::Tag::TileWidth).is_ok() {
+        return Err(Error::unsupported(
+            tif,
+            "is a tiled TIFF; plates are stored in strips (write it again with fringemill)",
+        ));
+    }
+    match d.colortype() {
+        Ok(tiff::ColorType::Gray(b)) if b == bits => {}
+        Ok(other) => return Err(Error::input(
+            tif,
+            format!(
+                "holds {other:?} samples; its sidecar says one grey sample of {bits} bit per pixel"
+            ),
+        )),
+        Err(e) => return Err(Error::input(tif, format!("unreadable sample layout: {e}"))),
     }
     Ok(())
 }

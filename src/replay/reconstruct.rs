@@ -39,6 +39,7 @@ pub struct ReconstructRequest {
 /// Returns the files written.
 pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
     let pf = PlateFile::open(&req.tif)?;
+    check_outputs(req, &pf)?;
     let win = req.window.unwrap_or(Window {
         x: 0,
         y: 0,
@@ -209,4 +210,73 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
     )?;
     written.push(jp);
     Ok(written)
+}
+
+/// The files a reconstruction will write: the PNG per depth (a stack adds `-zD.DDDmm`), the
+/// oversampled PNG and the metrics JSON.
+fn planned_outputs(req: &ReconstructRequest) -> Vec<PathBuf> {
+    let stem = req
+        .out
+        .file_stem()
+        .map(|s| s.to_string_lossy().into_owned())
+        .unwrap_or_else(|| "replay".into());
+    let mut v = Vec::new();
+    if req.focal.is_some() || req.distances.len() == 1 {
+        v.push(req.out.clone());
+    } else {
+        for d in &req.distances {
+            v.push(
+                req.out
+                    .with_file_name(format!("{stem}-z{:.3}mm.png", d * 1e3)),
+            );
+        }
+    }
+    if let Some(k) = req.oversample {
+        v.push(req.out.with_file_name(format!("{stem}-os{k}.png")));
+    }
+    v.push(req.out.with_extension("json"));
+    v
+}
+
+/// Refuses outputs that would replace the plate, its sidecar or fields, the target, a file of
+/// another kind (an existing image name that is not a PNG, a JSON that is a plate's sidecar), a
+/// folder or a special file.
+fn check_outputs(req: &ReconstructRequest, pf: &PlateFile) -> Result<()> {
+    let mut inputs = vec![req.tif.clone(), sidecar_of(&req.tif)];
+    let dir = req.tif.parent().map(PathBuf::from).unwrap_or_default();
+    inputs.extend(pf.fields.iter().map(|f| dir.join(&f.file)));
+    inputs.extend(req.target.iter().cloned());
+    for out in planned_outputs(req) {
+        let json = out.extension().is_some_and(|e| e == "json");
+        crate::job::guard::check_output(
+            &out,
+            if json { "metrics file" } else { "replay image" },
+            &inputs,
+        )?;
+        let Ok(bytes) = head_bytes(&out) else {
+            continue;
+        };
+        if json {
+            if String::from_utf8_lossy(&bytes).contains(crate::output::sidecar::FORMAT_NAME) {
+                return Err(Error::job(
+                    &out,
+                    "is a plate's sidecar; the metrics would replace it (name another --out)",
+                ));
+            }
+        } else if !bytes.starts_with(b"\x89PNG\r\n\x1a\n") && !bytes.is_empty() {
+            return Err(Error::job(
+                &out,
+                "exists and is not a PNG image; the replay would replace it (name another --out)",
+            ));
+        }
+    }
+    Ok(())
+}
+
+/// The first 4 KiB of a file.
+fn head_bytes(p: &std::path::Path) -> std::io::Result<Vec<u8>> {
+    use std::io::Read;
+    let mut v = Vec::new();
+    std::fs::File::open(p)?.take(4096).read_to_end(&mut v)?;
+    Ok(v)
 }

@@ -210,7 +210,23 @@ pub struct JobSpec {
     pub bigtiff: Option<bool>,
     /// Field size [w, h], if the plate is split into field files.
     pub field_px: Option<[u32; 2]>,
+    /// The calibration table's file, if `[encoding] calibration` names one.
+    pub calibration_file: Option<PathBuf>,
 }
+
+impl JobSpec {
+    /// The files the job names and reads: the job file, every object's file and a calibration
+    /// table (files a mesh names in turn, such as glTF buffers and textures, are not listed).
+    pub fn inputs(&self) -> Vec<PathBuf> {
+        let mut v = vec![self.path.clone()];
+        v.extend(self.objects.iter().map(|o| o.points.clone()));
+        v.extend(self.calibration_file.iter().cloned());
+        v
+    }
+}
+
+/// Most field files a plate may be split into.
+pub const MAX_FIELDS: u64 = 10_000;
 
 /// Largest accepted side, pixels (a 4 Gpx-wide row would not fit a TIFF strip).
 pub const MAX_SIDE_PX: i64 = 1 << 24;
@@ -286,6 +302,7 @@ impl JobSpec {
             rows_per_strip: out.rows_per_strip,
             bigtiff: raw.output.bigtiff,
             field_px: out.field_px,
+            calibration_file: raw.encoding.calibration.as_ref().map(|c| dir.join(c)),
         })
     }
 }
@@ -373,7 +390,15 @@ fn parse_output(
                     )));
                 }
             }
-            Some([f[0].min(plate.width), f[1].min(plate.height)])
+            let f = [f[0].min(plate.width), f[1].min(plate.height)];
+            let count = plate.width.div_ceil(f[0]) as u64 * plate.height.div_ceil(f[1]) as u64;
+            if count > MAX_FIELDS {
+                return Err(bad(format!(
+                    "[output] field_px = {:?} makes {count} field files; at most {MAX_FIELDS} (larger fields)",
+                    [f[0], f[1]]
+                )));
+            }
+            Some(f)
         }
     };
     Ok(OutputKeys {

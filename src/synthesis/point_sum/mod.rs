@@ -86,6 +86,8 @@ pub struct PointSum {
     poly_min_distance: [f64; 3],
     /// Soft support edge (exact approximation), see [`Self::with_edge_taper`].
     taper_start: f64,
+    /// Emitters whose support misses the plate, counted once when first asked.
+    unreachable: std::sync::OnceLock<usize>,
 }
 
 /// Scratch buffers a worker reuses from band to band.
@@ -185,6 +187,7 @@ impl PointSum {
             poly_min_distance: kernels::exact32::POLY_WIDTHS
                 .map(|l| kernels::poly_min_distance(l, plate.pitch[0], plate.wavelength)),
             taper_start: 1.0,
+            unreachable: std::sync::OnceLock::new(),
         }
     }
 
@@ -274,7 +277,38 @@ impl PointSum {
     }
     /// Emitters whose support misses the plate entirely (they contribute nothing).
     pub fn unreachable(&self) -> usize {
-        self.rows.iter().filter(|r| r.is_none()).count()
+        *self.unreachable.get_or_init(|| {
+            (0..self.emitters.len())
+                .filter(|&j| !self.reaches_plate(j))
+                .count()
+        })
+    }
+
+    /// Whether emitter `j` has a support span on some row of the plate: its conservative row
+    /// range, then the spans of its rows (every row when the range has at most 512, else 512
+    /// rows evenly spread with both ends, nearest the middle first; a support that touches the
+    /// plate on fewer rows than the stride may be counted as missing it, which only affects the
+    /// count `plan` and the sidecar report).
+    pub fn reaches_plate(&self, j: usize) -> bool {
+        let Some((a, b)) = self.rows[j] else {
+            return false;
+        };
+        if b <= a {
+            return false;
+        }
+        let n = b - a;
+        let samples = n.min(512);
+        let mid = a + n / 2;
+        (0..samples).any(|k| {
+            // Alternate around the middle row, out to both ends.
+            let off = k.div_ceil(2) * (n - 1).max(1) / (samples - 1).max(1);
+            let row = if k % 2 == 0 {
+                mid.saturating_sub(off).max(a)
+            } else {
+                (mid + off).min(b - 1)
+            };
+            self.row_span(j, row).is_some()
+        })
     }
 
     fn channel_of(&self, j: usize) -> &Channel {

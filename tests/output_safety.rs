@@ -1,0 +1,384 @@
+//! Output safety, one regression test per case found by a careless or hostile user: outputs that
+//! would replace inputs or special files, two runs on one output, plates that are not what their
+//! sidecar says, absurd thread and field counts, emitters that miss the plate. Each refusal is one
+//! line on stderr with a non-zero exit, and the file it protects is unchanged.
+
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output};
+
+fn run(dir: &Path, args: &[&str]) -> Output {
+    Command::new(env!("CARGO_BIN_EXE_fringemill"))
+        .current_dir(dir)
+        .args(args)
+        .output()
+        .expect("spawn fringemill")
+}
+
+const POINTS_CSV: &str = "x_mm,y_mm,z_mm,amplitude,phase_rad\n0,0,5,1,0\n0.05,-0.02,6,0.8,1.0\n";
+
+fn job(output: &str, extra_output: &str, points: &str) -> String {
+    format!(
+        "[hologram]\nwidth_px = 64\nheight_px = 48\npitch_um = 2.0\nwavelength_nm = 633\n\
+         [reference]\nkind = \"plane\"\ntilt_deg = [3.0, 0.0]\n\
+         [[object]]\npoints = \"{points}\"\n\
+         [encoding]\nkind = \"phase\"\nlevels = 16\n\
+         [output]\npath = \"{output}\"\n{extra_output}\n"
+    )
+}
+
+fn setup(output: &str) -> (tempfile::TempDir, PathBuf) {
+    let d = tempfile::tempdir().unwrap();
+    std::fs::write(d.path().join("pts.csv"), POINTS_CSV).unwrap();
+    let j = d.path().join("job.toml");
+    std::fs::write(&j, job(output, "", "pts.csv")).unwrap();
+    (d, j)
+}
+
+/// Refused with a one-line message containing `needle`.
+fn refused(o: &Output, needle: &str) {
+    let e = String::from_utf8_lossy(&o.stderr);
+    assert!(!o.status.success(), "accepted: {e}");
+    assert!(e.contains(needle), "'{needle}' not in: {e}");
+    assert_eq!(e.trim().lines().count(), 1, "{e}");
+    assert!(!e.contains("panicked"), "{e}");
+}
+
+#[test]
+fn output_equal_to_the_points_file_is_refused() {
+    let (d, j) = setup("pts.csv");
+    refused(
+        &run(d.path(), &["run", "-q", j.to_str().unwrap()]),
+        "overwrite an input",
+    );
+    assert_eq!(
+        std::fs::read_to_string(d.path().join("pts.csv")).unwrap(),
+        POINTS_CSV
+    );
+}
+
+#[test]
+fn output_equal_to_the_job_file_is_refused() {
+    let (d, j) = setup("job.toml");
+    let before = std::fs::read(&j).unwrap();
+    refused(
+        &run(d.path(), &["run", "-q", j.to_str().unwrap()]),
+        "overwrite an input",
+    );
+    assert_eq!(std::fs::read(&j).unwrap(), before);
+}
+
+#[cfg(unix)]
+#[test]
+fn output_to_a_device_is_refused() {
+    use std::os::unix::fs::FileTypeExt;
+    let (d, j) = setup("/dev/null");
+    refused(
+        &run(d.path(), &["run", "-q", j.to_str().unwrap()]),
+        "not a regular file",
+    );
+    assert!(std::fs::metadata("/dev/null")
+        .unwrap()
+        .file_type()
+        .is_char_device());
+}
+
+#[test]
+fn output_that_is_a_folder_is_refused_before_any_work() {
+    let (d, j) = setup("plate.tif");
+    std::fs::create_dir(d.path().join("plate.tif")).unwrap();
+    refused(
+        &run(d.path(), &["run", "-q", j.to_str().unwrap()]),
+        "folder",
+    );
+    assert!(d.path().join("plate.tif").is_dir());
+}
+
+/// A finished plate `base.tif` with its sidecar `base.json`.
+fn plate() -> (tempfile::TempDir, PathBuf) {
+    let (d, j) = setup("base.tif");
+    let o = run(d.path(), &["run", "-q", j.to_str().unwrap()]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    (d, j)
+}
+
+#[test]
+fn reconstruct_out_over_the_plates_sidecar_is_refused() {
+    let (d, _) = plate();
+    let side = std::fs::read(d.path().join("base.json")).unwrap();
+    // --out base.png writes its metrics to base.json: the plate's sidecar.
+    refused(
+        &run(
+            d.path(),
+            &[
+                "reconstruct",
+                "base.tif",
+                "--distance-mm",
+                "5",
+                "--out",
+                "base.png",
+            ],
+        ),
+        "overwrite an input",
+    );
+    assert_eq!(std::fs::read(d.path().join("base.json")).unwrap(), side);
+    // Another plate's sidecar under the metrics name is refused too.
+    std::fs::copy(d.path().join("base.json"), d.path().join("other.json")).unwrap();
+    refused(
+        &run(
+            d.path(),
+            &[
+                "reconstruct",
+                "base.tif",
+                "--distance-mm",
+                "5",
+                "--out",
+                "other.png",
+            ],
+        ),
+        "sidecar",
+    );
+}
+
+#[test]
+fn reconstruct_out_over_the_plate_is_refused() {
+    let (d, _) = plate();
+    let tif = std::fs::read(d.path().join("base.tif")).unwrap();
+    refused(
+        &run(
+            d.path(),
+            &[
+                "reconstruct",
+                "base.tif",
+                "--distance-mm",
+                "5",
+                "--out",
+                "base.tif",
+            ],
+        ),
+        "overwrite an input",
+    );
+    assert_eq!(std::fs::read(d.path().join("base.tif")).unwrap(), tif);
+}
+
+#[test]
+fn sample_out_over_an_input_is_refused() {
+    let (d, j) = setup("plate.tif");
+    refused(
+        &run(
+            d.path(),
+            &["sample", j.to_str().unwrap(), "--out", "pts.csv"],
+        ),
+        "overwrite an input",
+    );
+    assert_eq!(
+        std::fs::read_to_string(d.path().join("pts.csv")).unwrap(),
+        POINTS_CSV
+    );
+}
+
+#[test]
+fn a_second_run_on_a_locked_output_is_refused_at_once() {
+    let (d, j) = setup("plate.tif");
+    // The lock another run would hold (an flock on plate.tif.lock).
+    let lock = fringemill::job::guard::lock_output(&d.path().join("plate.tif")).unwrap();
+    refused(
+        &run(d.path(), &["run", "-q", j.to_str().unwrap()]),
+        "another run",
+    );
+    assert!(!d.path().join("plate.tif").exists());
+    drop(lock);
+    let o = run(d.path(), &["run", "-q", j.to_str().unwrap()]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    assert!(!d.path().join("plate.tif.lock").exists());
+}
+
+#[test]
+fn sidecar_with_zero_pitch_is_refused() {
+    let (d, _) = plate();
+    let p = d.path().join("base.json");
+    let mut v: serde_json::Value = serde_json::from_slice(&std::fs::read(&p).unwrap()).unwrap();
+    v["hologram"]["pitch_um"] = serde_json::json!([0.0, 2.0]);
+    std::fs::write(&p, serde_json::to_vec(&v).unwrap()).unwrap();
+    refused(
+        &run(
+            d.path(),
+            &[
+                "reconstruct",
+                "base.tif",
+                "--distance-mm",
+                "5",
+                "--out",
+                "r.png",
+            ],
+        ),
+        "pitch_um",
+    );
+}
+
+#[test]
+fn sidecar_with_negative_wavelength_is_refused() {
+    let (d, _) = plate();
+    let p = d.path().join("base.json");
+    let mut v: serde_json::Value = serde_json::from_slice(&std::fs::read(&p).unwrap()).unwrap();
+    v["hologram"]["wavelength_nm"] = serde_json::json!(-633.0);
+    std::fs::write(&p, serde_json::to_vec(&v).unwrap()).unwrap();
+    refused(
+        &run(
+            d.path(),
+            &[
+                "reconstruct",
+                "base.tif",
+                "--distance-mm",
+                "5",
+                "--out",
+                "r.png",
+            ],
+        ),
+        "wavelength_nm",
+    );
+}
+
+#[test]
+fn rgb_tiff_under_a_plates_sidecar_is_refused() {
+    let (d, _) = plate();
+    let f = std::fs::File::create(d.path().join("base.tif")).unwrap();
+    let mut e = tiff::encoder::TiffEncoder::new(f).unwrap();
+    e.write_image::<tiff::encoder::colortype::RGB8>(64, 48, &vec![7u8; 64 * 48 * 3])
+        .unwrap();
+    refused(
+        &run(
+            d.path(),
+            &[
+                "reconstruct",
+                "base.tif",
+                "--distance-mm",
+                "5",
+                "--out",
+                "r.png",
+            ],
+        ),
+        "grey sample",
+    );
+}
+
+/// A minimal little-endian tiled TIFF (TIFF 6.0, section 15): one 16 x 16 tile of 8-bit grey.
+fn tiled_tiff(w: u32, h: u32) -> Vec<u8> {
+    let tiles_x = w.div_ceil(16);
+    let tiles_y = h.div_ceil(16);
+    let n_tiles = tiles_x * tiles_y;
+    let data_len = n_tiles * 256;
+    let mut out = b"II*\0".to_vec();
+    let data_at = 8u32;
+    let offsets_at = data_at + data_len;
+    let counts_at = offsets_at + 4 * n_tiles;
+    let ifd_at = counts_at + 4 * n_tiles;
+    out.extend_from_slice(&ifd_at.to_le_bytes());
+    out.extend(std::iter::repeat_n(0u8, data_len as usize));
+    for k in 0..n_tiles {
+        out.extend_from_slice(&(data_at + 256 * k).to_le_bytes());
+    }
+    for _ in 0..n_tiles {
+        out.extend_from_slice(&256u32.to_le_bytes());
+    }
+    let entries: [(u16, u16, u32, u32); 9] = [
+        (256, 4, 1, w),
+        (257, 4, 1, h),
+        (258, 3, 1, 8),
+        (259, 3, 1, 1),
+        (262, 3, 1, 1),
+        (322, 3, 1, 16),
+        (323, 3, 1, 16),
+        (324, 4, n_tiles, offsets_at),
+        (325, 4, n_tiles, counts_at),
+    ];
+    out.extend_from_slice(&(entries.len() as u16).to_le_bytes());
+    for (tag, typ, count, value) in entries {
+        out.extend_from_slice(&tag.to_le_bytes());
+        out.extend_from_slice(&typ.to_le_bytes());
+        out.extend_from_slice(&count.to_le_bytes());
+        if typ == 3 && count == 1 {
+            out.extend_from_slice(&(value as u16).to_le_bytes());
+            out.extend_from_slice(&[0, 0]);
+        } else {
+            out.extend_from_slice(&value.to_le_bytes());
+        }
+    }
+    out.extend_from_slice(&0u32.to_le_bytes());
+    out
+}
+
+#[test]
+fn tiled_tiff_under_a_plates_sidecar_is_refused() {
+    let (d, _) = plate();
+    std::fs::write(d.path().join("base.tif"), tiled_tiff(64, 48)).unwrap();
+    refused(
+        &run(
+            d.path(),
+            &[
+                "reconstruct",
+                "base.tif",
+                "--distance-mm",
+                "5",
+                "--out",
+                "r.png",
+            ],
+        ),
+        "tiled",
+    );
+}
+
+#[test]
+fn a_hundred_thousand_threads_are_refused() {
+    let (d, j) = setup("plate.tif");
+    let o = run(
+        d.path(),
+        &["run", "-q", "--threads", "100000", j.to_str().unwrap()],
+    );
+    let e = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(2), "{e}");
+    assert!(e.contains("at most"), "{e}");
+}
+
+#[test]
+fn one_pixel_fields_are_refused() {
+    let d = tempfile::tempdir().unwrap();
+    std::fs::write(d.path().join("pts.csv"), POINTS_CSV).unwrap();
+    let j = d.path().join("job.toml");
+    let text = job("plate.tif", "field_px = [1, 1]", "pts.csv")
+        .replace("width_px = 64", "width_px = 200")
+        .replace("height_px = 48", "height_px = 200");
+    std::fs::write(&j, text).unwrap();
+    refused(
+        &run(d.path(), &["run", "-q", j.to_str().unwrap()]),
+        "40000 field files",
+    );
+    assert_eq!(std::fs::read_dir(d.path()).unwrap().count(), 2);
+}
+
+/// An emitter far to the side of a small plate: its waves reach the plate's plane only at angles
+/// beyond the half-angle asin(lambda / 2p) the 2 um pitch holds (9.1 deg at 633 nm; the point is
+/// at 45 deg and more from every pixel), so its support misses every pixel.
+#[test]
+fn an_emitter_that_misses_the_plate_is_counted_and_a_blank_plate_refused() {
+    let d = tempfile::tempdir().unwrap();
+    std::fs::write(
+        d.path().join("pts.csv"),
+        "x_mm,y_mm,z_mm,amplitude,phase_rad\n0,0,5,1,0\n8,0,1,1,0\n",
+    )
+    .unwrap();
+    let j = d.path().join("job.toml");
+    std::fs::write(&j, job("plate.tif", "", "pts.csv")).unwrap();
+    let o = run(d.path(), &["plan", j.to_str().unwrap()]);
+    let out = String::from_utf8_lossy(&o.stdout);
+    assert!(out.contains("warning: 1 emitter(s) lie outside"), "{out}");
+    std::fs::write(
+        d.path().join("pts.csv"),
+        "x_mm,y_mm,z_mm,amplitude,phase_rad\n8,0,1,1,0\n",
+    )
+    .unwrap();
+    refused(
+        &run(d.path(), &["run", "-q", j.to_str().unwrap()]),
+        "none of the 1 emitters",
+    );
+    assert!(!d.path().join("plate.tif").exists());
+}
