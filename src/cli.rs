@@ -106,6 +106,9 @@ pub enum Command {
         /// OUT-osK.png, with the target's flat top measured between the designed samples.
         #[arg(long, value_name = "K", value_parser = clap::value_parser!(u8).range(2..=8))]
         oversample: Option<u8>,
+        /// Skip checking the TIFF against its sidecar's SHA-256 (which reads the whole plate).
+        #[arg(long)]
+        no_verify: bool,
     },
     /// Writes a job's emitters (position, amplitude, phase, normal, channel) as a PLY point cloud.
     Sample {

@@ -113,6 +113,7 @@ fn main() -> ExitCode {
             target,
             peaks,
             oversample,
+            no_verify,
         } => {
             let out = out.unwrap_or_else(|| {
                 let stem = plate
@@ -134,6 +135,7 @@ fn main() -> ExitCode {
                 target,
                 peaks,
                 oversample: oversample.map(usize::from),
+                verify: !no_verify,
             };
             match replay::reconstruct(&req) {
                 Ok(files) => {

@@ -382,3 +382,67 @@ fn an_emitter_that_misses_the_plate_is_counted_and_a_blank_plate_refused() {
     );
     assert!(!d.path().join("plate.tif").exists());
 }
+
+#[test]
+fn a_plate_and_a_sidecar_of_different_runs_are_refused() {
+    let (d, j) = plate();
+    // A second run of another scene into another name, its TIFF then put under the first name
+    // (as a stop between the two renames of a finish would leave it).
+    std::fs::write(
+        d.path().join("pts2.csv"),
+        "x_mm,y_mm,z_mm,amplitude,phase_rad\n0.01,0,5,1,0\n",
+    )
+    .unwrap();
+    std::fs::write(&j, job("other.tif", "", "pts2.csv")).unwrap();
+    let o = run(d.path(), &["run", "-q", j.to_str().unwrap()]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    std::fs::copy(d.path().join("other.tif"), d.path().join("base.tif")).unwrap();
+    refused(
+        &run(
+            d.path(),
+            &[
+                "reconstruct",
+                "base.tif",
+                "--distance-mm",
+                "5",
+                "--out",
+                "r.png",
+            ],
+        ),
+        "not the TIFF its sidecar",
+    );
+    let o = run(
+        d.path(),
+        &[
+            "reconstruct",
+            "base.tif",
+            "--distance-mm",
+            "5",
+            "--out",
+            "r.png",
+            "--no-verify",
+        ],
+    );
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+}
+
+#[test]
+fn a_failed_sidecar_keeps_the_previous_plate_and_sidecar() {
+    let (d, j) = plate();
+    let (tif, side) = (
+        std::fs::read(d.path().join("base.tif")).unwrap(),
+        std::fs::read(d.path().join("base.json")).unwrap(),
+    );
+    // The next run's sidecar cannot be written: its partial name is taken by a folder.
+    std::fs::create_dir(d.path().join("base.json.partial")).unwrap();
+    std::fs::write(
+        d.path().join("pts.csv"),
+        "x_mm,y_mm,z_mm,amplitude,phase_rad\n0.02,0,5,1,0\n",
+    )
+    .unwrap();
+    let o = run(d.path(), &["run", "-q", j.to_str().unwrap()]);
+    assert!(!o.status.success());
+    assert_eq!(std::fs::read(d.path().join("base.tif")).unwrap(), tif);
+    assert_eq!(std::fs::read(d.path().join("base.json")).unwrap(), side);
+    assert!(!d.path().join("base.tif.partial").exists());
+}

@@ -278,11 +278,13 @@ fn blank_plate_zero_order_on_the_axis_sample() {
         enc.write_image::<tiff::encoder::colortype::Gray8>(w, h, &vec![0u8; (w * h) as usize])
             .unwrap();
         let out = d.path().join("r.png");
+        // The blanked TIFF is no longer the one its sidecar hashed: replay it anyway.
         run(&[
             "reconstruct",
             tif.to_str().unwrap(),
             "--focal-mm",
             "200",
+            "--no-verify",
             "--out",
             out.to_str().unwrap(),
         ]);

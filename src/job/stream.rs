@@ -221,13 +221,28 @@ pub(super) fn finish_plate(
     writer: StripWriter,
     updates: u64,
 ) -> Result<RunSummary> {
-    let finished = writer.finish()?;
+    // The TIFF stays under its partial name while the sidecar is written beside it under a
+    // partial name too; then both are renamed, TIFF first. A failure before the renames keeps
+    // the previous plate and sidecar of these names; a stop between the two renames leaves a new
+    // TIFF with the old sidecar, which `reconstruct` refuses (the sidecar's SHA-256 of the TIFF).
+    let pending = writer.finish_unpublished()?;
+    let finished = pending.tiff.clone();
     let sidecar = sidecar_path(&spec.output);
     let side = record::sidecar(spec, run_record(prep, Written::Tiff(&finished), updates));
-    if let Err(e) = side.write(&sidecar) {
-        let _ = std::fs::remove_file(&finished.path);
+    let side_partial = crate::output::tiff::partial_path(&sidecar);
+    if let Err(e) = side.write(&side_partial) {
+        pending.discard();
+        let _ = std::fs::remove_file(&side_partial);
         return Err(e);
     }
+    let finished = match pending.publish() {
+        Ok(f) => f,
+        Err(e) => {
+            let _ = std::fs::remove_file(&side_partial);
+            return Err(e);
+        }
+    };
+    std::fs::rename(&side_partial, &sidecar).map_err(|e| Error::io(&sidecar, e))?;
     Ok(RunSummary {
         tiff: finished.path,
         sidecar,

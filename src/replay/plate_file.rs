@@ -28,6 +28,8 @@ pub struct PlateFile {
     /// propagate by +D and draw the plane as the target was given, instead of the virtual image
     /// at -D seen by the viewer.
     pub real_image: bool,
+    /// Size and SHA-256 of the TIFF as its sidecar records them (single-TIFF plates).
+    pub recorded: Option<(u64, String)>,
 }
 
 /// One field file of a plate written as fields, from the fields manifest.
@@ -88,6 +90,27 @@ pub fn sidecar_of(tif: &Path) -> PathBuf {
 }
 
 impl PlateFile {
+    /// Checks that the TIFF is the one its sidecar describes (size and SHA-256), so a plate and
+    /// a sidecar of different runs are never replayed together. Reads the whole file.
+    pub fn verify(&self) -> Result<()> {
+        let Some((bytes, sha)) = &self.recorded else {
+            return Ok(());
+        };
+        let (n, h) = crate::output::tiff::hash_path(&self.tif)?;
+        if n != *bytes || h != *sha {
+            return Err(Error::input(
+                &self.tif,
+                format!(
+                    "is not the TIFF its sidecar {} describes (SHA-256 {}..., sidecar says {}...): a plate and a sidecar of different runs; run the job again (or --no-verify to replay anyway)",
+                    sidecar_of(&self.tif).display(),
+                    &h[..12.min(h.len())],
+                    &sha[..12.min(sha.len())]
+                ),
+            ));
+        }
+        Ok(())
+    }
+
     /// Opens a plate: reads its sidecar (`NAME.json` beside `NAME.tif`) and checks the TIFF's size.
     pub fn open(tif: &Path) -> Result<PlateFile> {
         // A plate written as fields may be named by its manifest NAME.fields.json.
@@ -233,6 +256,10 @@ impl PlateFile {
             encoding,
             fields,
             real_image,
+            recorded: match &side.output {
+                OutputFiles::Tiff { bytes, sha256, .. } => Some((*bytes, sha256.clone())),
+                _ => None,
+            },
         })
     }
 
@@ -357,12 +384,14 @@ fn check_tiff_size(tif: &Path, size: [u32; 2], bits: u8) -> Result<()> {
     }
     match d.colortype() {
         Ok(tiff::ColorType::Gray(b)) if b == bits => {}
-        Ok(other) => return Err(Error::input(
-            tif,
-            format!(
+        Ok(other) => {
+            return Err(Error::input(
+                tif,
+                format!(
                 "holds {other:?} samples; its sidecar says one grey sample of {bits} bit per pixel"
             ),
-        )),
+            ))
+        }
         Err(e) => return Err(Error::input(tif, format!("unreadable sample layout: {e}"))),
     }
     Ok(())

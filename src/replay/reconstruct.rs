@@ -33,6 +33,8 @@ pub struct ReconstructRequest {
     pub peaks: usize,
     /// Fourier replays: also replay on a lattice this many times finer (zero padding).
     pub oversample: Option<usize>,
+    /// Check the TIFF against its sidecar's SHA-256 before replaying (reads the whole file).
+    pub verify: bool,
 }
 
 /// Runs a reconstruction: writes one PNG per depth and one JSON of metrics (`OUT.json`).
@@ -40,6 +42,9 @@ pub struct ReconstructRequest {
 pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
     let pf = PlateFile::open(&req.tif)?;
     check_outputs(req, &pf)?;
+    if req.verify {
+        pf.verify()?;
+    }
     let win = req.window.unwrap_or(Window {
         x: 0,
         y: 0,

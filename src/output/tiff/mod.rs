@@ -29,7 +29,9 @@ mod ifd;
 mod writer;
 
 use ifd::*;
-pub use writer::{hash_path, partial_path, FinishedTiff, StripWriter, WriterState};
+pub use writer::{
+    hash_path, partial_path, FinishedTiff, StripWriter, UnpublishedTiff, WriterState,
+};
 
 /// Capacity of the buffered writer in front of the file.
 const WRITE_BUFFER_BYTES: usize = 4 << 20;

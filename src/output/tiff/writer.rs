@@ -56,6 +56,28 @@ pub struct FinishedTiff {
     pub strips: u32,
 }
 
+/// A complete TIFF still under its `.partial` name (see [`StripWriter::finish_unpublished`]).
+#[derive(Debug)]
+pub struct UnpublishedTiff {
+    partial: PathBuf,
+    /// What the file will be once published (its final path, size and hash).
+    pub tiff: FinishedTiff,
+}
+
+impl UnpublishedTiff {
+    /// Renames the file to its final name and syncs the folder.
+    pub fn publish(self) -> Result<FinishedTiff> {
+        fs::rename(&self.partial, &self.tiff.path).map_err(|e| Error::io(&self.tiff.path, e))?;
+        sync_parent_dir(&self.tiff.path)?;
+        Ok(self.tiff)
+    }
+
+    /// Removes the file (the previous plate of the final name, if any, stays).
+    pub fn discard(self) {
+        let _ = fs::remove_file(&self.partial);
+    }
+}
+
 /// Streams rows into a strip TIFF. See the module documentation for the file's lifetime.
 pub struct StripWriter {
     final_path: PathBuf,
@@ -319,7 +341,15 @@ impl StripWriter {
     ///
     /// Fails if fewer than `height` rows were written. On failure the writer is dropped: the
     /// `.partial` file is removed unless a checkpoint was taken (see the module documentation).
-    pub fn finish(mut self) -> Result<FinishedTiff> {
+    pub fn finish(self) -> Result<FinishedTiff> {
+        self.finish_unpublished()?.publish()
+    }
+
+    /// As [`Self::finish`], but the complete, synced and hashed file stays under its
+    /// `.partial` name until [`UnpublishedTiff::publish`]: a caller that writes a companion file
+    /// (the sidecar) first can publish both together, so a failure in between never removes the
+    /// previous plate of that name.
+    pub fn finish_unpublished(mut self) -> Result<UnpublishedTiff> {
         if self.rows_written != self.layout.height {
             return Err(Error::job(
                 &self.final_path,
@@ -372,16 +402,18 @@ impl StripWriter {
             return Err(Error::io(&self.partial, io::Error::other(message)));
         }
         drop(file);
-
-        fs::rename(&self.partial, &self.final_path).map_err(|e| Error::io(&self.final_path, e))?;
+        // The file is whole: from here on it is the caller's (publish or discard), not the
+        // writer's to remove on drop.
         self.closed = true;
-        sync_parent_dir(&self.final_path)?;
-        Ok(FinishedTiff {
-            path: self.final_path.clone(),
-            bytes,
-            sha256,
-            bigtiff,
-            strips: strips as u32,
+        Ok(UnpublishedTiff {
+            partial: self.partial.clone(),
+            tiff: FinishedTiff {
+                path: self.final_path.clone(),
+                bytes,
+                sha256,
+                bigtiff,
+                strips: strips as u32,
+            },
         })
     }
 
