@@ -146,6 +146,39 @@ fn sigint_stops_cleanly_and_resumes_byte_identical() {
     assert!(std::fs::read(d.path().join("out/plate.tif")).unwrap() == reference);
 }
 
+/// An input edited between an interruption and the resume (here the points file) is found by
+/// its SHA-256 recorded in the journal: the resume refuses, naming the file, instead of mixing
+/// rows of two scenes; `--restart` then computes the new scene from the start.
+#[test]
+fn resume_refuses_an_edited_points_file() {
+    let enc = "kind = \"binary-amplitude\"";
+    let d = tempfile::tempdir().unwrap();
+    let j = job(d.path(), enc);
+    let o = interrupt_run(d.path(), &j);
+    assert_eq!(
+        o.status.code(),
+        Some(130),
+        "{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    let pts = d.path().join("pts.ply");
+    let mut bytes = std::fs::read(&pts).unwrap();
+    // One digit of the last vertex changed (the file stays a valid PLY).
+    let k = bytes
+        .iter()
+        .rposition(|b| (b'1'..=b'8').contains(b))
+        .unwrap();
+    bytes[k] += 1;
+    std::fs::write(&pts, bytes).unwrap();
+    let o = run(&["run", "-q", j.to_str().unwrap()]);
+    let e = String::from_utf8_lossy(&o.stderr);
+    assert!(!o.status.success(), "{e}");
+    assert!(e.contains("pts.ply") && e.contains("changed"), "{e}");
+    assert!(!d.path().join("out/plate.tif").exists());
+    let o = run(&["run", "-q", "--restart", j.to_str().unwrap()]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+}
+
 /// 1, 2 and 4 threads, and shard splits 1/1, 2/2, 3/3 and 5/5 (assembled), all byte-identical.
 #[test]
 fn threads_and_shards_are_byte_identical() {

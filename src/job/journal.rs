@@ -36,6 +36,34 @@ pub struct Journal {
     /// Field runs: fields done and the current row's writer checkpoints.
     #[serde(default)]
     pub fields: Option<super::fields::FieldsState>,
+    /// SHA-256 of every input file the job names (points, mesh, target images, calibration), as
+    /// read when the run started: a resume refuses when one changed.
+    #[serde(default)]
+    pub inputs: Vec<InputHash>,
+}
+
+/// An input file and the SHA-256 of its bytes.
+#[derive(serde::Serialize, serde::Deserialize, Clone, Debug, PartialEq, Eq)]
+pub struct InputHash {
+    /// The path as the job resolves it.
+    pub file: String,
+    /// Lowercase hex.
+    pub sha256: String,
+}
+
+/// The hashes of a job's input files (the job file itself is hashed in `JobSpec`).
+pub fn input_hashes(spec: &super::spec::JobSpec) -> crate::error::Result<Vec<InputHash>> {
+    spec.inputs()
+        .into_iter()
+        .skip(1)
+        .map(|p| {
+            let (_, sha256) = crate::output::tiff::hash_path(&p)?;
+            Ok(InputHash {
+                file: p.display().to_string(),
+                sha256,
+            })
+        })
+        .collect()
 }
 
 /// Journal path for an output (TIFF or part) path.

@@ -14,6 +14,7 @@ pub(super) fn find_resume(
     journal: &Path,
     shard: Option<[u32; 2]>,
     restart: bool,
+    inputs: &[super::journal::InputHash],
 ) -> Result<Option<Journal>> {
     if restart {
         // Also when the journal itself is damaged: --restart is the way out.
@@ -33,6 +34,18 @@ pub(super) fn find_resume(
                 changed_key(&j.job_toml, &spec.text)
             ),
         ));
+    }
+    if !j.inputs.is_empty() {
+        if let Some(old) = j.inputs.iter().find(|h| !inputs.contains(h)) {
+            return Err(Error::job(
+                &spec.path,
+                format!(
+                    "input {} changed since the interrupted run in {}; run again with --restart to discard the partial work",
+                    old.file,
+                    journal.display()
+                ),
+            ));
+        }
     }
     if j.shard != shard {
         return Err(Error::job(

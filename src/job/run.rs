@@ -123,7 +123,8 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
         (Some(g), Some(sh)) => partial_path(&part_path(&g.manifest_path(), sh)),
     };
     let journal = journal_path(&data_path);
-    let resume = find_resume(spec, &data_path, &journal, shard_tag, opts.restart)?;
+    let inputs = super::journal::input_hashes(spec)?;
+    let resume = find_resume(spec, &data_path, &journal, shard_tag, opts.restart, &inputs)?;
     let first_row = first_unit * prep.unit_rows;
     let end_row = (end_unit * prep.unit_rows).min(spec.plate.height);
     let (rows_done, updates0) = resume
@@ -184,6 +185,7 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
         rows: (first_row + rows_done, end_row),
         rows_before: rows_done,
         updates_before: updates0,
+        inputs,
     };
     let streamed = stream_rows(&ctx, &mut sink, opts);
     let updates = match streamed {

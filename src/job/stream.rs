@@ -76,6 +76,8 @@ pub(super) struct StreamCtx<'a> {
     /// Rows [start, end) still to compute.
     pub rows: (u32, u32),
     pub rows_before: u32,
+    /// The inputs' hashes, for the journal.
+    pub inputs: Vec<super::journal::InputHash>,
     pub updates_before: u64,
 }
 
@@ -191,6 +193,7 @@ pub(super) fn stream_rows(ctx: &StreamCtx, sink: &mut Sink, opts: &RunOptions) -
                 updates,
                 writer,
                 fields,
+                inputs: ctx.inputs.clone(),
             }
             .write(ctx.journal)?;
             last_checkpoint = Instant::now();
