@@ -446,3 +446,59 @@ fn a_failed_sidecar_keeps_the_previous_plate_and_sidecar() {
     assert_eq!(std::fs::read(d.path().join("base.json")).unwrap(), side);
     assert!(!d.path().join("base.tif.partial").exists());
 }
+
+#[test]
+fn an_implausible_wavelength_is_refused_with_a_readable_number() {
+    let (d, j) = setup("plate.tif");
+    let text = std::fs::read_to_string(&j)
+        .unwrap()
+        .replace("wavelength_nm = 633", "wavelength_nm = 1e300");
+    std::fs::write(&j, text).unwrap();
+    refused(&run(d.path(), &["plan", j.to_str().unwrap()]), "1e300");
+}
+
+#[test]
+fn a_damaged_shard_part_is_refused_at_assemble() {
+    let (d, j) = setup("plate.tif");
+    for k in ["1/2", "2/2"] {
+        let o = run(d.path(), &["run", "-q", "--shard", k, j.to_str().unwrap()]);
+        assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    }
+    let part = d.path().join("plate.tif.part-1-of-2");
+    let mut bytes = std::fs::read(&part).unwrap();
+    bytes[0] ^= 0xff;
+    std::fs::write(&part, bytes).unwrap();
+    refused(
+        &run(d.path(), &["assemble", j.to_str().unwrap()]),
+        "SHA-256 differs",
+    );
+    assert!(!d.path().join("plate.tif").exists());
+}
+
+#[test]
+fn a_file_that_is_not_its_format_is_refused_before_it_is_read() {
+    let d = tempfile::tempdir().unwrap();
+    // An image renamed as a mesh, and a points file of zeros (as a sparse file reads).
+    std::fs::write(
+        d.path().join("model.glb"),
+        b"\x89PNG\r\n\x1a\nrest of an image",
+    )
+    .unwrap();
+    std::fs::write(d.path().join("zeros.ply"), vec![0u8; 1 << 16]).unwrap();
+    let j = d.path().join("mesh.toml");
+    std::fs::write(
+        &j,
+        job("plate.tif", "", "pts.csv").replace("points = \"pts.csv\"", "mesh = \"model.glb\""),
+    )
+    .unwrap();
+    refused(
+        &run(d.path(), &["plan", j.to_str().unwrap()]),
+        "not a glTF file",
+    );
+    let j = d.path().join("pts.toml");
+    std::fs::write(&j, job("plate.tif", "", "zeros.ply")).unwrap();
+    refused(
+        &run(d.path(), &["plan", j.to_str().unwrap()]),
+        "not a PLY file",
+    );
+}

@@ -224,6 +224,7 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
             let sh = opts.shard.expect("part sink only for shards");
             let final_part = part_path(&spec.output, sh);
             std::fs::rename(&path, &final_part).map_err(|e| Error::io(&final_part, e))?;
+            let (_, sha) = crate::output::tiff::hash_path(&final_part)?;
             write_part_record(
                 spec,
                 sh,
@@ -232,6 +233,7 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
                 updates,
                 row_bytes,
                 Vec::new(),
+                Some(sha),
             )?;
             let _ = std::fs::remove_file(&journal);
             Ok(RunSummary {
@@ -258,6 +260,7 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
                         updates,
                         row_bytes,
                         entries,
+                        None,
                     )?;
                     let _ = std::fs::remove_file(&journal);
                     Ok(RunSummary {

@@ -134,6 +134,7 @@ pub(super) fn part_meta_path(part: &Path) -> PathBuf {
 }
 
 /// Writes a finished shard's record: its rows, work and (field runs) the fields it wrote.
+#[allow(clippy::too_many_arguments)]
 pub(super) fn write_part_record(
     spec: &JobSpec,
     sh: Shard,
@@ -142,8 +143,10 @@ pub(super) fn write_part_record(
     updates: u64,
     row_bytes: usize,
     fields: Vec<FieldEntry>,
+    sha256: Option<String>,
 ) -> Result<()> {
     let meta = PartMeta {
+        sha256,
         format: FORMAT.into(),
         job_sha256: spec.sha256.clone(),
         shard: [sh.index, sh.count],
@@ -167,6 +170,9 @@ struct PartMeta {
     /// Field runs: the fields this shard wrote.
     #[serde(default)]
     fields: Vec<FieldEntry>,
+    /// SHA-256 of the part file (single-TIFF runs), checked by `assemble`.
+    #[serde(default)]
+    sha256: Option<String>,
 }
 
 /// Streams the finished shards' part files into the plate's TIFF and writes its sidecar, then
@@ -213,6 +219,19 @@ pub fn assemble(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
                     (m.rows[1] - m.rows[0]) as u64 * row_bytes
                 ),
             ));
+        }
+        if let Some(want) = &m.sha256 {
+            let (_, got) = crate::output::tiff::hash_path(&part)?;
+            if &got != want {
+                return Err(Error::input(
+                    &part,
+                    format!(
+                        "is not the part its record {} describes (SHA-256 differs): damaged or swapped; run shard {}/{count} again",
+                        mp.display(),
+                        k + 1
+                    ),
+                ));
+            }
         }
         next_row = m.rows[1];
         metas.push((part, mp, m));

@@ -89,7 +89,10 @@ pub fn read_points(path: &Path) -> Result<Vec<PointRecord>> {
 
 /// Reads a PLY point cloud from a file.
 pub fn read_ply(path: &Path) -> Result<Vec<PointRecord>> {
-    parse_ply(&read_file(path)?, path)
+    parse_ply(
+        &crate::scene::text::read_checked(path, crate::scene::text::Expect::Ply)?,
+        path,
+    )
 }
 
 /// Reads a PLY point cloud from `reader`; `path` only names the source in error messages.
@@ -99,16 +102,15 @@ pub fn read_ply_from<R: Read>(reader: R, path: &Path) -> Result<Vec<PointRecord>
 
 /// Reads a CSV point cloud from a file.
 pub fn read_csv(path: &Path) -> Result<Vec<PointRecord>> {
-    parse_csv(&read_file(path)?, path)
+    parse_csv(
+        &crate::scene::text::read_checked(path, crate::scene::text::Expect::Text)?,
+        path,
+    )
 }
 
 /// Reads a CSV point cloud from `reader`; `path` only names the source in error messages.
 pub fn read_csv_from<R: Read>(reader: R, path: &Path) -> Result<Vec<PointRecord>> {
     parse_csv(&read_all(reader, path)?, path)
-}
-
-fn read_file(path: &Path) -> Result<Vec<u8>> {
-    std::fs::read(path).map_err(|e| Error::io(path, e))
 }
 
 fn read_all<R: Read>(mut reader: R, path: &Path) -> Result<Vec<u8>> {

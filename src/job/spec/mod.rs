@@ -326,10 +326,20 @@ fn parse_plate(h: &RawHologram, bad: &dyn Fn(String) -> Error) -> Result<Plate> 
         if !(finite("[hologram] pitch_um", p)? > 0.0) {
             return Err(bad(format!("[hologram] pitch_um = {p} must be > 0")));
         }
+        if !(0.01..=10_000.0).contains(&p) {
+            return Err(bad(format!(
+                "[hologram] pitch_um = {p} is outside 0.01 ..= 10000 um (a writer's or panel's pixel)"
+            )));
+        }
     }
     let wl = finite("[hologram] wavelength_nm", h.wavelength_nm)?;
     if wl <= 0.0 {
         return Err(bad(format!("[hologram] wavelength_nm = {wl} must be > 0")));
+    }
+    if !(10.0..=100_000.0).contains(&wl) {
+        return Err(bad(format!(
+            "[hologram] wavelength_nm = {wl:e} is outside 10 ..= 100000 nm (not a wavelength light holograms are made with)"
+        )));
     }
     Ok(Plate {
         width: h.width_px as u32,

@@ -476,8 +476,15 @@ impl MeshFormat {
 /// `.ply` (case-insensitive). Positions are in the file's own unit
 /// ([`MeshFormat::default_unit_mm`]).
 pub fn load_mesh(path: &Path) -> Result<Mesh> {
+    use crate::scene::text::{read_checked, Expect};
     let format = mesh_format(path)?;
-    let data = std::fs::read(path).map_err(|e| Error::io(path, e))?;
+    let expect = match format {
+        MeshFormat::Gltf => Expect::Gltf,
+        MeshFormat::Ply => Expect::Ply,
+        MeshFormat::Obj => Expect::Text,
+        MeshFormat::Stl => Expect::Any,
+    };
+    let data = read_checked(path, expect)?;
     parse_mesh(&data, format, path)
 }
 
