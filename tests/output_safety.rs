@@ -192,12 +192,12 @@ fn a_second_run_on_a_locked_output_is_refused_at_once() {
     assert!(!d.path().join("plate.tif.lock").exists());
 }
 
-#[test]
-fn sidecar_with_zero_pitch_is_refused() {
+/// A plate whose sidecar has `key` of `table` set to `value`: `reconstruct` refuses, naming it.
+fn edited_sidecar_is_refused(table: &str, key: &str, value: serde_json::Value) {
     let (d, _) = plate();
     let p = d.path().join("base.json");
     let mut v: serde_json::Value = serde_json::from_slice(&std::fs::read(&p).unwrap()).unwrap();
-    v["hologram"]["pitch_um"] = serde_json::json!([0.0, 2.0]);
+    v[table][key] = value;
     std::fs::write(&p, serde_json::to_vec(&v).unwrap()).unwrap();
     refused(
         &run(
@@ -211,31 +211,18 @@ fn sidecar_with_zero_pitch_is_refused() {
                 "r.png",
             ],
         ),
-        "pitch_um",
+        key,
     );
 }
 
 #[test]
+fn sidecar_with_zero_pitch_is_refused() {
+    edited_sidecar_is_refused("hologram", "pitch_um", serde_json::json!([0.0, 2.0]));
+}
+
+#[test]
 fn sidecar_with_negative_wavelength_is_refused() {
-    let (d, _) = plate();
-    let p = d.path().join("base.json");
-    let mut v: serde_json::Value = serde_json::from_slice(&std::fs::read(&p).unwrap()).unwrap();
-    v["hologram"]["wavelength_nm"] = serde_json::json!(-633.0);
-    std::fs::write(&p, serde_json::to_vec(&v).unwrap()).unwrap();
-    refused(
-        &run(
-            d.path(),
-            &[
-                "reconstruct",
-                "base.tif",
-                "--distance-mm",
-                "5",
-                "--out",
-                "r.png",
-            ],
-        ),
-        "wavelength_nm",
-    );
+    edited_sidecar_is_refused("hologram", "wavelength_nm", serde_json::json!(-633.0));
 }
 
 #[test]
