@@ -80,35 +80,56 @@ pub fn lock_path(out: &Path) -> PathBuf {
 }
 
 /// Takes the exclusive lock of `out`, or refuses at once when another process holds it.
+///
+/// The holder removes the lock file when it is done; a process that opened the file just before
+/// that removal may then lock a file that no longer has the name. So after locking, the name is
+/// checked to still lead to the locked file (same device and inode), and the lock is taken again
+/// otherwise.
 pub fn lock_output(out: &Path) -> Result<OutputLock> {
     let path = lock_path(out);
-    let file = OpenOptions::new()
-        .create(true)
-        .truncate(false)
-        .write(true)
-        .open(&path)
-        .map_err(|e| Error::io(&path, e))?;
-    #[cfg(unix)]
-    {
-        use std::os::unix::io::AsRawFd;
-        // SAFETY: `file` is an open descriptor owned by this function; flock only sets an
-        // advisory lock on it.
-        let r = unsafe { libc::flock(file.as_raw_fd(), libc::LOCK_EX | libc::LOCK_NB) };
-        if r != 0 {
-            let e = std::io::Error::last_os_error();
-            if e.raw_os_error() == Some(libc::EWOULDBLOCK) {
-                return Err(Error::job(
-                    out,
-                    format!(
-                        "another run is writing this output now (it holds {}); wait for it or name another output",
-                        path.display()
-                    ),
-                ));
+    for _ in 0..16 {
+        let file = OpenOptions::new()
+            .create(true)
+            .truncate(false)
+            .write(true)
+            .open(&path)
+            .map_err(|e| Error::io(&path, e))?;
+        #[cfg(unix)]
+        {
+            use std::os::unix::fs::MetadataExt;
+            use std::os::unix::io::AsRawFd;
+            // SAFETY: `file` is an open descriptor owned by this function; flock only sets an
+            // advisory lock on it.
+            let r = unsafe { libc::flock(file.as_raw_fd(), libc::LOCK_EX | libc::LOCK_NB) };
+            if r != 0 {
+                let e = std::io::Error::last_os_error();
+                if e.raw_os_error() == Some(libc::EWOULDBLOCK) {
+                    return Err(Error::job(
+                        out,
+                        format!(
+                            "another run is writing this output now (it holds {}); wait for it or name another output",
+                            path.display()
+                        ),
+                    ));
+                }
+                return Err(Error::io(&path, e));
             }
-            return Err(Error::io(&path, e));
+            let held = file.metadata().map_err(|e| Error::io(&path, e))?;
+            match std::fs::metadata(&path) {
+                Ok(named) if named.dev() == held.dev() && named.ino() == held.ino() => {}
+                // The previous holder removed the name meanwhile: lock the new file instead.
+                _ => continue,
+            }
         }
+        return Ok(OutputLock { path, _file: file });
     }
-    Ok(OutputLock { path, _file: file })
+    Err(Error::job(
+        out,
+        format!(
+            "could not take the lock {} (it keeps being replaced)",
+            path.display()
+        ),
+    ))
 }
 
 impl Drop for OutputLock {
