@@ -489,3 +489,13 @@ fn a_file_that_is_not_its_format_is_refused_before_it_is_read() {
         "not a PLY file",
     );
 }
+
+#[test]
+fn an_output_named_like_its_own_sidecar_is_refused() {
+    let (d, j) = setup("plate.json");
+    refused(
+        &run(d.path(), &["run", "-q", j.to_str().unwrap()]),
+        "its own sidecar",
+    );
+    assert!(!d.path().join("plate.json").exists());
+}

@@ -179,6 +179,27 @@ fn resume_refuses_an_edited_points_file() {
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
 }
 
+/// The same job resumed through another spelling of its path (`dir/./job.toml`): the inputs are
+/// compared by content, so the saved work is used and the plate is byte-identical.
+#[test]
+fn resume_accepts_another_spelling_of_the_job_path() {
+    let enc = "kind = \"binary-amplitude\"";
+    let reference = clean_plate(enc);
+    let d = tempfile::tempdir().unwrap();
+    let j = job(d.path(), enc);
+    let o = interrupt_run(d.path(), &j);
+    assert_eq!(
+        o.status.code(),
+        Some(130),
+        "{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    let other = d.path().join(".").join("job.toml");
+    let o = run(&["run", "-q", other.to_str().unwrap()]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    assert!(std::fs::read(d.path().join("out/plate.tif")).unwrap() == reference);
+}
+
 /// 1, 2 and 4 threads, and shard splits 1/1, 2/2, 3/3 and 5/5 (assembled), all byte-identical.
 #[test]
 fn threads_and_shards_are_byte_identical() {

@@ -125,7 +125,7 @@ pub(super) fn prepare(spec: &JobSpec, mode: ProgressMode) -> Result<Prepared> {
         Method::PointSum => {
             let (sum, choice, _) = point_sum_and_path(spec)?;
             let n = sum.emitters().len();
-            if n > 0 && sum.unreachable() == n {
+            if n > 0 && sum.unreachable() == n && !(0..n).any(|j| sum.reaches_plate_exactly(j)) {
                 return Err(Error::job(
                     &spec.path,
                     format!("none of the {n} emitters reaches the plate (every support misses it: the objects lie outside the zone the pitch can reproduce); the plate would be blank"),

@@ -36,7 +36,20 @@ pub(super) fn find_resume(
         ));
     }
     if !j.inputs.is_empty() {
-        if let Some(old) = j.inputs.iter().find(|h| !inputs.contains(h)) {
+        // By position (the job file is unchanged, so its inputs are the same list), by content:
+        // the same job started by another spelling of its path resumes.
+        let changed = j.inputs.len() != inputs.len()
+            || j.inputs
+                .iter()
+                .zip(inputs)
+                .any(|(a, b)| a.sha256 != b.sha256);
+        if let Some(old) = changed.then(|| {
+            j.inputs
+                .iter()
+                .zip(inputs)
+                .find(|(a, b)| a.sha256 != b.sha256)
+                .map_or(&j.inputs[0], |(a, _)| a)
+        }) {
             return Err(Error::job(
                 &spec.path,
                 format!(

@@ -73,6 +73,15 @@ pub(super) fn guard_outputs(
     shard: Option<Shard>,
 ) -> Result<super::guard::OutputLock> {
     let inputs = spec.inputs();
+    if super::prepare::sidecar_path(&spec.output) == spec.output {
+        return Err(Error::job(
+            &spec.path,
+            format!(
+                "[output] path = \"{}\" would be its own sidecar (NAME.json): name the plate NAME.tif",
+                spec.output.display()
+            ),
+        ));
+    }
     super::guard::check_output(&spec.output, "output plate", &inputs)?;
     super::guard::check_output(
         &super::prepare::sidecar_path(&spec.output),

@@ -247,8 +247,21 @@ fn planned_outputs(req: &ReconstructRequest) -> Vec<PathBuf> {
 /// another kind (an existing image name that is not a PNG, a JSON that is a plate's sidecar), a
 /// folder or a special file.
 fn check_outputs(req: &ReconstructRequest, pf: &PlateFile) -> Result<()> {
-    let mut inputs = vec![req.tif.clone(), sidecar_of(&req.tif)];
-    let dir = req.tif.parent().map(PathBuf::from).unwrap_or_default();
+    let mut inputs = vec![
+        req.tif.clone(),
+        pf.tif.clone(),
+        sidecar_of(&req.tif),
+        sidecar_of(&pf.tif),
+    ];
+    let dir = pf.tif.parent().map(PathBuf::from).unwrap_or_default();
+    if !pf.fields.is_empty() {
+        let stem = pf
+            .tif
+            .file_stem()
+            .map(|s| s.to_string_lossy().into_owned())
+            .unwrap_or_default();
+        inputs.push(pf.tif.with_file_name(format!("{stem}.fields.json")));
+    }
     inputs.extend(pf.fields.iter().map(|f| dir.join(&f.file)));
     inputs.extend(req.target.iter().cloned());
     for out in planned_outputs(req) {

@@ -285,10 +285,10 @@ impl PointSum {
     }
 
     /// Whether emitter `j` has a support span on some row of the plate: its conservative row
-    /// range, then the spans of its rows (every row when the range has at most 512, else 512
-    /// rows evenly spread with both ends, nearest the middle first; a support that touches the
-    /// plate on fewer rows than the stride may be counted as missing it, which only affects the
-    /// count `plan` and the sidecar report).
+    /// range, then the spans of its rows (every row when the range has at most 1024; else 1024
+    /// rows evenly spread, both ends included, so a support that touches the plate on fewer rows
+    /// than the stride may be counted as missing it: the count `plan` and the sidecar report;
+    /// [`Self::reaches_plate_exactly`] checks every row).
     pub fn reaches_plate(&self, j: usize) -> bool {
         let Some((a, b)) = self.rows[j] else {
             return false;
@@ -297,18 +297,19 @@ impl PointSum {
             return false;
         }
         let n = b - a;
-        let samples = n.min(512);
-        let mid = a + n / 2;
+        let samples = n.min(1024);
         (0..samples).any(|k| {
-            // Alternate around the middle row, out to both ends.
-            let off = k.div_ceil(2) * (n - 1).max(1) / (samples - 1).max(1);
-            let row = if k % 2 == 0 {
-                mid.saturating_sub(off).max(a)
-            } else {
-                (mid + off).min(b - 1)
-            };
+            let row = a + k * (n - 1) / (samples - 1).max(1);
             self.row_span(j, row).is_some()
         })
+    }
+
+    /// As [`Self::reaches_plate`], every row of the range checked.
+    pub fn reaches_plate_exactly(&self, j: usize) -> bool {
+        match self.rows[j] {
+            Some((a, b)) => (a..b).any(|row| self.row_span(j, row).is_some()),
+            None => false,
+        }
     }
 
     fn channel_of(&self, j: usize) -> &Channel {
