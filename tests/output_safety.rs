@@ -34,6 +34,25 @@ fn setup(output: &str) -> (tempfile::TempDir, PathBuf) {
     (d, j)
 }
 
+/// `reconstruct base.tif --distance-mm 5 --out OUT` with `extra` options, in `dir`.
+fn replay_args(dir: &Path, out: &str, extra: &[&str]) -> Output {
+    let mut args = vec![
+        "reconstruct",
+        "base.tif",
+        "--distance-mm",
+        "5",
+        "--out",
+        out,
+    ];
+    args.extend_from_slice(extra);
+    run(dir, &args)
+}
+
+/// `reconstruct base.tif --distance-mm 5 --out OUT`, in `dir`.
+fn replay(dir: &Path, out: &str) -> Output {
+    replay_args(dir, out, &[])
+}
+
 /// Refused with a one-line message containing `needle`.
 fn refused(o: &Output, needle: &str) {
     let e = String::from_utf8_lossy(&o.stderr);
@@ -106,57 +125,18 @@ fn reconstruct_out_over_the_plates_sidecar_is_refused() {
     let (d, _) = plate();
     let side = std::fs::read(d.path().join("base.json")).unwrap();
     // --out base.png writes its metrics to base.json: the plate's sidecar.
-    refused(
-        &run(
-            d.path(),
-            &[
-                "reconstruct",
-                "base.tif",
-                "--distance-mm",
-                "5",
-                "--out",
-                "base.png",
-            ],
-        ),
-        "overwrite an input",
-    );
+    refused(&replay(d.path(), "base.png"), "overwrite an input");
     assert_eq!(std::fs::read(d.path().join("base.json")).unwrap(), side);
     // Another plate's sidecar under the metrics name is refused too.
     std::fs::copy(d.path().join("base.json"), d.path().join("other.json")).unwrap();
-    refused(
-        &run(
-            d.path(),
-            &[
-                "reconstruct",
-                "base.tif",
-                "--distance-mm",
-                "5",
-                "--out",
-                "other.png",
-            ],
-        ),
-        "sidecar",
-    );
+    refused(&replay(d.path(), "other.png"), "sidecar");
 }
 
 #[test]
 fn reconstruct_out_over_the_plate_is_refused() {
     let (d, _) = plate();
     let tif = std::fs::read(d.path().join("base.tif")).unwrap();
-    refused(
-        &run(
-            d.path(),
-            &[
-                "reconstruct",
-                "base.tif",
-                "--distance-mm",
-                "5",
-                "--out",
-                "base.tif",
-            ],
-        ),
-        "overwrite an input",
-    );
+    refused(&replay(d.path(), "base.tif"), "overwrite an input");
     assert_eq!(std::fs::read(d.path().join("base.tif")).unwrap(), tif);
 }
 
@@ -199,20 +179,7 @@ fn edited_sidecar_is_refused(table: &str, key: &str, value: serde_json::Value) {
     let mut v: serde_json::Value = serde_json::from_slice(&std::fs::read(&p).unwrap()).unwrap();
     v[table][key] = value;
     std::fs::write(&p, serde_json::to_vec(&v).unwrap()).unwrap();
-    refused(
-        &run(
-            d.path(),
-            &[
-                "reconstruct",
-                "base.tif",
-                "--distance-mm",
-                "5",
-                "--out",
-                "r.png",
-            ],
-        ),
-        key,
-    );
+    refused(&replay(d.path(), "r.png"), key);
 }
 
 #[test]
@@ -232,20 +199,7 @@ fn rgb_tiff_under_a_plates_sidecar_is_refused() {
     let mut e = tiff::encoder::TiffEncoder::new(f).unwrap();
     e.write_image::<tiff::encoder::colortype::RGB8>(64, 48, &vec![7u8; 64 * 48 * 3])
         .unwrap();
-    refused(
-        &run(
-            d.path(),
-            &[
-                "reconstruct",
-                "base.tif",
-                "--distance-mm",
-                "5",
-                "--out",
-                "r.png",
-            ],
-        ),
-        "grey sample",
-    );
+    refused(&replay(d.path(), "r.png"), "grey sample");
 }
 
 /// A minimal little-endian tiled TIFF (TIFF 6.0, section 15): one 16 x 16 tile of 8-bit grey.
@@ -298,20 +252,7 @@ fn tiled_tiff(w: u32, h: u32) -> Vec<u8> {
 fn tiled_tiff_under_a_plates_sidecar_is_refused() {
     let (d, _) = plate();
     std::fs::write(d.path().join("base.tif"), tiled_tiff(64, 48)).unwrap();
-    refused(
-        &run(
-            d.path(),
-            &[
-                "reconstruct",
-                "base.tif",
-                "--distance-mm",
-                "5",
-                "--out",
-                "r.png",
-            ],
-        ),
-        "tiled",
-    );
+    refused(&replay(d.path(), "r.png"), "tiled");
 }
 
 #[test]
@@ -384,32 +325,8 @@ fn a_plate_and_a_sidecar_of_different_runs_are_refused() {
     let o = run(d.path(), &["run", "-q", j.to_str().unwrap()]);
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
     std::fs::copy(d.path().join("other.tif"), d.path().join("base.tif")).unwrap();
-    refused(
-        &run(
-            d.path(),
-            &[
-                "reconstruct",
-                "base.tif",
-                "--distance-mm",
-                "5",
-                "--out",
-                "r.png",
-            ],
-        ),
-        "not the TIFF its sidecar",
-    );
-    let o = run(
-        d.path(),
-        &[
-            "reconstruct",
-            "base.tif",
-            "--distance-mm",
-            "5",
-            "--out",
-            "r.png",
-            "--no-verify",
-        ],
-    );
+    refused(&replay(d.path(), "r.png"), "not the TIFF its sidecar");
+    let o = replay_args(d.path(), "r.png", &["--no-verify"]);
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
 }
 

@@ -157,6 +157,21 @@ fn run(args: &[&str]) {
     );
 }
 
+/// `reconstruct p.tif ARGS --target TARGET --out r.png` in `dir`; returns the metrics JSON.
+fn replay_metrics(dir: &Path, args: &[&str], target: &str) -> serde_json::Value {
+    let (tif, t, out) = (dir.join("p.tif"), dir.join(target), dir.join("r.png"));
+    let mut all = vec!["reconstruct", tif.to_str().unwrap()];
+    all.extend_from_slice(args);
+    all.extend_from_slice(&[
+        "--target",
+        t.to_str().unwrap(),
+        "--out",
+        out.to_str().unwrap(),
+    ]);
+    run(&all);
+    serde_json::from_slice(&std::fs::read(dir.join("r.json")).unwrap()).unwrap()
+}
+
 /// Pearson correlation of two equal-length sequences.
 fn correlation(a: &[f64], b: &[f64]) -> f64 {
     let n = a.len() as f64;
@@ -544,19 +559,7 @@ fn fresnel_iterative_plate_replays_at_plus_d() {
     eprintln!("own Fresnel replay: correlation {plus:.4} at +D, {minus:.4} at -D");
     assert!(plus > 0.85, "correlation {plus} at +D");
     assert!(minus < 0.5, "correlation {minus} at -D");
-    let out = d.path().join("r.png");
-    run(&[
-        "reconstruct",
-        d.path().join("p.tif").to_str().unwrap(),
-        "--distance-mm",
-        "100",
-        "--target",
-        d.path().join("t.png").to_str().unwrap(),
-        "--out",
-        out.to_str().unwrap(),
-    ]);
-    let m: serde_json::Value =
-        serde_json::from_slice(&std::fs::read(d.path().join("r.json")).unwrap()).unwrap();
+    let m = replay_metrics(d.path(), &["--distance-mm", "100"], "t.png");
     let corr = m["planes"][0]["target"]["correlation"].as_f64().unwrap();
     assert!(corr > 0.85, "reconstruct correlation {corr}: {m}");
     assert!(
@@ -601,19 +604,7 @@ fn spot_figures_and_zero_order_warning() {
         full[(64 - 12 + r) * n + 64 - 12 + c] = 255;
     }
     write_grey_png(&d.path().join("full.png"), n, n, &full);
-    let out = d.path().join("r.png");
-    run(&[
-        "reconstruct",
-        d.path().join("p.tif").to_str().unwrap(),
-        "--focal-mm",
-        "200",
-        "--target",
-        d.path().join("full.png").to_str().unwrap(),
-        "--out",
-        out.to_str().unwrap(),
-    ]);
-    let m: serde_json::Value =
-        serde_json::from_slice(&std::fs::read(d.path().join("r.json")).unwrap()).unwrap();
+    let m = replay_metrics(d.path(), &["--focal-mm", "200"], "full.png");
     let sp = &m["planes"][0]["spots"];
     assert_eq!(sp["count"], 9, "{sp}");
     let (_, _, s) = decode(&d.path().join("p.tif"));
@@ -679,21 +670,11 @@ fn oversampled_replay_measures_between_samples() {
         }
     }
     write_grey_png(&d.path().join("full.png"), n, n, &full);
-    let out = d.path().join("r.png");
-    run(&[
-        "reconstruct",
-        d.path().join("p.tif").to_str().unwrap(),
-        "--focal-mm",
-        "200",
-        "--target",
-        d.path().join("full.png").to_str().unwrap(),
-        "--oversample",
-        "2",
-        "--out",
-        out.to_str().unwrap(),
-    ]);
-    let m: serde_json::Value =
-        serde_json::from_slice(&std::fs::read(d.path().join("r.json")).unwrap()).unwrap();
+    let m = replay_metrics(
+        d.path(),
+        &["--focal-mm", "200", "--oversample", "2"],
+        "full.png",
+    );
     let os = &m["oversampled"];
     assert_eq!(os["factor"], 2);
     assert_eq!(

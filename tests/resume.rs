@@ -146,12 +146,8 @@ fn sigint_stops_cleanly_and_resumes_byte_identical() {
     assert!(std::fs::read(d.path().join("out/plate.tif")).unwrap() == reference);
 }
 
-/// An input edited between an interruption and the resume (here the points file) is found by
-/// its SHA-256 recorded in the journal: the resume refuses, naming the file, instead of mixing
-/// rows of two scenes; `--restart` then computes the new scene from the start.
-#[test]
-fn resume_refuses_an_edited_points_file() {
-    let enc = "kind = \"binary-amplitude\"";
+/// A job whose run was stopped by SIGINT (exit 130) with its work saved.
+fn interrupted(enc: &str) -> (tempfile::TempDir, PathBuf) {
     let d = tempfile::tempdir().unwrap();
     let j = job(d.path(), enc);
     let o = interrupt_run(d.path(), &j);
@@ -161,6 +157,16 @@ fn resume_refuses_an_edited_points_file() {
         "{}",
         String::from_utf8_lossy(&o.stderr)
     );
+    (d, j)
+}
+
+/// An input edited between an interruption and the resume (here the points file) is found by
+/// its SHA-256 recorded in the journal: the resume refuses, naming the file, instead of mixing
+/// rows of two scenes; `--restart` then computes the new scene from the start.
+#[test]
+fn resume_refuses_an_edited_points_file() {
+    let enc = "kind = \"binary-amplitude\"";
+    let (d, j) = interrupted(enc);
     let pts = d.path().join("pts.ply");
     let mut bytes = std::fs::read(&pts).unwrap();
     // One digit of the last vertex changed (the file stays a valid PLY).
@@ -185,15 +191,7 @@ fn resume_refuses_an_edited_points_file() {
 fn resume_accepts_another_spelling_of_the_job_path() {
     let enc = "kind = \"binary-amplitude\"";
     let reference = clean_plate(enc);
-    let d = tempfile::tempdir().unwrap();
-    let j = job(d.path(), enc);
-    let o = interrupt_run(d.path(), &j);
-    assert_eq!(
-        o.status.code(),
-        Some(130),
-        "{}",
-        String::from_utf8_lossy(&o.stderr)
-    );
+    let (d, _) = interrupted(enc);
     let other = d.path().join(".").join("job.toml");
     let o = run(&["run", "-q", other.to_str().unwrap()]);
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));

@@ -116,7 +116,6 @@ pub fn build_emitters(spec: &JobSpec) -> Result<Vec<Emitter>> {
 pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
     let _lock = guard_outputs(spec, opts.shard)?;
     let prep = prepare(spec, opts.progress)?;
-    ensure_parent(&spec.output)?;
     let units = unit_count(&prep);
     let row_bytes = prep.encoding.row_bytes(spec.plate.width as usize);
     let (first_unit, end_unit) = match opts.shard {
