@@ -409,6 +409,8 @@ fn tiled_cell_replays_each_spot_as_one_sample() {
 /// A carrier is snapped to a whole number m of the plate's replay samples (sin t = m lambda /
 /// (N p)): the sidecar and `plan` say so, and the replay under a plain DFT moves by exactly m
 /// samples (x right, y up), so a lab's own FFT samples the moved image at the designed points.
+/// The shift is the DFT shift theorem: a linear phase 2 pi m j / N moves the DFT by m samples
+/// (Bracewell, The Fourier Transform and Its Applications, shift theorem; cited from memory).
 #[test]
 fn carrier_moves_the_replay_by_whole_samples() {
     let n = 128usize;
