@@ -47,17 +47,20 @@ fn clean_plate_in(encoding: &str, precision: &str) -> Vec<u8> {
     std::fs::read(d.path().join("out/plate.tif")).unwrap()
 }
 
-/// Deterministic pseudo-random delays.
+/// Deterministic pseudo-random delays in 30 ms ..= 30 + max_ms, shortest first (so the first
+/// run is killed even when the longer delays outlast a run).
 fn delays(seed: u64, n: usize, max_ms: u64) -> Vec<u64> {
     let mut x = seed;
-    (0..n)
+    let mut v: Vec<u64> = (0..n)
         .map(|_| {
             x ^= x << 13;
             x ^= x >> 7;
             x ^= x << 17;
             30 + x % max_ms
         })
-        .collect()
+        .collect();
+    v.sort_unstable();
+    v
 }
 
 /// Starts `run` and kills it (SIGKILL) after each delay in turn, until `done` exists; returns how
@@ -87,13 +90,15 @@ fn kill_runs(j: &Path, done: &Path, delays_ms: Vec<u64>) -> usize {
 #[test]
 fn kill_9_then_resume_is_byte_identical() {
     let enc = "kind = \"phase\"\nlevels = 256";
+    let t0 = std::time::Instant::now();
     let reference = clean_plate_in(enc, "f64");
+    let clean_ms = t0.elapsed().as_millis() as u64;
     let d = tempfile::tempdir().unwrap();
     let j = job_in(d.path(), enc, "f64");
     let tif = d.path().join("out/plate.tif");
     // A kill can land after the final rename; the file under the final name is then whole, which
-    // the comparison below checks.
-    let kills = kill_runs(&j, &tif, delays(0x9e3779b9, 4, 900));
+    // the comparison below checks. Delays follow the clean run's time on this machine and load.
+    let kills = kill_runs(&j, &tif, delays(0x9e3779b9, 4, clean_ms.max(40)));
     let o = run(&["run", "-q", j.to_str().unwrap()]);
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
     assert!(
@@ -436,11 +441,14 @@ fn fields_resume_after_kill_9() {
     };
     let clean = tempfile::tempdir().unwrap();
     let jc = mk(clean.path());
+    let t0 = std::time::Instant::now();
     assert!(run(&["run", "-q", jc.to_str().unwrap()]).status.success());
+    let clean_ms = t0.elapsed().as_millis() as u64;
     let d = tempfile::tempdir().unwrap();
     let j = mk(d.path());
     let manifest = d.path().join("out/plate.fields.json");
-    let kills = kill_runs(&j, &manifest, delays(0x51ed, 4, 700));
+    // Delays follow the clean run's time (kills land inside the run on any machine and load).
+    let kills = kill_runs(&j, &manifest, delays(0x51ed, 6, clean_ms.max(40)));
     assert!(kills > 0, "finished before any kill");
     let o = run(&["run", "-q", j.to_str().unwrap()]);
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));

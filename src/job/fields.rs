@@ -205,6 +205,13 @@ impl FieldSink {
         Ok(sink)
     }
 
+    /// Whether [`Self::write_band`] at plate row `row0` finishes (publishes) the current row's
+    /// fields first. The caller checkpoints before such a band: a journal taken inside the row
+    /// cannot resume once the row's partial files are renamed.
+    pub fn closes_row(&self, row0: u32) -> bool {
+        !self.writers.is_empty() && row0 / self.grid.field[1] != self.row
+    }
+
     /// Appends the band starting at plate row `row0`: one block of encoded rows per field column.
     /// Bands never straddle field rows (band heights divide the field height).
     pub fn write_band(&mut self, row0: u32, blocks: &[Vec<u8>]) -> Result<()> {
@@ -371,6 +378,47 @@ mod tests {
         s.finish_row().unwrap();
         assert_eq!(s.done.len(), 4);
         assert_eq!(files(cut.path()), files(whole.path()));
+    }
+
+    /// The stream's rule: checkpoint whenever `closes_row` says the next band publishes a row.
+    /// A kill after any band, with the journal of the last checkpoint taken by that rule (one
+    /// inside row 0 as well), resumes to the same files. Without the rule a journal taken inside
+    /// row 0 would point at partials that the start of row 1 renamed away.
+    #[test]
+    fn checkpoint_before_a_row_closes_makes_every_kill_resumable() {
+        let whole = tempfile::tempdir().unwrap();
+        let mut s = FieldSink::new(grid(whole.path()), 0, None).unwrap();
+        for r in 0..6 {
+            assert_eq!(s.closes_row(r), r == 3, "row {r}");
+            s.write_band(r, &band(r)).unwrap();
+        }
+        s.finish_row().unwrap();
+        for kill_after in 1..6u32 {
+            let cut = tempfile::tempdir().unwrap();
+            let mut s = FieldSink::new(grid(cut.path()), 0, None).unwrap();
+            // A timed checkpoint inside row 0, then the rule's checkpoints.
+            let mut journal = None;
+            for r in 0..kill_after {
+                if r == 2 || s.closes_row(r) {
+                    journal = Some((r, s.checkpoint().unwrap()));
+                }
+                s.write_band(r, &band(r)).unwrap();
+            }
+            drop(s); // killed
+            let (next, state) = journal.unwrap_or((0, FieldsState::default()));
+            let state = (next > 0).then_some(state);
+            let mut s = FieldSink::new(grid(cut.path()), next, state)
+                .unwrap_or_else(|e| panic!("kill after {kill_after}: {e}"));
+            for r in next..6 {
+                s.write_band(r, &band(r)).unwrap();
+            }
+            s.finish_row().unwrap();
+            let left: Vec<_> = files(cut.path())
+                .into_iter()
+                .filter(|(n, _)| !n.ends_with(".partial"))
+                .collect();
+            assert_eq!(left, files(whole.path()), "kill after {kill_after}");
+        }
     }
 
     /// A kill after a complete field row's fields were finished (renamed from their partials)

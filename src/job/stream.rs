@@ -50,6 +50,13 @@ impl Sink {
             Sink::Fields(f) => f.write_band(row0, blocks),
         }
     }
+    /// Whether writing a band at plate row `row0` publishes a finished field row first.
+    pub(super) fn closes_field_row(&self, row0: u32) -> bool {
+        match self {
+            Sink::Fields(f) => f.closes_row(row0),
+            _ => false,
+        }
+    }
     /// Makes what was written durable; returns what the journal must record to continue.
     pub(super) fn sync(&mut self) -> Result<SinkState> {
         match self {
@@ -176,37 +183,39 @@ pub(super) fn stream_rows(ctx: &StreamCtx, sink: &mut Sink, opts: &RunOptions) -
             complete / bands_per_strip * bands_per_strip
         };
         for (r0, n, bytes, u) in done.into_iter().take(keep).flatten() {
+            // A field row's files are published (renamed from their partials) when the next
+            // row starts; the journal must say first that the row is complete, or a kill right
+            // after the renames leaves a journal pointing into partials that are gone.
+            if sink.closes_field_row(r0 as u32) {
+                checkpoint(ctx, sink, rows_done, updates)?;
+                last_checkpoint = Instant::now();
+            }
             sink.write_band(r0 as u32, &bytes)?;
             updates += u;
             rows_done += n as u32;
         }
         let stop = opts.stop.load(Ordering::SeqCst);
         let finished = start - ctx.rows_before + rows_done >= end;
-        if (stop || last_checkpoint.elapsed() >= opts.checkpoint_every) && !finished {
-            let (writer, fields) = sink.sync()?;
-            Journal {
-                format: FORMAT.into(),
-                job_sha256: ctx.spec.sha256.clone(),
-                job_toml: ctx.spec.text.clone(),
-                shard: ctx.shard,
-                rows_done,
-                updates,
-                writer,
-                fields,
-                inputs: ctx.inputs.clone(),
-            }
-            .write(ctx.journal)?;
+        // The last field row is published by the caller: the journal says first that it is
+        // complete (see above).
+        let due = if finished {
+            matches!(sink, Sink::Fields(_))
+        } else {
+            stop || last_checkpoint.elapsed() >= opts.checkpoint_every
+        };
+        if due {
+            checkpoint(ctx, sink, rows_done, updates)?;
             last_checkpoint = Instant::now();
-            if stop {
-                progress
-                    .into_inner()
-                    .unwrap_or_else(|p| p.into_inner())
-                    .abandon();
-                return Err(Error::Interrupted(format!(
-                    "interrupted after {rows_done} rows; the work so far is saved in {}: run the same command again to continue",
-                    ctx.journal.display()
-                )));
-            }
+        }
+        if stop && !finished {
+            progress
+                .into_inner()
+                .unwrap_or_else(|p| p.into_inner())
+                .abandon();
+            return Err(Error::Interrupted(format!(
+                "interrupted after {rows_done} rows; the work so far is saved in {}: run the same command again to continue",
+                ctx.journal.display()
+            )));
         }
     }
     progress
@@ -214,6 +223,23 @@ pub(super) fn stream_rows(ctx: &StreamCtx, sink: &mut Sink, opts: &RunOptions) -
         .unwrap_or_else(|p| p.into_inner())
         .finish();
     Ok(updates)
+}
+
+/// Syncs the sink and writes the journal: the run can continue from here.
+fn checkpoint(ctx: &StreamCtx, sink: &mut Sink, rows_done: u32, updates: u64) -> Result<()> {
+    let (writer, fields) = sink.sync()?;
+    Journal {
+        format: FORMAT.into(),
+        job_sha256: ctx.spec.sha256.clone(),
+        job_toml: ctx.spec.text.clone(),
+        shard: ctx.shard,
+        rows_done,
+        updates,
+        writer,
+        fields,
+        inputs: ctx.inputs.clone(),
+    }
+    .write(ctx.journal)
 }
 
 /// Finishes the single-file TIFF and writes its sidecar; if the sidecar fails, the TIFF is removed
