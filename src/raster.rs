@@ -24,6 +24,26 @@ const MAX_ALLOC: u64 = 1 << 30;
 /// One line naming the file: unreadable, not PNG or TIFF, damaged, larger than [`MAX_SIDE`] on
 /// a side, or an allocation beyond the decoder's limit.
 pub fn read_grey(path: &Path) -> Result<(usize, usize, Vec<f64>)> {
+    let (w, h, img) = decode(path)?;
+    Ok((w, h, intensities(&img)))
+}
+
+/// Reads a grey image's stored values (0..=255 or 0..=65535), for maps whose grey codes mean
+/// something (a measured phase map): (width, height, codes). Colour images are refused.
+pub fn read_grey_levels(path: &Path) -> Result<(usize, usize, Vec<f64>)> {
+    let (w, h, img) = decode(path)?;
+    let v: Vec<f64> = match &img {
+        DynamicImage::ImageLuma8(b) => b.as_raw().iter().map(|&v| f64::from(v)).collect(),
+        DynamicImage::ImageLuma16(b) => b.as_raw().iter().map(|&v| f64::from(v)).collect(),
+        _ => return Err(Error::input(
+            path,
+            "is not a grey image without alpha (8 or 16 bits): a map's grey codes are its values",
+        )),
+    };
+    Ok((w, h, v))
+}
+
+fn decode(path: &Path) -> Result<(usize, usize, DynamicImage)> {
     let ext = path
         .extension()
         .map(|e| e.to_string_lossy().to_ascii_lowercase())
@@ -68,7 +88,7 @@ pub fn read_grey(path: &Path) -> Result<(usize, usize, Vec<f64>)> {
         ));
     }
     let img = open(true)?.decode().map_err(|e| readable(path, kind, e))?;
-    Ok((w as usize, h as usize, intensities(&img)))
+    Ok((w as usize, h as usize, img))
 }
 
 fn readable(path: &Path, kind: &str, e: image::ImageError) -> Error {

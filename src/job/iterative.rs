@@ -17,8 +17,11 @@ use super::spec::{
 use crate::encoding::Encoding;
 use crate::error::{Error, Result};
 use crate::optics::propagation::{Grid, PropagationPlanner, PropagationRecipe};
+use crate::optics::zernike::Correction;
+use crate::output::sidecar::{SpotRecord, SpotsRecord};
 use crate::synthesis::iterative::{optimise, Algorithm, IterOptions, Plane};
 use crate::synthesis::phase_cell::PhaseCell;
+use crate::synthesis::spots::{design, SpotAlgorithm, SpotOptions, SpotProblem};
 
 /// What the iteration produced, for the sidecar.
 #[derive(Clone, Debug)]
@@ -31,6 +34,10 @@ pub struct IterationRecord {
     pub cell: [usize; 2],
     /// Replay-plane pitch per image, metres.
     pub replay_pitch: Vec<[f64; 2]>,
+    /// Spot lists: the spots and their predicted figures.
+    pub spots: Option<crate::output::sidecar::SpotsRecord>,
+    /// The correction added, for the sidecar.
+    pub correction: Option<crate::output::sidecar::CorrectionRecord>,
 }
 
 /// Reads a target image as intensities (PNG or TIFF; [`crate::raster::read_grey`]).
@@ -67,8 +74,145 @@ fn place(
     Ok((t, [x0 as usize, y0 as usize, w, h]))
 }
 
-/// Runs the iteration and returns the cell laid over the plate.
+/// The phase levels the encoding will store, if it is a phase encoding.
+fn phase_levels(spec: &JobSpec) -> Option<u32> {
+    match &spec.encoding {
+        EncodingRequest::Fixed(Encoding::Phase { levels })
+        | EncodingRequest::Fixed(Encoding::CalibratedPhase { levels, .. }) => Some(*levels),
+        EncodingRequest::Fixed(Encoding::BinaryPhase) => Some(2),
+        _ => None,
+    }
+}
+
+/// Runs the iteration and returns the cell laid over the plate, with the job's correction.
 pub fn build_cell(
+    spec: &JobSpec,
+    it: &IterativeSpec,
+    mode: ProgressMode,
+) -> Result<(PhaseCell, IterationRecord)> {
+    let (cell, mut record) = match spec
+        .objects
+        .iter()
+        .find(|o| matches!(o.source, ObjectSource::Spots))
+    {
+        Some(o) => build_spots(spec, it, &o.points, mode)?,
+        None => build_image_cell(spec, it, mode)?,
+    };
+    let cell = match load_correction(spec)? {
+        Some(c) => cell.with_correction(c),
+        None => cell,
+    };
+    record.correction = super::record::correction_record(spec.correction.as_ref());
+    Ok((cell, record))
+}
+
+/// The job's `[correction]` with its map read (grey codes to radians).
+pub fn load_correction(spec: &JobSpec) -> Result<Option<Correction>> {
+    let Some(c) = &spec.correction else {
+        return Ok(None);
+    };
+    let map = match &c.map {
+        None => None,
+        Some(path) => {
+            let (w, h, codes) = crate::raster::read_grey_levels(path)?;
+            let scale = std::f64::consts::TAU / c.map_two_pi_grey;
+            let v = codes.iter().map(|&g| (g * scale) as f32).collect();
+            Some((w, h, v))
+        }
+    };
+    let corr = Correction {
+        terms: c.terms.clone(),
+        pupil_radius: c.pupil_radius,
+        pupil_centre: c.pupil_centre,
+        map,
+    };
+    if let Some(path) = &c.map {
+        corr.check_map_size(path, spec.plate.width, spec.plate.height)?;
+    }
+    Ok(Some(corr))
+}
+
+/// A spot list's pattern over the whole plate (module `synthesis::spots`).
+fn build_spots(
+    spec: &JobSpec,
+    it: &IterativeSpec,
+    path: &Path,
+    mode: ProgressMode,
+) -> Result<(PhaseCell, IterationRecord)> {
+    let p = spec.plate;
+    let Geometry::Fourier(focal) = it.geometry else {
+        return Err(Error::job(
+            &spec.path,
+            "spot lists need geometry = \"fourier\"",
+        ));
+    };
+    let spots = crate::scene::spots::read_spots(path)?;
+    let algorithm = match it.algorithm {
+        AlgorithmChoice::Superposition => SpotAlgorithm::Superposition,
+        AlgorithmChoice::Gs => SpotAlgorithm::Gs,
+        _ => SpotAlgorithm::WeightedGs,
+    };
+    let levels = phase_levels(spec);
+    let steps = if algorithm == SpotAlgorithm::Superposition {
+        0
+    } else {
+        it.iterations
+    };
+    let mut progress = Progress::new("spot iterations", steps.max(1) as f64, mode);
+    let d = design(
+        SpotProblem {
+            plate: &p,
+            focal,
+            spots: &spots,
+        },
+        SpotOptions {
+            algorithm,
+            iterations: steps,
+            seed: it.seed,
+            levels,
+        },
+        &mut |_, _, _| progress.advance(1.0),
+    );
+    progress.finish();
+    let record = IterationRecord {
+        errors: d.history.iter().map(|h| 1.0 - h.1).collect(),
+        stopped_early: false,
+        cell: [p.width as usize, p.height as usize],
+        replay_pitch: vec![[
+            p.wavelength * focal / (p.width as f64 * p.pitch[0]),
+            p.wavelength * focal / (p.height as f64 * p.pitch[1]),
+        ]],
+        spots: Some(SpotsRecord {
+            model: format!(
+                "paraxial far field of the {} pattern at each spot, V_m = (1/N) sum_j exp(i (phi_j - D_jm)) with D_jm = 2 pi (x_j x_m + y_j y_m) / (lambda f) + pi z_m (x_j^2 + y_j^2) / (lambda f^2); intensity |V_m|^2 = share of the panel's power (uniform illumination, ideal pixels, carrier, lens and correction left out)",
+                if levels.is_some() { "quantized" } else { "continuous" }
+            ),
+            spots: spots
+                .iter()
+                .zip(&d.figures.intensity)
+                .map(|(s, &i)| SpotRecord {
+                    x_um: s.x * 1e6,
+                    y_um: s.y * 1e6,
+                    z_um: s.z * 1e6,
+                    weight: s.weight,
+                    phase_rad: s.phase,
+                    predicted_intensity: i,
+                })
+                .collect(),
+            efficiency: d.figures.efficiency,
+            uniformity: d.figures.uniformity,
+            history: d.history.iter().map(|h| [h.0, h.1]).collect(),
+        }),
+        correction: None,
+    };
+    Ok((
+        PhaseCell::new(p, record.cell, d.phase, it.carrier, it.lens),
+        record,
+    ))
+}
+
+/// An image-target cell: the FFT-grid iteration (module `synthesis::iterative`).
+fn build_image_cell(
     spec: &JobSpec,
     it: &IterativeSpec,
     mode: ProgressMode,
@@ -126,12 +270,7 @@ pub fn build_cell(
             back,
         });
     }
-    let levels = match &spec.encoding {
-        EncodingRequest::Fixed(Encoding::Phase { levels })
-        | EncodingRequest::Fixed(Encoding::CalibratedPhase { levels, .. }) => Some(*levels),
-        EncodingRequest::Fixed(Encoding::BinaryPhase) => Some(2),
-        _ => None,
-    };
+    let levels = phase_levels(spec);
     let algorithm = match it.algorithm {
         AlgorithmChoice::Gs => Algorithm::GerchbergSaxton,
         AlgorithmChoice::WeightedGs => Algorithm::WeightedGs,
@@ -146,6 +285,12 @@ pub fn build_cell(
                 signal: windows[0],
                 mix,
             }
+        }
+        AlgorithmChoice::Superposition => {
+            return Err(Error::job(
+                &spec.path,
+                "algorithm = \"superposition\" applies to spot lists",
+            ))
         }
     };
     let opts = IterOptions {
@@ -173,6 +318,8 @@ pub fn build_cell(
         stopped_early: res.stopped_early,
         cell: [nx, ny],
         replay_pitch: pitches,
+        spots: None,
+        correction: None,
     };
     Ok((
         PhaseCell::new(p, [nx, ny], res.phase, it.carrier, it.lens),

@@ -7,14 +7,16 @@ use std::path::Path;
 
 use super::iterative::IterationRecord;
 use super::spec::{
-    AlgorithmChoice, Geometry, IterativeSpec, JobSpec, Method, ObjectSource, Occlusion,
+    AlgorithmChoice, CorrectionSpec, Geometry, IterativeSpec, JobSpec, Method, ObjectSource,
+    Occlusion,
 };
 use crate::encoding::Encoding;
 use crate::optics::Reference;
 use crate::output::sidecar::{
-    CalibrationRecord, EncodingRecord, HologramRecord, IterativeRecord, JobRecord, MeshRecord,
-    ObjectRecord, ObjectSourceRecord, OutputFiles, RecordingPlaneRecord, ReferenceRecord, Sidecar,
-    SynthesisRecord, ToolRecord, ViewingRecord, FORMAT_NAME, FORMAT_VERSION,
+    CalibrationRecord, CorrectionRecord, EncodingRecord, HologramRecord, IterativeRecord,
+    JobRecord, MeshRecord, ObjectRecord, ObjectSourceRecord, OutputFiles, RecordingPlaneRecord,
+    ReferenceRecord, Sidecar, SynthesisRecord, ToolRecord, ViewingRecord, FORMAT_NAME,
+    FORMAT_VERSION,
 };
 use crate::output::tiff::{Compression, FinishedTiff, TiffLayout};
 use crate::scene::mesh::PlacementSize;
@@ -168,6 +170,7 @@ pub fn algorithm_name(a: AlgorithmChoice) -> &'static str {
         AlgorithmChoice::Gs => "gs",
         AlgorithmChoice::WeightedGs => "weighted-gs",
         AlgorithmChoice::MixedRegion(_) => "mixed-region",
+        AlgorithmChoice::Superposition => "superposition",
     }
 }
 
@@ -185,6 +188,12 @@ fn objects(spec: &JobSpec) -> Vec<ObjectRecord> {
                     image: file,
                     distance_mm: distance.map(|d| d * 1e3),
                     shift_px: *shift_px,
+                },
+                ObjectSource::Spots => ObjectSourceRecord::Spots {
+                    spots: file,
+                    spot_count: crate::scene::spots::read_spots(&o.points)
+                        .map(|v| v.len())
+                        .unwrap_or(0),
                 },
                 ObjectSource::Points => ObjectSourceRecord::Points {
                     points: file,
@@ -258,7 +267,25 @@ pub fn iterative_record(it: &IterativeSpec, rec: &IterationRecord) -> IterativeR
         lens_mm: it.lens.map(|f| f * 1e3),
         seed: it.seed,
         quantize_last: it.quantize_last,
+        spots: rec.spots.clone(),
+        correction: rec.correction.clone(),
     }
+}
+
+/// The `[correction]` of a job, for the sidecar.
+pub fn correction_record(c: Option<&CorrectionSpec>) -> Option<CorrectionRecord> {
+    c.map(|c| CorrectionRecord {
+        zernike: c
+            .terms
+            .iter()
+            .map(|t| [f64::from(t.n), f64::from(t.m), t.waves])
+            .collect(),
+        normalisation: "Noll (JOSA 66, 207, 1976): (1/pi) integral over the unit pupil of Z_j Z_k = delta_jk, so a coefficient is the term's rms in waves; theta from panel +x towards +y; added inside the pupil only, then the map, modulo 2 pi".into(),
+        pupil_radius_mm: c.pupil_radius * 1e3,
+        pupil_centre_mm: [c.pupil_centre[0] * 1e3, c.pupil_centre[1] * 1e3],
+        correction_map: c.map.as_deref().and_then(file_name),
+        map_two_pi_grey: c.map_two_pi_grey,
+    })
 }
 
 /// The sidecar of a run of `spec`.

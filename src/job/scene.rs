@@ -76,8 +76,8 @@ pub fn build_scene(spec: &JobSpec) -> Result<Scene> {
     for (i, o) in spec.objects.iter().enumerate() {
         let n = i + 1;
         match &o.source {
-            ObjectSource::Image { .. } => {
-                return Err(Error::job(&spec.path, format!("[[object]] #{n}: image objects are targets of iterative synthesis, not emitters")));
+            ObjectSource::Image { .. } | ObjectSource::Spots => {
+                return Err(Error::job(&spec.path, format!("[[object]] #{n}: image and spot objects are targets of iterative synthesis, not emitters")));
             }
             ObjectSource::Points => {
                 let pts = read_points(&o.points)?;

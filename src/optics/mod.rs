@@ -10,6 +10,7 @@
 pub mod fft2d;
 pub(crate) mod pointwise;
 pub mod propagation;
+pub mod zernike;
 
 use std::f64::consts::PI;
 

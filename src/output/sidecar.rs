@@ -177,6 +177,14 @@ pub enum ObjectSourceRecord {
     },
     /// A mesh.
     Mesh(Box<MeshRecord>),
+    /// A list of spots (iterative synthesis; the spots and their predicted figures are in
+    /// `iterative.spots`).
+    Spots {
+        /// File name.
+        spots: Option<String>,
+        /// Spots in the list.
+        spot_count: usize,
+    },
 }
 
 /// A mesh object's placement, sampling and shading.
@@ -250,6 +258,62 @@ pub struct IterativeRecord {
     pub seed: u64,
     /// Quantized iterations at the end.
     pub quantize_last: usize,
+    /// Spot lists: the spots and the pattern's predicted figures.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub spots: Option<SpotsRecord>,
+    /// The aberration correction added to the pattern.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub correction: Option<CorrectionRecord>,
+}
+
+/// `iterative.spots`: a spot-list design and what it predicts.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct SpotsRecord {
+    /// The model the figures come from, in words.
+    pub model: String,
+    /// The spots, in the list's order, with their predicted intensities.
+    pub spots: Vec<SpotRecord>,
+    /// Sum of the predicted intensities (share of the panel's power).
+    pub efficiency: f64,
+    /// 1 - (max - min) / (max + min) of intensity / weight.
+    pub uniformity: f64,
+    /// (efficiency, uniformity) after each iteration (first: the superposition start).
+    pub history: Vec<[f64; 2]>,
+}
+
+/// One spot of `iterative.spots`.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct SpotRecord {
+    /// Focal-plane x (replay columns increasing), micrometres.
+    pub x_um: f64,
+    /// Focal-plane y (up), micrometres.
+    pub y_um: f64,
+    /// Beyond the focal plane, micrometres.
+    pub z_um: f64,
+    /// Relative intensity asked for.
+    pub weight: f64,
+    /// Fixed phase, radians, if the list gave one.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub phase_rad: Option<f64>,
+    /// Predicted share of the panel's power in this spot (quantized pattern).
+    pub predicted_intensity: f64,
+}
+
+/// `iterative.correction`.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct CorrectionRecord {
+    /// [n, m, coefficient in waves rms] per term.
+    pub zernike: Vec<[f64; 3]>,
+    /// The polynomials' normalisation and angle, in words.
+    pub normalisation: String,
+    /// Pupil radius, millimetres.
+    pub pupil_radius_mm: f64,
+    /// Pupil centre on the panel, millimetres.
+    pub pupil_centre_mm: [f64; 2],
+    /// The measured map's file name, if any.
+    pub correction_map: Option<String>,
+    /// The map's grey value standing for 2 pi.
+    pub map_two_pi_grey: f64,
 }
 
 /// `synthesis`

@@ -5,4 +5,5 @@ pub mod mesh;
 mod ply;
 pub mod points;
 pub mod sampling;
+pub mod spots;
 mod text;

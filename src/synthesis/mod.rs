@@ -17,6 +17,7 @@ pub mod point_sum;
 pub mod recording_plane;
 pub mod reference;
 pub mod source;
+pub mod spots;
 pub mod support;
 
 /// One point source on the object side of the plate, in plate coordinates (metres).

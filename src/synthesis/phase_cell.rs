@@ -1,10 +1,12 @@
 //! A phase pattern computed on a cell (by iteration) and laid over a plate of any size: the cell
 //! repeats periodically (a Fourier pattern replays the same image from every copy), and an optional
-//! blazed carrier and lens term are added over the whole plate. The plate's fringe term is
+//! blazed carrier and lens term, and an aberration correction (`optics::zernike`), are added over
+//! the whole plate. The plate's fringe term is
 //! F = exp(i (phi_cell(x mod w, y mod h) + carrier + lens)), unit amplitude.
 
 use num_complex::Complex64;
 
+use crate::optics::zernike::Correction;
 use crate::optics::Plate;
 
 /// A periodic phase pattern over a plate.
@@ -19,6 +21,8 @@ pub struct PhaseCell {
     carrier: [f64; 2],
     /// Lens term of focal length f, metres (phase -k (x^2 + y^2) / (2 f)), if any.
     lens: Option<f64>,
+    /// Aberration correction added over the plate, if any.
+    correction: Option<std::sync::Arc<Correction>>,
 }
 
 impl PhaseCell {
@@ -40,7 +44,24 @@ impl PhaseCell {
             phase,
             carrier,
             lens,
+            correction: None,
         }
+    }
+
+    /// Adds an aberration correction (Zernike terms, measured map) to every pixel.
+    ///
+    /// # Panics
+    /// If the correction's map is not the plate's size.
+    pub fn with_correction(mut self, c: Correction) -> Self {
+        if let Some((w, h, _)) = &c.map {
+            assert_eq!(
+                (*w, *h),
+                (self.plate.width as usize, self.plate.height as usize),
+                "correction map size"
+            );
+        }
+        self.correction = (!c.is_empty()).then(|| std::sync::Arc::new(c));
+        self
     }
 
     /// The plate.
@@ -72,9 +93,13 @@ impl PhaseCell {
                     t -= (x * x + y * y) / (2.0 * fl) * inv_lambda;
                 }
                 let t = t - t.floor();
+                let extra = self
+                    .correction
+                    .as_ref()
+                    .map_or(0.0, |k| k.phase(row, c, x, y));
                 *f = Complex64::from_polar(
                     1.0,
-                    crow[c % self.cell[0]] + 2.0 * std::f64::consts::PI * t,
+                    crow[c % self.cell[0]] + 2.0 * std::f64::consts::PI * t + extra,
                 );
             }
         }

@@ -42,8 +42,8 @@ pub(super) fn parse_encoding(
             if e.calibration.is_some() as u8 + e.two_pi_grey.is_some() as u8 + (justify == "right") as u8 > 1 {
                 return Err(bad("[encoding] calibration, two_pi_grey and justify = \"right\" each set the grey of every level: give one of them".into()));
             }
-            if e.calibration_nm.is_some() && e.calibration.is_none() {
-                return Err(bad("[encoding] calibration_nm needs a calibration table".into()));
+            if e.calibration_nm.is_some() && e.calibration.is_none() && e.two_pi_grey.is_none() {
+                return Err(bad("[encoding] calibration_nm needs a calibration table or two_pi_grey (the wavelength they were measured at)".into()));
             }
             let calibrated = |c: std::result::Result<crate::encoding::Calibration, String>, at: &Path| -> Result<EncodingRequest> {
                 let cal = c.map_err(|m| Error::input(at, m))?;
@@ -71,7 +71,26 @@ pub(super) fn parse_encoding(
                 if !(2..=65535).contains(&g) {
                     return Err(bad(format!("[encoding] two_pi_grey = {g} is outside 2..=65535")));
                 }
-                calibrated(crate::encoding::Calibration::linear(g as u16, levels, format!("linear, 2 pi at grey {g}")), job)?
+                match e.calibration_nm {
+                    None => calibrated(crate::encoding::Calibration::linear(g as u16, levels, format!("linear, 2 pi at grey {g}")), job)?,
+                    Some(nm) => {
+                        if !(finite("[encoding] calibration_nm", nm)? > 0.0) {
+                            return Err(bad(format!("[encoding] calibration_nm = {nm} must be > 0")));
+                        }
+                        // 2 pi at grey g when measured at nm: the retardance 2 pi dn d / lambda
+                        // scales as 1 / lambda (dispersion of dn neglected, common practice), so
+                        // at the design wavelength grey s gives 2 pi (s / g) (nm / lambda). The
+                        // linear response runs to the panel's top grey (255, or 65535 when g
+                        // needs 16 bits).
+                        let top: u16 = if g <= 255 { 255 } else { 65535 };
+                        let scale = nm * 1e-9 / plate.wavelength;
+                        let table = vec![(0, 0.0), (top, std::f64::consts::TAU * scale * f64::from(top) / g as f64)];
+                        calibrated(
+                            crate::encoding::Calibration::new(table, levels, format!("linear, 2 pi at grey {g} at {nm} nm; at {:.1} nm 2 pi at grey {:.2}", plate.wavelength * 1e9, g as f64 / scale)),
+                            job,
+                        )?
+                    }
+                }
             } else if justify == "right" && levels < 65536 {
                 calibrated(crate::encoding::Calibration::linear(levels as u16, levels, "right-justified: s = g"), job)?
             } else {

@@ -4,6 +4,7 @@
 //! The keys of issue #2 are a contract; new keys may be added, none renamed. Unknown keys are
 //! errors that name the key and its line. Paths resolve against the job file's folder.
 
+mod correction;
 mod encoding;
 mod objects;
 pub mod raw;
@@ -20,6 +21,7 @@ use crate::output::tiff::Compression;
 use crate::synthesis::PointSumOptions;
 
 pub use crate::synthesis::planner::SumPath;
+pub use correction::CorrectionSpec;
 pub use encoding::read_calibration;
 pub use raw::*;
 
@@ -59,6 +61,8 @@ pub enum ObjectSource {
         /// Shift of the image centre, replay pixels [right, up].
         shift_px: [i64; 2],
     },
+    /// A list of spots for iterative synthesis (fourier geometry).
+    Spots,
     /// A point cloud file.
     Points,
     /// A mesh sampled into emitters.
@@ -132,6 +136,8 @@ pub enum AlgorithmChoice {
     WeightedGs,
     /// Mixed-region amplitude freedom with this mix.
     MixedRegion(f64),
+    /// Spot lists only: superposition of gratings and lenses with random phases, no iteration.
+    Superposition,
 }
 
 /// `[synthesis] method = "iterative"`, validated.
@@ -212,6 +218,8 @@ pub struct JobSpec {
     pub field_px: Option<[u32; 2]>,
     /// The calibration table's file, if `[encoding] calibration` names one.
     pub calibration_file: Option<PathBuf>,
+    /// Aberration correction added to every modulator pattern (`[correction]`).
+    pub correction: Option<CorrectionSpec>,
 }
 
 impl JobSpec {
@@ -221,6 +229,7 @@ impl JobSpec {
         let mut v = vec![self.path.clone()];
         v.extend(self.objects.iter().map(|o| o.points.clone()));
         v.extend(self.calibration_file.iter().cloned());
+        v.extend(self.correction.iter().filter_map(|c| c.map.clone()));
         v
     }
 }
@@ -284,6 +293,8 @@ impl JobSpec {
         let sum = synthesis::parse_point_sum(s, &bad)?;
         let encoding = encoding::parse_encoding(&raw.encoding, dir, path, &plate, &bad)?;
         let out = parse_output(&raw.output, &plate, path, dir, &bad)?;
+        let correction =
+            correction::parse_correction(raw.correction.as_ref(), &method, &plate, dir, &bad)?;
         Ok(JobSpec {
             path: path.to_path_buf(),
             sha256,
@@ -303,6 +314,7 @@ impl JobSpec {
             bigtiff: raw.output.bigtiff,
             field_px: out.field_px,
             calibration_file: raw.encoding.calibration.as_ref().map(|c| dir.join(c)),
+            correction,
         })
     }
 }

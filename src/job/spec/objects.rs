@@ -45,6 +45,34 @@ pub(super) fn parse_objects(
                 )));
             }
         }
+        if let Some(sp) = &o.spots {
+            if o.points.is_some() || o.mesh.is_some() || o.image.is_some() {
+                return Err(bad(format!(
+                    "[[object]] #{n}: one source per object (spots, image, points or mesh)"
+                )));
+            }
+            if let Some((k, _)) = mesh_keys.iter().chain(&img_keys).find(|k| k.1) {
+                return Err(bad(format!(
+                    "[[object]] #{n}: {k} does not apply to spot lists"
+                )));
+            }
+            if o.offset_mm.is_some()
+                || o.scale.is_some()
+                || o.gain.is_some()
+                || o.reference.is_some()
+            {
+                return Err(bad(format!("[[object]] #{n}: a spot list takes no offset_mm, scale, gain or reference (positions are in the file, in the focal plane)")));
+            }
+            objects.push(ObjectSpec {
+                points: dir.join(sp),
+                source: ObjectSource::Spots,
+                offset: [0.0; 3],
+                scale: 1.0,
+                gain: 1.0,
+                reference: None,
+            });
+            continue;
+        }
         let (points, source) = match (&o.points, &o.mesh) {
             (None, None) if o.image.is_some() => {
                 if let Some((k, _)) = mesh_keys.iter().find(|k| k.1) {

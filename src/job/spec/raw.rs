@@ -80,6 +80,9 @@ pub struct RawObject {
     pub distance_mm: Option<f64>,
     /// Iterative synthesis: shift of the image's centre from the axis, replay-plane pixels [right, up].
     pub shift_px: Option<[i64; 2]>,
+    /// Iterative synthesis, fourier geometry: a list of spots (CSV: x_um, y_um, z_um, weight
+    /// and optionally phase_rad).
+    pub spots: Option<String>,
 }
 
 /// `[synthesis]`
@@ -173,4 +176,21 @@ pub struct RawJob {
     pub synthesis: RawSynthesis,
     pub encoding: RawEncoding,
     pub output: RawOutput,
+    pub correction: Option<RawCorrection>,
+}
+
+/// `[correction]`: aberration correction added to every modulator pattern.
+#[derive(Deserialize, Debug, Clone, Default)]
+#[serde(deny_unknown_fields)]
+pub struct RawCorrection {
+    /// [[n, m, coefficient_waves], ...], Noll-normalised Zernike terms.
+    pub zernike: Option<Vec<[f64; 3]>>,
+    /// Pupil radius, mm (default: half the panel's shorter side).
+    pub pupil_radius_mm: Option<f64>,
+    /// Pupil centre on the panel, mm (default the panel's centre).
+    pub pupil_centre_mm: Option<[f64; 2]>,
+    /// A measured phase map (grey PNG or TIFF of the panel's size).
+    pub correction_map: Option<String>,
+    /// The map's grey value that stands for 2 pi (default 256: grey g is 2 pi g / 256).
+    pub map_two_pi_grey: Option<f64>,
 }

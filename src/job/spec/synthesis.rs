@@ -31,7 +31,7 @@ pub(super) fn parse_method(
     ];
     let images = objects
         .iter()
-        .filter(|o| matches!(o.source, ObjectSource::Image { .. }))
+        .filter(|o| matches!(o.source, ObjectSource::Image { .. } | ObjectSource::Spots))
         .count();
     Ok(match s.method.as_deref().unwrap_or("point-sum") {
         "point-sum" => {
@@ -42,7 +42,7 @@ pub(super) fn parse_method(
             }
             if images > 0 {
                 return Err(bad(
-                    "image objects need [synthesis] method = \"iterative\"".into()
+                    "image and spot objects need [synthesis] method = \"iterative\"".into(),
                 ));
             }
             Method::PointSum
@@ -50,7 +50,8 @@ pub(super) fn parse_method(
         "iterative" => {
             if images != objects.len() {
                 return Err(bad(
-                    "method = \"iterative\" takes image objects only (no points or meshes)".into(),
+                    "method = \"iterative\" takes spot lists or image objects only (no points or meshes)"
+                        .into(),
                 ));
             }
             Method::Iterative(iterative_spec(s, objects, plate, bad)?)
@@ -206,7 +207,35 @@ fn iterative_spec(
             )))
         }
     };
-    let algorithm = match s.algorithm.as_deref().unwrap_or("gs") {
+    let spots = objects
+        .iter()
+        .any(|o| matches!(o.source, ObjectSource::Spots));
+    if spots {
+        if !matches!(geometry, Geometry::Fourier(_)) {
+            return Err(bad(
+                "spot lists need geometry = \"fourier\" (positions are in the lens's focal plane)"
+                    .into(),
+            ));
+        }
+        if s.cell_px.is_some() {
+            return Err(bad("[synthesis] cell_px does not apply to spot lists (the gratings and lenses of the spots span the whole panel)".into()));
+        }
+        for k in ["quantize_last", "mix", "stall_tolerance"] {
+            let set = match k {
+                "quantize_last" => s.quantize_last.is_some(),
+                "mix" => s.mix.is_some(),
+                _ => s.stall_tolerance.is_some(),
+            };
+            if set {
+                return Err(bad(format!("[synthesis] {k} does not apply to spot lists")));
+            }
+        }
+    }
+    let default_algorithm = if spots { "weighted-gs" } else { "gs" };
+    let algorithm = match s.algorithm.as_deref().unwrap_or(default_algorithm) {
+        "superposition" if spots => AlgorithmChoice::Superposition,
+        "superposition" => return Err(bad("[synthesis] algorithm = \"superposition\" applies to spot lists".into())),
+        "mixed-region" if spots => return Err(bad("[synthesis] algorithm = \"mixed-region\" applies to images, not to spot lists (use \"weighted-gs\")".into())),
         "gs" => AlgorithmChoice::Gs,
         "weighted-gs" => AlgorithmChoice::WeightedGs,
         "mixed-region" => {
@@ -216,14 +245,14 @@ fn iterative_spec(
             }
             AlgorithmChoice::MixedRegion(m)
         }
-        other => return Err(bad(format!("[synthesis] algorithm = \"{other}\" is not one of \"gs\", \"weighted-gs\", \"mixed-region\""))),
+        other => return Err(bad(format!("[synthesis] algorithm = \"{other}\" is not one of \"gs\", \"weighted-gs\", \"mixed-region\", \"superposition\" (spot lists)"))),
     };
     if s.mix.is_some() && !matches!(algorithm, AlgorithmChoice::MixedRegion(_)) {
         return Err(bad(
             "[synthesis] mix applies to algorithm = \"mixed-region\"".into(),
         ));
     }
-    let quantize_last = match s.quantize_last.unwrap_or(5) {
+    let quantize_last = match s.quantize_last.unwrap_or(if spots { 0 } else { 5 }) {
         q if q >= 0 && q as usize <= iterations => q as usize,
         q => {
             return Err(bad(format!(
