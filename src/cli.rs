@@ -109,6 +109,10 @@ pub enum Command {
         /// Skip checking the TIFF against its sidecar's SHA-256 (which reads the whole plate).
         #[arg(long)]
         no_verify: bool,
+        /// Fourier replays of modulator patterns: the panel's fill factor F (0 < F <= 1), for
+        /// the zero order's strength (dead area passes light unmodulated).
+        #[arg(long, value_name = "F", value_parser = parse_fill_factor)]
+        fill_factor: Option<f64>,
     },
     /// Writes a job's emitters (position, amplitude, phase, normal, channel) as a PLY point cloud.
     Sample {
@@ -133,6 +137,13 @@ pub struct Distances(pub Vec<f64>);
 
 fn parse_distances(s: &str) -> Result<Distances, String> {
     fringemill::replay::parse_distances_mm(s).map(Distances)
+}
+
+fn parse_fill_factor(s: &str) -> Result<f64, String> {
+    match s.parse::<f64>() {
+        Ok(f) if f > 0.0 && f <= 1.0 => Ok(f),
+        _ => Err(format!("'{s}': expected a number with 0 < F <= 1")),
+    }
 }
 
 /// Most worker threads accepted: 8 per core (at least 64). More only thrash the machine.

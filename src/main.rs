@@ -114,6 +114,7 @@ fn main() -> ExitCode {
             peaks,
             oversample,
             no_verify,
+            fill_factor,
         } => {
             let out = out.unwrap_or_else(|| {
                 let stem = plate
@@ -136,6 +137,7 @@ fn main() -> ExitCode {
                 peaks,
                 oversample: oversample.map(usize::from),
                 verify: !no_verify,
+                fill_factor,
             };
             match replay::reconstruct(&req) {
                 Ok(files) => {

@@ -394,3 +394,184 @@ fn spot_jobs_refuse_what_does_not_apply() {
         assert!(!d.path().join("p.tif").exists());
     }
 }
+
+/// `plan` warns when a spot sits on the zero order or its twin on another spot; `reconstruct`
+/// reads the spot figures off the plate (the sidecar's prediction, times F^2 with a fill
+/// factor F, and with the correction taken out again "through the corrected aberration"), and
+/// reports the zero order as |F <t> + 1 - F|^2 (the fill-factor model of `replay::orders`,
+/// common practice).
+#[test]
+fn plan_warnings_and_reconstruct_spot_figures() {
+    let d = tempfile::tempdir().unwrap();
+    let step = LAMBDA * FOCAL / (N as f64 * PITCH) * 1e6; // um
+    let csv = format!(
+        "x_um,y_um,z_um,weight\n{},0,0,1\n{},{},0,1\n{},{},0,1\n",
+        0.5 * step,
+        30.0 * step,
+        10.0 * step,
+        -30.0 * step,
+        -10.0 * step
+    );
+    let (phase, side) = spot_plate(
+        d.path(),
+        &csv,
+        "iterations = 20",
+        "[correction]\nzernike = [[2, 2, 0.1]]\n",
+    );
+    let o = run(&["plan", d.path().join("job.toml").to_str().unwrap()]);
+    let text = String::from_utf8_lossy(&o.stdout);
+    assert!(
+        text.contains("spot 1 of") && text.contains("from the zero order"),
+        "{text}"
+    );
+    assert!(
+        text.contains("the twin of spot 2") && text.contains("falls on spot 3"),
+        "{text}"
+    );
+    let fill = 0.9;
+    let o = run(&[
+        "reconstruct",
+        d.path().join("plate.tif").to_str().unwrap(),
+        "--focal-mm",
+        "200",
+        "--fill-factor",
+        "0.9",
+    ]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let m: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(d.path().join("plate-replay.json")).unwrap())
+            .unwrap();
+    // The sidecar predicts the quantized design; the plate holds the quantized sum of design and
+    // correction, so the two differ by the rounding noise of 256 levels (phase error uniform
+    // within +-pi/256: intensity share 1 - (2 pi / 256)^2 / 12 = 1 - 5e-5 on average).
+    let through = &m["spot_list"]["through_the_corrected_aberration"];
+    for (k, s) in spots_of(&side).iter().enumerate() {
+        let want = s["predicted_intensity"].as_f64().unwrap() * fill * fill;
+        let got = through["intensity"][k].as_f64().unwrap();
+        assert!(
+            (got - want).abs() < 3e-4 * want,
+            "spot {k}: {got} vs {want}"
+        );
+    }
+    // Ideal optics see the correction as an aberration: the spots lose light.
+    let ideal = m["spot_list"]["ideal_optics"]["efficiency"]
+        .as_f64()
+        .unwrap();
+    assert!(ideal < 0.9 * through["efficiency"].as_f64().unwrap(), "{m}");
+    // Zero order from the plate's own mean transmittance (the correction left in: as replayed).
+    let mean = phase
+        .iter()
+        .map(|&p| Complex64::from_polar(1.0, p))
+        .sum::<Complex64>()
+        / (N * N) as f64;
+    let z0 = (mean * fill + (1.0 - fill)).norm_sqr();
+    let zo = &m["planes"][0]["orders"]["zero_order"];
+    assert_eq!(zo["sample"], serde_json::json!([N / 2, N / 2]));
+    assert!(
+        (zo["share_with_fill_factor"].as_f64().unwrap() - z0).abs() < 1e-6,
+        "{zo}"
+    );
+    assert!(
+        (zo["share"].as_f64().unwrap() - mean.norm_sqr()).abs() < 1e-6,
+        "{zo}"
+    );
+}
+
+/// A binary phase pattern replays its twin as strongly as its image (the +1 and -1 orders of a
+/// two-level phase grating are equal: Goodman, Introduction to Fourier Optics, ch. 9), and
+/// `reconstruct --region` finds it point-mirrored through the axis; 256 levels keep it weak.
+#[test]
+fn twin_of_binary_phase_is_as_strong_as_the_image() {
+    let step = LAMBDA * FOCAL / (N as f64 * PITCH) * 1e6;
+    let csv = format!(
+        "x_um,y_um,z_um,weight\n{},{},0,1\n",
+        40.0 * step,
+        12.0 * step
+    );
+    let mut shares = Vec::new();
+    for enc in ["kind = \"binary-phase\"", "kind = \"phase\"\nlevels = 256"] {
+        let d = tempfile::tempdir().unwrap();
+        std::fs::write(d.path().join("spots.csv"), &csv).unwrap();
+        let job = d.path().join("job.toml");
+        std::fs::write(
+            &job,
+            format!(
+                "[hologram]\nwidth_px = {N}\nheight_px = {N}\npitch_um = 8.0\nwavelength_nm = 1064\n\
+                 [reference]\nkind = \"plane\"\n[[object]]\nspots = \"spots.csv\"\n\
+                 [synthesis]\nmethod = \"iterative\"\ngeometry = \"fourier\"\nfocal_mm = 200\niterations = 5\n\
+                 [encoding]\n{enc}\n[output]\npath = \"plate.tif\"\n"
+            ),
+        )
+        .unwrap();
+        assert!(run(&["run", "-q", job.to_str().unwrap()]).status.success());
+        // The spot's sample: column N/2 + 40, row N/2 - 12.
+        let region = format!("{},{},1,1", N / 2 + 40, N / 2 - 12);
+        let o = run(&[
+            "reconstruct",
+            d.path().join("plate.tif").to_str().unwrap(),
+            "--focal-mm",
+            "200",
+            "--region",
+            &region,
+        ]);
+        assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+        let m: serde_json::Value =
+            serde_json::from_slice(&std::fs::read(d.path().join("plate-replay.json")).unwrap())
+                .unwrap();
+        let t = &m["planes"][0]["orders"]["twin"];
+        assert_eq!(
+            t["mirrored_region"],
+            serde_json::json!([N / 2 - 40, N / 2 + 12, 1, 1])
+        );
+        shares.push((
+            t["region_share"].as_f64().unwrap(),
+            t["twin_share"].as_f64().unwrap(),
+        ));
+    }
+    let (img, twin) = shares[0];
+    // Binary phase: 4 / pi^2 = 0.405 into each first order (Swanson 1989; physics.md table).
+    assert!(
+        (img - twin).abs() < 1e-6 && (img - 4.0 / (PI * PI)).abs() < 0.01,
+        "{shares:?}"
+    );
+    let (img, twin) = shares[1];
+    assert!(img > 0.99 && twin < 1e-4, "{shares:?}");
+}
+
+/// `two_pi_grey` measured at another wavelength (`calibration_nm`): phase goes as 1 / lambda
+/// (retardance 2 pi dn d / lambda, dispersion neglected: common practice), so at the design
+/// wavelength 2 pi falls at grey g lambda / lambda_cal and level l is written as the grey nearest
+/// to l g (lambda / lambda_cal) / N.
+#[test]
+fn two_pi_grey_is_scaled_to_the_design_wavelength() {
+    let d = tempfile::tempdir().unwrap();
+    let (_, side) = spot_plate(
+        d.path(),
+        "x_um,y_um,z_um,weight\n500,300,0,1\n",
+        "iterations = 3",
+        "",
+    );
+    assert!(side["encoding"]["calibration"].is_null());
+    let job = d.path().join("job.toml");
+    let text = std::fs::read_to_string(&job).unwrap().replace(
+        "levels = 256\n",
+        "levels = 256\ntwo_pi_grey = 212\ncalibration_nm = 1310\n",
+    );
+    std::fs::write(&job, text).unwrap();
+    let o = run(&["run", "-q", job.to_str().unwrap()]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let side: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(d.path().join("plate.json")).unwrap()).unwrap();
+    let map = side["encoding"]["calibration"]["level_to_grey"]
+        .as_array()
+        .unwrap();
+    let g2pi = 212.0 * 1064.0 / 1310.0;
+    for (l, g) in map.iter().enumerate() {
+        let want = l as f64 * g2pi / 256.0;
+        let got = g.as_f64().unwrap();
+        assert!(
+            (got - want).abs() <= 0.5 + 1e-6,
+            "level {l}: grey {got}, want {want:.3}"
+        );
+    }
+}

@@ -345,6 +345,57 @@ pub fn placement_warnings(spec: &JobSpec, it: &IterativeSpec) -> Result<Vec<Stri
         return Ok(out);
     }
     let (nx, ny) = (cell[0] as usize, cell[1] as usize);
+    let Geometry::Fourier(focal) = it.geometry else {
+        return Ok(out);
+    };
+    // Replay samples of the cell's lattice, metres, and the guard distance.
+    let step = [
+        p.wavelength * focal / (nx as f64 * p.pitch[0]),
+        p.wavelength * focal / (ny as f64 * p.pitch[1]),
+    ];
+    let guard = it.zero_order_guard.unwrap_or(2.0 * step[0].max(step[1]));
+    // Spots: positions in the focal plane, moved by the carrier (m plate samples).
+    let shift = [
+        it.carrier_samples[0] as f64 * p.wavelength * focal / (p.width as f64 * p.pitch[0]),
+        it.carrier_samples[1] as f64 * p.wavelength * focal / (p.height as f64 * p.pitch[1]),
+    ];
+    for o in spec
+        .objects
+        .iter()
+        .filter(|o| matches!(o.source, ObjectSource::Spots))
+    {
+        let spots = crate::scene::spots::read_spots(&o.points)?;
+        let at: Vec<[f64; 2]> = spots
+            .iter()
+            .map(|s| [s.x + shift[0], s.y + shift[1]])
+            .collect();
+        for (k, a) in at.iter().enumerate() {
+            let r = a[0].hypot(a[1]);
+            if r < guard {
+                out.push(format!(
+                    "warning: spot {} of {} is {:.1} um from the zero order (guard {:.1} um): the undiffracted light lands on it; move the spots off the axis or block the zero order",
+                    k + 1,
+                    o.points.display(),
+                    r * 1e6,
+                    guard * 1e6
+                ));
+            }
+            // Its twin (the conjugate, point-mirrored through the axis) on another spot.
+            if let Some(j) = at
+                .iter()
+                .enumerate()
+                .position(|(j, b)| j != k && (a[0] + b[0]).hypot(a[1] + b[1]) < guard)
+            {
+                out.push(format!(
+                    "warning: the twin of spot {} (its conjugate, mirrored through the axis) falls on spot {} of {}: with few phase levels that spot gets the twin's light too",
+                    k + 1,
+                    j + 1,
+                    o.points.display()
+                ));
+            }
+        }
+    }
+    let guard_px = [guard / step[0], guard / step[1]];
     // The zero order relative to the image, in cell samples: the carrier moves the image by m
     // plate samples = m Nc / Np cell samples (x right, y up).
     let zx = (nx / 2) as f64 - it.carrier_samples[0] as f64 * nx as f64 / p.width as f64;
@@ -356,7 +407,21 @@ pub fn placement_warnings(spec: &JobSpec, it: &IterativeSpec) -> Result<Vec<Stri
         let (w, h, _) = read_target(&o.points)?;
         let x0 = (nx / 2) as f64 - (w / 2) as f64 + shift_px[0] as f64;
         let y0 = (ny / 2) as f64 - (h / 2) as f64 - shift_px[1] as f64;
-        if zx > x0 - 0.5 && zx < x0 + w as f64 - 0.5 && zy > y0 - 0.5 && zy < y0 + h as f64 - 0.5 {
+        let (gx, gy) = (guard_px[0].max(0.5), guard_px[1].max(0.5));
+        let covers =
+            zx > x0 - 0.5 && zx < x0 + w as f64 - 0.5 && zy > y0 - 0.5 && zy < y0 + h as f64 - 0.5;
+        let near = zx > x0 - gx
+            && zx < x0 + w as f64 - 1.0 + gx
+            && zy > y0 - gy
+            && zy < y0 + h as f64 - 1.0 + gy;
+        if !covers && near && it.zero_order_guard.is_some() {
+            out.push(format!(
+                "warning: target {} comes within {:.1} um of the zero order (zero_order_guard_um)",
+                o.points.display(),
+                guard * 1e6
+            ));
+        }
+        if covers {
             out.push(format!(
                 "warning: target {} covers the zero order (undiffracted light on the optical axis, at its pixel ({:.0}, {:.0})): move the image off it with carrier_deg or shift_px",
                 o.points.display(),

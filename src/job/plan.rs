@@ -36,8 +36,39 @@ fn plan_iterative(spec: &JobSpec, it: &IterativeSpec) -> Result<PlanReport> {
         ));
     }
     for o in &spec.objects {
+        if matches!(o.source, super::spec::ObjectSource::Spots) {
+            let spots = crate::scene::spots::read_spots(&o.points)?;
+            let zs = spots.iter().map(|s| s.z);
+            let (zlo, zhi) = zs.fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), z| {
+                (a.min(z), b.max(z))
+            });
+            lines.push(format!(
+                "spots {}: {} spots, z from {:.1} to {:.1} um; weighted GS on the spot amplitudes costs about 2 x {} x {:.3} Mpx complex multiply-adds per iteration",
+                o.points.display(),
+                spots.len(),
+                zlo * 1e6,
+                zhi * 1e6,
+                spots.len(),
+                p.pixels() as f64 / 1e6
+            ));
+            continue;
+        }
         let (w, h, _) = super::iterative::read_target(&o.points)?;
         lines.push(format!("target {}: {} x {} px", o.points.display(), w, h));
+    }
+    if let Some(c) = &spec.correction {
+        lines.push(format!(
+            "correction: {} Zernike term(s) (Noll normalisation, waves rms) over a {:.3} mm pupil at [{:.3}, {:.3}] mm{}",
+            c.terms.len(),
+            c.pupil_radius * 1e3,
+            c.pupil_centre[0] * 1e3,
+            c.pupil_centre[1] * 1e3,
+            c.map.as_ref().map_or(String::new(), |m| format!(", plus the map {} (2 pi at grey {})", m.display(), c.map_two_pi_grey))
+        ));
+        if c.map.is_some() {
+            // Reads and size-checks the map, so a run does not fail on it later.
+            super::iterative::load_correction(spec)?;
+        }
     }
     lines.extend(super::iterative::placement_warnings(spec, it)?);
     let layout = tiff_layout(spec, &spec.encoding.resolve(|| 1.0));

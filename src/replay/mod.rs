@@ -13,6 +13,7 @@
 //! Depends on `optics` (propagators), `encoding` (transmittance) and `output` (sidecar format).
 
 pub mod metrics;
+pub mod orders;
 mod plate_file;
 mod reconstruct;
 

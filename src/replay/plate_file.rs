@@ -30,6 +30,11 @@ pub struct PlateFile {
     pub real_image: bool,
     /// Size and SHA-256 of the TIFF as its sidecar records them (single-TIFF plates).
     pub recorded: Option<(u64, String)>,
+    /// A spot-list design: its lens's focal length (metres) and spots, for figures per spot.
+    pub spots: Option<(f64, Vec<crate::synthesis::spots::Spot>)>,
+    /// The Zernike part of the correction written into the pattern (the measured map is not
+    /// kept in the sidecar).
+    pub correction: Option<crate::optics::zernike::Correction>,
 }
 
 /// One field file of a plate written as fields, from the fields manifest.
@@ -249,6 +254,50 @@ impl PlateFile {
             .iterative
             .as_ref()
             .is_some_and(|i| i.geometry == "fresnel");
+        let spots = match side.iterative.as_ref().map(|i| (i.focal_mm, &i.spots)) {
+            Some((Some(f), Some(sp))) => {
+                let f = positive(f, "iterative.focal_mm")? * 1e-3;
+                let mut v = Vec::with_capacity(sp.spots.len());
+                for s in &sp.spots {
+                    finite(&[s.x_um, s.y_um, s.z_um, s.weight], "iterative.spots")?;
+                    v.push(crate::synthesis::spots::Spot {
+                        x: s.x_um / 1e6,
+                        y: s.y_um / 1e6,
+                        z: s.z_um / 1e6,
+                        weight: positive(s.weight, "iterative.spots weight")?,
+                        phase: s.phase_rad,
+                    });
+                }
+                Some((f, v))
+            }
+            _ => None,
+        };
+        let correction = match side.iterative.as_ref().and_then(|i| i.correction.as_ref()) {
+            Some(c) if !c.zernike.is_empty() => {
+                let mut terms = Vec::new();
+                for t in &c.zernike {
+                    let term = crate::optics::zernike::ZernikeTerm::new(
+                        t[0] as u32,
+                        t[1] as i32,
+                        t[2],
+                        "sidecar iterative.correction.zernike",
+                    )
+                    .map_err(|m| Error::input(&sc, m))?;
+                    terms.push(term);
+                }
+                finite(&c.pupil_centre_mm, "iterative.correction.pupil_centre_mm")?;
+                Some(crate::optics::zernike::Correction {
+                    terms,
+                    pupil_radius: positive(
+                        c.pupil_radius_mm,
+                        "iterative.correction.pupil_radius_mm",
+                    )? * 1e-3,
+                    pupil_centre: c.pupil_centre_mm.map(|v| v * 1e-3),
+                    map: None,
+                })
+            }
+            _ => None,
+        };
         Ok(PlateFile {
             tif: tif.to_path_buf(),
             plate,
@@ -260,6 +309,8 @@ impl PlateFile {
                 OutputFiles::Tiff { bytes, sha256, .. } => Some((*bytes, sha256.clone())),
                 _ => None,
             },
+            spots,
+            correction,
         })
     }
 

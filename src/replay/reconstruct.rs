@@ -35,6 +35,9 @@ pub struct ReconstructRequest {
     pub oversample: Option<usize>,
     /// Check the TIFF against its sidecar's SHA-256 before replaying (reads the whole file).
     pub verify: bool,
+    /// Fourier replays of modulator patterns: the panel's fill factor (0 < F <= 1), for the
+    /// zero order's strength and the designed light's share.
+    pub fill_factor: Option<f64>,
 }
 
 /// Runs a reconstruction: writes one PNG per depth and one JSON of metrics (`OUT.json`).
@@ -69,7 +72,59 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
             ));
         }
     }
+    if let Some(f) = req.fill_factor {
+        if req.focal.is_none() || !(f > 0.0 && f <= 1.0) {
+            return Err(Error::job(
+                &req.tif,
+                format!(
+                    "--fill-factor {f}: expected 0 < F <= 1, with a Fourier replay (--focal-mm)"
+                ),
+            ));
+        }
+    }
     let images = replay_planes(&pf, win, req.illumination, &req.distances, req.focal)?;
+    // Fourier replays: the lit window's mean (zero order) and, for a spot-list plate replayed
+    // whole, its figures per spot read off the samples.
+    let whole = win.x == 0 && win.y == 0 && win.w == pf.plate.width && win.h == pf.plate.height;
+    let (mean_t, spot_replay) = match req.focal {
+        Some(focal) => {
+            let t: Vec<num_complex::Complex64> = lit_window(&pf, win, req.illumination)?
+                .iter()
+                .map(|v| num_complex::Complex64::new(v.re.into(), v.im.into()))
+                .collect();
+            let mean = t.iter().sum::<num_complex::Complex64>() / t.len().max(1) as f64;
+            let spots = match &pf.spots {
+                Some((_, sp)) if whole => {
+                    let ideal =
+                        super::orders::spot_replay(&pf.plate, focal, sp, &t, req.fill_factor);
+                    // Through the optics the correction is for: the plate with its Zernike
+                    // correction taken out again (the aberration cancels it).
+                    let through = pf.correction.as_ref().map(|c| {
+                        let p = &pf.plate;
+                        let w = p.width as usize;
+                        let ta: Vec<num_complex::Complex64> = t
+                            .iter()
+                            .enumerate()
+                            .map(|(k, v)| {
+                                let (r, col) = (k / w, k % w);
+                                let ph =
+                                    c.zernike_phase(p.x_of_col(col as f64), p.y_of_row(r as f64));
+                                v * num_complex::Complex64::from_polar(1.0, -ph)
+                            })
+                            .collect();
+                        super::orders::spot_replay(p, focal, sp, &ta, req.fill_factor)
+                    });
+                    Some(serde_json::json!({
+                        "ideal_optics": ideal,
+                        "through_the_corrected_aberration": through,
+                    }))
+                }
+                _ => None,
+            };
+            (mean, spots)
+        }
+        None => (num_complex::Complex64::new(0.0, 0.0), None),
+    };
     let mut written = Vec::new();
     let mut planes = Vec::new();
     // Depth planes are drawn as the plate's viewer sees them (physics.md, "Viewing side"): the
@@ -136,6 +191,16 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
             }
             _ => None,
         };
+        let orders = req.focal.map(|_| {
+            let (zero, twin) =
+                super::orders::orders(w, h, &drawn, mean_t, req.region, req.fill_factor);
+            serde_json::json!({
+                "zero_order": zero,
+                "twin": twin,
+                "fill_factor": req.fill_factor,
+                "what": "zero order: the undiffracted light on the optical axis (a carrier moves the image, not it); twin: the conjugate image, point-mirrored through the axis (as strong as the image for binary phase, weak for many levels); with a fill factor F the zero order is |F <t> + 1 - F|^2 of the incident power and designed light keeps F^2",
+            })
+        });
         planes.push(serde_json::json!({
             "image": path.file_name().map(|f| f.to_string_lossy().into_owned()),
             "distance_mm": if req.focal.is_some() { None } else { Some(img.distance * 1e3) },
@@ -148,6 +213,7 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
             "region": region,
             "target": cmp,
             "spots": spots,
+            "orders": orders,
         }));
     }
     let mut oversampled = None;
@@ -207,6 +273,7 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
         "depth_convention": if req.focal.is_some() { "focal plane of a lens of focal length focal_mm behind the plate (Fourier geometry); centre_mm is the optical axis" } else if pf.real_image { "distance D is the design plane of the plate's targets, a real image at +D (field propagated by +D)" } else { "distance D shows the plane z = D in front of the plate (field propagated by -D)" },
         "planes": planes,
         "oversampled": oversampled,
+        "spot_list": spot_replay,
     });
     let jp = req.out.with_extension("json");
     crate::output::atomic::write_atomically(

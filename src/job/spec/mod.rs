@@ -168,6 +168,9 @@ pub struct IterativeSpec {
     pub carrier: [f64; 2],
     /// Lens focal length, metres.
     pub lens: Option<f64>,
+    /// Fourier geometry: `plan` warns when a target or spot comes nearer the zero order than
+    /// this, metres in the focal plane (None: two replay samples).
+    pub zero_order_guard: Option<f64>,
 }
 
 /// The synthesis method.

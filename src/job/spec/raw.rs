@@ -122,6 +122,9 @@ pub struct RawSynthesis {
     pub min_iterations: Option<i64>,
     /// Iterative: size of the computed cell, repeated over the plate (default: the whole plate).
     pub cell_px: Option<[i64; 2]>,
+    /// Iterative, fourier geometry: `plan` warns when a target or spot comes nearer the zero order
+    /// than this, micrometres in the focal plane (default: two replay samples).
+    pub zero_order_guard_um: Option<f64>,
     /// Iterative: blazed carrier tilts, degrees (moves the image off the zero order).
     pub carrier_deg: Option<[f64; 2]>,
     /// Iterative: lens term focal length, mm.

@@ -28,6 +28,7 @@ pub(super) fn parse_method(
         ("cell_px", s.cell_px.is_some()),
         ("carrier_deg", s.carrier_deg.is_some()),
         ("lens_mm", s.lens_mm.is_some()),
+        ("zero_order_guard_um", s.zero_order_guard_um.is_some()),
     ];
     let images = objects
         .iter()
@@ -325,7 +326,22 @@ fn iterative_spec(
             )))
         }
     };
+    let zero_order_guard = match s.zero_order_guard_um {
+        None => None,
+        Some(_) if !matches!(geometry, Geometry::Fourier(_)) => {
+            return Err(bad(
+                "[synthesis] zero_order_guard_um applies to geometry = \"fourier\"".into(),
+            ))
+        }
+        Some(g) if g.is_finite() && g >= 0.0 => Some(g * 1e-6),
+        Some(g) => {
+            return Err(bad(format!(
+                "[synthesis] zero_order_guard_um = {g} must be >= 0"
+            )))
+        }
+    };
     Ok(IterativeSpec {
+        zero_order_guard,
         geometry,
         iterations,
         seed: s.seed.unwrap_or(1),
