@@ -393,6 +393,26 @@ fn spot_jobs_refuse_what_does_not_apply() {
         assert_eq!(err.trim().lines().count(), 1, "{err}");
         assert!(!d.path().join("p.tif").exists());
     }
+    // A spot beyond lambda f / 2p = 13.3 mm would alias (physics.md, "Sampling limits"): `plan`
+    // and `run` refuse it, naming the spot and the limit.
+    std::fs::write(
+        d.path().join("s.csv"),
+        "x_um,y_um,z_um,weight\n1,2,3,1\n14000,0,0,1\n",
+    )
+    .unwrap();
+    let job = d.path().join("job.toml");
+    let text = std::fs::read_to_string(&job).unwrap();
+    let text = text[..text.find("[correction]").unwrap()].to_string()
+        + "\n[encoding]\nkind = \"phase\"\n[output]\npath = \"p.tif\"\n";
+    std::fs::write(&job, text).unwrap();
+    for cmd in ["plan", "run"] {
+        let o = run(&[cmd, job.to_str().unwrap()]);
+        let err = String::from_utf8_lossy(&o.stderr);
+        assert!(
+            !o.status.success() && err.contains("spot 2") && err.contains("13300.0 um"),
+            "{cmd}: {err}"
+        );
+    }
 }
 
 /// `plan` warns when a spot sits on the zero order or its twin on another spot; `reconstruct`

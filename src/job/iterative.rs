@@ -147,6 +147,7 @@ fn build_spots(
         ));
     };
     let spots = crate::scene::spots::read_spots(path)?;
+    crate::synthesis::spots::check(&p, focal, &spots).map_err(|m| Error::job(path, m))?;
     let algorithm = match it.algorithm {
         AlgorithmChoice::Superposition => SpotAlgorithm::Superposition,
         AlgorithmChoice::Gs => SpotAlgorithm::Gs,

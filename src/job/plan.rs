@@ -38,6 +38,10 @@ fn plan_iterative(spec: &JobSpec, it: &IterativeSpec) -> Result<PlanReport> {
     for o in &spec.objects {
         if matches!(o.source, super::spec::ObjectSource::Spots) {
             let spots = crate::scene::spots::read_spots(&o.points)?;
+            if let super::spec::Geometry::Fourier(f) = it.geometry {
+                crate::synthesis::spots::check(&p, f, &spots)
+                    .map_err(|m| crate::error::Error::job(&o.points, m))?;
+            }
             let zs = spots.iter().map(|s| s.z);
             let (zlo, zhi) = zs.fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), z| {
                 (a.min(z), b.max(z))

@@ -186,6 +186,58 @@ impl SpotFactors {
     }
 }
 
+/// Largest panel side for spot-list designs (whole-panel arrays in memory, as iterative cells).
+pub const MAX_SIDE: u32 = 8192;
+
+/// Largest memory of the spots' phase factors, bytes (spots x (width + height) complex values).
+pub const MAX_FACTOR_BYTES: u64 = 512 << 20;
+
+/// Checks that the panel can make the spots: its size within [`MAX_SIDE`], the factors within
+/// [`MAX_FACTOR_BYTES`], and no spot's grating-plus-lens fringe finer than the pitch holds
+/// anywhere on the panel: the local frequency of D_jm along x, (x_m + z_m x / f) / (lambda f),
+/// stays within 1 / (2 p) at both edges (physics.md, "Sampling limits"), likewise along y.
+pub fn check(plate: &Plate, focal: f64, spots: &[Spot]) -> Result<(), String> {
+    if plate.width > MAX_SIDE || plate.height > MAX_SIDE {
+        return Err(format!(
+            "a spot-list design holds the whole {} x {} panel in memory; at most {MAX_SIDE} x {MAX_SIDE}",
+            plate.width, plate.height
+        ));
+    }
+    let bytes = spots.len() as u64 * (u64::from(plate.width) + u64::from(plate.height)) * 16;
+    if bytes > MAX_FACTOR_BYTES {
+        return Err(format!(
+            "{} spots on a {} x {} panel need {:.0} MiB of phase factors; at most {} MiB (fewer spots)",
+            spots.len(),
+            plate.width,
+            plate.height,
+            bytes as f64 / f64::from(1 << 20),
+            MAX_FACTOR_BYTES >> 20
+        ));
+    }
+    let lam = plate.wavelength;
+    let half = [plate.size()[0] / 2.0, plate.size()[1] / 2.0];
+    for (k, s) in spots.iter().enumerate() {
+        for (axis, pos, edge, pitch) in [
+            ("x", s.x, half[0], plate.pitch[0]),
+            ("y", s.y, half[1], plate.pitch[1]),
+        ] {
+            let limit = lam * focal / (2.0 * pitch);
+            let worst = (pos + s.z * edge / focal)
+                .abs()
+                .max((pos - s.z * edge / focal).abs());
+            if worst > limit {
+                return Err(format!(
+                    "spot {} needs a fringe finer than the pitch holds in {axis}: its position plus the defocus's tilt at the panel's edge reach {:.1} um in the focal plane, beyond the {:.1} um (lambda f / 2p) the panel replays without aliasing",
+                    k + 1,
+                    worst * 1e6,
+                    limit * 1e6
+                ));
+            }
+        }
+    }
+    Ok(())
+}
+
 /// Phase of a pattern quantized to `levels` as the phase encoding stores it
 /// (g = round(N phi / 2 pi) mod N; physics.md, "Fringe term and encodings").
 pub fn quantized(phase: f64, levels: u32) -> f64 {
