@@ -36,6 +36,9 @@ pub struct Journal {
     /// Field runs: fields done and the current row's writer checkpoints.
     #[serde(default)]
     pub fields: Option<super::fields::FieldsState>,
+    /// The GDSII writer's checkpoint (layouts).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub gds: Option<crate::output::gdsii::GdsState>,
     /// SHA-256 of every input file the job names (points, mesh, target images, calibration), as
     /// read when the run started: a resume refuses when one changed.
     #[serde(default)]

@@ -102,6 +102,8 @@ pub(super) struct Prepared {
     pub blocks: Vec<(usize, usize)>,
     /// Rows of the unit shards are made of: a strip, or a field row.
     pub unit_rows: u32,
+    /// GDSII output: its layout (rectangles close at each strip of `rps` rows).
+    pub gds: Option<crate::output::gdsii::GdsLayout>,
 }
 
 /// The direct point sum of a job's scene (channels, occlusion when a mesh asks for it) and the
@@ -184,7 +186,31 @@ pub(super) fn prepare(spec: &JobSpec, mode: ProgressMode) -> Result<Prepared> {
         }
         _ => band_rows_for(spec, rps),
     };
+    let gds = match &spec.gdsii {
+        None => None,
+        Some(g) => {
+            let name = spec
+                .output
+                .file_stem()
+                .map(|s| s.to_string_lossy().to_ascii_uppercase())
+                .unwrap_or_else(|| "PLATE".into());
+            Some(
+                crate::output::gdsii::GdsLayout::new(
+                    spec.plate.width,
+                    spec.plate.height,
+                    spec.plate.pitch,
+                    g.db_unit,
+                    g.layer,
+                    g.datatype,
+                    rps,
+                    &name,
+                )
+                .map_err(|m| Error::job(&spec.path, m))?,
+            )
+        }
+    };
     Ok(Prepared {
+        gds,
         source: sum,
         iteration,
         encoding,

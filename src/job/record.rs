@@ -26,6 +26,8 @@ use crate::scene::sampling::{Density, Pattern, PhaseMode};
 pub enum Written<'a> {
     /// One TIFF.
     Tiff(&'a FinishedTiff),
+    /// One GDSII layout.
+    Gds(&'a crate::output::gdsii::FinishedGds),
     /// Field files.
     Fields {
         /// The manifest file.
@@ -308,6 +310,24 @@ pub fn sidecar(spec: &JobSpec, run: RunRecord) -> Sidecar {
             strips: t.strips,
             photometric: "min-is-black".into(),
         },
+        Written::Gds(g) => {
+            let gs = spec.gdsii.as_ref().expect("a GDSII run has its spec");
+            OutputFiles::Gdsii {
+                file: file_name(&g.path),
+                format: "gdsii".into(),
+                bytes: g.bytes,
+                sha256: g.sha256.clone(),
+                boundaries: g.boundaries,
+                vertices: g.vertices,
+                database_unit_nm: gs.db_unit * 1e9,
+                user_unit_um: 1.0,
+                layer: gs.layer,
+                datatype: gs.datatype,
+                rows_per_strip: run.layout.effective_rows_per_strip(),
+                merge: "rectangles: the runs of set pixels (stored bit 1: clear, or pi) of each row, a run continuing with the same columns in the next rows extended downwards, closed at each strip's end; no pixel changes state".into(),
+                coordinates: "plate coordinates in database units: origin at the plate's centre, x right, y up (row 0 on top); pixel (row i, column j) spans x (j - W/2) p .. (j + 1 - W/2) p, y (H/2 - i - 1) p .. (H/2 - i) p".into(),
+            }
+        }
         Written::Fields {
             manifest,
             count,

@@ -157,6 +157,25 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
             first_row + rows_done,
             resumed.and_then(|j| j.fields),
         )?),
+        (None, None, Some(j)) if prep.gds.is_some() => {
+            let state = j.gds.ok_or_else(|| {
+                Error::input(
+                    &journal,
+                    "journal without GDSII writer state; run with --restart",
+                )
+            })?;
+            Sink::Gds(crate::output::gdsii::GdsWriter::resume(
+                &spec.output,
+                prep.gds.clone().expect("checked"),
+                state,
+            )?)
+        }
+        (None, None, None) if prep.gds.is_some() => {
+            Sink::Gds(crate::output::gdsii::GdsWriter::create(
+                &spec.output,
+                prep.gds.clone().expect("checked"),
+            )?)
+        }
         (None, None, Some(j)) => {
             let state = j.writer.ok_or_else(|| {
                 Error::input(&journal, "journal without writer state; run with --restart")
@@ -205,6 +224,9 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
                     Sink::Tiff(w) => {
                         let _ = w.abandon();
                     }
+                    Sink::Gds(w) => {
+                        let _ = w.abandon();
+                    }
                     Sink::Part { .. } => {
                         let _ = std::fs::remove_file(&data_path);
                     }
@@ -221,6 +243,11 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
     match sink {
         Sink::Tiff(w) => {
             let summary = finish_plate(spec, &prep, w, updates)?;
+            let _ = std::fs::remove_file(&journal);
+            Ok(summary)
+        }
+        Sink::Gds(w) => {
+            let summary = super::stream::finish_gds(spec, &prep, w, updates)?;
             let _ = std::fs::remove_file(&journal);
             Ok(summary)
         }

@@ -246,7 +246,13 @@ pub fn assemble(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
         ));
     }
     check_space(&dir_read, prep.layout.estimated_file_bytes())?;
-    let mut writer = StripWriter::create(&spec.output, prep.layout.clone())?;
+    let mut writer = match &prep.gds {
+        Some(g) => super::stream::Sink::Gds(crate::output::gdsii::GdsWriter::create(
+            &spec.output,
+            g.clone(),
+        )?),
+        None => super::stream::Sink::Tiff(StripWriter::create(&spec.output, prep.layout.clone())?),
+    };
     let mut progress = Progress::new("assemble", spec.plate.height as f64, opts.progress);
     let mut updates = 0u64;
     let chunk_rows = (prep.rps as u64).max((4 << 20) / row_bytes.max(1)).max(1);
@@ -265,7 +271,11 @@ pub fn assemble(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
         updates += m.updates;
     }
     progress.finish();
-    let summary = finish_plate(spec, &prep, writer, updates)?;
+    let summary = match writer {
+        super::stream::Sink::Gds(w) => super::stream::finish_gds(spec, &prep, w, updates)?,
+        super::stream::Sink::Tiff(w) => finish_plate(spec, &prep, w, updates)?,
+        _ => unreachable!("assemble writes one TIFF or one layout"),
+    };
     for (part, mp, _) in &metas {
         let _ = std::fs::remove_file(part);
         let _ = std::fs::remove_file(mp);

@@ -26,6 +26,7 @@ use crate::synthesis::point_sum::BandScratch;
 /// single-file plate) or field files.
 pub(super) enum Sink {
     Tiff(StripWriter),
+    Gds(crate::output::gdsii::GdsWriter),
     Part {
         file: std::io::BufWriter<File>,
         path: PathBuf,
@@ -37,6 +38,7 @@ pub(super) enum Sink {
 type SinkState = (
     Option<crate::output::tiff::WriterState>,
     Option<FieldsState>,
+    Option<crate::output::gdsii::GdsState>,
 );
 
 impl Sink {
@@ -44,10 +46,23 @@ impl Sink {
     pub(super) fn write_band(&mut self, row0: u32, blocks: &[Vec<u8>]) -> Result<()> {
         match self {
             Sink::Tiff(w) => w.write_rows(&blocks[0]),
+            Sink::Gds(w) => w.write_rows(&blocks[0]),
             Sink::Part { file, path } => {
                 file.write_all(&blocks[0]).map_err(|e| Error::io(&*path, e))
             }
             Sink::Fields(f) => f.write_band(row0, blocks),
+        }
+    }
+    /// Appends whole plate rows to a single-file sink (assembly of shards).
+    pub(super) fn write_rows(&mut self, rows: &[u8]) -> Result<()> {
+        match self {
+            Sink::Tiff(w) => w.write_rows(rows),
+            Sink::Gds(w) => w.write_rows(rows),
+            Sink::Part { file, path } => file.write_all(rows).map_err(|e| Error::io(&*path, e)),
+            Sink::Fields(f) => Err(Error::job(
+                f.grid().manifest_path(),
+                "field sinks take bands, not plate rows",
+            )),
         }
     }
     /// Whether writing a band at plate row `row0` publishes a finished field row first.
@@ -60,14 +75,15 @@ impl Sink {
     /// Makes what was written durable; returns what the journal must record to continue.
     pub(super) fn sync(&mut self) -> Result<SinkState> {
         match self {
-            Sink::Tiff(w) => Ok((Some(w.checkpoint()?), None)),
+            Sink::Tiff(w) => Ok((Some(w.checkpoint()?), None, None)),
+            Sink::Gds(w) => Ok((None, None, Some(w.checkpoint()?))),
             Sink::Part { file, path } => {
                 file.flush()
                     .and_then(|_| file.get_ref().sync_data())
                     .map_err(|e| Error::io(&*path, e))?;
-                Ok((None, None))
+                Ok((None, None, None))
             }
-            Sink::Fields(f) => Ok((None, Some(f.checkpoint()?))),
+            Sink::Fields(f) => Ok((None, Some(f.checkpoint()?), None)),
         }
     }
 }
@@ -227,8 +243,9 @@ pub(super) fn stream_rows(ctx: &StreamCtx, sink: &mut Sink, opts: &RunOptions) -
 
 /// Syncs the sink and writes the journal: the run can continue from here.
 fn checkpoint(ctx: &StreamCtx, sink: &mut Sink, rows_done: u32, updates: u64) -> Result<()> {
-    let (writer, fields) = sink.sync()?;
+    let (writer, fields, gds) = sink.sync()?;
     Journal {
+        gds,
         format: FORMAT.into(),
         job_sha256: ctx.spec.sha256.clone(),
         job_toml: ctx.spec.text.clone(),
@@ -258,6 +275,40 @@ pub(super) fn finish_plate(
     let finished = pending.tiff.clone();
     let sidecar = sidecar_path(&spec.output);
     let side = record::sidecar(spec, run_record(prep, Written::Tiff(&finished), updates));
+    let side_partial = crate::output::tiff::partial_path(&sidecar);
+    if let Err(e) = side.write(&side_partial) {
+        pending.discard();
+        let _ = std::fs::remove_file(&side_partial);
+        return Err(e);
+    }
+    let finished = match pending.publish() {
+        Ok(f) => f,
+        Err(e) => {
+            let _ = std::fs::remove_file(&side_partial);
+            return Err(e);
+        }
+    };
+    std::fs::rename(&side_partial, &sidecar).map_err(|e| Error::io(&sidecar, e))?;
+    Ok(RunSummary {
+        tiff: finished.path,
+        sidecar,
+        emitters: prep.emitters,
+        updates,
+        encoding: prep.encoding.clone(),
+    })
+}
+
+/// Finishes a GDSII layout and writes its sidecar, as [`finish_plate`] does for a TIFF.
+pub(super) fn finish_gds(
+    spec: &JobSpec,
+    prep: &Prepared,
+    writer: crate::output::gdsii::GdsWriter,
+    updates: u64,
+) -> Result<RunSummary> {
+    let pending = writer.finish_unpublished()?;
+    let finished = pending.gds.clone();
+    let sidecar = sidecar_path(&spec.output);
+    let side = record::sidecar(spec, run_record(prep, Written::Gds(&finished), updates));
     let side_partial = crate::output::tiff::partial_path(&sidecar);
     if let Err(e) = side.write(&side_partial) {
         pending.discard();

@@ -2,5 +2,6 @@
 //! small files replaced atomically (`atomic`). Depends on `encoding` and `error` only: `job`
 //! fills in what the sidecar records; nothing here computes fields.
 pub mod atomic;
+pub mod gdsii;
 pub mod sidecar;
 pub mod tiff;

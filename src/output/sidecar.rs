@@ -438,6 +438,35 @@ pub enum OutputFiles {
         /// "min-is-black".
         photometric: String,
     },
+    /// A GDSII layout (binary plates).
+    Gdsii {
+        /// File name.
+        file: Option<String>,
+        /// "gdsii".
+        format: String,
+        /// Size.
+        bytes: u64,
+        /// SHA-256 of the whole file.
+        sha256: String,
+        /// BOUNDARY elements (rectangles).
+        boundaries: u64,
+        /// Their vertices, each closing point counted (5 per rectangle).
+        vertices: u64,
+        /// Database unit, nanometres.
+        database_unit_nm: f64,
+        /// User unit, micrometres.
+        user_unit_um: f64,
+        /// Layer and datatype of every boundary.
+        layer: i16,
+        /// Datatype.
+        datatype: i16,
+        /// Rows per strip: rectangles close at each strip's end.
+        rows_per_strip: u32,
+        /// How pixels became polygons, in words.
+        merge: String,
+        /// Where the coordinates are, in words.
+        coordinates: String,
+    },
     /// Field files with a manifest.
     Fields {
         /// The manifest's file name.

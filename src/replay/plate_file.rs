@@ -203,6 +203,12 @@ impl PlateFile {
             },
         };
         let fields = match &side.output {
+            OutputFiles::Gdsii { .. } => {
+                return Err(Error::unsupported(
+                    tif,
+                    "is a GDSII layout; reconstruct replays TIFF plates (run the same job with [output] format = \"tiff\": the pixels are the same)",
+                ))
+            }
             OutputFiles::Tiff { .. } => {
                 check_tiff_size(tif, [plate.width, plate.height], encoding.bits_per_sample())?;
                 Vec::new()

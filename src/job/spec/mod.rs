@@ -223,6 +223,19 @@ pub struct JobSpec {
     pub calibration_file: Option<PathBuf>,
     /// Aberration correction added to every modulator pattern (`[correction]`).
     pub correction: Option<CorrectionSpec>,
+    /// GDSII output instead of TIFF (`[output] format = "gdsii"`).
+    pub gdsii: Option<GdsSpec>,
+}
+
+/// `[output] format = "gdsii"`, validated.
+#[derive(Clone, Debug, PartialEq)]
+pub struct GdsSpec {
+    /// Database unit, metres.
+    pub db_unit: f64,
+    /// Layer number.
+    pub layer: i16,
+    /// Datatype number.
+    pub datatype: i16,
 }
 
 impl JobSpec {
@@ -295,7 +308,14 @@ impl JobSpec {
         let method = synthesis::parse_method(s, &objects, &plate, &bad)?;
         let sum = synthesis::parse_point_sum(s, &bad)?;
         let encoding = encoding::parse_encoding(&raw.encoding, dir, path, &plate, &bad)?;
-        let out = parse_output(&raw.output, &plate, path, dir, &bad)?;
+        let out = parse_output(
+            &raw.output,
+            &encoding.resolve(|| 1.0),
+            &plate,
+            path,
+            dir,
+            &bad,
+        )?;
         let correction =
             correction::parse_correction(raw.correction.as_ref(), &method, &plate, dir, &bad)?;
         Ok(JobSpec {
@@ -318,6 +338,7 @@ impl JobSpec {
             field_px: out.field_px,
             calibration_file: raw.encoding.calibration.as_ref().map(|c| dir.join(c)),
             correction,
+            gdsii: out.gdsii,
         })
     }
 }
@@ -370,11 +391,13 @@ struct OutputKeys {
     compression: Compression,
     rows_per_strip: Option<u32>,
     field_px: Option<[u32; 2]>,
+    gdsii: Option<GdsSpec>,
 }
 
 /// Validates `[output]`.
 fn parse_output(
     o: &RawOutput,
+    encoding: &Encoding,
     plate: &Plate,
     job: &Path,
     dir: &Path,
@@ -426,11 +449,85 @@ fn parse_output(
             Some(f)
         }
     };
+    let gds_keys = [
+        ("database_unit_nm", o.database_unit_nm.is_some()),
+        ("layer", o.layer.is_some()),
+        ("datatype", o.datatype.is_some()),
+        ("merge", o.merge.is_some()),
+    ];
+    let gdsii = match o.format.as_deref().unwrap_or("tiff") {
+        "tiff" => {
+            if let Some((k, _)) = gds_keys.iter().find(|k| k.1) {
+                return Err(bad(format!("[output] {k} applies to format = \"gdsii\"")));
+            }
+            None
+        }
+        "gdsii" => {
+            if !matches!(encoding, Encoding::BinaryAmplitude | Encoding::BinaryPhase) {
+                return Err(bad(format!(
+                    "[output] format = \"gdsii\" writes binary plates (encoding \"binary-amplitude\" or \"binary-phase\"), not \"{}\"",
+                    encoding.kind_name()
+                )));
+            }
+            if field_px.is_some() {
+                return Err(bad("[output] field_px with format = \"gdsii\" is not supported: write one layout (or fields as TIFF)".into()));
+            }
+            if o.compression.is_some() || o.bigtiff.is_some() {
+                return Err(bad(
+                    "[output] compression and bigtiff apply to TIFF output".into()
+                ));
+            }
+            match o.merge.as_deref().unwrap_or("rectangles") {
+                "rectangles" => {}
+                other => {
+                    return Err(bad(format!(
+                        "[output] merge = \"{other}\": only \"rectangles\" (row runs merged vertically) is available"
+                    )))
+                }
+            }
+            let db = o.database_unit_nm.unwrap_or(1.0);
+            if !(db.is_finite() && (0.001..=1e6).contains(&db)) {
+                return Err(bad(format!(
+                    "[output] database_unit_nm = {db} is outside 0.001 ..= 1e6"
+                )));
+            }
+            let num = |k: &str, v: Option<i64>, d: i16| -> Result<i16> {
+                match v.unwrap_or(i64::from(d)) {
+                    n if (0..=32767).contains(&n) => Ok(n as i16),
+                    n => Err(bad(format!("[output] {k} = {n} is outside 0..=32767"))),
+                }
+            };
+            let g = GdsSpec {
+                db_unit: db * 1e-9,
+                layer: num("layer", o.layer, 1)?,
+                datatype: num("datatype", o.datatype, 0)?,
+            };
+            // The pitch and size checks, with the message the writer would give.
+            crate::output::gdsii::GdsLayout::new(
+                plate.width,
+                plate.height,
+                plate.pitch,
+                g.db_unit,
+                g.layer,
+                g.datatype,
+                1,
+                "plate",
+            )
+            .map_err(bad)?;
+            Some(g)
+        }
+        other => {
+            return Err(bad(format!(
+                "[output] format = \"{other}\" is not one of \"tiff\", \"gdsii\""
+            )))
+        }
+    };
     Ok(OutputKeys {
         path: output,
         compression,
         rows_per_strip,
         field_px,
+        gdsii,
     })
 }
 

@@ -165,6 +165,16 @@ pub struct RawOutput {
     pub bigtiff: Option<bool>,
     /// Split the plate into field files of [w, h] pixels.
     pub field_px: Option<[i64; 2]>,
+    /// "tiff" (default) or "gdsii" (binary encodings: polygons for e-beam and laser writers).
+    pub format: Option<String>,
+    /// GDSII: the database unit, nanometres (default 1).
+    pub database_unit_nm: Option<f64>,
+    /// GDSII: layer number (default 1).
+    pub layer: Option<i64>,
+    /// GDSII: datatype number (default 0).
+    pub datatype: Option<i64>,
+    /// GDSII: "rectangles" (default: row runs merged vertically).
+    pub merge: Option<String>,
 }
 
 /// The job file as written.

@@ -1,0 +1,320 @@
+//! GDSII layouts checked from outside: read back with gdstk (a general-purpose GDSII library from
+//! PyPI, installed by the test into `target/check-venv` when missing), rasterised to pixels by
+//! `tools/check/gds_raster.py` and compared with the TIFF of the same job, or with crafted rows,
+//! pixel for pixel.
+
+use std::path::{Path, PathBuf};
+use std::process::Command;
+use std::sync::OnceLock;
+
+use fringemill::output::gdsii::{GdsLayout, GdsWriter};
+
+const BIN: &str = env!("CARGO_BIN_EXE_fringemill");
+
+fn root() -> PathBuf {
+    PathBuf::from(env!("CARGO_MANIFEST_DIR"))
+}
+
+/// A Python with gdstk and numpy: `FRINGEMILL_CHECK_PYTHON`, or a venv made once under target/.
+fn python() -> &'static Path {
+    static PY: OnceLock<PathBuf> = OnceLock::new();
+    PY.get_or_init(|| {
+        if let Some(p) = std::env::var_os("FRINGEMILL_CHECK_PYTHON") {
+            return PathBuf::from(p);
+        }
+        let venv = root().join("target/check-venv");
+        let py = venv.join("bin/python");
+        let ok = |py: &Path| {
+            Command::new(py)
+                .args(["-c", "import gdstk, numpy"])
+                .status()
+                .is_ok_and(|s| s.success())
+        };
+        if !ok(&py) {
+            let made = Command::new("python3")
+                .args(["-m", "venv", venv.to_str().unwrap()])
+                .status()
+                .is_ok_and(|s| s.success());
+            let installed = made
+                && Command::new(&py)
+                    .args(["-m", "pip", "install", "-q", "gdstk==1.0.2", "numpy"])
+                    .status()
+                    .is_ok_and(|s| s.success());
+            assert!(
+                installed && ok(&py),
+                "the GDSII checks need Python 3 with gdstk and numpy: pip could not install them into {} (set FRINGEMILL_CHECK_PYTHON to a Python that has them)",
+                venv.display()
+            );
+        }
+        py
+    })
+}
+
+fn check(gds: &Path, want: &Path, w: u32, h: u32, pitch_nm: f64, db_nm: f64) -> String {
+    let o = Command::new(python())
+        .arg(root().join("tools/check/gds_raster.py"))
+        .args([gds.as_os_str(), want.as_os_str()])
+        .args([
+            w.to_string(),
+            h.to_string(),
+            pitch_nm.to_string(),
+            db_nm.to_string(),
+        ])
+        .output()
+        .unwrap();
+    let out = String::from_utf8_lossy(&o.stdout).into_owned();
+    assert!(
+        o.status.success(),
+        "{out}{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    out
+}
+
+fn run(args: &[&str]) -> std::process::Output {
+    Command::new(BIN).args(args).output().unwrap()
+}
+
+fn job(dir: &Path, output: &str, enc: &str, extra: &str) -> PathBuf {
+    std::fs::copy(root().join("samples/badge_points.ply"), dir.join("pts.ply")).unwrap();
+    let j = dir.join(format!("{output}.toml"));
+    std::fs::write(
+        &j,
+        format!(
+            "[hologram]\nwidth_px = 320\nheight_px = 200\npitch_um = 0.8\nwavelength_nm = 532\n\
+             [reference]\nkind = \"plane\"\ntilt_deg = [3.0, 8.0]\n\
+             [[object]]\npoints = \"pts.ply\"\noffset_mm = [0, 0, 15]\n\
+             [encoding]\nkind = \"{enc}\"\n\
+             [output]\npath = \"{output}\"\nrows_per_strip = 16\n{extra}"
+        ),
+    )
+    .unwrap();
+    j
+}
+
+/// A point-sum plate written as GDSII and as TIFF: the layout's rectangles cover exactly the
+/// TIFF's set pixels (binary amplitude and binary phase), the sidecar counts them, and the
+/// database unit reads back as given.
+#[test]
+fn layout_equals_the_tiff_pixel_for_pixel() {
+    for (enc, db) in [("binary-amplitude", 1.0), ("binary-phase", 0.5)] {
+        let d = tempfile::tempdir().unwrap();
+        let extra =
+            format!("format = \"gdsii\"\ndatabase_unit_nm = {db}\nlayer = 7\ndatatype = 2\n");
+        let g = job(d.path(), "lay.gds", enc, &extra);
+        let t = job(d.path(), "plate.tif", enc, "");
+        for j in [&g, &t] {
+            let o = run(&["run", "-q", j.to_str().unwrap()]);
+            assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+        }
+        let out = check(
+            &d.path().join("lay.gds"),
+            &d.path().join("plate.tif"),
+            320,
+            200,
+            800.0,
+            db,
+        );
+        let side: serde_json::Value =
+            serde_json::from_slice(&std::fs::read(d.path().join("lay.json")).unwrap()).unwrap();
+        let n = side["output"]["boundaries"].as_u64().unwrap();
+        assert_eq!(out.trim(), format!("equal {n} boundaries"), "{enc}");
+        assert_eq!(side["output"]["vertices"].as_u64(), Some(5 * n));
+        assert_eq!(side["output"]["layer"].as_i64(), Some(7));
+        assert_eq!(side["output"]["database_unit_nm"].as_f64(), Some(db));
+        let bytes = std::fs::read(d.path().join("lay.gds")).unwrap();
+        assert_eq!(side["output"]["bytes"].as_u64(), Some(bytes.len() as u64));
+    }
+}
+
+/// Crafted rows: isolated pixels, a checkerboard, full rows, empty rows, runs touching both
+/// edges, equal spans over many rows (merged vertically within a strip), on an odd width.
+#[test]
+fn crafted_patterns_round_trip_through_gdstk() {
+    let (w, h) = (37u32, 41u32);
+    let mut bits = vec![vec![false; w as usize]; h as usize];
+    for (r, row) in bits.iter_mut().enumerate() {
+        for (c, b) in row.iter_mut().enumerate() {
+            *b = match r {
+                0..=4 => (r + c) % 2 == 0,                // checkerboard
+                5 | 6 => true,                            // full rows
+                7 => false,                               // empty row
+                8..=20 => (3..9).contains(&c) || c >= 30, // a block and a run to the edge
+                21 => c == 0 || c == 36 || c == 18,       // isolated pixels at both edges
+                _ => (c * 7 + r * 3) % 11 < 4,            // irregular runs
+            };
+        }
+    }
+    let rb = (w as usize).div_ceil(8);
+    let mut packed = vec![0u8; rb * h as usize];
+    for (r, row) in bits.iter().enumerate() {
+        for (c, &b) in row.iter().enumerate() {
+            if b {
+                packed[r * rb + c / 8] |= 0x80 >> (c % 8);
+            }
+        }
+    }
+    let d = tempfile::tempdir().unwrap();
+    std::fs::write(d.path().join("want.bits"), &packed).unwrap();
+    // Pitch 2 um in 0.5 nm units: W p = 37 x 4000 units, even.
+    let layout = GdsLayout::new(w, h, [2e-6, 2e-6], 0.5e-9, 1, 0, 16, "crafted").unwrap();
+    let path = d.path().join("c.gds");
+    let mut wr = GdsWriter::create(&path, layout).unwrap();
+    // In uneven pieces, as bands arrive.
+    let mut r = 0usize;
+    for n in [3usize, 10, 1, 20, 7] {
+        wr.write_rows(&packed[r * rb..(r + n) * rb]).unwrap();
+        r += n;
+    }
+    let done = wr.finish_unpublished().unwrap().publish().unwrap();
+    let out = check(&path, &d.path().join("want.bits"), w, h, 2000.0, 0.5);
+    assert_eq!(out.trim(), format!("equal {} boundaries", done.boundaries));
+    // The count the merging rule gives, the slow way: a rectangle starts at every run whose row
+    // above (within the same strip of 16 rows) does not hold the same run.
+    let runs = |r: usize| {
+        let mut v = Vec::new();
+        let mut c = 0;
+        while c < w as usize {
+            if bits[r][c] {
+                let s = c;
+                while c < w as usize && bits[r][c] {
+                    c += 1;
+                }
+                v.push((s, c));
+            } else {
+                c += 1;
+            }
+        }
+        v
+    };
+    let mut want = 0;
+    for r in 0..h as usize {
+        for run in runs(r) {
+            if r % 16 == 0 || !runs(r - 1).contains(&run) {
+                want += 1;
+            }
+        }
+    }
+    assert_eq!(done.boundaries, want);
+}
+
+/// Shards plus assemble, and an interrupted run resumed, give the layout of one run, byte for
+/// byte.
+#[test]
+fn shards_and_resume_are_byte_identical() {
+    let d = tempfile::tempdir().unwrap();
+    let j = job(
+        d.path(),
+        "plate.gds",
+        "binary-amplitude",
+        "format = \"gdsii\"\n",
+    );
+    assert!(run(&["run", "-q", j.to_str().unwrap()]).status.success());
+    let want = std::fs::read(d.path().join("plate.gds")).unwrap();
+    let s = tempfile::tempdir().unwrap();
+    let js = job(
+        s.path(),
+        "plate.gds",
+        "binary-amplitude",
+        "format = \"gdsii\"\n",
+    );
+    for k in [3, 1, 2] {
+        let o = run(&[
+            "run",
+            "-q",
+            "--shard",
+            &format!("{k}/3"),
+            js.to_str().unwrap(),
+        ]);
+        assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    }
+    let o = run(&["assemble", "-q", js.to_str().unwrap()]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    assert!(
+        std::fs::read(s.path().join("plate.gds")).unwrap() == want,
+        "assembled layout differs"
+    );
+    // Stop after a few strips (a tiny checkpoint interval and SIGINT), then run again.
+    let r = tempfile::tempdir().unwrap();
+    let jr = job(
+        r.path(),
+        "plate.gds",
+        "binary-amplitude",
+        "format = \"gdsii\"\n",
+    );
+    let mut stopped = false;
+    for ms in [60u64, 25, 10, 3] {
+        let child = Command::new(BIN)
+            .args([
+                "run",
+                "-q",
+                "--threads",
+                "1",
+                "--checkpoint-secs",
+                "0",
+                jr.to_str().unwrap(),
+            ])
+            .stdout(std::process::Stdio::null())
+            .stderr(std::process::Stdio::piped())
+            .spawn()
+            .unwrap();
+        std::thread::sleep(std::time::Duration::from_millis(ms));
+        // SAFETY: plain kill(2) on our own child's pid.
+        unsafe { libc::kill(child.id() as i32, libc::SIGINT) };
+        let o = child.wait_with_output().unwrap();
+        if !o.status.success() {
+            stopped = true;
+            break;
+        }
+        let _ = std::fs::remove_file(r.path().join("plate.gds"));
+    }
+    assert!(stopped, "every run finished before SIGINT");
+    assert!(!r.path().join("plate.gds").exists());
+    let o = run(&["run", "-q", jr.to_str().unwrap()]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    assert!(
+        std::fs::read(r.path().join("plate.gds")).unwrap() == want,
+        "resumed layout differs"
+    );
+}
+
+/// What GDSII cannot hold is refused at once, naming why: a pitch that is not a whole number of
+/// database units, a plate beyond the 32-bit coordinates, a non-binary encoding.
+#[test]
+fn layouts_gdsii_cannot_hold_are_refused() {
+    let d = tempfile::tempdir().unwrap();
+    for (enc, extra, want) in [
+        (
+            "binary-amplitude",
+            "format = \"gdsii\"\ndatabase_unit_nm = 3\n",
+            "whole number",
+        ),
+        ("phase", "format = \"gdsii\"\n", "binary plates"),
+        (
+            "binary-amplitude",
+            "format = \"gdsii\"\nmerge = \"contour\"\n",
+            "rectangles",
+        ),
+        ("binary-amplitude", "layer = 3\n", "applies to format"),
+    ] {
+        let j = job(d.path(), "x.gds", enc, extra);
+        let o = run(&["plan", j.to_str().unwrap()]);
+        let err = String::from_utf8_lossy(&o.stderr);
+        assert!(!o.status.success() && err.contains(want), "{extra}: {err}");
+    }
+    // 2^31 units of 1 nm is 2.15 m: a 16.7 M px plate at 0.2 mm pitch (3.4 m) is too wide.
+    let j = job(
+        d.path(),
+        "x.gds",
+        "binary-amplitude",
+        "format = \"gdsii\"\n",
+    );
+    let text = std::fs::read_to_string(&j)
+        .unwrap()
+        .replace("width_px = 320", "width_px = 16777216")
+        .replace("pitch_um = 0.8", "pitch_um = 200");
+    std::fs::write(&j, text).unwrap();
+    let o = run(&["plan", j.to_str().unwrap()]);
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(!o.status.success() && err.contains("32-bit"), "{err}");
+}
