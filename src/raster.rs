@@ -29,18 +29,18 @@ pub fn read_grey(path: &Path) -> Result<(usize, usize, Vec<f64>)> {
 }
 
 /// Reads a grey image's stored values (0..=255 or 0..=65535), for maps whose grey codes mean
-/// something (a measured phase map): (width, height, codes). Colour images are refused.
-pub fn read_grey_levels(path: &Path) -> Result<(usize, usize, Vec<f64>)> {
+/// something (a measured phase map): (width, height, codes, bits). Colour images are refused.
+pub fn read_grey_levels(path: &Path) -> Result<(usize, usize, Vec<f64>, u8)> {
     let (w, h, img) = decode(path)?;
-    let v: Vec<f64> = match &img {
-        DynamicImage::ImageLuma8(b) => b.as_raw().iter().map(|&v| f64::from(v)).collect(),
-        DynamicImage::ImageLuma16(b) => b.as_raw().iter().map(|&v| f64::from(v)).collect(),
+    let (v, bits): (Vec<f64>, u8) = match &img {
+        DynamicImage::ImageLuma8(b) => (b.as_raw().iter().map(|&v| f64::from(v)).collect(), 8),
+        DynamicImage::ImageLuma16(b) => (b.as_raw().iter().map(|&v| f64::from(v)).collect(), 16),
         _ => return Err(Error::input(
             path,
             "is not a grey image without alpha (8 or 16 bits): a map's grey codes are its values",
         )),
     };
-    Ok((w, h, v))
+    Ok((w, h, v, bits))
 }
 
 fn decode(path: &Path) -> Result<(usize, usize, DynamicImage)> {

@@ -444,6 +444,19 @@ fn plan_warnings_and_reconstruct_spot_figures() {
         text.contains("spot 1 of") && text.contains("from the zero order"),
         "{text}"
     );
+    // 256 levels send almost no light to the conjugate order: no twin warning; two levels do.
+    assert!(!text.contains("the twin of spot"), "{text}");
+    let job = d.path().join("job.toml");
+    let binary = d.path().join("binary.toml");
+    std::fs::write(
+        &binary,
+        std::fs::read_to_string(&job)
+            .unwrap()
+            .replace("kind = \"phase\"\nlevels = 256", "kind = \"binary-phase\""),
+    )
+    .unwrap();
+    let o = run(&["plan", binary.to_str().unwrap()]);
+    let text = String::from_utf8_lossy(&o.stdout);
     assert!(
         text.contains("the twin of spot 2") && text.contains("falls on spot 3"),
         "{text}"
@@ -565,13 +578,18 @@ fn twin_of_binary_phase_is_as_strong_as_the_image() {
 #[test]
 fn two_pi_grey_is_scaled_to_the_design_wavelength() {
     let d = tempfile::tempdir().unwrap();
-    let (_, side) = spot_plate(
+    let (plain, side) = spot_plate(
         d.path(),
         "x_um,y_um,z_um,weight\n500,300,0,1\n",
         "iterations = 3",
         "",
     );
     assert!(side["encoding"]["calibration"].is_null());
+    // Uncalibrated 256 levels store the level itself.
+    let levels: Vec<usize> = plain
+        .iter()
+        .map(|&p| (p * 256.0 / TAU).round() as usize % 256)
+        .collect();
     let job = d.path().join("job.toml");
     let text = std::fs::read_to_string(&job).unwrap().replace(
         "levels = 256\n",
@@ -594,4 +612,139 @@ fn two_pi_grey_is_scaled_to_the_design_wavelength() {
             "level {l}: grey {got}, want {want:.3}"
         );
     }
+    // The plate's greys are the map of the same design's levels, pixel for pixel.
+    let (_, _, greys) = decode(&d.path().join("plate.tif"));
+    for (k, (&g, &l)) in greys.iter().zip(&levels).enumerate() {
+        assert_eq!(
+            u64::from(g),
+            map[l].as_u64().unwrap(),
+            "pixel {k}, level {l}"
+        );
+    }
+}
+
+/// With a carrier and a tilted illumination, `reconstruct` finds the spots where the plate puts
+/// them (the carrier's whole samples, then f sin t of the tilt) with the predicted figures.
+#[test]
+fn reconstruct_follows_the_carrier_and_the_illumination() {
+    let d = tempfile::tempdir().unwrap();
+    let csv = "x_um,y_um,z_um,weight\n300,100,0,1\n-200,250,60,2\n150,-300,-40,1\n";
+    let (_, side) = spot_plate(
+        d.path(),
+        csv,
+        "iterations = 20\ncarrier_deg = [0.5, -0.2]",
+        "",
+    );
+    let step = LAMBDA * FOCAL / (N as f64 * PITCH);
+    let m = side["iterative"]["carrier_samples"].clone();
+    let (mx, my) = (m[0].as_f64().unwrap(), m[1].as_f64().unwrap());
+    assert!(mx != 0.0 && my != 0.0);
+    for (s, (x, y)) in
+        spots_of(&side)
+            .iter()
+            .zip([(300.0, 100.0), (-200.0, 250.0), (150.0, -300.0)])
+    {
+        let at = s["replayed_at_um"].as_array().unwrap();
+        assert!((at[0].as_f64().unwrap() - (x + mx * step * 1e6)).abs() < 1e-6);
+        assert!((at[1].as_f64().unwrap() - (y + my * step * 1e6)).abs() < 1e-6);
+    }
+    let o = run(&[
+        "reconstruct",
+        d.path().join("plate.tif").to_str().unwrap(),
+        "--focal-mm",
+        "200",
+        "--illumination",
+        "0.3,0.1",
+    ]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let r: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(d.path().join("plate-replay.json")).unwrap())
+            .unwrap();
+    let got = &r["spot_list"]["ideal_optics"]["intensity"];
+    for (k, s) in spots_of(&side).iter().enumerate() {
+        let want = s["predicted_intensity"].as_f64().unwrap();
+        let g = got[k].as_f64().unwrap();
+        // The plate holds the quantized design plus carrier: rounding noise only (see above).
+        assert!((g - want).abs() < 3e-4 * want, "spot {k}: {g} vs {want}");
+    }
+}
+
+/// The z of a spot is a distance beyond the focal plane: a single spot at z = +4 mm behind a
+/// 50 mm lens focuses where a diverging thin lens of power -z / f^2 put on the panel focuses
+/// (Newton's lens equation for a panel in the front focal plane; the scan here puts the panel at
+/// the lens, where that lens gives f' = f^2 / (f - z)), by a direct Fresnel scan (Goodman,
+/// Introduction to Fourier Optics, eq. 4-17) independent of the tool's spot formula.
+#[test]
+fn spot_depth_is_beyond_the_focal_plane() {
+    let d = tempfile::tempdir().unwrap();
+    let focal = 0.05;
+    let z = 0.004;
+    let (phase, _) = spot_plate_at(
+        d.path(),
+        focal,
+        &format!("x_um,y_um,z_um,weight\n0,0,{},1\n", z * 1e6),
+        "iterations = 3",
+        "",
+    );
+    let r_pupil = N as f64 * PITCH / 2.0;
+    let k = TAU / LAMBDA;
+    let power = -z / (focal * focal);
+    let plate = axial_peak(&|p| phase[p], focal, r_pupil, focal - 0.002, focal + 0.010);
+    let lens = axial_peak(
+        &|p| {
+            let (x, y) = xy(p / N, p % N);
+            -k * (x * x + y * y) * power / 2.0
+        },
+        focal,
+        r_pupil,
+        focal - 0.002,
+        focal + 0.010,
+    );
+    let f_lens = focal * focal / (focal - z);
+    assert!(
+        (plate - lens).abs() < 0.02 * z,
+        "spot focus {plate}, thin lens {lens}"
+    );
+    // And near f^2 / (f - z) (focal shift of a Fresnel number near 18: a few percent of z).
+    assert!(
+        (plate - f_lens).abs() < 0.08 * z,
+        "spot focus {plate}, geometric {f_lens}"
+    );
+}
+
+/// The axial intensity peak behind a lens of focal length `focal` at the panel, for panel phases
+/// `ph`, over a pupil of radius `r_pupil`: direct Fresnel sums on the axis (Goodman eq. 4-17)
+/// scanned over [z0, z1] and a parabola through the top three.
+fn axial_peak(ph: &dyn Fn(usize) -> f64, focal: f64, r_pupil: f64, z0: f64, z1: f64) -> f64 {
+    let k = TAU / LAMBDA;
+    let on_axis = |zz: f64| {
+        let mut v = Complex64::new(0.0, 0.0);
+        for i in 0..N {
+            for j in 0..N {
+                let (x, y) = xy(i, j);
+                let r2 = x * x + y * y;
+                if r2 > r_pupil * r_pupil {
+                    continue;
+                }
+                v += Complex64::from_polar(
+                    1.0,
+                    ph(i * N + j) - k * r2 / (2.0 * focal) + k * r2 / (2.0 * zz),
+                );
+            }
+        }
+        v.norm_sqr() / (zz * zz)
+    };
+    let steps = 240;
+    let scan: Vec<(f64, f64)> = (0..=steps)
+        .map(|s| {
+            let z = z0 + (z1 - z0) * s as f64 / steps as f64;
+            (z, on_axis(z))
+        })
+        .collect();
+    let best = (1..steps)
+        .max_by(|&a, &b| scan[a].1.total_cmp(&scan[b].1))
+        .unwrap();
+    let (ya, yb, yc) = (scan[best - 1].1, scan[best].1, scan[best + 1].1);
+    let h = (z1 - z0) / steps as f64;
+    scan[best].0 + h * 0.5 * (ya - yc) / (ya - 2.0 * yb + yc)
 }

@@ -114,8 +114,10 @@ pub fn load_correction(spec: &JobSpec) -> Result<Option<Correction>> {
     let map = match &c.map {
         None => None,
         Some(path) => {
-            let (w, h, codes) = crate::raster::read_grey_levels(path)?;
-            let scale = std::f64::consts::TAU / c.map_two_pi_grey;
+            let (w, h, codes, bits) = crate::raster::read_grey_levels(path)?;
+            // Default: 2 pi at 2^bits (grey g is 2 pi g / 256 in an 8-bit map, / 65536 in 16-bit).
+            let two_pi = c.map_two_pi_grey.unwrap_or(f64::from(1u32 << bits));
+            let scale = std::f64::consts::TAU / two_pi;
             let v = codes.iter().map(|&g| (g * scale) as f32).collect();
             Some((w, h, v))
         }
@@ -130,6 +132,34 @@ pub fn load_correction(spec: &JobSpec) -> Result<Option<Correction>> {
         corr.check_map_size(path, spec.plate.width, spec.plate.height)?;
     }
     Ok(Some(corr))
+}
+
+/// Where the plate puts its spots: the designed positions moved by the blazed carrier (m whole
+/// plate samples = m lambda f / (N p) in the focal plane, x right, y up) and, with a lens term of
+/// focal length L added to the pattern, moved along the axis by -f^2 / L (its phase
+/// -k r^2 / (2 L) is the defocus term pi z r^2 / (lambda f^2) of z = -f^2 / L).
+pub fn effective_spots(
+    plate: &crate::optics::Plate,
+    it: &IterativeSpec,
+    focal: f64,
+    spots: &[crate::synthesis::spots::Spot],
+) -> Vec<crate::synthesis::spots::Spot> {
+    let shift = [
+        it.carrier_samples[0] as f64 * plate.wavelength * focal
+            / (plate.width as f64 * plate.pitch[0]),
+        it.carrier_samples[1] as f64 * plate.wavelength * focal
+            / (plate.height as f64 * plate.pitch[1]),
+    ];
+    let dz = it.lens.map_or(0.0, |l| -focal * focal / l);
+    spots
+        .iter()
+        .map(|s| crate::synthesis::spots::Spot {
+            x: s.x + shift[0],
+            y: s.y + shift[1],
+            z: s.z + dz,
+            ..*s
+        })
+        .collect()
 }
 
 /// A spot list's pattern over the whole plate (module `synthesis::spots`).
@@ -147,7 +177,8 @@ fn build_spots(
         ));
     };
     let spots = crate::scene::spots::read_spots(path)?;
-    crate::synthesis::spots::check(&p, focal, &spots).map_err(|m| Error::job(path, m))?;
+    crate::synthesis::spots::check(&p, focal, &effective_spots(&p, it, focal, &spots))
+        .map_err(|m| Error::job(path, m))?;
     let algorithm = match it.algorithm {
         AlgorithmChoice::Superposition => SpotAlgorithm::Superposition,
         AlgorithmChoice::Gs => SpotAlgorithm::Gs,
@@ -191,7 +222,9 @@ fn build_spots(
             spots: spots
                 .iter()
                 .zip(&d.figures.intensity)
-                .map(|(s, &i)| SpotRecord {
+                .zip(&effective_spots(&p, it, focal, &spots))
+                .map(|((s, &i), e)| SpotRecord {
+                    replayed_at_um: [e.x * 1e6, e.y * 1e6, e.z * 1e6],
                     x_um: s.x * 1e6,
                     y_um: s.y * 1e6,
                     z_um: s.z * 1e6,
@@ -342,7 +375,11 @@ pub fn placement_warnings(spec: &JobSpec, it: &IterativeSpec) -> Result<Vec<Stri
             p.width, p.height, cell[0], cell[1]
         ));
     }
-    if !matches!(it.geometry, Geometry::Fourier(_)) || it.lens.is_some() {
+    let spot_lists = spec
+        .objects
+        .iter()
+        .any(|o| matches!(o.source, ObjectSource::Spots));
+    if !matches!(it.geometry, Geometry::Fourier(_)) || (it.lens.is_some() && !spot_lists) {
         return Ok(out);
     }
     let (nx, ny) = (cell[0] as usize, cell[1] as usize);
@@ -355,23 +392,19 @@ pub fn placement_warnings(spec: &JobSpec, it: &IterativeSpec) -> Result<Vec<Stri
         p.wavelength * focal / (ny as f64 * p.pitch[1]),
     ];
     let guard = it.zero_order_guard.unwrap_or(2.0 * step[0].max(step[1]));
-    // Spots: positions in the focal plane, moved by the carrier (m plate samples).
-    let shift = [
-        it.carrier_samples[0] as f64 * p.wavelength * focal / (p.width as f64 * p.pitch[0]),
-        it.carrier_samples[1] as f64 * p.wavelength * focal / (p.height as f64 * p.pitch[1]),
-    ];
+    // Spots: where the plate puts them (the carrier and a lens term move them). Their twins
+    // (the conjugate order, at -x, -y, -z) carry light of the design's strength only for two
+    // phase levels (an N-level kinoform sends its light to orders 1 + kN: Swanson, Binary Optics
+    // Technology, 1989), so that check is made for binary patterns.
+    let two_levels = phase_levels(spec).is_none_or(|l| l == 2);
     for o in spec
         .objects
         .iter()
         .filter(|o| matches!(o.source, ObjectSource::Spots))
     {
-        let spots = crate::scene::spots::read_spots(&o.points)?;
-        let at: Vec<[f64; 2]> = spots
-            .iter()
-            .map(|s| [s.x + shift[0], s.y + shift[1]])
-            .collect();
-        for (k, a) in at.iter().enumerate() {
-            let r = a[0].hypot(a[1]);
+        let spots = effective_spots(p, it, focal, &crate::scene::spots::read_spots(&o.points)?);
+        for (k, a) in spots.iter().enumerate() {
+            let r = a.x.hypot(a.y);
             if r < guard {
                 out.push(format!(
                     "warning: spot {} of {} is {:.1} um from the zero order (guard {:.1} um): the undiffracted light lands on it; move the spots off the axis or block the zero order",
@@ -381,14 +414,13 @@ pub fn placement_warnings(spec: &JobSpec, it: &IterativeSpec) -> Result<Vec<Stri
                     guard * 1e6
                 ));
             }
-            // Its twin (the conjugate, point-mirrored through the axis) on another spot.
-            if let Some(j) = at
+            if let Some(j) = spots
                 .iter()
                 .enumerate()
-                .position(|(j, b)| j != k && (a[0] + b[0]).hypot(a[1] + b[1]) < guard)
+                .position(|(j, b)| two_levels && j != k && (a.x + b.x).hypot(a.y + b.y) < guard)
             {
                 out.push(format!(
-                    "warning: the twin of spot {} (its conjugate, mirrored through the axis) falls on spot {} of {}: with few phase levels that spot gets the twin's light too",
+                    "warning: the twin of spot {} (its conjugate at -x, -y, -z: as bright as the spot with two phase levels) falls on spot {} of {} laterally: that spot gets the twin's light too",
                     k + 1,
                     j + 1,
                     o.points.display()

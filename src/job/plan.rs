@@ -39,15 +39,19 @@ fn plan_iterative(spec: &JobSpec, it: &IterativeSpec) -> Result<PlanReport> {
         if matches!(o.source, super::spec::ObjectSource::Spots) {
             let spots = crate::scene::spots::read_spots(&o.points)?;
             if let super::spec::Geometry::Fourier(f) = it.geometry {
-                crate::synthesis::spots::check(&p, f, &spots)
-                    .map_err(|m| crate::error::Error::job(&o.points, m))?;
+                crate::synthesis::spots::check(
+                    &p,
+                    f,
+                    &super::iterative::effective_spots(&p, it, f, &spots),
+                )
+                .map_err(|m| crate::error::Error::job(&o.points, m))?;
             }
             let zs = spots.iter().map(|s| s.z);
             let (zlo, zhi) = zs.fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), z| {
                 (a.min(z), b.max(z))
             });
             lines.push(format!(
-                "spots {}: {} spots, z from {:.1} to {:.1} um; weighted GS on the spot amplitudes costs about 2 x {} x {:.3} Mpx complex multiply-adds per iteration",
+                "spots {}: {} spots, z from {:.1} to {:.1} um; each iteration on the spot amplitudes (gs, weighted-gs; superposition: one pass) costs about 2 x {} x {:.3} Mpx complex multiply-adds",
                 o.points.display(),
                 spots.len(),
                 zlo * 1e6,
@@ -67,11 +71,25 @@ fn plan_iterative(spec: &JobSpec, it: &IterativeSpec) -> Result<PlanReport> {
             c.pupil_radius * 1e3,
             c.pupil_centre[0] * 1e3,
             c.pupil_centre[1] * 1e3,
-            c.map.as_ref().map_or(String::new(), |m| format!(", plus the map {} (2 pi at grey {})", m.display(), c.map_two_pi_grey))
+            c.map.as_ref().map_or(String::new(), |m| format!(", plus the map {} (2 pi at grey {})", m.display(), c.map_two_pi_grey.map_or("2^bits".to_string(), |g| g.to_string())))
         ));
         if c.map.is_some() {
             // Reads and size-checks the map, so a run does not fail on it later.
             super::iterative::load_correction(spec)?;
+        }
+    }
+    if let super::spec::EncodingRequest::Fixed(crate::encoding::Encoding::CalibratedPhase {
+        levels,
+        calibration,
+    }) = &spec.encoding
+    {
+        let step = std::f64::consts::TAU / f64::from(*levels);
+        if calibration.stroke < std::f64::consts::TAU - step - 1e-9 {
+            lines.push(format!(
+                "warning: the panel's response covers {:.3} rad at {:.1} nm, short of 2 pi: the levels beyond it are written at the nearer end of the branch, and the design's figures (which assume every level) will not be met",
+                calibration.stroke,
+                p.wavelength * 1e9
+            ));
         }
     }
     lines.extend(super::iterative::placement_warnings(spec, it)?);

@@ -297,6 +297,9 @@ pub struct SpotRecord {
     pub phase_rad: Option<f64>,
     /// Predicted share of the panel's power in this spot (quantized pattern).
     pub predicted_intensity: f64,
+    /// Where the plate puts it under normal illumination [x, y, z], micrometres: moved by the
+    /// carrier and a lens term.
+    pub replayed_at_um: [f64; 3],
 }
 
 /// `iterative.correction`.
@@ -312,8 +315,8 @@ pub struct CorrectionRecord {
     pub pupil_centre_mm: [f64; 2],
     /// The measured map's file name, if any.
     pub correction_map: Option<String>,
-    /// The map's grey value standing for 2 pi.
-    pub map_two_pi_grey: f64,
+    /// The map's grey value standing for 2 pi (null: 2^bits of the map, 256 or 65536).
+    pub map_two_pi_grey: Option<f64>,
 }
 
 /// `synthesis`

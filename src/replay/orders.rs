@@ -4,7 +4,8 @@
 //! the figures of a spot-list design read off the plate itself.
 //!
 //! Fill factor model (common practice for pixelated panels): a share F of each pixel's area
-//! carries the pattern's transmittance t, the rest passes the light unmodulated. The field is then
+//! carries the pattern's transmittance t, the rest passes the light unmodulated (as phase 0; a
+//! dead area with its own phase psi would give |F <t> + (1 - F) exp(i psi)|^2). The field is then
 //! F t + (1 - F) plus the pixel grid's own orders; its zero order has amplitude F <t> + (1 - F)
 //! (share |F <t> + 1 - F|^2 of the power) and every designed sample keeps F^2 of its power.
 
@@ -68,9 +69,10 @@ pub fn orders(
                 off += f64::from(intensity[mr * w + mc]);
             }
         }
-        let (mc, mr) = mirror((rx + rw).min(w) - 1, (ry + rh).min(h) - 1);
+        let (cw, ch) = ((rx + rw).min(w) - rx, (ry + rh).min(h) - ry);
+        let (mc, mr) = mirror(rx + cw - 1, ry + ch - 1);
         Twin {
-            mirrored_region: [mc, mr, rw, rh],
+            mirrored_region: [mc, mr, cw, ch],
             region_share: on / total,
             twin_share: off / total,
         }

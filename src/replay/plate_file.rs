@@ -30,7 +30,8 @@ pub struct PlateFile {
     pub real_image: bool,
     /// Size and SHA-256 of the TIFF as its sidecar records them (single-TIFF plates).
     pub recorded: Option<(u64, String)>,
-    /// A spot-list design: its lens's focal length (metres) and spots, for figures per spot.
+    /// A spot-list design: its lens's focal length (metres) and the spots where the plate puts
+    /// them under normal illumination (carrier and lens term included), for figures per spot.
     pub spots: Option<(f64, Vec<crate::synthesis::spots::Spot>)>,
     /// The Zernike part of the correction written into the pattern (the measured map is not
     /// kept in the sidecar).
@@ -265,11 +266,12 @@ impl PlateFile {
                 let f = positive(f, "iterative.focal_mm")? * 1e-3;
                 let mut v = Vec::with_capacity(sp.spots.len());
                 for s in &sp.spots {
-                    finite(&[s.x_um, s.y_um, s.z_um, s.weight], "iterative.spots")?;
+                    let [x, y, z] = s.replayed_at_um;
+                    finite(&[x, y, z, s.weight], "iterative.spots")?;
                     v.push(crate::synthesis::spots::Spot {
-                        x: s.x_um / 1e6,
-                        y: s.y_um / 1e6,
-                        z: s.z_um / 1e6,
+                        x: x / 1e6,
+                        y: y / 1e6,
+                        z: z / 1e6,
                         weight: positive(s.weight, "iterative.spots weight")?,
                         phase: s.phase_rad,
                     });
@@ -282,6 +284,13 @@ impl PlateFile {
             Some(c) if !c.zernike.is_empty() => {
                 let mut terms = Vec::new();
                 for t in &c.zernike {
+                    if t[0].fract() != 0.0 || t[1].fract() != 0.0 || t[0] < 0.0 || t[1].abs() > 1e3
+                    {
+                        return Err(Error::input(
+                            &sc,
+                            format!("sidecar iterative.correction.zernike: n = {} and m = {} must be whole numbers", t[0], t[1]),
+                        ));
+                    }
                     let term = crate::optics::zernike::ZernikeTerm::new(
                         t[0] as u32,
                         t[1] as i32,

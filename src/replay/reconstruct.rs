@@ -87,14 +87,32 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
     // whole, its figures per spot read off the samples.
     let whole = win.x == 0 && win.y == 0 && win.w == pf.plate.width && win.h == pf.plate.height;
     let (mean_t, spot_replay) = match req.focal {
-        Some(focal) => {
+        Some(_) => {
             let t: Vec<num_complex::Complex64> = lit_window(&pf, win, req.illumination)?
                 .iter()
                 .map(|v| num_complex::Complex64::new(v.re.into(), v.im.into()))
                 .collect();
             let mean = t.iter().sum::<num_complex::Complex64>() / t.len().max(1) as f64;
             let spots = match &pf.spots {
-                Some((_, sp)) if whole => {
+                Some((design_focal, sp)) if whole => {
+                    // The spots sit in the focal plane of the design's lens (a replay through
+                    // another lens scales them; the figures stay those of the design's), moved
+                    // by the illumination's tilt: f sin t.
+                    let focal = *design_focal;
+                    let tilt = match (req.illumination, &pf.reference) {
+                        (Illumination::Plane(t), _) => t,
+                        (Illumination::Recorded, crate::optics::Reference::Plane { tilt }) => *tilt,
+                        (Illumination::Recorded, _) => [0.0, 0.0],
+                    };
+                    let sp: Vec<crate::synthesis::spots::Spot> = sp
+                        .iter()
+                        .map(|s| crate::synthesis::spots::Spot {
+                            x: s.x + focal * tilt[0].sin(),
+                            y: s.y + focal * tilt[1].sin(),
+                            ..*s
+                        })
+                        .collect();
+                    let sp = &sp;
                     let ideal =
                         super::orders::spot_replay(&pf.plate, focal, sp, &t, req.fill_factor);
                     // Through the optics the correction is for: the plate with its Zernike
@@ -115,6 +133,9 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
                         super::orders::spot_replay(p, focal, sp, &ta, req.fill_factor)
                     });
                     Some(serde_json::json!({
+                        "design_focal_mm": focal * 1e3,
+                        "evaluated_at_um": sp.iter().map(|s| [s.x * 1e6, s.y * 1e6, s.z * 1e6]).collect::<Vec<_>>(),
+                        "where": "each spot where the plate puts it (the sidecar's replayed_at_um, moved by f sin t of the illumination's tilt; a spherical illumination is not followed), in the focal plane of the design's lens whatever --focal-mm says",
                         "ideal_optics": ideal,
                         "through_the_corrected_aberration": through,
                     }))

@@ -2,7 +2,8 @@
 //! `x_um, y_um, z_um, weight` and optionally `phase_rad`, in any order; one spot per line; `#`
 //! starts a comment line. x and y are positions in the lens's focal plane (x along the replay
 //! lattice's columns, y up), z the distance beyond that plane along the axis; weight the relative
-//! intensity wanted (> 0); phase_rad fixes the spot's phase (otherwise the design chooses it).
+//! intensity wanted (> 0); phase_rad fixes the spot's phase (an empty cell, or no such column,
+//! lets the design choose it).
 
 use std::path::Path;
 
@@ -95,7 +96,9 @@ pub fn parse_spots(data: &[u8], path: &Path) -> Result<Vec<Spot>> {
             get(2, "z_um")?,
             get(3, "weight")?,
         );
+        // An empty phase_rad cell leaves that spot's phase free.
         let phase = match c[4] {
+            Some(i) if fields[i].is_empty() => None,
             Some(_) => Some(get(4, "phase_rad")?),
             None => None,
         };
@@ -165,6 +168,8 @@ mod tests {
         );
         let v = parse("x_um,y_um,z_um,weight\r\n1,2,3,4\r\n").unwrap();
         assert_eq!(v[0].phase, None);
+        let v = parse("x_um,y_um,z_um,weight,phase_rad\n1,2,3,4,\n1,2,3,4,1.5\n").unwrap();
+        assert_eq!((v[0].phase, v[1].phase), (None, Some(1.5)));
     }
 
     #[test]

@@ -10,8 +10,10 @@
 //!   V_m = (1/N) sum_j exp(i (phi_j - D_jm)),
 //!   D_jm = 2 pi (x_j x_m + y_j y_m) / (lambda f) + pi z_m (x_j^2 + y_j^2) / (lambda f^2),
 //!
-//! the grating that sends light to (x_m, y_m) plus the lens that moves its focus by z_m
-//! (thin-lens sum: 1/f - 1/(f + z) ~ z / f^2). |V_m|^2 is the fraction of the panel's power in
+//! the grating that sends light to (x_m, y_m) plus the lens that moves its focus by z_m (with the
+//! panel in the lens's front focal plane, an added lens of power P moves the focus by
+//! z = -f^2 P, exactly in the paraxial limit: Newton's lens equation; the lens phase
+//! -pi P r^2 / lambda is then pi z r^2 / (lambda f^2)). |V_m|^2 is the fraction of the panel's power in
 //! spot m (Parseval, for spots on the FFT lattice; the pixels' own sinc envelope is left out, as
 //! in the FFT replay). D separates into a column and a row factor, so each iteration costs
 //! about 2 x spots x pixels complex multiply-adds and no transcendental per spot and pixel.

@@ -19,8 +19,8 @@ pub struct CorrectionSpec {
     pub pupil_centre: [f64; 2],
     /// The measured phase map, if any.
     pub map: Option<PathBuf>,
-    /// The map's grey value standing for 2 pi.
-    pub map_two_pi_grey: f64,
+    /// The map's grey value standing for 2 pi (None: 2^bits of the map).
+    pub map_two_pi_grey: Option<f64>,
 }
 
 /// Validates `[correction]`.
@@ -68,8 +68,8 @@ pub(super) fn parse_correction(
         )));
     }
     let map_two_pi_grey = match c.map_two_pi_grey {
-        None => 256.0,
-        Some(g) if (1.0..=65536.0).contains(&g) => g,
+        None => None,
+        Some(g) if (1.0..=65536.0).contains(&g) => Some(g),
         Some(g) => {
             return Err(bad(format!(
                 "[correction] map_two_pi_grey = {g} is outside 1 ..= 65536"

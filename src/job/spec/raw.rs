@@ -204,6 +204,7 @@ pub struct RawCorrection {
     pub pupil_centre_mm: Option<[f64; 2]>,
     /// A measured phase map (grey PNG or TIFF of the panel's size).
     pub correction_map: Option<String>,
-    /// The map's grey value that stands for 2 pi (default 256: grey g is 2 pi g / 256).
+    /// The map's grey value that stands for 2 pi (default 2^bits: grey g is 2 pi g / 256 in an
+    /// 8-bit map, 2 pi g / 65536 in a 16-bit one).
     pub map_two_pi_grey: Option<f64>,
 }
