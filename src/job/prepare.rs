@@ -104,6 +104,8 @@ pub(super) struct Prepared {
     pub unit_rows: u32,
     /// GDSII output: its layout (rectangles close at each strip of `rps` rows).
     pub gds: Option<crate::output::gdsii::GdsLayout>,
+    /// PNG output: the panel image's layout.
+    pub png: Option<crate::output::panel_png::PanelLayout>,
 }
 
 /// The direct point sum of a job's scene (channels, occlusion when a mesh asks for it) and the
@@ -209,7 +211,29 @@ pub(super) fn prepare(spec: &JobSpec, mode: ProgressMode) -> Result<Prepared> {
             )
         }
     };
+    let png = spec.png.as_ref().map(|g| {
+        // The stored value of zero phase (F = 1), or of F = 0 for the amplitude encoding.
+        let f = match encoding {
+            Encoding::Amplitude { .. } => Complex64::new(0.0, 0.0),
+            _ => Complex64::new(1.0, 0.0),
+        };
+        let mut b = vec![0u8; encoding.row_bytes(1)];
+        encoding.encode_row(&[f], &mut b);
+        let fill_value = match encoding.bits_per_sample() {
+            1 => u16::from(b[0] >> 7),
+            8 => u16::from(b[0]),
+            _ => u16::from_le_bytes([b[0], b[1]]),
+        };
+        crate::output::panel_png::PanelLayout {
+            plate: [spec.plate.width, spec.plate.height],
+            panel: g.panel,
+            bits: encoding.bits_per_sample(),
+            fill: g.fill,
+            fill_value,
+        }
+    });
     Ok(Prepared {
+        png,
         gds,
         source: sum,
         iteration,

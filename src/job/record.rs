@@ -28,6 +28,8 @@ pub enum Written<'a> {
     Tiff(&'a FinishedTiff),
     /// One GDSII layout.
     Gds(&'a crate::output::gdsii::FinishedGds),
+    /// One panel PNG.
+    Png(&'a crate::output::panel_png::FinishedPng),
     /// Field files.
     Fields {
         /// The manifest file.
@@ -310,6 +312,28 @@ pub fn sidecar(spec: &JobSpec, run: RunRecord) -> Sidecar {
             strips: t.strips,
             photometric: "min-is-black".into(),
         },
+        Written::Png(g) => {
+            let ps = spec.png.as_ref().expect("a PNG run has its spec");
+            let l = &run.encoding;
+            OutputFiles::Png {
+                file: file_name(&g.path),
+                format: "png".into(),
+                bytes: g.bytes,
+                sha256: g.sha256.clone(),
+                bits_per_sample: l.bits_per_sample(),
+                panel_px: ps.panel,
+                plate_origin_px: [
+                    i64::from(ps.panel[0] / 2) - i64::from(spec.plate.width / 2),
+                    i64::from(ps.panel[1] / 2) - i64::from(spec.plate.height / 2),
+                ],
+                panel_fill: match ps.fill {
+                    crate::output::panel_png::PanelFill::ZeroPhase => "zero-phase",
+                    crate::output::panel_png::PanelFill::Tile => "tile",
+                }
+                .into(),
+                placement: "the plate's centre sample (floor(W/2), floor(H/2)) on the panel's centre sample (floor(Wp/2), floor(Hp/2)); plate_origin_px is the plate's top-left pixel on the panel; samples are the TIFF's stored values (grey, 1 = white)".into(),
+            }
+        }
         Written::Gds(g) => {
             let gs = spec.gdsii.as_ref().expect("a GDSII run has its spec");
             OutputFiles::Gdsii {

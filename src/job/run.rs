@@ -157,6 +157,16 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
             first_row + rows_done,
             resumed.and_then(|j| j.fields),
         )?),
+        (None, Some(_), _) if prep.png.is_some() => {
+            return Err(Error::job(
+                &spec.path,
+                "[output] format = \"png\" is written by one process: no --shard (write TIFF parts, or run it whole)",
+            ))
+        }
+        (None, None, _) if prep.png.is_some() => Sink::Png(crate::output::panel_png::PanelWriter::new(
+            &spec.output,
+            prep.png.clone().expect("checked"),
+        )),
         (None, None, Some(j)) if prep.gds.is_some() => {
             let state = j.gds.ok_or_else(|| {
                 Error::input(
@@ -227,6 +237,7 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
                     Sink::Gds(w) => {
                         let _ = w.abandon();
                     }
+                    Sink::Png(_) => {}
                     Sink::Part { .. } => {
                         let _ = std::fs::remove_file(&data_path);
                     }
@@ -251,6 +262,7 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
             let _ = std::fs::remove_file(&journal);
             Ok(summary)
         }
+        Sink::Png(w) => super::stream::finish_png(spec, &prep, w, updates),
         Sink::Part { mut file, path } => {
             file.flush()
                 .and_then(|_| file.get_ref().sync_all())

@@ -180,6 +180,12 @@ struct PartMeta {
 pub fn assemble(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
     let _lock = super::run::guard_outputs(spec, None)?;
     let prep = prepare(spec, opts.progress)?;
+    if prep.png.is_some() {
+        return Err(Error::job(
+            &spec.path,
+            "[output] format = \"png\" has no shards to assemble (it is written by one run)",
+        ));
+    }
     if let Some(grid) = prep.fields.clone() {
         return assemble_fields(spec, &prep, &grid);
     }

@@ -26,6 +26,7 @@ use crate::synthesis::point_sum::BandScratch;
 /// single-file plate) or field files.
 pub(super) enum Sink {
     Tiff(StripWriter),
+    Png(crate::output::panel_png::PanelWriter),
     Gds(crate::output::gdsii::GdsWriter),
     Part {
         file: std::io::BufWriter<File>,
@@ -47,6 +48,7 @@ impl Sink {
         match self {
             Sink::Tiff(w) => w.write_rows(&blocks[0]),
             Sink::Gds(w) => w.write_rows(&blocks[0]),
+            Sink::Png(w) => w.write_rows(&blocks[0]),
             Sink::Part { file, path } => {
                 file.write_all(&blocks[0]).map_err(|e| Error::io(&*path, e))
             }
@@ -58,6 +60,7 @@ impl Sink {
         match self {
             Sink::Tiff(w) => w.write_rows(rows),
             Sink::Gds(w) => w.write_rows(rows),
+            Sink::Png(w) => w.write_rows(rows),
             Sink::Part { file, path } => file.write_all(rows).map_err(|e| Error::io(&*path, e)),
             Sink::Fields(f) => Err(Error::job(
                 f.grid().manifest_path(),
@@ -77,6 +80,8 @@ impl Sink {
         match self {
             Sink::Tiff(w) => Ok((Some(w.checkpoint()?), None, None)),
             Sink::Gds(w) => Ok((None, None, Some(w.checkpoint()?))),
+            // Never called: PNG runs keep no journal (`stream_rows`).
+            Sink::Png(_) => Ok((None, None, None)),
             Sink::Part { file, path } => {
                 file.flush()
                     .and_then(|_| file.get_ref().sync_data())
@@ -214,10 +219,12 @@ pub(super) fn stream_rows(ctx: &StreamCtx, sink: &mut Sink, opts: &RunOptions) -
         let finished = start - ctx.rows_before + rows_done >= end;
         // The last field row is published by the caller: the journal says first that it is
         // complete (see above).
+        // A PNG is encoded whole at the end: its runs keep no journal and restart.
         let due = if finished {
             matches!(sink, Sink::Fields(_))
         } else {
-            stop || last_checkpoint.elapsed() >= opts.checkpoint_every
+            !matches!(sink, Sink::Png(_))
+                && (stop || last_checkpoint.elapsed() >= opts.checkpoint_every)
         };
         if due {
             checkpoint(ctx, sink, rows_done, updates)?;
@@ -228,6 +235,11 @@ pub(super) fn stream_rows(ctx: &StreamCtx, sink: &mut Sink, opts: &RunOptions) -
                 .into_inner()
                 .unwrap_or_else(|p| p.into_inner())
                 .abandon();
+            if matches!(sink, Sink::Png(_)) {
+                return Err(Error::Interrupted(format!(
+                    "interrupted after {rows_done} rows; a PNG is written whole, so the same command starts again"
+                )));
+            }
             return Err(Error::Interrupted(format!(
                 "interrupted after {rows_done} rows; the work so far is saved in {}: run the same command again to continue",
                 ctx.journal.display()
@@ -291,6 +303,37 @@ pub(super) fn finish_plate(
     std::fs::rename(&side_partial, &sidecar).map_err(|e| Error::io(&sidecar, e))?;
     Ok(RunSummary {
         tiff: finished.path,
+        sidecar,
+        emitters: prep.emitters,
+        updates,
+        encoding: prep.encoding.clone(),
+    })
+}
+
+/// Writes the panel PNG and its sidecar, both under partial names, then renames them.
+pub(super) fn finish_png(
+    spec: &JobSpec,
+    prep: &Prepared,
+    writer: crate::output::panel_png::PanelWriter,
+    updates: u64,
+) -> Result<RunSummary> {
+    let png = writer.finish_unpublished()?;
+    let partial = crate::output::tiff::partial_path(&png.path);
+    let sidecar = sidecar_path(&spec.output);
+    let side = record::sidecar(spec, run_record(prep, Written::Png(&png), updates));
+    let side_partial = crate::output::tiff::partial_path(&sidecar);
+    if let Err(e) = side.write(&side_partial) {
+        let _ = std::fs::remove_file(&partial);
+        let _ = std::fs::remove_file(&side_partial);
+        return Err(e);
+    }
+    if let Err(e) = std::fs::rename(&partial, &png.path) {
+        let _ = std::fs::remove_file(&side_partial);
+        return Err(Error::io(&png.path, e));
+    }
+    std::fs::rename(&side_partial, &sidecar).map_err(|e| Error::io(&sidecar, e))?;
+    Ok(RunSummary {
+        tiff: png.path.clone(),
         sidecar,
         emitters: prep.emitters,
         updates,

@@ -3,5 +3,6 @@
 //! fills in what the sidecar records; nothing here computes fields.
 pub mod atomic;
 pub mod gdsii;
+pub mod panel_png;
 pub mod sidecar;
 pub mod tiff;

@@ -470,6 +470,27 @@ pub enum OutputFiles {
         /// Where the coordinates are, in words.
         coordinates: String,
     },
+    /// A panel PNG (a modulator's screen image).
+    Png {
+        /// File name.
+        file: Option<String>,
+        /// "png".
+        format: String,
+        /// Size.
+        bytes: u64,
+        /// SHA-256 of the whole file.
+        sha256: String,
+        /// 1, 8 or 16 (the TIFF's stored values).
+        bits_per_sample: u8,
+        /// Panel size [w, h].
+        panel_px: [u32; 2],
+        /// The plate's top-left pixel on the panel [column, row].
+        plate_origin_px: [i64; 2],
+        /// "zero-phase" or "tile".
+        panel_fill: String,
+        /// The placement rule, in words.
+        placement: String,
+    },
     /// Field files with a manifest.
     Fields {
         /// The manifest's file name.

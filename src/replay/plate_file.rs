@@ -204,10 +204,10 @@ impl PlateFile {
             },
         };
         let fields = match &side.output {
-            OutputFiles::Gdsii { .. } => {
+            OutputFiles::Gdsii { .. } | OutputFiles::Png { .. } => {
                 return Err(Error::unsupported(
                     tif,
-                    "is a GDSII layout; reconstruct replays TIFF plates (run the same job with [output] format = \"tiff\": the pixels are the same)",
+                    "is a GDSII layout or a panel PNG; reconstruct replays TIFF plates (run the same job with [output] format = \"tiff\": the samples are the same)",
                 ))
             }
             OutputFiles::Tiff { .. } => {

@@ -225,6 +225,17 @@ pub struct JobSpec {
     pub correction: Option<CorrectionSpec>,
     /// GDSII output instead of TIFF (`[output] format = "gdsii"`).
     pub gdsii: Option<GdsSpec>,
+    /// PNG output instead of TIFF (`[output] format = "png"`).
+    pub png: Option<PngSpec>,
+}
+
+/// `[output] format = "png"`, validated.
+#[derive(Clone, Debug, PartialEq)]
+pub struct PngSpec {
+    /// Panel size [w, h].
+    pub panel: [u32; 2],
+    /// What fills the panel around the plate.
+    pub fill: crate::output::panel_png::PanelFill,
 }
 
 /// `[output] format = "gdsii"`, validated.
@@ -339,6 +350,7 @@ impl JobSpec {
             calibration_file: raw.encoding.calibration.as_ref().map(|c| dir.join(c)),
             correction,
             gdsii: out.gdsii,
+            png: out.png,
         })
     }
 }
@@ -392,6 +404,7 @@ struct OutputKeys {
     rows_per_strip: Option<u32>,
     field_px: Option<[u32; 2]>,
     gdsii: Option<GdsSpec>,
+    png: Option<PngSpec>,
 }
 
 /// Validates `[output]`.
@@ -455,13 +468,62 @@ fn parse_output(
         ("datatype", o.datatype.is_some()),
         ("merge", o.merge.is_some()),
     ];
-    let gdsii = match o.format.as_deref().unwrap_or("tiff") {
-        "tiff" => {
-            if let Some((k, _)) = gds_keys.iter().find(|k| k.1) {
-                return Err(bad(format!("[output] {k} applies to format = \"gdsii\"")));
-            }
-            None
+    let format = o.format.as_deref().unwrap_or("tiff");
+    if format != "gdsii" {
+        if let Some((k, _)) = gds_keys.iter().find(|k| k.1) {
+            return Err(bad(format!("[output] {k} applies to format = \"gdsii\"")));
         }
+    }
+    let png_keys = [
+        ("panel_px", o.panel_px.is_some()),
+        ("panel_fill", o.panel_fill.is_some()),
+    ];
+    let png = if format == "png" {
+        if field_px.is_some() || o.compression.is_some() || o.bigtiff.is_some() {
+            return Err(bad(
+                "[output] field_px, compression and bigtiff apply to TIFF output, not to format = \"png\"".into(),
+            ));
+        }
+        let panel = match o.panel_px {
+            None => [plate.width, plate.height],
+            Some(pp) => {
+                if pp
+                    .iter()
+                    .any(|&v| !(1..=i64::from(crate::output::panel_png::MAX_SIDE)).contains(&v))
+                {
+                    return Err(bad(format!(
+                        "[output] panel_px = {pp:?}: each side must be within 1..={}",
+                        crate::output::panel_png::MAX_SIDE
+                    )));
+                }
+                [pp[0] as u32, pp[1] as u32]
+            }
+        };
+        let side = crate::output::panel_png::MAX_SIDE;
+        if plate.width > side || plate.height > side {
+            return Err(bad(format!(
+                "[output] format = \"png\" holds the image in memory: the {} x {} plate is above {side} x {side} (write TIFF)",
+                plate.width, plate.height
+            )));
+        }
+        let fill = match o.panel_fill.as_deref().unwrap_or("zero-phase") {
+            "zero-phase" => crate::output::panel_png::PanelFill::ZeroPhase,
+            "tile" => crate::output::panel_png::PanelFill::Tile,
+            other => {
+                return Err(bad(format!(
+                    "[output] panel_fill = \"{other}\" is not one of \"zero-phase\", \"tile\""
+                )))
+            }
+        };
+        Some(PngSpec { panel, fill })
+    } else {
+        if let Some((k, _)) = png_keys.iter().find(|k| k.1) {
+            return Err(bad(format!("[output] {k} applies to format = \"png\"")));
+        }
+        None
+    };
+    let gdsii = match format {
+        "tiff" | "png" => None,
         "gdsii" => {
             if !matches!(encoding, Encoding::BinaryAmplitude | Encoding::BinaryPhase) {
                 return Err(bad(format!(
@@ -518,7 +580,7 @@ fn parse_output(
         }
         other => {
             return Err(bad(format!(
-                "[output] format = \"{other}\" is not one of \"tiff\", \"gdsii\""
+                "[output] format = \"{other}\" is not one of \"tiff\", \"gdsii\", \"png\""
             )))
         }
     };
@@ -528,6 +590,7 @@ fn parse_output(
         rows_per_strip,
         field_px,
         gdsii,
+        png,
     })
 }
 

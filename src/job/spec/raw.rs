@@ -165,8 +165,13 @@ pub struct RawOutput {
     pub bigtiff: Option<bool>,
     /// Split the plate into field files of [w, h] pixels.
     pub field_px: Option<[i64; 2]>,
-    /// "tiff" (default) or "gdsii" (binary encodings: polygons for e-beam and laser writers).
+    /// "tiff" (default), "gdsii" (binary encodings: polygons for e-beam and laser writers) or
+    /// "png" (a modulator's screen image).
     pub format: Option<String>,
+    /// PNG: the panel's size [w, h] the plate is centred on (default: the plate's).
+    pub panel_px: Option<[i64; 2]>,
+    /// PNG: "zero-phase" (default) or "tile": what fills the panel around the plate.
+    pub panel_fill: Option<String>,
     /// GDSII: the database unit, nanometres (default 1).
     pub database_unit_nm: Option<f64>,
     /// GDSII: layer number (default 1).

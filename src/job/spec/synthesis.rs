@@ -253,14 +253,18 @@ fn iterative_spec(
             "[synthesis] mix applies to algorithm = \"mixed-region\"".into(),
         ));
     }
-    let quantize_last = match s.quantize_last.unwrap_or(if spots { 0 } else { 5 }) {
-        q if q >= 0 && q as usize <= iterations => q as usize,
-        q => {
-            return Err(bad(format!(
-                "[synthesis] quantize_last = {q} must be within 0..=iterations"
-            )))
-        }
-    };
+    let quantize_last =
+        match s
+            .quantize_last
+            .unwrap_or(if spots { 0 } else { 5.min(iterations as i64) })
+        {
+            q if q >= 0 && q as usize <= iterations => q as usize,
+            q => {
+                return Err(bad(format!(
+                    "[synthesis] quantize_last = {q} must be within 0..=iterations"
+                )))
+            }
+        };
     let stall_tolerance = s.stall_tolerance.unwrap_or(1e-3);
     let min_iterations = match s.min_iterations.unwrap_or(30) {
         m if m >= 0 => m as usize,
