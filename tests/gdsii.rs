@@ -118,7 +118,7 @@ fn layout_equals_the_tiff_pixel_for_pixel() {
         let side: serde_json::Value =
             serde_json::from_slice(&std::fs::read(d.path().join("lay.json")).unwrap()).unwrap();
         let n = side["output"]["boundaries"].as_u64().unwrap();
-        assert_eq!(out.trim(), format!("equal {n} boundaries"), "{enc}");
+        assert_eq!(out.trim(), format!("equal {n} boundaries 1 cells"), "{enc}");
         assert_eq!(side["output"]["vertices"].as_u64(), Some(5 * n));
         assert_eq!(side["output"]["layer"].as_i64(), Some(7));
         assert_eq!(side["output"]["database_unit_nm"].as_f64(), Some(db));
@@ -168,7 +168,10 @@ fn crafted_patterns_round_trip_through_gdstk() {
     }
     let done = wr.finish_unpublished().unwrap().publish().unwrap();
     let out = check(&path, &d.path().join("want.bits"), w, h, 2000.0, 0.5);
-    assert_eq!(out.trim(), format!("equal {} boundaries", done.boundaries));
+    assert_eq!(
+        out.trim(),
+        format!("equal {} boundaries 1 cells", done.boundaries)
+    );
     // The count the merging rule gives, the slow way: a rectangle starts at every run whose row
     // above (within the same strip of 16 rows) does not hold the same run.
     let runs = |r: usize| {
@@ -198,26 +201,75 @@ fn crafted_patterns_round_trip_through_gdstk() {
     assert_eq!(done.boundaries, want);
 }
 
-/// Shards plus assemble, and an interrupted run resumed, give the layout of one run, byte for
-/// byte.
+/// Write fields: one structure per field (coordinates from its lower-left corner) placed by
+/// references in the top structure; flattened by gdstk, the layout is the TIFF pixel for pixel,
+/// runs cut at field columns. Shards and assemble give the same bytes.
 #[test]
-fn shards_and_resume_are_byte_identical() {
+fn write_fields_are_structures_placed_by_references() {
     let d = tempfile::tempdir().unwrap();
-    let j = job(
+    let g = job(
         d.path(),
-        "plate.gds",
+        "lay.gds",
         "binary-amplitude",
-        "format = \"gdsii\"\n",
+        "format = \"gdsii\"\nfield_px = [100, 64]\n",
     );
-    assert!(run(&["run", "-q", j.to_str().unwrap()]).status.success());
-    let want = std::fs::read(d.path().join("plate.gds")).unwrap();
+    let t = job(d.path(), "plate.tif", "binary-amplitude", "");
+    for j in [&g, &t] {
+        let o = run(&["run", "-q", j.to_str().unwrap()]);
+        assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    }
+    let out = check(
+        &d.path().join("lay.gds"),
+        &d.path().join("plate.tif"),
+        320,
+        200,
+        800.0,
+        1.0,
+    );
+    // 4 x 4 fields (320 / 100 and 200 / 64, rounded up) and the top structure.
+    assert!(out.trim().ends_with("boundaries 17 cells"), "{out}");
+    let want = std::fs::read(d.path().join("lay.gds")).unwrap();
     let s = tempfile::tempdir().unwrap();
     let js = job(
         s.path(),
-        "plate.gds",
+        "lay.gds",
         "binary-amplitude",
-        "format = \"gdsii\"\n",
+        "format = \"gdsii\"\nfield_px = [100, 64]\n",
     );
+    for k in [2, 1] {
+        let o = run(&[
+            "run",
+            "-q",
+            "--shard",
+            &format!("{k}/2"),
+            js.to_str().unwrap(),
+        ]);
+        assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    }
+    assert!(run(&["assemble", "-q", js.to_str().unwrap()])
+        .status
+        .success());
+    assert!(
+        std::fs::read(s.path().join("lay.gds")).unwrap() == want,
+        "assembled fields differ"
+    );
+    let left: Vec<_> = std::fs::read_dir(s.path())
+        .unwrap()
+        .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+        .filter(|n| n.contains("partial") || n.contains(".col"))
+        .collect();
+    assert!(left.is_empty(), "{left:?}");
+}
+
+/// Shards plus assemble, and an interrupted run resumed, give the layout of one run, byte for
+/// byte.
+fn shards_and_resume_with(extra: &str) {
+    let d = tempfile::tempdir().unwrap();
+    let j = job(d.path(), "plate.gds", "binary-amplitude", extra);
+    assert!(run(&["run", "-q", j.to_str().unwrap()]).status.success());
+    let want = std::fs::read(d.path().join("plate.gds")).unwrap();
+    let s = tempfile::tempdir().unwrap();
+    let js = job(s.path(), "plate.gds", "binary-amplitude", extra);
     for k in [3, 1, 2] {
         let o = run(&[
             "run",
@@ -236,12 +288,7 @@ fn shards_and_resume_are_byte_identical() {
     );
     // Stop after a few strips (a tiny checkpoint interval and SIGINT), then run again.
     let r = tempfile::tempdir().unwrap();
-    let jr = job(
-        r.path(),
-        "plate.gds",
-        "binary-amplitude",
-        "format = \"gdsii\"\n",
-    );
+    let jr = job(r.path(), "plate.gds", "binary-amplitude", extra);
     let mut stopped = false;
     for ms in [60u64, 25, 10, 3] {
         let child = Command::new(BIN)
@@ -276,6 +323,17 @@ fn shards_and_resume_are_byte_identical() {
         std::fs::read(r.path().join("plate.gds")).unwrap() == want,
         "resumed layout differs"
     );
+}
+
+#[test]
+fn shards_and_resume_are_byte_identical() {
+    shards_and_resume_with("format = \"gdsii\"\n");
+}
+
+/// The same with write fields: the field-column files are cut back to their journal's lengths.
+#[test]
+fn shards_and_resume_with_write_fields_are_byte_identical() {
+    shards_and_resume_with("format = \"gdsii\"\nfield_px = [100, 64]\n");
 }
 
 /// What GDSII cannot hold is refused at once, naming why: a pitch that is not a whole number of

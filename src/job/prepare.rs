@@ -153,7 +153,19 @@ pub(super) fn prepare(spec: &JobSpec, mode: ProgressMode) -> Result<Prepared> {
     ) {
         layout.rows_per_strip = b as u32;
     }
-    let (fields, blocks, rps, unit_rows) = match spec.field_px {
+    // GDSII write fields are structures of one layout, not field files.
+    let field_files = spec.field_px.filter(|_| spec.gdsii.is_none());
+    let (fields, blocks, rps, unit_rows) = match field_files {
+        None if spec.gdsii.is_some() && spec.field_px.is_some() => {
+            let [fw, fh] = spec.field_px.expect("checked");
+            let target = spec
+                .rows_per_strip
+                .unwrap_or_else(|| TiffLayout::default_rows_per_strip(fw, 1))
+                .min(fh);
+            let rps = (1..=target).rev().find(|r| fh % r == 0).unwrap_or(1);
+            layout.rows_per_strip = rps;
+            (None, vec![(0, spec.plate.width as usize)], rps, rps)
+        }
         None => {
             let rps = layout.effective_rows_per_strip();
             (None, vec![(0, spec.plate.width as usize)], rps, rps)
@@ -207,6 +219,10 @@ pub(super) fn prepare(spec: &JobSpec, mode: ProgressMode) -> Result<Prepared> {
                     rps,
                     &name,
                 )
+                .and_then(|l| match spec.field_px {
+                    Some(f) => l.with_fields(f),
+                    None => Ok(l),
+                })
                 .map_err(|m| Error::job(&spec.path, m))?,
             )
         }

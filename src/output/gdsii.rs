@@ -13,7 +13,12 @@
 //!
 //! Records (length u16, record type, data type, then big-endian data): HEADER 600, BGNLIB,
 //! LIBNAME, UNITS (user unit 1 um), BGNSTR, STRNAME, then per rectangle BOUNDARY, LAYER,
-//! DATATYPE, XY (5 points, closed), ENDEL; ENDSTR, ENDLIB. Dates are fixed (1970-01-01) so the same
+//! DATATYPE, XY (5 points, closed), ENDEL; ENDSTR, ENDLIB. With write fields each field is a
+//! structure `NAME_Rrrr_Cccc` whose coordinates start at the field's lower-left corner (runs are
+//! cut at field columns; strips divide the field height), and a last structure `NAME` places
+//! every field by an SREF at that corner.
+//! A field row's boundaries collect in one file per field column beside the partial file
+//! (`.colNNNN`) and are moved into the layout when the field row ends. Dates are fixed (1970-01-01) so the same
 //! job gives the same bytes. Like the TIFF writer, the file is written under `NAME.partial`,
 //! synced, hashed and renamed when complete.
 
@@ -45,6 +50,9 @@ pub struct GdsLayout {
     pub rows_per_strip: u32,
     /// Library and structure name.
     pub name: String,
+    /// Write fields [w, h] pixels: one structure per field, placed by references in the top
+    /// structure (rows per strip divide the field height).
+    pub field: Option<[u32; 2]>,
 }
 
 /// Largest coordinate GDSII's 4-byte integers hold.
@@ -104,9 +112,39 @@ impl GdsLayout {
             name: name
                 .chars()
                 .filter(|c| c.is_ascii_alphanumeric() || *c == '_')
-                .take(32)
+                .take(20)
                 .collect(),
+            field: None,
         })
+    }
+
+    /// With write fields of [w, h] pixels (each a structure); `rows_per_strip` must divide h.
+    pub fn with_fields(mut self, field: [u32; 2]) -> std::result::Result<GdsLayout, String> {
+        let f = [
+            field[0].clamp(1, self.width),
+            field[1].clamp(1, self.height),
+        ];
+        if !f[1].is_multiple_of(self.rows_per_strip) {
+            return Err(format!(
+                "rows_per_strip = {} must divide the field height {}",
+                self.rows_per_strip, f[1]
+            ));
+        }
+        self.field = Some(f);
+        Ok(self)
+    }
+
+    /// Field columns and rows.
+    pub fn field_counts(&self) -> [u32; 2] {
+        match self.field {
+            Some(f) => [self.width.div_ceil(f[0]), self.height.div_ceil(f[1])],
+            None => [1, 1],
+        }
+    }
+
+    /// Name of the structure of field (row, col).
+    pub fn field_name(&self, row: u32, col: u32) -> String {
+        format!("{}_R{row:03}_C{col:03}", self.name)
     }
 
     /// Bytes per packed row of the binary plate (1 bit per pixel, MSB first).
@@ -132,6 +170,9 @@ pub struct GdsState {
     pub file_len: u64,
     /// Boundaries written.
     pub boundaries: u64,
+    /// Write fields: the length of each field column's file of the current field row.
+    #[serde(default)]
+    pub column_lens: Vec<u64>,
 }
 
 /// A finished layout file.
@@ -192,6 +233,21 @@ pub struct GdsWriter {
     open: Vec<(u32, u32, u32)>,
     /// Spans of the current row (recycled).
     spans: Vec<(u32, u32)>,
+    /// Write fields: one file per field column holding the current field row's boundaries.
+    columns: Vec<ColumnFile>,
+}
+
+/// The boundaries of one field column of the current field row, beside the partial file.
+struct ColumnFile {
+    path: PathBuf,
+    out: BufWriter<File>,
+    len: u64,
+}
+
+fn column_path(partial: &Path, col: u32) -> PathBuf {
+    let mut s = partial.as_os_str().to_owned();
+    s.push(format!(".col{col:04}"));
+    PathBuf::from(s)
 }
 
 fn record(out: &mut Vec<u8>, rtype: u8, dtype: u8, data: &[u8]) {
@@ -258,6 +314,52 @@ pub fn real8_value(b: [u8; 8]) -> f64 {
     }
 }
 
+/// Opens (or, resuming, reopens at the recorded lengths) the field-column files.
+fn open_columns(
+    partial: &Path,
+    layout: &GdsLayout,
+    lens: Option<&[u64]>,
+) -> Result<Vec<ColumnFile>> {
+    if layout.field.is_none() {
+        return Ok(Vec::new());
+    }
+    let n = layout.field_counts()[0];
+    if let Some(l) = lens {
+        if l.len() != n as usize {
+            return Err(Error::input(
+                partial,
+                "resume journal: GDSII field columns differ; rerun with --restart",
+            ));
+        }
+    }
+    (0..n)
+        .map(|k| {
+            let path = column_path(partial, k);
+            let mut f = match lens {
+                None => File::create(&path),
+                Some(_) => OpenOptions::new().read(true).write(true).open(&path),
+            }
+            .map_err(|e| Error::io(&path, e))?;
+            let len = lens.map_or(0, |l| l[k as usize]);
+            let have = f.metadata().map_err(|e| Error::io(&path, e))?.len();
+            if have < len {
+                return Err(Error::input(
+                    &path,
+                    "shorter than its journal recorded; rerun with --restart",
+                ));
+            }
+            f.set_len(len)
+                .and_then(|_| f.seek(SeekFrom::Start(len)).map(|_| ()))
+                .map_err(|e| Error::io(&path, e))?;
+            Ok(ColumnFile {
+                path,
+                out: BufWriter::with_capacity(1 << 16, f),
+                len,
+            })
+        })
+        .collect()
+}
+
 const DATE: [i16; 12] = [1970, 1, 1, 0, 0, 0, 1970, 1, 1, 0, 0, 0];
 
 impl GdsWriter {
@@ -278,8 +380,11 @@ impl GdsWriter {
         units.extend_from_slice(&real8(layout.db_unit / 1e-6));
         units.extend_from_slice(&real8(layout.db_unit));
         record(&mut head, 0x03, 0x05, &units);
-        record(&mut head, 0x05, 0x02, &int2s(&DATE));
-        record(&mut head, 0x06, 0x06, &ascii(&layout.name));
+        if layout.field.is_none() {
+            record(&mut head, 0x05, 0x02, &int2s(&DATE));
+            record(&mut head, 0x06, 0x06, &ascii(&layout.name));
+        }
+        let columns = open_columns(&partial, &layout, None)?;
         let mut w = GdsWriter {
             final_path: final_path.to_path_buf(),
             partial,
@@ -290,6 +395,7 @@ impl GdsWriter {
             boundaries: 0,
             open: Vec::new(),
             spans: Vec::new(),
+            columns,
         };
         w.put(&head)?;
         Ok(w)
@@ -321,6 +427,7 @@ impl GdsWriter {
         f.set_len(state.file_len)
             .and_then(|_| f.seek(SeekFrom::Start(state.file_len)).map(|_| ()))
             .map_err(|e| Error::io(&partial, e))?;
+        let columns = open_columns(&partial, &layout, Some(&state.column_lens))?;
         Ok(GdsWriter {
             final_path: final_path.to_path_buf(),
             partial,
@@ -331,7 +438,47 @@ impl GdsWriter {
             boundaries: state.boundaries,
             open: Vec::new(),
             spans: Vec::new(),
+            columns,
         })
+    }
+
+    /// Moves each field column's boundaries of the finished field row into the main file as a
+    /// structure (BGNSTR, STRNAME, boundaries, ENDSTR), then empties the column files.
+    fn close_field_row(&mut self, field_row: u32) -> Result<()> {
+        use std::io::Read;
+        for k in 0..self.columns.len() {
+            let mut head = Vec::new();
+            record(&mut head, 0x05, 0x02, &int2s(&DATE));
+            record(
+                &mut head,
+                0x06,
+                0x06,
+                &ascii(&self.layout.field_name(field_row, k as u32)),
+            );
+            self.put(&head)?;
+            let c = &mut self.columns[k];
+            c.out.flush().map_err(|e| Error::io(&c.path, e))?;
+            let mut f = File::open(&c.path).map_err(|e| Error::io(&c.path, e))?;
+            let mut left = c.len;
+            let mut buf = vec![0u8; 1 << 20];
+            while left > 0 {
+                let n = (left as usize).min(buf.len());
+                f.read_exact(&mut buf[..n])
+                    .map_err(|e| Error::io(&self.columns[k].path, e))?;
+                self.put(&buf[..n])?;
+                left -= n as u64;
+            }
+            let mut tail = Vec::new();
+            record(&mut tail, 0x07, 0x00, &[]);
+            self.put(&tail)?;
+            let c = &mut self.columns[k];
+            let file = c.out.get_mut();
+            file.set_len(0)
+                .and_then(|_| file.seek(SeekFrom::Start(0)).map(|_| ()))
+                .map_err(|e| Error::io(&c.path, e))?;
+            c.len = 0;
+        }
+        Ok(())
     }
 
     fn put(&mut self, b: &[u8]) -> Result<()> {
@@ -343,7 +490,19 @@ impl GdsWriter {
 
     fn rect(&mut self, c0: u32, c1: u32, r0: u32, r1: u32) -> Result<()> {
         let l = &self.layout;
-        let (x0, x1, y0, y1) = (l.x_edge(c0), l.x_edge(c1), l.y_edge(r1), l.y_edge(r0));
+        let (mut x0, mut x1, mut y0, mut y1) =
+            (l.x_edge(c0), l.x_edge(c1), l.y_edge(r1), l.y_edge(r0));
+        // In a write field: coordinates from the field's lower-left corner.
+        let column = l.field.map(|f| {
+            let (fc, fr) = (c0 / f[0], r0 / f[1]);
+            let bottom = ((fr + 1) * f[1]).min(l.height);
+            let (ox, oy) = (l.x_edge(fc * f[0]), l.y_edge(bottom));
+            x0 -= ox;
+            x1 -= ox;
+            y0 -= oy;
+            y1 -= oy;
+            fc as usize
+        });
         let mut b = Vec::with_capacity(64);
         record(&mut b, 0x08, 0x00, &[]);
         record(&mut b, 0x0D, 0x02, &int2s(&[l.layer]));
@@ -355,7 +514,15 @@ impl GdsWriter {
         record(&mut b, 0x10, 0x03, &xy);
         record(&mut b, 0x11, 0x00, &[]);
         self.boundaries += 1;
-        self.put(&b)
+        match column {
+            Some(k) => {
+                let c = &mut self.columns[k];
+                c.out.write_all(&b).map_err(|e| Error::io(&c.path, e))?;
+                c.len += b.len() as u64;
+                Ok(())
+            }
+            None => self.put(&b),
+        }
     }
 
     fn close_all(&mut self) -> Result<()> {
@@ -397,6 +564,20 @@ impl GdsWriter {
             if let Some(s) = start {
                 spans.push((s, w));
             }
+            // Runs do not cross write-field columns.
+            if let Some([fw, _]) = self.layout.field {
+                let mut cut = Vec::with_capacity(spans.len());
+                for &(a, b) in &spans {
+                    let mut a = a;
+                    while a / fw != (b - 1) / fw {
+                        let edge = (a / fw + 1) * fw;
+                        cut.push((a, edge));
+                        a = edge;
+                    }
+                    cut.push((a, b));
+                }
+                spans = cut;
+            }
             // Open rectangles continue where this row has the same span; the others close.
             let r = self.rows_written;
             let open = std::mem::take(&mut self.open);
@@ -433,6 +614,13 @@ impl GdsWriter {
                 || self.rows_written == self.layout.height
             {
                 self.close_all()?;
+                if let Some([_, fh]) = self.layout.field {
+                    if self.rows_written.is_multiple_of(fh)
+                        || self.rows_written == self.layout.height
+                    {
+                        self.close_field_row((self.rows_written - 1) / fh)?;
+                    }
+                }
             }
         }
         Ok(())
@@ -455,10 +643,17 @@ impl GdsWriter {
         out.flush()
             .and_then(|_| out.get_ref().sync_data())
             .map_err(|e| Error::io(&self.partial, e))?;
+        for c in &mut self.columns {
+            c.out
+                .flush()
+                .and_then(|_| c.out.get_ref().sync_data())
+                .map_err(|e| Error::io(&c.path, e))?;
+        }
         Ok(GdsState {
             rows_written: self.rows_written,
             file_len: self.pos,
             boundaries: self.boundaries,
+            column_lens: self.columns.iter().map(|c| c.len).collect(),
         })
     }
 
@@ -475,9 +670,33 @@ impl GdsWriter {
         }
         self.close_all()?;
         let mut tail = Vec::new();
+        if let Some(f) = self.layout.field {
+            // The top structure: one reference per field, at its lower-left corner.
+            let l = &self.layout;
+            record(&mut tail, 0x05, 0x02, &int2s(&DATE));
+            record(&mut tail, 0x06, 0x06, &ascii(&l.name));
+            let [nc, nr] = l.field_counts();
+            for r in 0..nr {
+                for c in 0..nc {
+                    let bottom = ((r + 1) * f[1]).min(l.height);
+                    record(&mut tail, 0x0A, 0x00, &[]);
+                    record(&mut tail, 0x12, 0x06, &ascii(&l.field_name(r, c)));
+                    let xy: Vec<u8> = [l.x_edge(c * f[0]), l.y_edge(bottom)]
+                        .iter()
+                        .flat_map(|v| v.to_be_bytes())
+                        .collect();
+                    record(&mut tail, 0x10, 0x03, &xy);
+                    record(&mut tail, 0x11, 0x00, &[]);
+                }
+            }
+        }
         record(&mut tail, 0x07, 0x00, &[]);
         record(&mut tail, 0x04, 0x00, &[]);
         self.put(&tail)?;
+        for c in std::mem::take(&mut self.columns) {
+            drop(c.out);
+            let _ = fs::remove_file(&c.path);
+        }
         let out = self.out.take().expect("open writer");
         let f = out
             .into_inner()
@@ -500,6 +719,10 @@ impl GdsWriter {
     /// Removes the partial file.
     pub fn abandon(mut self) -> Result<()> {
         self.out = None;
+        for c in std::mem::take(&mut self.columns) {
+            drop(c.out);
+            let _ = fs::remove_file(&c.path);
+        }
         fs::remove_file(&self.partial).map_err(|e| Error::io(&self.partial, e))
     }
 }

@@ -92,7 +92,7 @@ def main():
     if len(diff):
         print("differ at", len(diff), "pixels, first", diff[:5].tolist())
         sys.exit(1)
-    print("equal", count, "boundaries")
+    print("equal", count, "boundaries", len(lib.cells), "cells")
 
 
 if __name__ == "__main__":

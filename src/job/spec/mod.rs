@@ -531,9 +531,6 @@ fn parse_output(
                     encoding.kind_name()
                 )));
             }
-            if field_px.is_some() {
-                return Err(bad("[output] field_px with format = \"gdsii\" is not supported: write one layout (or fields as TIFF)".into()));
-            }
             if o.compression.is_some() || o.bigtiff.is_some() {
                 return Err(bad(
                     "[output] compression and bigtiff apply to TIFF output".into()
