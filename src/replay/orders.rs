@@ -5,9 +5,9 @@
 //!
 //! Fill factor model (common practice for pixelated panels): a share F of each pixel's area
 //! carries the pattern's transmittance t, the rest passes the light unmodulated (as phase 0; a
-//! dead area with its own phase psi would give |F <t> + (1 - F) exp(i psi)|^2). The field is then
-//! F t + (1 - F) plus the pixel grid's own orders; its zero order has amplitude F <t> + (1 - F)
-//! (share |F <t> + 1 - F|^2 of the power) and every designed sample keeps F^2 of its power.
+//! dead area with its own phase psi would give |F mean(t) + (1 - F) exp(i psi)|^2). The field is then
+//! F t + (1 - F) plus the pixel grid's own orders; its zero order has amplitude F mean(t) + (1 - F)
+//! (share |F mean(t) + 1 - F|^2 of the power) and every designed sample keeps F^2 of its power.
 
 use num_complex::Complex64;
 use serde::Serialize;
@@ -152,7 +152,7 @@ mod tests {
         );
         assert_eq!(z.sample, [4, 3]);
         assert!((z.share - 0.2).abs() < 1e-12);
-        // Dead area 10 %: zero order (1 - F)^2 = 1 % of the incident power for <t> = 0.
+        // Dead area 10 %: zero order (1 - F)^2 = 1 % of the incident power for mean(t) = 0.
         assert!((z.share_with_fill_factor.unwrap() - 0.01).abs() < 1e-12);
         let t = t.unwrap();
         assert_eq!(t.mirrored_region, [2, 3, 1, 1]);

@@ -219,7 +219,7 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
                 "zero_order": zero,
                 "twin": twin,
                 "fill_factor": req.fill_factor,
-                "what": "zero order: the undiffracted light on the optical axis (a carrier moves the image, not it); twin: the conjugate image, point-mirrored through the axis (as strong as the image for binary phase, weak for many levels); with a fill factor F the zero order is |F <t> + 1 - F|^2 of the incident power and designed light keeps F^2",
+                "what": "zero order: the undiffracted light on the optical axis (a carrier moves the image, not it); twin: the conjugate image, point-mirrored through the axis (as strong as the image for binary phase, weak for many levels); with a fill factor F the zero order is |F mean(t) + 1 - F|^2 of the incident power and designed light keeps F^2",
             })
         });
         planes.push(serde_json::json!({

@@ -18,7 +18,7 @@
 //! in the FFT replay). D separates into a column and a row factor, so each iteration costs
 //! about 2 x spots x pixels complex multiply-adds and no transcendental per spot and pixel.
 //!
-//! Iteration (paper, eqs. 9-10): weights w_m <- w_m <|V|/a> / (|V_m| / a_m) for target amplitudes
+//! Iteration (paper, eqs. 9-10): weights w_m <- w_m mean(|V| / a) / (|V_m| / a_m) for target amplitudes
 //! a_m = sqrt(weight_m), and phi_j = arg sum_m w_m a_m exp(i D_jm) V_m / |V_m| (or exp(i phase_m)
 //! where a spot's phase is given).
 
