@@ -416,3 +416,51 @@ fn an_output_named_like_its_own_sidecar_is_refused() {
     );
     assert!(!d.path().join("plate.json").exists());
 }
+
+/// The files a glTF (JSON) names are inputs too: its external buffer and texture are listed
+/// (percent-escapes decoded, `data:` URIs not), so resume hashes them and an output named like
+/// one is refused.
+#[test]
+fn gltf_external_buffers_and_textures_are_inputs() {
+    let d = tempfile::tempdir().unwrap();
+    // One triangle; its buffer is external, its texture too (neither needs to be valid here).
+    let gltf = r#"{"asset":{"version":"2.0"},
+        "buffers":[{"uri":"tri%20data.bin","byteLength":36},{"uri":"data:application/octet-stream;base64,AAAA","byteLength":3}],
+        "images":[{"uri":"tex.png"}],
+        "bufferViews":[{"buffer":0,"byteLength":36}],
+        "accessors":[{"bufferView":0,"componentType":5126,"count":3,"type":"VEC3","min":[0,0,0],"max":[1,1,0]}],
+        "meshes":[{"primitives":[{"attributes":{"POSITION":0}}]}],
+        "nodes":[{"mesh":0}],"scenes":[{"nodes":[0]}],"scene":0}"#;
+    std::fs::write(d.path().join("m.gltf"), gltf).unwrap();
+    let tri: Vec<u8> = [0f32, 0.0, 0.0, 0.001, 0.0, 0.0, 0.0, 0.001, 0.0]
+        .iter()
+        .flat_map(|v| v.to_le_bytes())
+        .collect();
+    std::fs::write(d.path().join("tri data.bin"), tri).unwrap();
+    std::fs::write(d.path().join("tex.png"), b"not read here").unwrap();
+    let text = |out: &str| {
+        format!(
+            "[hologram]\nwidth_px = 64\nheight_px = 64\npitch_um = 2.0\nwavelength_nm = 532\n\
+             [reference]\nkind = \"plane\"\n[[object]]\nmesh = \"m.gltf\"\noffset_mm = [0, 0, 20]\nemitters = 50\n\
+             [encoding]\nkind = \"binary-amplitude\"\n[output]\npath = \"{out}\"\n"
+        )
+    };
+    let j = d.path().join("job.toml");
+    std::fs::write(&j, text("p.tif")).unwrap();
+    let spec = fringemill::job::spec::JobSpec::load(&j).unwrap();
+    let inputs = spec.inputs();
+    assert!(
+        inputs.contains(&d.path().join("tri data.bin")),
+        "{inputs:?}"
+    );
+    assert!(inputs.contains(&d.path().join("tex.png")), "{inputs:?}");
+    assert_eq!(inputs.len(), 4, "{inputs:?}");
+    std::fs::write(&j, text("tri data.bin")).unwrap();
+    let o = run(d.path(), &["run", "-q", j.to_str().unwrap()]);
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(!o.status.success() && err.contains("tri data.bin"), "{err}");
+    assert_eq!(
+        std::fs::read(d.path().join("tri data.bin")).unwrap().len(),
+        36
+    );
+}

@@ -616,3 +616,30 @@ fn sigterm_stops_within_the_bands_in_flight_and_progress_starts_at_once() {
         "stopped {stopped:?} after SIGTERM"
     );
 }
+
+/// A partial file damaged after its checkpoint (one byte of a written strip flipped) is refused
+/// on resume, naming the file and the bytes, instead of being finished into a wrong plate;
+/// `--restart` recomputes it.
+#[test]
+fn resume_refuses_a_damaged_partial_file() {
+    let enc = "kind = \"binary-amplitude\"";
+    let reference = clean_plate(enc);
+    let (d, j) = interrupted(enc);
+    let partial = d.path().join("out/plate.tif.partial");
+    let mut bytes = std::fs::read(&partial).unwrap();
+    assert!(bytes.len() > 64, "the interrupted run wrote no strip");
+    let k = bytes.len() / 2;
+    bytes[k] ^= 0x10;
+    std::fs::write(&partial, bytes).unwrap();
+    let o = run(&["run", "-q", j.to_str().unwrap()]);
+    let e = String::from_utf8_lossy(&o.stderr);
+    assert!(!o.status.success(), "{e}");
+    assert!(
+        e.contains("plate.tif.partial") && e.contains("changed since the checkpoint"),
+        "{e}"
+    );
+    assert!(!d.path().join("out/plate.tif").exists());
+    let o = run(&["run", "-q", "--restart", j.to_str().unwrap()]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    assert!(std::fs::read(d.path().join("out/plate.tif")).unwrap() == reference);
+}

@@ -39,6 +39,9 @@ pub struct Journal {
     /// The GDSII writer's checkpoint (layouts).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub gds: Option<crate::output::gdsii::GdsState>,
+    /// A shard's part file: SHA-256 of its rows written between checkpoints (checked on resume).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub part_chunks: Vec<crate::output::chunks::Chunk>,
     /// SHA-256 of every input file the job names (points, mesh, target images, calibration), as
     /// read when the run started: a resume refuses when one changed.
     #[serde(default)]

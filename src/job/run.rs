@@ -200,17 +200,28 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
         (None, Some(_), resumed) => {
             let mut f = OpenOptions::new()
                 .create(true)
+                .read(true)
                 .write(true)
                 .truncate(resumed.is_none())
                 .open(&data_path)
                 .map_err(|e| Error::io(&data_path, e))?;
+            let chunks = resumed.map(|j| j.part_chunks).unwrap_or_default();
             let keep = rows_done as u64 * row_bytes as u64;
+            if chunks.last().is_some_and(|c| c.end != keep) {
+                return Err(Error::input(
+                    &journal,
+                    "resume journal: the part's checksums do not end at its rows; rerun with --restart",
+                ));
+            }
+            crate::output::chunks::verify(&data_path, &mut f, &chunks)?;
             f.set_len(keep)
                 .and_then(|_| f.seek(SeekFrom::Start(keep)).map(|_| ()))
                 .map_err(|e| Error::io(&data_path, e))?;
             Sink::Part {
                 file: std::io::BufWriter::with_capacity(1 << 20, f),
                 path: data_path.clone(),
+                hasher: crate::output::chunks::ChunkHasher::starting_at(keep, chunks),
+                len: keep,
             }
         }
     };
@@ -263,7 +274,7 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
             Ok(summary)
         }
         Sink::Png(w) => super::stream::finish_png(spec, &prep, w, updates),
-        Sink::Part { mut file, path } => {
+        Sink::Part { mut file, path, .. } => {
             file.flush()
                 .and_then(|_| file.get_ref().sync_all())
                 .map_err(|e| Error::io(&path, e))?;

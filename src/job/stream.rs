@@ -31,6 +31,10 @@ pub(super) enum Sink {
     Part {
         file: std::io::BufWriter<File>,
         path: PathBuf,
+        /// Checksums of the rows written between checkpoints.
+        hasher: crate::output::chunks::ChunkHasher,
+        /// Bytes in the file.
+        len: u64,
     },
     Fields(FieldSink),
 }
@@ -40,6 +44,7 @@ type SinkState = (
     Option<crate::output::tiff::WriterState>,
     Option<FieldsState>,
     Option<crate::output::gdsii::GdsState>,
+    Vec<crate::output::chunks::Chunk>,
 );
 
 impl Sink {
@@ -49,7 +54,14 @@ impl Sink {
             Sink::Tiff(w) => w.write_rows(&blocks[0]),
             Sink::Gds(w) => w.write_rows(&blocks[0]),
             Sink::Png(w) => w.write_rows(&blocks[0]),
-            Sink::Part { file, path } => {
+            Sink::Part {
+                file,
+                path,
+                hasher,
+                len,
+            } => {
+                hasher.update(&blocks[0]);
+                *len += blocks[0].len() as u64;
                 file.write_all(&blocks[0]).map_err(|e| Error::io(&*path, e))
             }
             Sink::Fields(f) => f.write_band(row0, blocks),
@@ -61,7 +73,16 @@ impl Sink {
             Sink::Tiff(w) => w.write_rows(rows),
             Sink::Gds(w) => w.write_rows(rows),
             Sink::Png(w) => w.write_rows(rows),
-            Sink::Part { file, path } => file.write_all(rows).map_err(|e| Error::io(&*path, e)),
+            Sink::Part {
+                file,
+                path,
+                hasher,
+                len,
+            } => {
+                hasher.update(rows);
+                *len += rows.len() as u64;
+                file.write_all(rows).map_err(|e| Error::io(&*path, e))
+            }
             Sink::Fields(f) => Err(Error::job(
                 f.grid().manifest_path(),
                 "field sinks take bands, not plate rows",
@@ -78,17 +99,22 @@ impl Sink {
     /// Makes what was written durable; returns what the journal must record to continue.
     pub(super) fn sync(&mut self) -> Result<SinkState> {
         match self {
-            Sink::Tiff(w) => Ok((Some(w.checkpoint()?), None, None)),
-            Sink::Gds(w) => Ok((None, None, Some(w.checkpoint()?))),
+            Sink::Tiff(w) => Ok((Some(w.checkpoint()?), None, None, Vec::new())),
+            Sink::Gds(w) => Ok((None, None, Some(w.checkpoint()?), Vec::new())),
             // Never called: PNG runs keep no journal (`stream_rows`).
-            Sink::Png(_) => Ok((None, None, None)),
-            Sink::Part { file, path } => {
+            Sink::Png(_) => Ok((None, None, None, Vec::new())),
+            Sink::Part {
+                file,
+                path,
+                hasher,
+                len,
+            } => {
                 file.flush()
                     .and_then(|_| file.get_ref().sync_data())
                     .map_err(|e| Error::io(&*path, e))?;
-                Ok((None, None, None))
+                Ok((None, None, None, hasher.checkpoint(*len)))
             }
-            Sink::Fields(f) => Ok((None, Some(f.checkpoint()?), None)),
+            Sink::Fields(f) => Ok((None, Some(f.checkpoint()?), None, Vec::new())),
         }
     }
 }
@@ -255,8 +281,9 @@ pub(super) fn stream_rows(ctx: &StreamCtx, sink: &mut Sink, opts: &RunOptions) -
 
 /// Syncs the sink and writes the journal: the run can continue from here.
 fn checkpoint(ctx: &StreamCtx, sink: &mut Sink, rows_done: u32, updates: u64) -> Result<()> {
-    let (writer, fields, gds) = sink.sync()?;
+    let (writer, fields, gds, part_chunks) = sink.sync()?;
     Journal {
+        part_chunks,
         gds,
         format: FORMAT.into(),
         job_sha256: ctx.spec.sha256.clone(),

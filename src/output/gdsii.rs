@@ -173,6 +173,9 @@ pub struct GdsState {
     /// Write fields: the length of each field column's file of the current field row.
     #[serde(default)]
     pub column_lens: Vec<u64>,
+    /// SHA-256 of the layout's bytes written between checkpoints (checked on resume).
+    #[serde(default)]
+    pub chunks: Vec<crate::output::chunks::Chunk>,
 }
 
 /// A finished layout file.
@@ -235,6 +238,8 @@ pub struct GdsWriter {
     spans: Vec<(u32, u32)>,
     /// Write fields: one file per field column holding the current field row's boundaries.
     columns: Vec<ColumnFile>,
+    /// Checksums of the bytes written between checkpoints.
+    hasher: crate::output::chunks::ChunkHasher,
 }
 
 /// The boundaries of one field column of the current field row, beside the partial file.
@@ -396,6 +401,7 @@ impl GdsWriter {
             open: Vec::new(),
             spans: Vec::new(),
             columns,
+            hasher: Default::default(),
         };
         w.put(&head)?;
         Ok(w)
@@ -414,6 +420,7 @@ impl GdsWriter {
             ));
         }
         let mut f = OpenOptions::new()
+            .read(true)
             .write(true)
             .open(&partial)
             .map_err(|e| Error::io(&partial, e))?;
@@ -424,6 +431,7 @@ impl GdsWriter {
                 format!("is {len} bytes, shorter than the {} its journal recorded; rerun with --restart", state.file_len),
             ));
         }
+        crate::output::chunks::verify(&partial, &mut f, &state.chunks)?;
         f.set_len(state.file_len)
             .and_then(|_| f.seek(SeekFrom::Start(state.file_len)).map(|_| ()))
             .map_err(|e| Error::io(&partial, e))?;
@@ -439,6 +447,7 @@ impl GdsWriter {
             open: Vec::new(),
             spans: Vec::new(),
             columns,
+            hasher: crate::output::chunks::ChunkHasher::starting_at(state.file_len, state.chunks),
         })
     }
 
@@ -484,6 +493,7 @@ impl GdsWriter {
     fn put(&mut self, b: &[u8]) -> Result<()> {
         let out = self.out.as_mut().expect("open writer");
         out.write_all(b).map_err(|e| Error::io(&self.partial, e))?;
+        self.hasher.update(b);
         self.pos += b.len() as u64;
         Ok(())
     }
@@ -654,6 +664,7 @@ impl GdsWriter {
             file_len: self.pos,
             boundaries: self.boundaries,
             column_lens: self.columns.iter().map(|c| c.len).collect(),
+            chunks: self.hasher.checkpoint(self.pos),
         })
     }
 

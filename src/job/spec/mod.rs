@@ -250,15 +250,74 @@ pub struct GdsSpec {
 }
 
 impl JobSpec {
-    /// The files the job names and reads: the job file, every object's file and a calibration
-    /// table (files a mesh names in turn, such as glTF buffers and textures, are not listed).
+    /// The files the job names and reads: the job file, every object's file with the external
+    /// buffers and images a glTF (JSON) file names, a calibration table and a correction map.
     pub fn inputs(&self) -> Vec<PathBuf> {
         let mut v = vec![self.path.clone()];
-        v.extend(self.objects.iter().map(|o| o.points.clone()));
+        for o in &self.objects {
+            v.push(o.points.clone());
+            v.extend(gltf_companions(&o.points));
+        }
         v.extend(self.calibration_file.iter().cloned());
         v.extend(self.correction.iter().filter_map(|c| c.map.clone()));
         v
     }
+}
+
+/// The external files a `.gltf` (JSON) file names: `buffers[].uri` and `images[].uri` that are
+/// not `data:` URIs, beside the file (percent-escapes decoded). A file that cannot be read or
+/// parsed names none here (the mesh reader reports it).
+fn gltf_companions(path: &Path) -> Vec<PathBuf> {
+    if !path
+        .extension()
+        .is_some_and(|e| e.eq_ignore_ascii_case("gltf"))
+    {
+        return Vec::new();
+    }
+    let Ok(meta) = std::fs::metadata(path) else {
+        return Vec::new();
+    };
+    if meta.len() > 64 << 20 {
+        return Vec::new();
+    }
+    let Ok(text) = std::fs::read(path) else {
+        return Vec::new();
+    };
+    let Ok(json) = serde_json::from_slice::<serde_json::Value>(&text) else {
+        return Vec::new();
+    };
+    let dir = path.parent().unwrap_or(Path::new(""));
+    let decode = |u: &str| -> String {
+        let b = u.as_bytes();
+        let mut out = Vec::with_capacity(b.len());
+        let mut i = 0;
+        while i < b.len() {
+            if b[i] == b'%' && i + 2 < b.len() {
+                if let Some(v) = std::str::from_utf8(&b[i + 1..i + 3])
+                    .ok()
+                    .and_then(|h| u8::from_str_radix(h, 16).ok())
+                {
+                    out.push(v);
+                    i += 3;
+                    continue;
+                }
+            }
+            out.push(b[i]);
+            i += 1;
+        }
+        String::from_utf8_lossy(&out).into_owned()
+    };
+    let mut v = Vec::new();
+    for key in ["buffers", "images"] {
+        for item in json[key].as_array().into_iter().flatten() {
+            if let Some(u) = item["uri"].as_str() {
+                if !u.starts_with("data:") {
+                    v.push(dir.join(decode(u)));
+                }
+            }
+        }
+    }
+    v
 }
 
 /// Most field files a plate may be split into.

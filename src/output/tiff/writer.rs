@@ -42,6 +42,9 @@ pub struct WriterState {
     /// Offset and byte count of each complete strip.
     pub strip_offsets: Vec<u64>,
     pub strip_byte_counts: Vec<u64>,
+    /// SHA-256 of the strips' bytes written between checkpoints (checked on resume).
+    #[serde(default)]
+    pub chunks: Vec<crate::output::chunks::Chunk>,
 }
 
 /// A completed file under its final name.
@@ -105,6 +108,8 @@ pub struct StripWriter {
     failed: bool,
     /// The `.partial` file has been renamed or removed: Drop does nothing.
     closed: bool,
+    /// Checksums of the bytes written between checkpoints.
+    hasher: crate::output::chunks::ChunkHasher,
 }
 
 impl std::fmt::Debug for StripWriter {
@@ -135,6 +140,8 @@ impl StripWriter {
         let header = header_bytes(geometry.bigtiff);
         writer.put(&header)?;
         writer.strip_start = writer.pos;
+        // Checksums cover the strips (the header's IFD pointer is rewritten on resume).
+        writer.hasher = crate::output::chunks::ChunkHasher::starting_at(writer.pos, Vec::new());
         Ok(writer)
     }
 
@@ -181,6 +188,7 @@ impl StripWriter {
                 ),
             ));
         }
+        crate::output::chunks::verify(&partial, &mut file, &state.chunks)?;
         let io = |e| Error::io(&partial, e);
         file.set_len(state.file_len).map_err(io)?;
         file.seek(SeekFrom::Start(0)).map_err(io)?;
@@ -193,6 +201,8 @@ impl StripWriter {
         writer.rows_written = state.rows_written;
         writer.strip_offsets = state.strip_offsets;
         writer.strip_byte_counts = state.strip_byte_counts;
+        writer.hasher =
+            crate::output::chunks::ChunkHasher::starting_at(state.file_len, state.chunks);
         writer.resumable = true;
         Ok(writer)
     }
@@ -228,6 +238,7 @@ impl StripWriter {
             resumable: false,
             failed: false,
             closed: false,
+            hasher: Default::default(),
         }
     }
 
@@ -333,6 +344,7 @@ impl StripWriter {
             file_len: self.pos,
             strip_offsets: self.strip_offsets.clone(),
             strip_byte_counts: self.strip_byte_counts.clone(),
+            chunks: self.hasher.checkpoint(self.pos),
         })
     }
 
@@ -471,6 +483,7 @@ impl StripWriter {
             None => Err(closed_error()),
         };
         self.check(result)?;
+        self.hasher.update(bytes);
         self.pos += bytes.len() as u64;
         Ok(())
     }
