@@ -464,3 +464,32 @@ fn gltf_external_buffers_and_textures_are_inputs() {
         36
     );
 }
+
+/// Field plates: the sidecar records its manifest's SHA-256, so a manifest of another run is
+/// refused when the plate is opened; `reconstruct` checks every field file against the
+/// manifest's SHA-256 (a damaged field is named) unless `--no-verify`.
+#[test]
+fn field_plates_refuse_a_stale_manifest_or_a_damaged_field() {
+    let d = tempfile::tempdir().unwrap();
+    std::fs::write(d.path().join("pts.csv"), POINTS_CSV).unwrap();
+    let j = d.path().join("job.toml");
+    std::fs::write(&j, job("base.tif", "field_px = [32, 24]", "pts.csv")).unwrap();
+    let o = run(d.path(), &["run", "-q", j.to_str().unwrap()]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    assert!(replay(d.path(), "r.png").status.success());
+    // A field damaged: refused by the check, replayed with --no-verify.
+    let f = d.path().join("base_r001_c000.tif");
+    let mut bytes = std::fs::read(&f).unwrap();
+    let k = bytes.len() / 2;
+    bytes[k] ^= 1;
+    std::fs::write(&f, &bytes).unwrap();
+    refused(&replay(d.path(), "r.png"), "base_r001_c000.tif");
+    assert!(replay_args(d.path(), "r.png", &["--no-verify"])
+        .status
+        .success());
+    // A manifest that is not the one the sidecar names.
+    let m = d.path().join("base.fields.json");
+    let text = std::fs::read_to_string(&m).unwrap();
+    std::fs::write(&m, text.replace("\n", "\n ")).unwrap();
+    refused(&replay(d.path(), "r.png"), "manifest");
+}

@@ -34,6 +34,8 @@ pub enum Written<'a> {
     Fields {
         /// The manifest file.
         manifest: &'a Path,
+        /// SHA-256 of its bytes.
+        manifest_sha256: &'a str,
         /// Number of fields.
         count: usize,
         /// Field size.
@@ -354,10 +356,12 @@ pub fn sidecar(spec: &JobSpec, run: RunRecord) -> Sidecar {
         }
         Written::Fields {
             manifest,
+            manifest_sha256,
             count,
             field_px,
         } => OutputFiles::Fields {
             fields_manifest: file_name(manifest),
+            fields_manifest_sha256: Some(manifest_sha256.to_string()),
             fields: count,
             field_px,
             compression,

@@ -328,6 +328,7 @@ pub(super) fn finish_plate(
         }
     };
     std::fs::rename(&side_partial, &sidecar).map_err(|e| Error::io(&sidecar, e))?;
+    crate::output::tiff::sync_parent_dir(&sidecar)?;
     Ok(RunSummary {
         tiff: finished.path,
         sidecar,
@@ -359,6 +360,7 @@ pub(super) fn finish_png(
         return Err(Error::io(&png.path, e));
     }
     std::fs::rename(&side_partial, &sidecar).map_err(|e| Error::io(&sidecar, e))?;
+    crate::output::tiff::sync_parent_dir(&sidecar)?;
     Ok(RunSummary {
         tiff: png.path.clone(),
         sidecar,
@@ -393,6 +395,7 @@ pub(super) fn finish_gds(
         }
     };
     std::fs::rename(&side_partial, &sidecar).map_err(|e| Error::io(&sidecar, e))?;
+    crate::output::tiff::sync_parent_dir(&sidecar)?;
     Ok(RunSummary {
         tiff: finished.path,
         sidecar,
@@ -414,21 +417,40 @@ pub(super) fn finish_fields(
     let text = serde_json::to_string_pretty(&manifest_json(grid, entries, &spec.sha256))
         .expect("plain data")
         + "\n";
-    write_atomically(&manifest, text.as_bytes())?;
+    let manifest_sha256: String = {
+        use sha2::Digest;
+        sha2::Sha256::digest(text.as_bytes())
+            .iter()
+            .map(|b| format!("{b:02x}"))
+            .collect()
+    };
+    // Manifest and sidecar both under partial names first, then renamed together: a failure
+    // before the renames keeps the previous pair, and the sidecar names its manifest's SHA-256.
+    let manifest_partial = crate::output::tiff::partial_path(&manifest);
+    write_atomically(&manifest_partial, text.as_bytes())?;
     let sidecar = sidecar_path(&spec.output);
-    record::sidecar(
+    let side_partial = crate::output::tiff::partial_path(&sidecar);
+    let side = record::sidecar(
         spec,
         run_record(
             prep,
             Written::Fields {
                 manifest: &manifest,
+                manifest_sha256: &manifest_sha256,
                 count: entries.len(),
                 field_px: grid.field,
             },
             updates,
         ),
-    )
-    .write(&sidecar)?;
+    );
+    if let Err(e) = side.write(&side_partial) {
+        let _ = std::fs::remove_file(&manifest_partial);
+        let _ = std::fs::remove_file(&side_partial);
+        return Err(e);
+    }
+    std::fs::rename(&manifest_partial, &manifest).map_err(|e| Error::io(&manifest, e))?;
+    std::fs::rename(&side_partial, &sidecar).map_err(|e| Error::io(&sidecar, e))?;
+    crate::output::tiff::sync_parent_dir(&sidecar)?;
     Ok(RunSummary {
         tiff: manifest,
         sidecar,

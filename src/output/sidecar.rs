@@ -495,6 +495,9 @@ pub enum OutputFiles {
     Fields {
         /// The manifest's file name.
         fields_manifest: Option<String>,
+        /// SHA-256 of the manifest's bytes (a manifest and a sidecar of different runs differ).
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        fields_manifest_sha256: Option<String>,
         /// Number of fields.
         fields: usize,
         /// Field size [w, h].

@@ -47,6 +47,9 @@ pub struct FieldFile {
     pub first_px: [u32; 2],
     /// Its size [columns, rows].
     pub size_px: [u32; 2],
+    /// SHA-256 of the file, as the manifest records it.
+    #[serde(default)]
+    pub sha256: String,
 }
 
 /// The part of the fields manifest replay reads.
@@ -99,6 +102,18 @@ impl PlateFile {
     /// Checks that the TIFF is the one its sidecar describes (size and SHA-256), so a plate and
     /// a sidecar of different runs are never replayed together. Reads the whole file.
     pub fn verify(&self) -> Result<()> {
+        // Fields: each file against the manifest's SHA-256.
+        let dir = self.tif.parent().map(PathBuf::from).unwrap_or_default();
+        for f in self.fields.iter().filter(|f| !f.sha256.is_empty()) {
+            let path = dir.join(&f.file);
+            let (_, h) = crate::output::tiff::hash_path(&path)?;
+            if h != f.sha256 {
+                return Err(Error::input(
+                    &path,
+                    "is not the field its manifest describes (SHA-256 differs): damaged or from another run; run the job again (or --no-verify to replay anyway)",
+                ));
+            }
+        }
         let Some((bytes, sha)) = &self.recorded else {
             return Ok(());
         };
@@ -222,6 +237,23 @@ impl PlateFile {
                     .ok_or_else(|| Error::input(&sc, "output.fields_manifest is missing"))?;
                 let mp = tif.with_file_name(name);
                 let bytes = std::fs::read(&mp).map_err(|e| Error::io(&mp, e))?;
+                if let OutputFiles::Fields {
+                    fields_manifest_sha256: Some(want),
+                    ..
+                } = &side.output
+                {
+                    use sha2::Digest;
+                    let got: String = sha2::Sha256::digest(&bytes)
+                        .iter()
+                        .map(|b| format!("{b:02x}"))
+                        .collect();
+                    if &got != want {
+                        return Err(Error::input(
+                            &mp,
+                            format!("is not the manifest its sidecar {} describes (SHA-256 differs): a manifest and a sidecar of different runs; run the job again", sc.display()),
+                        ));
+                    }
+                }
                 let m: FieldsManifest = serde_json::from_slice(&bytes)
                     .map_err(|e| Error::input(&mp, format!("not a fields manifest: {e}")))?;
                 if m.format != "fringemill-fields" || m.plate_px != [plate.width, plate.height] {

@@ -30,7 +30,8 @@ mod writer;
 
 use ifd::*;
 pub use writer::{
-    hash_path, partial_path, FinishedTiff, StripWriter, UnpublishedTiff, WriterState,
+    hash_path, partial_path, sync_parent_dir, FinishedTiff, StripWriter, UnpublishedTiff,
+    WriterState,
 };
 
 /// Capacity of the buffered writer in front of the file.

@@ -637,7 +637,7 @@ fn hash_file(file: &mut File) -> io::Result<(u64, String)> {
 }
 
 /// Makes the rename durable by syncing the directory that holds the file.
-fn sync_parent_dir(path: &Path) -> Result<()> {
+pub fn sync_parent_dir(path: &Path) -> Result<()> {
     #[cfg(unix)]
     {
         let dir = match path.parent() {
