@@ -246,42 +246,8 @@ fn zernike_defocus_moves_the_focus_as_geometric_optics_says() {
         side["iterative"]["correction"]["zernike"][0][2].as_f64(),
         Some(c)
     );
-    // On-axis intensity at distance zz behind the lens (Fresnel, lens phase -k r^2 / (2 f)) of a
-    // panel phase `ph`, and the axial peak by a scan and a parabola through its top three.
     let k = TAU / LAMBDA;
-    let peak_of = |ph: &dyn Fn(usize) -> f64| {
-        let on_axis = |zz: f64| {
-            let mut v = Complex64::new(0.0, 0.0);
-            for i in 0..N {
-                for j in 0..N {
-                    let (x, y) = xy(i, j);
-                    let r2 = x * x + y * y;
-                    if r2 > r_pupil * r_pupil {
-                        continue;
-                    }
-                    v += Complex64::from_polar(
-                        1.0,
-                        ph(i * N + j) - k * r2 / (2.0 * focal) + k * r2 / (2.0 * zz),
-                    );
-                }
-            }
-            v.norm_sqr() / (zz * zz)
-        };
-        let (z0, z1) = (focal, focal + 0.010);
-        let steps = 200;
-        let scan: Vec<(f64, f64)> = (0..=steps)
-            .map(|s| {
-                let z = z0 + (z1 - z0) * s as f64 / steps as f64;
-                (z, on_axis(z))
-            })
-            .collect();
-        let best = (1..steps)
-            .max_by(|&a, &b| scan[a].1.total_cmp(&scan[b].1))
-            .unwrap();
-        let (ya, yb, yc) = (scan[best - 1].1, scan[best].1, scan[best + 1].1);
-        let h = (z1 - z0) / steps as f64;
-        scan[best].0 + h * 0.5 * (ya - yc) / (ya - 2.0 * yb + yc)
-    };
+    let peak_of = |ph: &dyn Fn(usize) -> f64| axial_peak(ph, focal, r_pupil, focal, focal + 0.010);
     let plate_peak = peak_of(&|p| phase[p]);
     // The thin lens of power -power itself, made here (a diverging lens, phase +k r^2 power / 2
     // with the diverging wave exp(+i k r) of physics.md).

@@ -298,106 +298,69 @@ fn checkpoint(ctx: &StreamCtx, sink: &mut Sink, rows_done: u32, updates: u64) ->
     .write(ctx.journal)
 }
 
-/// Finishes the single-file TIFF and writes its sidecar; if the sidecar fails, the TIFF is removed
-/// too, so no plate stands without its record.
+/// Finishes the single-file TIFF and writes its sidecar ([`publish_with_sidecar`]).
 pub(super) fn finish_plate(
     spec: &JobSpec,
     prep: &Prepared,
     writer: StripWriter,
     updates: u64,
 ) -> Result<RunSummary> {
-    // The TIFF stays under its partial name while the sidecar is written beside it under a
-    // partial name too; then both are renamed, TIFF first. A failure before the renames keeps
-    // the previous plate and sidecar of these names; a stop between the two renames leaves a new
-    // TIFF with the old sidecar, which `reconstruct` refuses (the sidecar's SHA-256 of the TIFF).
-    let pending = writer.finish_unpublished()?;
-    let finished = pending.tiff.clone();
-    let sidecar = sidecar_path(&spec.output);
-    let side = record::sidecar(spec, run_record(prep, Written::Tiff(&finished), updates));
-    let side_partial = crate::output::tiff::partial_path(&sidecar);
-    if let Err(e) = side.write(&side_partial) {
-        pending.discard();
-        let _ = std::fs::remove_file(&side_partial);
-        return Err(e);
-    }
-    let finished = match pending.publish() {
-        Ok(f) => f,
-        Err(e) => {
-            let _ = std::fs::remove_file(&side_partial);
-            return Err(e);
-        }
-    };
-    std::fs::rename(&side_partial, &sidecar).map_err(|e| Error::io(&sidecar, e))?;
-    crate::output::tiff::sync_parent_dir(&sidecar)?;
-    Ok(RunSummary {
-        tiff: finished.path,
-        sidecar,
-        emitters: prep.emitters,
-        updates,
-        encoding: prep.encoding.clone(),
-    })
+    let done = writer.finish_unpublished()?.tiff;
+    publish_with_sidecar(spec, prep, Written::Tiff(&done), &done.path, updates)
 }
 
-/// Writes the panel PNG and its sidecar, both under partial names, then renames them.
+/// Writes the panel PNG and its sidecar ([`publish_with_sidecar`]).
 pub(super) fn finish_png(
     spec: &JobSpec,
     prep: &Prepared,
     writer: crate::output::panel_png::PanelWriter,
     updates: u64,
 ) -> Result<RunSummary> {
-    let png = writer.finish_unpublished()?;
-    let partial = crate::output::tiff::partial_path(&png.path);
-    let sidecar = sidecar_path(&spec.output);
-    let side = record::sidecar(spec, run_record(prep, Written::Png(&png), updates));
-    let side_partial = crate::output::tiff::partial_path(&sidecar);
-    if let Err(e) = side.write(&side_partial) {
-        let _ = std::fs::remove_file(&partial);
-        let _ = std::fs::remove_file(&side_partial);
-        return Err(e);
-    }
-    if let Err(e) = std::fs::rename(&partial, &png.path) {
-        let _ = std::fs::remove_file(&side_partial);
-        return Err(Error::io(&png.path, e));
-    }
-    std::fs::rename(&side_partial, &sidecar).map_err(|e| Error::io(&sidecar, e))?;
-    crate::output::tiff::sync_parent_dir(&sidecar)?;
-    Ok(RunSummary {
-        tiff: png.path.clone(),
-        sidecar,
-        emitters: prep.emitters,
-        updates,
-        encoding: prep.encoding.clone(),
-    })
+    let done = writer.finish_unpublished()?;
+    publish_with_sidecar(spec, prep, Written::Png(&done), &done.path, updates)
 }
 
-/// Finishes a GDSII layout and writes its sidecar, as [`finish_plate`] does for a TIFF.
+/// Finishes a GDSII layout and writes its sidecar ([`publish_with_sidecar`]).
 pub(super) fn finish_gds(
     spec: &JobSpec,
     prep: &Prepared,
     writer: crate::output::gdsii::GdsWriter,
     updates: u64,
 ) -> Result<RunSummary> {
-    let pending = writer.finish_unpublished()?;
-    let finished = pending.gds.clone();
+    let done = writer.finish_unpublished()?.gds;
+    publish_with_sidecar(spec, prep, Written::Gds(&done), &done.path, updates)
+}
+
+/// Publishes a complete output waiting under its partial name (`NAME.partial`, synced and
+/// hashed) together with its sidecar: the sidecar is written under a partial name too, then both
+/// are renamed, the output first, and the folder synced. A failure before the renames keeps the
+/// previous output and sidecar of these names (and removes the new partials); a stop between the
+/// two renames leaves a new output with the old sidecar, which `reconstruct` refuses (the
+/// sidecar's SHA-256 of the file).
+fn publish_with_sidecar(
+    spec: &JobSpec,
+    prep: &Prepared,
+    written: Written,
+    output: &Path,
+    updates: u64,
+) -> Result<RunSummary> {
+    let partial = crate::output::tiff::partial_path(output);
     let sidecar = sidecar_path(&spec.output);
-    let side = record::sidecar(spec, run_record(prep, Written::Gds(&finished), updates));
+    let side = record::sidecar(spec, run_record(prep, written, updates));
     let side_partial = crate::output::tiff::partial_path(&sidecar);
     if let Err(e) = side.write(&side_partial) {
-        pending.discard();
+        let _ = std::fs::remove_file(&partial);
         let _ = std::fs::remove_file(&side_partial);
         return Err(e);
     }
-    let finished = match pending.publish() {
-        Ok(f) => f,
-        Err(e) => {
-            let _ = std::fs::remove_file(&side_partial);
-            return Err(e);
-        }
-    };
+    if let Err(e) = std::fs::rename(&partial, output) {
+        let _ = std::fs::remove_file(&side_partial);
+        return Err(Error::io(output, e));
+    }
     std::fs::rename(&side_partial, &sidecar).map_err(|e| Error::io(&sidecar, e))?;
     crate::output::tiff::sync_parent_dir(&sidecar)?;
     Ok(RunSummary {
-        tiff: finished.path,
+        tiff: output.to_path_buf(),
         sidecar,
         emitters: prep.emitters,
         updates,
