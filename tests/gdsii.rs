@@ -92,6 +92,25 @@ fn job(dir: &Path, output: &str, enc: &str, extra: &str) -> PathBuf {
     j
 }
 
+/// Runs the job as `lay.gds` (with `extra` output keys) and as `plate.tif` in `dir`, and compares
+/// them through gdstk; returns the check's line.
+fn layout_and_tiff(dir: &Path, enc: &str, extra: &str, db_nm: f64) -> String {
+    let g = job(dir, "lay.gds", enc, extra);
+    let t = job(dir, "plate.tif", enc, "");
+    for j in [&g, &t] {
+        let o = run(&["run", "-q", j.to_str().unwrap()]);
+        assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    }
+    check(
+        &dir.join("lay.gds"),
+        &dir.join("plate.tif"),
+        320,
+        200,
+        800.0,
+        db_nm,
+    )
+}
+
 /// A point-sum plate written as GDSII and as TIFF: the layout's rectangles cover exactly the
 /// TIFF's set pixels (binary amplitude and binary phase), the sidecar counts them, and the
 /// database unit reads back as given.
@@ -101,20 +120,7 @@ fn layout_equals_the_tiff_pixel_for_pixel() {
         let d = tempfile::tempdir().unwrap();
         let extra =
             format!("format = \"gdsii\"\ndatabase_unit_nm = {db}\nlayer = 7\ndatatype = 2\n");
-        let g = job(d.path(), "lay.gds", enc, &extra);
-        let t = job(d.path(), "plate.tif", enc, "");
-        for j in [&g, &t] {
-            let o = run(&["run", "-q", j.to_str().unwrap()]);
-            assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
-        }
-        let out = check(
-            &d.path().join("lay.gds"),
-            &d.path().join("plate.tif"),
-            320,
-            200,
-            800.0,
-            db,
-        );
+        let out = layout_and_tiff(d.path(), enc, &extra, db);
         let side: serde_json::Value =
             serde_json::from_slice(&std::fs::read(d.path().join("lay.json")).unwrap()).unwrap();
         let n = side["output"]["boundaries"].as_u64().unwrap();
@@ -207,23 +213,10 @@ fn crafted_patterns_round_trip_through_gdstk() {
 #[test]
 fn write_fields_are_structures_placed_by_references() {
     let d = tempfile::tempdir().unwrap();
-    let g = job(
+    let out = layout_and_tiff(
         d.path(),
-        "lay.gds",
         "binary-amplitude",
         "format = \"gdsii\"\nfield_px = [100, 64]\n",
-    );
-    let t = job(d.path(), "plate.tif", "binary-amplitude", "");
-    for j in [&g, &t] {
-        let o = run(&["run", "-q", j.to_str().unwrap()]);
-        assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
-    }
-    let out = check(
-        &d.path().join("lay.gds"),
-        &d.path().join("plate.tif"),
-        320,
-        200,
-        800.0,
         1.0,
     );
     // 4 x 4 fields (320 / 100 and 200 / 64, rounded up) and the top structure.

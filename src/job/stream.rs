@@ -51,23 +51,11 @@ impl Sink {
     /// Appends a band starting at plate row `row0`, one block of encoded rows per column block.
     pub(super) fn write_band(&mut self, row0: u32, blocks: &[Vec<u8>]) -> Result<()> {
         match self {
-            Sink::Tiff(w) => w.write_rows(&blocks[0]),
-            Sink::Gds(w) => w.write_rows(&blocks[0]),
-            Sink::Png(w) => w.write_rows(&blocks[0]),
-            Sink::Part {
-                file,
-                path,
-                hasher,
-                len,
-            } => {
-                hasher.update(&blocks[0]);
-                *len += blocks[0].len() as u64;
-                file.write_all(&blocks[0]).map_err(|e| Error::io(&*path, e))
-            }
             Sink::Fields(f) => f.write_band(row0, blocks),
+            _ => self.write_rows(&blocks[0]),
         }
     }
-    /// Appends whole plate rows to a single-file sink (assembly of shards).
+    /// Appends whole plate rows to a single-file sink (a band, or assembly of shards).
     pub(super) fn write_rows(&mut self, rows: &[u8]) -> Result<()> {
         match self {
             Sink::Tiff(w) => w.write_rows(rows),
