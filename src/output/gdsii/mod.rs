@@ -308,6 +308,46 @@ mod tests {
         }
     }
 
+    /// A kill after a field row's boundaries moved into the layout but before the next
+    /// checkpoint: resuming from the checkpoint inside that field row gives the bytes of an
+    /// uninterrupted write (each field row keeps its own column files until a later checkpoint).
+    #[test]
+    fn kill_after_a_field_row_moved_resumes() {
+        let (w, h) = (20u32, 40u32);
+        let rows: Vec<u8> = (0..h as usize * 3)
+            .map(|k| (k as u8).wrapping_mul(37) ^ 0x5a)
+            .collect();
+        let layout = || {
+            GdsLayout::new(w, h, [1e-6, 1e-6], 1e-9, 1, 0, 8, "k")
+                .unwrap()
+                .with_fields([8, 16])
+                .unwrap()
+        };
+        let whole = tempfile::tempdir().unwrap();
+        let p = whole.path().join("w.gds");
+        let mut wr = GdsWriter::create(&p, layout()).unwrap();
+        wr.write_rows(&rows).unwrap();
+        wr.finish_unpublished().unwrap().publish().unwrap();
+        let want = std::fs::read(&p).unwrap();
+
+        let cut = tempfile::tempdir().unwrap();
+        let p = cut.path().join("w.gds");
+        let mut wr = GdsWriter::create(&p, layout()).unwrap();
+        wr.write_rows(&rows[..8 * 3]).unwrap();
+        let state = wr.checkpoint().unwrap(); // inside field row 0
+        wr.write_rows(&rows[8 * 3..20 * 3]).unwrap(); // field row 0 moved, row 1 begun
+        drop(wr); // killed before the next checkpoint
+        let mut wr = GdsWriter::resume(&p, layout(), state).unwrap();
+        wr.write_rows(&rows[8 * 3..]).unwrap();
+        wr.finish_unpublished().unwrap().publish().unwrap();
+        assert!(std::fs::read(&p).unwrap() == want);
+        let left: Vec<_> = std::fs::read_dir(cut.path())
+            .unwrap()
+            .map(|e| e.unwrap().file_name())
+            .collect();
+        assert_eq!(left.len(), 1, "{left:?}");
+    }
+
     #[test]
     fn pitches_that_are_not_whole_units_are_refused() {
         assert!(GdsLayout::new(4, 4, [0.5e-6, 0.5e-6], 1e-9, 1, 0, 2, "p").is_ok());

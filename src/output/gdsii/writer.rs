@@ -25,6 +25,10 @@ pub struct GdsWriter {
     columns: Vec<ColumnFile>,
     /// Checksums of the bytes written between checkpoints.
     hasher: crate::output::chunks::ChunkHasher,
+    /// Column files of field rows already moved into the layout, and those retired before the
+    /// last checkpoint (removed at the next one: the journal then no longer names them).
+    retired: Vec<PathBuf>,
+    retired_before: Vec<PathBuf>,
 }
 
 /// The boundaries of one field column of the current field row, beside the partial file.
@@ -34,16 +38,21 @@ struct ColumnFile {
     len: u64,
 }
 
-fn column_path(partial: &Path, col: u32) -> PathBuf {
+/// The file of field column `col` of field row `row`. Each field row has its own files, kept
+/// until a later checkpoint: a kill after a row's boundaries moved into the layout but before the
+/// next checkpoint resumes from the older journal, which still needs them as they were.
+fn column_path(partial: &Path, row: u32, col: u32) -> PathBuf {
     let mut s = partial.as_os_str().to_owned();
-    s.push(format!(".col{col:04}"));
+    s.push(format!(".r{row:05}.col{col:04}"));
     PathBuf::from(s)
 }
 
-/// Opens (or, resuming, reopens at the recorded lengths) the field-column files.
+/// Opens (or, resuming, reopens at the recorded lengths) the field-column files of field row
+/// `row`.
 fn open_columns(
     partial: &Path,
     layout: &GdsLayout,
+    row: u32,
     lens: Option<&[u64]>,
 ) -> Result<Vec<ColumnFile>> {
     if layout.field.is_none() {
@@ -60,10 +69,12 @@ fn open_columns(
     }
     (0..n)
         .map(|k| {
-            let path = column_path(partial, k);
+            let path = column_path(partial, row, k);
             let mut f = match lens {
-                None => File::create(&path),
-                Some(_) => OpenOptions::new().read(true).write(true).open(&path),
+                Some(l) if l[k as usize] > 0 => {
+                    OpenOptions::new().read(true).write(true).open(&path)
+                }
+                _ => File::create(&path),
             }
             .map_err(|e| Error::io(&path, e))?;
             let len = lens.map_or(0, |l| l[k as usize]);
@@ -108,7 +119,7 @@ impl GdsWriter {
             record(&mut head, 0x05, 0x02, &int2s(&DATE));
             record(&mut head, 0x06, 0x06, &ascii(&layout.name));
         }
-        let columns = open_columns(&partial, &layout, None)?;
+        let columns = open_columns(&partial, &layout, 0, None)?;
         let mut w = GdsWriter {
             final_path: final_path.to_path_buf(),
             partial,
@@ -121,6 +132,8 @@ impl GdsWriter {
             spans: Vec::new(),
             columns,
             hasher: Default::default(),
+            retired: Vec::new(),
+            retired_before: Vec::new(),
         };
         w.put(&head)?;
         Ok(w)
@@ -154,7 +167,11 @@ impl GdsWriter {
         f.set_len(state.file_len)
             .and_then(|_| f.seek(SeekFrom::Start(state.file_len)).map(|_| ()))
             .map_err(|e| Error::io(&partial, e))?;
-        let columns = open_columns(&partial, &layout, Some(&state.column_lens))?;
+        let field_row = match layout.field {
+            Some([_, fh]) => (state.rows_written / fh).min(layout.field_counts()[1] - 1),
+            None => 0,
+        };
+        let columns = open_columns(&partial, &layout, field_row, Some(&state.column_lens))?;
         Ok(GdsWriter {
             final_path: final_path.to_path_buf(),
             partial,
@@ -167,6 +184,8 @@ impl GdsWriter {
             spans: Vec::new(),
             columns,
             hasher: crate::output::chunks::ChunkHasher::starting_at(state.file_len, state.chunks),
+            retired: Vec::new(),
+            retired_before: Vec::new(),
         })
     }
 
@@ -199,12 +218,14 @@ impl GdsWriter {
             let mut tail = Vec::new();
             record(&mut tail, 0x07, 0x00, &[]);
             self.put(&tail)?;
-            let c = &mut self.columns[k];
-            let file = c.out.get_mut();
-            file.set_len(0)
-                .and_then(|_| file.seek(SeekFrom::Start(0)).map(|_| ()))
-                .map_err(|e| Error::io(&c.path, e))?;
-            c.len = 0;
+        }
+        // The next field row writes new files; these go at the checkpoint after next.
+        let next = field_row + 1;
+        if next < self.layout.field_counts()[1] {
+            let fresh = open_columns(&self.partial, &self.layout, next, None)?;
+            for c in std::mem::replace(&mut self.columns, fresh) {
+                self.retired.push(c.path);
+            }
         }
         Ok(())
     }
@@ -378,6 +399,10 @@ impl GdsWriter {
                 .and_then(|_| c.out.get_ref().sync_data())
                 .map_err(|e| Error::io(&c.path, e))?;
         }
+        // Files the previous journal no longer named can go now.
+        for p in std::mem::replace(&mut self.retired_before, std::mem::take(&mut self.retired)) {
+            let _ = fs::remove_file(p);
+        }
         Ok(GdsState {
             rows_written: self.rows_written,
             file_len: self.pos,
@@ -423,10 +448,6 @@ impl GdsWriter {
         record(&mut tail, 0x07, 0x00, &[]);
         record(&mut tail, 0x04, 0x00, &[]);
         self.put(&tail)?;
-        for c in std::mem::take(&mut self.columns) {
-            drop(c.out);
-            let _ = fs::remove_file(&c.path);
-        }
         let out = self.out.take().expect("open writer");
         let f = out
             .into_inner()
@@ -434,6 +455,8 @@ impl GdsWriter {
         f.sync_all().map_err(|e| Error::io(&self.partial, e))?;
         drop(f);
         let (bytes, sha256) = hash_path(&self.partial)?;
+        // Every field row's column files (a resumed run may have left older ones).
+        self.remove_column_files();
         Ok(UnpublishedGds {
             partial: self.partial.clone(),
             gds: FinishedGds {
@@ -449,10 +472,19 @@ impl GdsWriter {
     /// Removes the partial file.
     pub fn abandon(mut self) -> Result<()> {
         self.out = None;
-        for c in std::mem::take(&mut self.columns) {
-            drop(c.out);
-            let _ = fs::remove_file(&c.path);
-        }
+        self.remove_column_files();
         fs::remove_file(&self.partial).map_err(|e| Error::io(&self.partial, e))
+    }
+
+    fn remove_column_files(&mut self) {
+        self.columns.clear();
+        if self.layout.field.is_some() {
+            let [nc, nr] = self.layout.field_counts();
+            for r in 0..nr {
+                for c in 0..nc {
+                    let _ = fs::remove_file(column_path(&self.partial, r, c));
+                }
+            }
+        }
     }
 }
