@@ -19,9 +19,9 @@
 //! every field by an SREF at that corner.
 //! A field row's boundaries collect in one file per field column beside the partial file
 //! (`.rRRRRR.colCCCC`) and are moved into the layout when the field row ends; the files stay
-//! until the checkpoint after next, so an older journal can still resume from them. Dates are fixed (1970-01-01) so the same
-//! job gives the same bytes. Like the TIFF writer, the file is written under `NAME.partial`,
-//! synced, hashed and renamed when complete.
+//! until the checkpoint after next, so an older journal can still resume from them. Dates are
+//! fixed (1970-01-01) so the same job gives the same bytes. Like the TIFF writer, the file is
+//! written under `NAME.partial`, synced, hashed and renamed when complete.
 
 mod writer;
 
