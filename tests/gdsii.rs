@@ -310,6 +310,11 @@ fn shards_and_resume_with(extra: &str) {
     }
     assert!(stopped, "every run finished before SIGINT");
     assert!(!r.path().join("plate.gds").exists());
+    // The stop left a checkpoint: the next run resumes rather than starting afresh.
+    assert!(
+        r.path().join("plate.gds.partial.journal").exists(),
+        "the stop left no journal"
+    );
     let o = run(&["run", "-q", jr.to_str().unwrap()]);
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
     assert!(

@@ -112,11 +112,20 @@ impl GdsLayout {
             layer,
             datatype,
             rows_per_strip: rows_per_strip.clamp(1, height.max(1)),
-            name: name
-                .chars()
-                .filter(|c| c.is_ascii_alphanumeric() || *c == '_')
-                .take(20)
-                .collect(),
+            name: {
+                // Letters, digits and '_', starting with a letter (common practice for
+                // structure names); PLATE when nothing is left.
+                let n: String = name
+                    .chars()
+                    .filter(|c| c.is_ascii_alphanumeric() || *c == '_')
+                    .take(20)
+                    .collect();
+                match n.chars().next() {
+                    None => "PLATE".into(),
+                    Some(c) if !c.is_ascii_alphabetic() => format!("P{}", &n[..n.len().min(19)]),
+                    Some(_) => n,
+                }
+            },
             field: None,
         })
     }
@@ -179,6 +188,9 @@ pub struct GdsState {
     /// SHA-256 of the layout's bytes written between checkpoints (checked on resume).
     #[serde(default)]
     pub chunks: Vec<crate::output::chunks::Chunk>,
+    /// The same for each field column's file of the current field row.
+    #[serde(default)]
+    pub column_chunks: Vec<Vec<crate::output::chunks::Chunk>>,
 }
 
 /// A finished layout file.
@@ -347,6 +359,59 @@ mod tests {
             .map(|e| e.unwrap().file_name())
             .collect();
         assert_eq!(left.len(), 1, "{left:?}");
+    }
+
+    /// A field-column file damaged after its checkpoint is refused on resume (its checksum),
+    /// and a writer dropped before any checkpoint leaves no file behind.
+    #[test]
+    fn damaged_column_files_are_refused_and_drops_clean_up() {
+        let layout = || {
+            GdsLayout::new(20, 40, [1e-6, 1e-6], 1e-9, 1, 0, 8, "k")
+                .unwrap()
+                .with_fields([8, 16])
+                .unwrap()
+        };
+        let rows: Vec<u8> = (0..40 * 3)
+            .map(|k| (k as u8).wrapping_mul(91) ^ 0x3c)
+            .collect();
+        let d = tempfile::tempdir().unwrap();
+        let p = d.path().join("w.gds");
+        let mut wr = GdsWriter::create(&p, layout()).unwrap();
+        wr.write_rows(&rows[..8 * 3]).unwrap();
+        let state = wr.checkpoint().unwrap();
+        drop(wr);
+        let col = d.path().join("w.gds.partial.r00000.col0001");
+        let mut b = std::fs::read(&col).unwrap();
+        assert!(!b.is_empty());
+        let mid = b.len() / 2;
+        b[mid] ^= 1;
+        std::fs::write(&col, b).unwrap();
+        let e = match GdsWriter::resume(&p, layout(), state) {
+            Err(e) => e.to_string(),
+            Ok(_) => panic!("a damaged column file was accepted"),
+        };
+        assert!(
+            e.contains("col0001") && e.contains("changed since the checkpoint"),
+            "{e}"
+        );
+        let d = tempfile::tempdir().unwrap();
+        let mut wr = GdsWriter::create(&d.path().join("w.gds"), layout()).unwrap();
+        wr.write_rows(&rows[..20 * 3]).unwrap();
+        drop(wr);
+        assert_eq!(std::fs::read_dir(d.path()).unwrap().count(), 0);
+        // Names: letters first, never empty.
+        assert_eq!(
+            GdsLayout::new(2, 2, [1e-6; 2], 1e-9, 1, 0, 1, "-")
+                .unwrap()
+                .name,
+            "PLATE"
+        );
+        assert_eq!(
+            GdsLayout::new(2, 2, [1e-6; 2], 1e-9, 1, 0, 1, "7x")
+                .unwrap()
+                .name,
+            "P7x"
+        );
     }
 
     #[test]

@@ -29,6 +29,22 @@ pub struct GdsWriter {
     /// last checkpoint (removed at the next one: the journal then no longer names them).
     retired: Vec<PathBuf>,
     retired_before: Vec<PathBuf>,
+    /// A checkpoint was taken (the partial files stay for a resume when dropped).
+    resumable: bool,
+    /// Finished or abandoned (nothing left to clean up when dropped).
+    closed: bool,
+}
+
+impl Drop for GdsWriter {
+    /// Removes the partial layout and its column files unless the writer finished, was
+    /// abandoned, or holds a checkpoint (then they stay for [`GdsWriter::resume`]).
+    fn drop(&mut self) {
+        if !self.closed && !self.resumable {
+            self.out = None;
+            self.remove_column_files();
+            let _ = fs::remove_file(&self.partial);
+        }
+    }
 }
 
 /// The boundaries of one field column of the current field row, beside the partial file.
@@ -36,6 +52,8 @@ struct ColumnFile {
     path: PathBuf,
     out: BufWriter<File>,
     len: u64,
+    /// Checksums of what each checkpoint added (verified on resume, like the layout's).
+    hasher: crate::output::chunks::ChunkHasher,
 }
 
 /// The file of field column `col` of field row `row`. Each field row has its own files, kept
@@ -47,13 +65,14 @@ fn column_path(partial: &Path, row: u32, col: u32) -> PathBuf {
     PathBuf::from(s)
 }
 
-/// Opens (or, resuming, reopens at the recorded lengths) the field-column files of field row
-/// `row`.
+/// Opens (or, resuming, reopens at the recorded lengths, their checksums verified) the
+/// field-column files of field row `row`.
 fn open_columns(
     partial: &Path,
     layout: &GdsLayout,
     row: u32,
     lens: Option<&[u64]>,
+    chunks: &[Vec<crate::output::chunks::Chunk>],
 ) -> Result<Vec<ColumnFile>> {
     if layout.field.is_none() {
         return Ok(Vec::new());
@@ -85,6 +104,10 @@ fn open_columns(
                     "shorter than its journal recorded; rerun with --restart",
                 ));
             }
+            let mine = chunks.get(k as usize).cloned().unwrap_or_default();
+            if len > 0 {
+                crate::output::chunks::verify(&path, &mut f, &mine)?;
+            }
             f.set_len(len)
                 .and_then(|_| f.seek(SeekFrom::Start(len)).map(|_| ()))
                 .map_err(|e| Error::io(&path, e))?;
@@ -92,6 +115,10 @@ fn open_columns(
                 path,
                 out: BufWriter::with_capacity(1 << 16, f),
                 len,
+                hasher: crate::output::chunks::ChunkHasher::starting_at(
+                    len,
+                    if len > 0 { mine } else { Vec::new() },
+                ),
             })
         })
         .collect()
@@ -119,7 +146,7 @@ impl GdsWriter {
             record(&mut head, 0x05, 0x02, &int2s(&DATE));
             record(&mut head, 0x06, 0x06, &ascii(&layout.name));
         }
-        let columns = open_columns(&partial, &layout, 0, None)?;
+        let columns = open_columns(&partial, &layout, 0, None, &[])?;
         let mut w = GdsWriter {
             final_path: final_path.to_path_buf(),
             partial,
@@ -134,6 +161,8 @@ impl GdsWriter {
             hasher: Default::default(),
             retired: Vec::new(),
             retired_before: Vec::new(),
+            resumable: false,
+            closed: false,
         };
         w.put(&head)?;
         Ok(w)
@@ -171,7 +200,13 @@ impl GdsWriter {
             Some([_, fh]) => (state.rows_written / fh).min(layout.field_counts()[1] - 1),
             None => 0,
         };
-        let columns = open_columns(&partial, &layout, field_row, Some(&state.column_lens))?;
+        let columns = open_columns(
+            &partial,
+            &layout,
+            field_row,
+            Some(&state.column_lens),
+            &state.column_chunks,
+        )?;
         Ok(GdsWriter {
             final_path: final_path.to_path_buf(),
             partial,
@@ -186,6 +221,8 @@ impl GdsWriter {
             hasher: crate::output::chunks::ChunkHasher::starting_at(state.file_len, state.chunks),
             retired: Vec::new(),
             retired_before: Vec::new(),
+            resumable: true,
+            closed: false,
         })
     }
 
@@ -222,7 +259,7 @@ impl GdsWriter {
         // The next field row writes new files; these go at the checkpoint after next.
         let next = field_row + 1;
         if next < self.layout.field_counts()[1] {
-            let fresh = open_columns(&self.partial, &self.layout, next, None)?;
+            let fresh = open_columns(&self.partial, &self.layout, next, None, &[])?;
             for c in std::mem::replace(&mut self.columns, fresh) {
                 self.retired.push(c.path);
             }
@@ -268,6 +305,7 @@ impl GdsWriter {
             Some(k) => {
                 let c = &mut self.columns[k];
                 c.out.write_all(&b).map_err(|e| Error::io(&c.path, e))?;
+                c.hasher.update(&b);
                 c.len += b.len() as u64;
                 Ok(())
             }
@@ -399,6 +437,7 @@ impl GdsWriter {
                 .and_then(|_| c.out.get_ref().sync_data())
                 .map_err(|e| Error::io(&c.path, e))?;
         }
+        self.resumable = true;
         // Files the previous journal no longer named can go now.
         for p in std::mem::replace(&mut self.retired_before, std::mem::take(&mut self.retired)) {
             let _ = fs::remove_file(p);
@@ -408,6 +447,11 @@ impl GdsWriter {
             file_len: self.pos,
             boundaries: self.boundaries,
             column_lens: self.columns.iter().map(|c| c.len).collect(),
+            column_chunks: self
+                .columns
+                .iter_mut()
+                .map(|c| c.hasher.checkpoint(c.len))
+                .collect(),
             chunks: self.hasher.checkpoint(self.pos),
         })
     }
@@ -477,6 +521,7 @@ impl GdsWriter {
     }
 
     fn remove_column_files(&mut self) {
+        self.closed = true;
         self.columns.clear();
         if self.layout.field.is_some() {
             let [nc, nr] = self.layout.field_counts();
