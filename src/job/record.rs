@@ -184,7 +184,8 @@ fn file_name(p: &Path) -> Option<String> {
     p.file_name().map(|f| f.to_string_lossy().into_owned())
 }
 
-fn objects(spec: &JobSpec) -> Vec<ObjectRecord> {
+/// The objects; `spot_count` is the spot list's length as the run read it.
+fn objects(spec: &JobSpec, spot_count: usize) -> Vec<ObjectRecord> {
     spec.objects
         .iter()
         .map(|o| {
@@ -197,9 +198,7 @@ fn objects(spec: &JobSpec) -> Vec<ObjectRecord> {
                 },
                 ObjectSource::Spots => ObjectSourceRecord::Spots {
                     spots: file,
-                    spot_count: crate::scene::spots::read_spots(&o.points)
-                        .map(|v| v.len())
-                        .unwrap_or(0),
+                    spot_count,
                 },
                 ObjectSource::Points => ObjectSourceRecord::Points {
                     points: file,
@@ -392,7 +391,13 @@ pub fn sidecar(spec: &JobSpec, run: RunRecord) -> Sidecar {
         },
         viewing: ViewingRecord::this(),
         reference: reference_record(&spec.reference),
-        objects: objects(spec),
+        objects: objects(
+            spec,
+            run.iterative
+                .as_ref()
+                .and_then(|i| i.spots.as_ref())
+                .map_or(0, |s| s.spots.len()),
+        ),
         iterative: run.iterative,
         synthesis: SynthesisRecord {
             method: match spec.method {

@@ -240,14 +240,6 @@ pub fn check(plate: &Plate, focal: f64, spots: &[Spot]) -> Result<(), String> {
     Ok(())
 }
 
-/// Phase of a pattern quantized to `levels` as the phase encoding stores it
-/// (g = round(N phi / 2 pi) mod N; physics.md, "Fringe term and encodings").
-pub fn quantized(phase: f64, levels: u32) -> f64 {
-    let n = f64::from(levels);
-    let g = (n * phase / std::f64::consts::TAU).round().rem_euclid(n);
-    std::f64::consts::TAU * g / n
-}
-
 /// What to design: the panel, the lens and the spots.
 #[derive(Clone, Copy, Debug)]
 pub struct SpotProblem<'a> {
@@ -357,9 +349,13 @@ pub fn design(
     }
     let figures = match levels {
         Some(l) => {
-            let q: Vec<Complex64> = phase
+            // The levels the phase encoding will store for this pattern, by its own rule.
+            let mut g = vec![0u32; e.len()];
+            crate::encoding::phase_levels_row(&e, l, &mut g);
+            let step = std::f64::consts::TAU / f64::from(l);
+            let q: Vec<Complex64> = g
                 .iter()
-                .map(|&p| Complex64::from_polar(1.0, quantized(p, l)))
+                .map(|&g| Complex64::from_polar(1.0, step * f64::from(g)))
                 .collect();
             SpotFigures::of(&f.fields(&q), spots)
         }
