@@ -7,7 +7,7 @@ use std::path::{Path, PathBuf};
 use std::process::Command;
 use std::sync::OnceLock;
 
-use fringemill::output::gdsii::{GdsLayout, GdsWriter};
+use fringemill::output::gdsii::{GdsLayout, GdsWriter, Merge};
 
 const BIN: &str = env!("CARGO_BIN_EXE_fringemill");
 
@@ -51,6 +51,19 @@ fn python() -> &'static Path {
 }
 
 fn check(gds: &Path, want: &Path, w: u32, h: u32, pitch_nm: f64, db_nm: f64) -> String {
+    check_max(gds, want, w, h, pitch_nm, db_nm, 8190)
+}
+
+/// [`check`] with a limit on the vertices of one boundary.
+fn check_max(
+    gds: &Path,
+    want: &Path,
+    w: u32,
+    h: u32,
+    pitch_nm: f64,
+    db_nm: f64,
+    max_vertices: u32,
+) -> String {
     let o = Command::new(python())
         .arg(root().join("tools/check/gds_raster.py"))
         .args([gds.as_os_str(), want.as_os_str()])
@@ -59,6 +72,7 @@ fn check(gds: &Path, want: &Path, w: u32, h: u32, pitch_nm: f64, db_nm: f64) -> 
             h.to_string(),
             pitch_nm.to_string(),
             db_nm.to_string(),
+            max_vertices.to_string(),
         ])
         .output()
         .unwrap();
@@ -130,6 +144,48 @@ fn layout_equals_the_tiff_pixel_for_pixel() {
         assert_eq!(side["output"]["database_unit_nm"].as_f64(), Some(db));
         let bytes = std::fs::read(d.path().join("lay.gds")).unwrap();
         assert_eq!(side["output"]["bytes"].as_u64(), Some(bytes.len() as u64));
+    }
+}
+
+/// `merge = "contour"`: the same plates as traced regions. Every boundary is a simple
+/// counter-clockwise rectilinear polygon within the vertex limit, no two overlap, and together
+/// they are the TIFF pixel for pixel; far fewer boundaries than rectangles, and the sidecar
+/// counts the XY points written.
+#[test]
+fn contour_layout_equals_the_tiff_pixel_for_pixel() {
+    for (enc, max) in [("binary-amplitude", 8190u32), ("binary-phase", 16)] {
+        let d = tempfile::tempdir().unwrap();
+        let extra = format!("format = \"gdsii\"\nmerge = \"contour\"\nmax_vertices = {max}\n");
+        let g = job(d.path(), "lay.gds", enc, &extra);
+        let r = job(d.path(), "rect.gds", enc, "format = \"gdsii\"\n");
+        let t = job(d.path(), "plate.tif", enc, "");
+        for j in [&g, &r, &t] {
+            let o = run(&["run", "-q", j.to_str().unwrap()]);
+            assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+        }
+        let tif = d.path().join("plate.tif");
+        let out = check_max(&d.path().join("lay.gds"), &tif, 320, 200, 800.0, 1.0, max);
+        let side: serde_json::Value =
+            serde_json::from_slice(&std::fs::read(d.path().join("lay.json")).unwrap()).unwrap();
+        let rect: serde_json::Value =
+            serde_json::from_slice(&std::fs::read(d.path().join("rect.json")).unwrap()).unwrap();
+        let n = side["output"]["boundaries"].as_u64().unwrap();
+        assert_eq!(out.trim(), format!("equal {n} boundaries 1 cells"), "{enc}");
+        let nr = rect["output"]["boundaries"].as_u64().unwrap();
+        assert!(n * 2 < nr, "{enc}: {n} contours against {nr} rectangles");
+        assert_eq!(side["output"]["max_vertices"].as_u64(), Some(u64::from(max)));
+        assert!(side["output"]["merge"].as_str().unwrap().starts_with("contour"));
+        // The XY points, counted from the file's own XY records (type 0x10, 8 bytes a point).
+        let bytes = std::fs::read(d.path().join("lay.gds")).unwrap();
+        let (mut i, mut points) = (0usize, 0u64);
+        while i + 4 <= bytes.len() {
+            let len = u16::from_be_bytes([bytes[i], bytes[i + 1]]) as usize;
+            if bytes[i + 2] == 0x10 {
+                points += ((len - 4) / 8) as u64;
+            }
+            i += len.max(4);
+        }
+        assert_eq!(side["output"]["vertices"].as_u64(), Some(points), "{enc}");
     }
 }
 
@@ -205,6 +261,86 @@ fn crafted_patterns_round_trip_through_gdstk() {
         }
     }
     assert_eq!(done.boundaries, want);
+    // The same rows traced as regions (checkerboards are all corner contacts), under small and
+    // default vertex limits, the strips 16 rows as above.
+    for max in [4u32, 10, 8190] {
+        let layout = GdsLayout::new(w, h, [2e-6, 2e-6], 0.5e-9, 1, 0, 16, "crafted")
+            .unwrap()
+            .with_merge(Merge::Contour { max_vertices: max });
+        let path = d.path().join(format!("k{max}.gds"));
+        let mut wr = GdsWriter::create(&path, layout).unwrap();
+        wr.write_rows(&packed).unwrap();
+        let done = wr.finish_unpublished().unwrap().publish().unwrap();
+        let out = check_max(&path, &d.path().join("want.bits"), w, h, 2000.0, 0.5, max);
+        assert_eq!(out.trim(), format!("equal {} boundaries 1 cells", done.boundaries));
+    }
+}
+
+/// Regions with holes, nested rings, corner contacts and outlines longer than the vertex limit,
+/// traced by `merge = "contour"` on one strip; read back by gdstk they are the pixels exactly.
+#[test]
+fn contour_regions_with_holes_round_trip_through_gdstk() {
+    let (w, h) = (64u32, 48u32);
+    let mut bits = vec![vec![false; w as usize]; h as usize];
+    for (r, row) in bits.iter_mut().enumerate() {
+        for (c, b) in row.iter_mut().enumerate() {
+            let (x, y) = (c as i64, r as i64);
+            // Nested square rings around (15, 15); a round ring with a dot inside at (46, 16);
+            // two blocks touching at a corner; a comb with 13 teeth; a loop closed only by a
+            // corner contact (a pinch inside one region: rows 34-39, columns 40-49).
+            let ring = (x - 15).abs().max((y - 15).abs());
+            let d2 = (x - 46).pow(2) + (y - 16).pow(2);
+            let pinch = (r == 34 && (40..50).contains(&c))
+                || ((35..39).contains(&r) && (c == 40 || c == 49))
+                || (r == 39 && (40..49).contains(&c));
+            *b = (r < 31 && c < 31 && ring % 4 != 1 && ring <= 14)
+                || (r < 33 && c >= 33 && ((64..=196).contains(&d2) || d2 <= 4))
+                || ((34..38).contains(&r) && (2..6).contains(&c))
+                || ((38..42).contains(&r) && (6..10).contains(&c))
+                || ((40..44).contains(&r) && (12..38).contains(&c) && (c % 2 == 0 || r >= 42))
+                || pinch;
+        }
+    }
+    let rb = (w as usize).div_ceil(8);
+    let mut packed = vec![0u8; rb * h as usize];
+    for (r, row) in bits.iter().enumerate() {
+        for (c, &b) in row.iter().enumerate() {
+            if b {
+                packed[r * rb + c / 8] |= 0x80 >> (c % 8);
+            }
+        }
+    }
+    let d = tempfile::tempdir().unwrap();
+    std::fs::write(d.path().join("want.bits"), &packed).unwrap();
+    for max in [8u32, 60, 8190] {
+        let layout = GdsLayout::new(w, h, [1e-6, 1e-6], 1e-9, 1, 0, h, "rings")
+            .unwrap()
+            .with_merge(Merge::Contour { max_vertices: max });
+        let path = d.path().join(format!("r{max}.gds"));
+        let mut wr = GdsWriter::create(&path, layout).unwrap();
+        wr.write_rows(&packed).unwrap();
+        let done = wr.finish_unpublished().unwrap().publish().unwrap();
+        let out = check_max(&path, &d.path().join("want.bits"), w, h, 1000.0, 1.0, max);
+        assert_eq!(out.trim(), format!("equal {} boundaries 1 cells", done.boundaries));
+        if max == 8190 {
+            // Few pieces: each hole costs one cut, the pinch one, the comb none.
+            assert!(done.boundaries < 40, "{}", done.boundaries);
+        }
+    }
+}
+
+/// Contour merging inside write fields: regions are cut at field columns and traced in their
+/// field's coordinates.
+#[test]
+fn contour_write_fields_round_trip() {
+    let d = tempfile::tempdir().unwrap();
+    let out = layout_and_tiff(
+        d.path(),
+        "binary-amplitude",
+        "format = \"gdsii\"\nfield_px = [100, 64]\nmerge = \"contour\"\n",
+        1.0,
+    );
+    assert!(out.trim().ends_with("boundaries 17 cells"), "{out}");
 }
 
 /// Write fields: one structure per field (coordinates from its lower-left corner) placed by
@@ -328,6 +464,12 @@ fn shards_and_resume_are_byte_identical() {
     shards_and_resume_with("format = \"gdsii\"\n");
 }
 
+#[test]
+fn contour_shards_and_resume_are_byte_identical() {
+    shards_and_resume_with("format = \"gdsii\"\nmerge = \"contour\"\n");
+    shards_and_resume_with("format = \"gdsii\"\nmerge = \"contour\"\nfield_px = [100, 64]\n");
+}
+
 /// The same with write fields: the field-column files are cut back to their journal's lengths.
 #[test]
 fn shards_and_resume_with_write_fields_are_byte_identical() {
@@ -348,8 +490,18 @@ fn layouts_gdsii_cannot_hold_are_refused() {
         ("phase", "format = \"gdsii\"\n", "binary plates"),
         (
             "binary-amplitude",
-            "format = \"gdsii\"\nmerge = \"contour\"\n",
-            "rectangles",
+            "format = \"gdsii\"\nmerge = \"blobs\"\n",
+            "not one of",
+        ),
+        (
+            "binary-amplitude",
+            "format = \"gdsii\"\nmerge = \"contour\"\nmax_vertices = 3\n",
+            "outside 4..=8190",
+        ),
+        (
+            "binary-amplitude",
+            "format = \"gdsii\"\nmax_vertices = 100\n",
+            "applies to merge",
         ),
         ("binary-amplitude", "layer = 3\n", "applies to format"),
     ] {

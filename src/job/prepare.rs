@@ -219,6 +219,7 @@ pub(super) fn prepare(spec: &JobSpec, mode: ProgressMode) -> Result<Prepared> {
                     rps,
                     &name,
                 )
+                .map(|l| l.with_merge(g.merge))
                 .and_then(|l| match spec.field_px {
                     Some(f) => l.with_fields(f),
                     None => Ok(l),

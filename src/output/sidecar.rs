@@ -463,10 +463,13 @@ pub enum OutputFiles {
         layer: i16,
         /// Datatype.
         datatype: i16,
-        /// Rows per strip: rectangles close at each strip's end.
+        /// Rows per strip: shapes close at each strip's end.
         rows_per_strip: u32,
         /// How pixels became polygons, in words.
         merge: String,
+        /// `merge = "contour"`: most vertices per boundary (closing point not counted).
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        max_vertices: Option<u32>,
         /// Where the coordinates are, in words.
         coordinates: String,
     },

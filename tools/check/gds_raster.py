@@ -2,7 +2,12 @@
 """Rasterises a GDSII layout back to plate pixels with gdstk (a general-purpose GDSII library)
 and compares it with a 1-bit TIFF of the same job, pixel for pixel.
 
-usage: gds_raster.py LAYOUT.gds PLATE.tif|ROWS.bits WIDTH HEIGHT PITCH_NM [DB_NM]
+usage: gds_raster.py LAYOUT.gds PLATE.tif|ROWS.bits WIDTH HEIGHT PITCH_NM [DB_NM [MAX_VERTICES]]
+
+Every boundary may be any rectilinear polygon: it is rasterised by its winding number at each
+pixel centre (from its vertical edges), which must be 1 inside and 0 outside (counter-clockwise,
+not self-overlapping), its vertices distinct and on pixel corners, at most MAX_VERTICES of them
+(default 8190), and no two boundaries may cover the same pixel.
 
 A `.bits` file holds the expected rows packed as the TIFF's (1 bit per pixel, MSB first, rows
 padded to bytes), no header.
@@ -66,21 +71,36 @@ def main():
     p = pitch_nm / db_nm  # pitch in database units
     count = 0
     scale = lib.unit / lib.precision  # user units -> database units
+    max_vertices = int(sys.argv[7]) if len(sys.argv) > 7 else 8190
     for cell in lib.top_level():
         for poly in cell.get_polygons():
             pts = np.round(poly.points * scale).astype(np.int64)
-            x0, y0 = pts.min(axis=0)
-            x1, y1 = pts.max(axis=0)
-            assert len(pts) == 4 and len({tuple(q) for q in pts}) == 4, "rectangles expected"
-            c0 = (x0 + w * p / 2) / p
-            c1 = (x1 + w * p / 2) / p
-            r0 = (h * p / 2 - y1) / p
-            r1 = (h * p / 2 - y0) / p
-            for v in (c0, c1, r0, r1):
-                assert abs(v - round(v)) < 1e-9, "edge not on a pixel edge"
-            c0, c1, r0, r1 = (int(round(v)) for v in (c0, c1, r0, r1))
-            assert not img[r0:r1, c0:c1].any(), "rectangles overlap"
-            img[r0:r1, c0:c1] = True
+            assert 4 <= len(pts) <= max_vertices, f"{len(pts)} vertices"
+            assert len({tuple(q) for q in pts}) == len(pts), "repeated vertex"
+            # Lattice coordinates: column edges and row edges (row 0 on top).
+            cx = (pts[:, 0] + w * p / 2) / p
+            ry = (h * p / 2 - pts[:, 1]) / p
+            for v in np.concatenate([cx, ry]):
+                assert abs(v - round(v)) < 1e-9, "vertex not on a pixel corner"
+            cx = np.round(cx).astype(np.int64)
+            ry = np.round(ry).astype(np.int64)
+            c0, c1, r0, r1 = cx.min(), cx.max(), ry.min(), ry.max()
+            assert 0 <= c0 and c1 <= w and 0 <= r0 and r1 <= h, "outside the plate"
+            # Winding number at pixel centres of the bounding box: a ray to the left crosses
+            # the vertical edges; a downward edge (rows increasing) counts +1.
+            diff = np.zeros((r1 - r0, c1 - c0 + 1), dtype=np.int64)
+            n = len(pts)
+            for i in range(n):
+                xa, ya, xb, yb = cx[i], ry[i], cx[(i + 1) % n], ry[(i + 1) % n]
+                assert xa == xb or ya == yb, "edge not rectilinear"
+                if xa == xb and ya != yb:
+                    lo, hi, sg = (ya, yb, 1) if ya < yb else (yb, ya, -1)
+                    diff[lo - r0:hi - r0, xa - c0] += sg
+            wind = np.cumsum(diff, axis=1)[:, : c1 - c0]
+            assert set(np.unique(wind)) <= {0, 1}, "winding not 0/1: clockwise or self-overlapping"
+            inside = wind == 1
+            assert not (img[r0:r1, c0:c1] & inside).any(), "boundaries overlap"
+            img[r0:r1, c0:c1] |= inside
             count += 1
     if tif.endswith(".bits"):
         rb = (w + 7) // 8

@@ -247,6 +247,8 @@ pub struct GdsSpec {
     pub layer: i16,
     /// Datatype number.
     pub datatype: i16,
+    /// How set pixels become boundaries.
+    pub merge: crate::output::gdsii::Merge,
 }
 
 impl JobSpec {
@@ -526,6 +528,7 @@ fn parse_output(
         ("layer", o.layer.is_some()),
         ("datatype", o.datatype.is_some()),
         ("merge", o.merge.is_some()),
+        ("max_vertices", o.max_vertices.is_some()),
     ];
     let format = o.format.as_deref().unwrap_or("tiff");
     if format != "gdsii" {
@@ -595,14 +598,32 @@ fn parse_output(
                     "[output] compression and bigtiff apply to TIFF output".into()
                 ));
             }
-            match o.merge.as_deref().unwrap_or("rectangles") {
-                "rectangles" => {}
+            use crate::output::gdsii::{Merge, MAX_VERTICES};
+            let merge = match o.merge.as_deref().unwrap_or("rectangles") {
+                "rectangles" => {
+                    if o.max_vertices.is_some() {
+                        return Err(bad(
+                            "[output] max_vertices applies to merge = \"contour\"".into(),
+                        ));
+                    }
+                    Merge::Rectangles
+                }
+                "contour" => match o.max_vertices.unwrap_or(i64::from(MAX_VERTICES)) {
+                    n if (4..=i64::from(MAX_VERTICES)).contains(&n) => Merge::Contour {
+                        max_vertices: n as u32,
+                    },
+                    n => {
+                        return Err(bad(format!(
+                            "[output] max_vertices = {n} is outside 4..={MAX_VERTICES} (an XY record holds 8191 points, the closing one included)"
+                        )))
+                    }
+                },
                 other => {
                     return Err(bad(format!(
-                        "[output] merge = \"{other}\": only \"rectangles\" (row runs merged vertically) is available"
+                        "[output] merge = \"{other}\" is not one of \"rectangles\" (row runs merged vertically), \"contour\" (regions traced into polygons)"
                     )))
                 }
-            }
+            };
             let db = o.database_unit_nm.unwrap_or(1.0);
             if !(db.is_finite() && (0.001..=1e6).contains(&db)) {
                 return Err(bad(format!(
@@ -619,6 +640,7 @@ fn parse_output(
                 db_unit: db * 1e-9,
                 layer: num("layer", o.layer, 1)?,
                 datatype: num("datatype", o.datatype, 0)?,
+                merge,
             };
             // The pitch and size checks, with the message the writer would give.
             crate::output::gdsii::GdsLayout::new(

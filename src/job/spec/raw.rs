@@ -178,8 +178,10 @@ pub struct RawOutput {
     pub layer: Option<i64>,
     /// GDSII: datatype number (default 0).
     pub datatype: Option<i64>,
-    /// GDSII: "rectangles" (default: row runs merged vertically).
+    /// GDSII: "rectangles" (default: row runs merged vertically) or "contour" (regions traced).
     pub merge: Option<String>,
+    /// GDSII, `merge = "contour"`: most vertices per boundary (default 8190).
+    pub max_vertices: Option<i64>,
 }
 
 /// The job file as written.

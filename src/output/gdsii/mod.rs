@@ -23,6 +23,7 @@
 //! fixed (1970-01-01) so the same job gives the same bytes. Like the TIFF writer, the file is
 //! written under `NAME.partial`, synced, hashed and renamed when complete.
 
+pub mod contour;
 mod writer;
 
 use std::fs::{self, File};
@@ -56,7 +57,26 @@ pub struct GdsLayout {
     /// Write fields [w, h] pixels: one structure per field, placed by references in the top
     /// structure (rows per strip divide the field height).
     pub field: Option<[u32; 2]>,
+    /// How set pixels become polygons.
+    pub merge: Merge,
 }
+
+/// How the set pixels of a strip become boundaries.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Merge {
+    /// Row runs, extended downwards while the next rows have the same span (4 vertices each).
+    Rectangles,
+    /// Whole 4-connected regions traced into rectilinear polygons of at most `max_vertices`
+    /// vertices ([`contour`]).
+    Contour {
+        /// Vertices per boundary, the closing point not counted (4 ..= [`MAX_VERTICES`]).
+        max_vertices: u32,
+    },
+}
+
+/// Most vertices of one boundary: an XY record holds at most 8191 points (its length is a
+/// 16-bit byte count: (65535 - 4) / 8), one of which repeats the first to close it.
+pub const MAX_VERTICES: u32 = 8190;
 
 /// Largest coordinate GDSII's 4-byte integers hold.
 pub const MAX_COORD: i64 = i32::MAX as i64;
@@ -127,7 +147,14 @@ impl GdsLayout {
                 }
             },
             field: None,
+            merge: Merge::Rectangles,
         })
+    }
+
+    /// With another way of merging pixels into boundaries.
+    pub fn with_merge(mut self, merge: Merge) -> GdsLayout {
+        self.merge = merge;
+        self
     }
 
     /// With write fields of [w, h] pixels (each a structure); `rows_per_strip` must divide h.
@@ -182,6 +209,10 @@ pub struct GdsState {
     pub file_len: u64,
     /// Boundaries written.
     pub boundaries: u64,
+    /// XY points written, closing points included (0 in journals of rectangle-only writers:
+    /// then 5 per boundary).
+    #[serde(default)]
+    pub vertices: u64,
     /// Write fields: the length of each field column's file of the current field row.
     #[serde(default)]
     pub column_lens: Vec<u64>,

@@ -4,7 +4,10 @@ use std::fs::{self, File, OpenOptions};
 use std::io::{BufWriter, Seek, SeekFrom, Write};
 use std::path::{Path, PathBuf};
 
-use super::{ascii, int2s, real8, record, FinishedGds, GdsLayout, GdsState, UnpublishedGds, DATE};
+use super::contour::{self, Run};
+use super::{
+    ascii, int2s, real8, record, FinishedGds, GdsLayout, GdsState, Merge, UnpublishedGds, DATE,
+};
 use crate::error::{Error, Result};
 use crate::output::tiff::{hash_path, partial_path};
 
@@ -17,6 +20,10 @@ pub struct GdsWriter {
     pos: u64,
     rows_written: u32,
     boundaries: u64,
+    /// XY points written (closing points included).
+    vertices: u64,
+    /// Contour merging: the runs of the current strip, traced at its end.
+    strip: Vec<Run>,
     /// Open rectangles: (first column, end column, first row), by first column.
     open: Vec<(u32, u32, u32)>,
     /// Spans of the current row (recycled).
@@ -155,6 +162,8 @@ impl GdsWriter {
             pos: 0,
             rows_written: 0,
             boundaries: 0,
+            vertices: 0,
+            strip: Vec::new(),
             open: Vec::new(),
             spans: Vec::new(),
             columns,
@@ -215,6 +224,12 @@ impl GdsWriter {
             pos: state.file_len,
             rows_written: state.rows_written,
             boundaries: state.boundaries,
+            vertices: if state.vertices == 0 {
+                5 * state.boundaries
+            } else {
+                state.vertices
+            },
+            strip: Vec::new(),
             open: Vec::new(),
             spans: Vec::new(),
             columns,
@@ -275,32 +290,39 @@ impl GdsWriter {
         Ok(())
     }
 
+    /// A rectangle of columns `c0 .. c1` and rows `r0 .. r1`, from its lower-left corner.
     fn rect(&mut self, c0: u32, c1: u32, r0: u32, r1: u32) -> Result<()> {
+        self.polygon(&[(c0, r1), (c1, r1), (c1, r0), (c0, r0)])
+    }
+
+    /// A boundary through lattice points (plate column, plate row of the pixel edges),
+    /// counter-clockwise with y up, not closed (the first point is repeated here).
+    fn polygon(&mut self, pts: &[(u32, u32)]) -> Result<()> {
         let l = &self.layout;
-        let (mut x0, mut x1, mut y0, mut y1) =
-            (l.x_edge(c0), l.x_edge(c1), l.y_edge(r1), l.y_edge(r0));
         // In a write field: coordinates from the field's lower-left corner.
+        let (mut ox, mut oy) = (0, 0);
         let column = l.field.map(|f| {
+            let c0 = pts.iter().map(|p| p.0).min().expect("points");
+            let r0 = pts.iter().map(|p| p.1).min().expect("points");
             let (fc, fr) = (c0 / f[0], r0 / f[1]);
             let bottom = ((fr + 1) * f[1]).min(l.height);
-            let (ox, oy) = (l.x_edge(fc * f[0]), l.y_edge(bottom));
-            x0 -= ox;
-            x1 -= ox;
-            y0 -= oy;
-            y1 -= oy;
+            (ox, oy) = (l.x_edge(fc * f[0]), l.y_edge(bottom));
             fc as usize
         });
-        let mut b = Vec::with_capacity(64);
+        let mut b = Vec::with_capacity(48 + 8 * pts.len());
         record(&mut b, 0x08, 0x00, &[]);
         record(&mut b, 0x0D, 0x02, &int2s(&[l.layer]));
         record(&mut b, 0x0E, 0x02, &int2s(&[l.datatype]));
-        let xy: Vec<u8> = [x0, y0, x1, y0, x1, y1, x0, y1, x0, y0]
+        let xy: Vec<u8> = pts
             .iter()
+            .chain(std::iter::once(&pts[0]))
+            .flat_map(|&(c, r)| [l.x_edge(c) - ox, l.y_edge(r) - oy])
             .flat_map(|v| v.to_be_bytes())
             .collect();
         record(&mut b, 0x10, 0x03, &xy);
         record(&mut b, 0x11, 0x00, &[]);
         self.boundaries += 1;
+        self.vertices += pts.len() as u64 + 1;
         match column {
             Some(k) => {
                 let c = &mut self.columns[k];
@@ -313,7 +335,15 @@ impl GdsWriter {
         }
     }
 
+    /// Closes the strip's shapes: the open rectangles, or the strip's traced regions.
     fn close_all(&mut self) -> Result<()> {
+        if let Merge::Contour { max_vertices } = self.layout.merge {
+            let runs = std::mem::take(&mut self.strip);
+            for region in contour::regions(&runs) {
+                contour::polygons(&region, max_vertices as usize, &mut |pts| self.polygon(pts))?;
+            }
+            return Ok(());
+        }
         let r = self.rows_written;
         for (c0, c1, r0) in std::mem::take(&mut self.open) {
             self.rect(c0, c1, r0, r)?;
@@ -366,36 +396,13 @@ impl GdsWriter {
                 }
                 spans = cut;
             }
-            // Open rectangles continue where this row has the same span; the others close.
             let r = self.rows_written;
-            let open = std::mem::take(&mut self.open);
-            let mut next = Vec::with_capacity(spans.len());
-            let (mut i, mut k) = (0, 0);
-            while i < open.len() || k < spans.len() {
-                let o = open.get(i).copied();
-                let s = spans.get(k).copied();
-                match (o, s) {
-                    (Some((c0, c1, r0)), Some(sp)) if (c0, c1) == sp => {
-                        next.push((c0, c1, r0));
-                        i += 1;
-                        k += 1;
-                    }
-                    (Some((c0, c1, r0)), Some(sp)) if c0 < sp.0 || (c0 == sp.0 && c1 < sp.1) => {
-                        self.rect(c0, c1, r0, r)?;
-                        i += 1;
-                    }
-                    (Some((c0, c1, r0)), None) => {
-                        self.rect(c0, c1, r0, r)?;
-                        i += 1;
-                    }
-                    (_, Some(sp)) => {
-                        next.push((sp.0, sp.1, r));
-                        k += 1;
-                    }
-                    (None, None) => unreachable!(),
-                }
+            if let Merge::Contour { .. } = self.layout.merge {
+                self.strip
+                    .extend(spans.iter().map(|&(c0, c1)| Run { row: r, c0, c1 }));
+            } else {
+                self.merge_rectangles(&spans)?;
             }
-            self.open = next;
             self.spans = spans;
             self.rows_written += 1;
             if self.rows_written.is_multiple_of(self.layout.rows_per_strip)
@@ -414,6 +421,42 @@ impl GdsWriter {
         Ok(())
     }
 
+    /// Rectangle merging: open rectangles continue where this row has the same span; the
+    /// others close.
+    fn merge_rectangles(&mut self, spans: &[(u32, u32)]) -> Result<()> {
+        // Open rectangles continue where this row has the same span; the others close.
+        let r = self.rows_written;
+        let open = std::mem::take(&mut self.open);
+        let mut next = Vec::with_capacity(spans.len());
+        let (mut i, mut k) = (0, 0);
+        while i < open.len() || k < spans.len() {
+            let o = open.get(i).copied();
+            let s = spans.get(k).copied();
+            match (o, s) {
+                (Some((c0, c1, r0)), Some(sp)) if (c0, c1) == sp => {
+                    next.push((c0, c1, r0));
+                    i += 1;
+                    k += 1;
+                }
+                (Some((c0, c1, r0)), Some(sp)) if c0 < sp.0 || (c0 == sp.0 && c1 < sp.1) => {
+                    self.rect(c0, c1, r0, r)?;
+                    i += 1;
+                }
+                (Some((c0, c1, r0)), None) => {
+                    self.rect(c0, c1, r0, r)?;
+                    i += 1;
+                }
+                (_, Some(sp)) => {
+                    next.push((sp.0, sp.1, r));
+                    k += 1;
+                }
+                (None, None) => unreachable!(),
+            }
+        }
+        self.open = next;
+        Ok(())
+    }
+
     /// Rows written.
     pub fn rows_written(&self) -> u32 {
         self.rows_written
@@ -421,7 +464,7 @@ impl GdsWriter {
 
     /// Flushes and syncs; the state to resume from (only at a strip boundary).
     pub fn checkpoint(&mut self) -> Result<GdsState> {
-        if !self.open.is_empty() {
+        if !self.open.is_empty() || !self.strip.is_empty() {
             return Err(Error::job(
                 &self.final_path,
                 "GDSII writer: checkpoint inside a strip",
@@ -446,6 +489,7 @@ impl GdsWriter {
             rows_written: self.rows_written,
             file_len: self.pos,
             boundaries: self.boundaries,
+            vertices: self.vertices,
             column_lens: self.columns.iter().map(|c| c.len).collect(),
             column_chunks: self
                 .columns
@@ -508,7 +552,7 @@ impl GdsWriter {
                 bytes,
                 sha256,
                 boundaries: self.boundaries,
-                vertices: 5 * self.boundaries,
+                vertices: self.vertices,
             },
         })
     }
