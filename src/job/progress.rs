@@ -22,6 +22,8 @@ pub struct Progress {
     label: String,
     total: f64,
     done: f64,
+    /// Work done before this run (resumed): not counted in the rate.
+    base: f64,
     start: Instant,
     last_log: Instant,
     log_every: Duration,
@@ -66,6 +68,7 @@ impl Progress {
             label: label.to_string(),
             total: total.max(1.0),
             done: 0.0,
+            base: 0.0,
             start: now,
             last_log: now,
             log_every: Duration::from_secs(10),
@@ -80,6 +83,17 @@ impl Progress {
         self.log_every = d;
     }
 
+    /// Counts `work` units as done before this run (a resumed run): they show in the share,
+    /// not in the rate the ETA comes from.
+    pub fn skip(&mut self, work: f64) {
+        self.done = (self.done + work).min(self.total);
+        self.base = self.done;
+        if let Some(bar) = &self.bar {
+            bar.set_position((self.done / self.total * 1_000_000.0) as u64);
+            bar.reset_eta();
+        }
+    }
+
     /// Adds `work` units done. With log lines, the first call prints one at once (a long run
     /// shows it is under way after its first piece of work), then one per interval.
     pub fn advance(&mut self, work: f64) {
@@ -92,7 +106,12 @@ impl Progress {
             self.first = false;
             self.last_log = Instant::now();
             let el = self.start.elapsed().as_secs_f64();
-            let eta = if frac > 0.0 { el / frac - el } else { f64::NAN };
+            let now = self.done - self.base;
+            let eta = if now > 0.0 {
+                (self.total - self.done) * el / now
+            } else {
+                f64::NAN
+            };
             eprintln!(
                 "fringemill: {}: {:5.1}% elapsed {} eta {}",
                 self.label,

@@ -140,14 +140,28 @@ pub(super) fn stream_rows(ctx: &StreamCtx, sink: &mut Sink, opts: &RunOptions) -
         .div_ceil(bands_per_strip)
         .max(1);
     let wave = strips_per_wave * bands_per_strip;
-    let total = prep.source.estimate_work(64).max(1.0);
+    // Progress counts each band's expected work (the sum of its emitters' support spans, before
+    // occlusion), not the updates it did: occlusion skips an unknown share of them, and a total
+    // of unoccluded updates then never fills (the ETA came out 3-12x long on occluded jobs).
+    // The rows this run resumes after count as done.
+    let first_row = start as usize - ctx.rows_before as usize;
+    let band_work: Vec<f64> = (first_row..end as usize)
+        .step_by(band)
+        .collect::<Vec<_>>()
+        .par_iter()
+        .map_init(Vec::new, |cands, &r| {
+            prep.source.rows_work(r, band.min(end as usize - r), cands)
+        })
+        .collect();
+    let work_of = |r0: usize| band_work[(r0 - first_row) / band];
+    let total: f64 = band_work.iter().sum::<f64>().max(1.0);
     let label = match ctx.shard {
         None => "plate".to_string(),
         Some([k, n]) => format!("plate, shard {}/{}", k + 1, n),
     };
     let mut progress = Progress::new(&label, total, opts.progress);
-    if ctx.updates_before > 0 {
-        progress.advance(ctx.updates_before as f64);
+    if ctx.rows_before > 0 {
+        progress.skip(band_work[..(ctx.rows_before as usize).div_ceil(band)].iter().sum());
     }
     // Workers report each band as it is done (not each wave), so a long run shows progress
     // from its first band.
@@ -205,7 +219,7 @@ pub(super) fn stream_rows(ctx: &StreamCtx, sink: &mut Sink, opts: &RunOptions) -
                         bytes
                     })
                     .collect();
-                lock_progress().advance(u as f64);
+                lock_progress().advance(work_of(r0));
                 Some((r0, n, out, u))
             })
             .collect();

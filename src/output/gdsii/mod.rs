@@ -3,7 +3,8 @@
 //! BOUNDARY on one layer and datatype. Rectangles: the runs of set pixels along each row; a run
 //! with the same first and last column in the next rows extends its rectangle downwards, within
 //! a strip of `rows_per_strip` rows (rectangles close at each strip's end, so a checkpoint holds
-//! no open shapes and a resumed file is byte-identical). No pixel changes state.
+//! no open shapes and a resumed file is byte-identical). Or, with [`Merge::Contour`], each
+//! strip's 4-connected regions traced into simple polygons ([`contour`]). No pixel changes state.
 //!
 //! Coordinates are plate coordinates (physics.md: origin at the plate's centre, x right, y up,
 //! row 0 on top) in database units: pixel (row i, column j) spans x in [(j - W/2) p, (j + 1 - W/2) p]
@@ -13,7 +14,7 @@
 //!
 //! Records (length u16, record type, data type, then big-endian data): HEADER 600, BGNLIB,
 //! LIBNAME, UNITS (user unit 1 um), BGNSTR, STRNAME, then per rectangle BOUNDARY, LAYER,
-//! DATATYPE, XY (5 points, closed), ENDEL; ENDSTR, ENDLIB. With write fields each field is a
+//! DATATYPE, XY (5 points for a rectangle, closed), ENDEL; ENDSTR, ENDLIB. With write fields each field is a
 //! structure `NAME_Rrrr_Cccc` whose coordinates start at the field's lower-left corner (runs are
 //! cut at field columns; strips divide the field height), and a last structure `NAME` places
 //! every field by an SREF at that corner.
