@@ -43,7 +43,23 @@ fn encode_row_matches_per_pixel_samples() {
         state ^= state << 17;
         (state >> 11) as f64 / (1u64 << 53) as f64 * 2.0 - 1.0
     };
-    let f: Vec<Complex64> = (0..203).map(|_| Complex64::new(next(), next())).collect();
+    let mut f: Vec<Complex64> = (0..203).map(|_| Complex64::new(next(), next())).collect();
+    // Zeros of each sign (atan2 gives 0, pi, -0 or -pi), and values on the axes.
+    for (i, (re, im)) in [
+        (0.0, 0.0),
+        (-0.0, 0.0),
+        (0.0, -0.0),
+        (-0.0, -0.0),
+        (-0.0, 1.0),
+        (-1.0, 0.0),
+        (-1.0, -0.0),
+        (0.0, -2.0),
+    ]
+    .into_iter()
+    .enumerate()
+    {
+        f[3 * i] = Complex64::new(re, im);
+    }
     let encodings = [
         Encoding::BinaryAmplitude,
         Encoding::BinaryPhase,
