@@ -494,6 +494,29 @@ fn cell_larger_than_the_plate_is_refused() {
     assert!(!d.path().join("p.tif").exists());
 }
 
+/// A target that does not fit the cell's replay lattice is refused by `plan` as by `run`, in
+/// one line naming the job, the key and the image.
+#[test]
+fn target_outside_the_cell_is_refused_by_plan_and_run() {
+    let d = tempfile::tempdir().unwrap();
+    spot_target(d.path());
+    let job = spot_job(d.path(), 128, "cell_px = [16, 16]");
+    for cmd in ["plan", "run"] {
+        let o = Command::new(BIN)
+            .args([cmd, job.to_str().unwrap()])
+            .output()
+            .unwrap();
+        let e = String::from_utf8_lossy(&o.stderr);
+        assert!(!o.status.success(), "{cmd} accepted it");
+        assert!(
+            e.contains("job.toml") && e.contains("image") && e.contains("spots.png") && e.contains("does not fit the 16 x 16"),
+            "{e}"
+        );
+        assert_eq!(e.trim().lines().count(), 1, "{e}");
+    }
+    assert!(!d.path().join("p.tif").exists());
+}
+
 /// An iterative plate in Fresnel geometry is designed for a real image at +D: a lab's own
 /// single-FFT Fresnel replay by +D (Goodman, Introduction to Fourier Optics, eq. 4-17: chirp
 /// exp(i pi x^2 / (lambda z)) on the plate, then a plain DFT, axis on sample floor(N/2)) shows

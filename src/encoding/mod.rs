@@ -35,6 +35,9 @@ pub struct Calibration {
     pub level_to_grey: Vec<u16>,
     /// Phase covered by the branch, radians (2 pi or less).
     pub stroke: f64,
+    /// Phase step between the branch's last two greys, radians: the branch reaches round to
+    /// 2 pi when `2 pi - stroke` is no more than this (the next grey would be 2 pi, zero again).
+    pub top_step: f64,
     /// Where the response came from, in words (for the sidecar).
     pub source: String,
 }
@@ -43,6 +46,14 @@ impl Calibration {
     /// Reversals of the response up to this (radians) are taken as measurement noise and
     /// flattened; larger ones refuse the table.
     pub const REVERSAL_TOLERANCE: f64 = 0.05;
+
+    /// The branch stops short of 2 pi: the gap above its last grey is more than one of the
+    /// `levels` levels and more than the panel's own last grey step (a panel that reaches
+    /// 2 pi at grey G stops at G - 1, one step below: that is not short).
+    pub fn short_of_two_pi(&self, levels: u32) -> bool {
+        let step = 2.0 * std::f64::consts::PI / f64::from(levels.max(1));
+        2.0 * std::f64::consts::PI - self.stroke > step.max(self.top_step) + 1e-6
+    }
 
     /// Builds the level -> grey map for `levels` levels from a response table.
     ///
@@ -107,6 +118,11 @@ impl Calibration {
             u_of.push(ul);
         }
         let stroke = *u_of.last().expect("at least the lowest grey");
+        let top_step = if u_of.len() >= 2 {
+            stroke - u_of[u_of.len() - 2]
+        } else {
+            0.0
+        };
         let level_to_grey: Vec<u16> = (0..levels)
             .map(|l| {
                 let theta = two_pi * l as f64 / levels as f64;
@@ -146,6 +162,7 @@ impl Calibration {
             table,
             level_to_grey,
             stroke,
+            top_step,
             source: source.into(),
         })
     }

@@ -201,3 +201,19 @@ fn amplitude_mapping_clips() {
     assert_eq!(amplitude_sample(-5.0, 1.0, 8), 0);
     assert_eq!(amplitude_sample(7.0, 1.0, 16), 65535);
 }
+
+/// A linear panel reaching 2 pi at grey 200 stops one grey step short of 2 pi at grey 199: not
+/// short. A panel reaching 5 rad at grey 255 is short; one reaching 2 pi - half a level is not.
+#[test]
+fn short_of_two_pi_allows_the_last_grey_step() {
+    let tau = 2.0 * std::f64::consts::PI;
+    let linear = Calibration::new(vec![(0, 0.0), (200, tau)], 256, "two_pi_grey = 200").unwrap();
+    assert_eq!(linear.level_to_grey.iter().max(), Some(&199));
+    assert!((tau - linear.stroke - tau / 200.0).abs() < 1e-12);
+    assert!(!linear.short_of_two_pi(256));
+    let five = Calibration::new(vec![(0, 0.0), (255, 5.0)], 256, "short").unwrap();
+    assert!(five.short_of_two_pi(256));
+    let near = Calibration::new(vec![(0, 0.0), (255, tau - 0.5 * tau / 16.0)], 16, "near").unwrap();
+    assert!(!near.short_of_two_pi(16));
+    assert!(near.short_of_two_pi(256));
+}

@@ -50,6 +50,7 @@ pub fn read_target(path: &Path) -> Result<(usize, usize, Vec<f64>)> {
 /// floor(nx/2)) (physics.md, "Replay lattices"); an image as large as the lattice lands pixel for
 /// pixel.
 fn place(
+    job: &Path,
     path: &Path,
     img: (usize, usize, Vec<f64>),
     nx: usize,
@@ -57,11 +58,8 @@ fn place(
     shift: [i64; 2],
 ) -> Result<(Vec<f64>, [usize; 4])> {
     let (w, h, v) = img;
-    let x0 = (nx / 2) as i64 - (w / 2) as i64 + shift[0];
-    let y0 = (ny / 2) as i64 - (h / 2) as i64 - shift[1];
-    if x0 < 0 || y0 < 0 || x0 + w as i64 > nx as i64 || y0 + h as i64 > ny as i64 {
-        return Err(Error::job(path, format!("the {w} x {h} px target, shifted by {shift:?}, does not fit the {nx} x {ny} replay grid of the cell")));
-    }
+    let (x0, y0) = placement(job, path, (w, h), nx, ny, shift)?;
+    let (x0, y0) = (x0 as i64, y0 as i64);
     let mut t = vec![0.0; nx * ny];
     for r in 0..h {
         for c in 0..w {
@@ -72,6 +70,40 @@ fn place(
         return Err(Error::input(path, "the target image is black everywhere"));
     }
     Ok((t, [x0 as usize, y0 as usize, w, h]))
+}
+
+/// The top-left sample of a w x h target shifted by [right, up] on an nx x ny replay lattice
+/// (see [`place`]), or the job's error when it does not fit: `plan` and `run` both ask here.
+pub fn placement(
+    job: &Path,
+    path: &Path,
+    (w, h): (usize, usize),
+    nx: usize,
+    ny: usize,
+    shift: [i64; 2],
+) -> Result<(usize, usize)> {
+    let x0 = (nx / 2) as i64 - (w / 2) as i64 + shift[0];
+    let y0 = (ny / 2) as i64 - (h / 2) as i64 - shift[1];
+    if x0 < 0 || y0 < 0 || x0 + w as i64 > nx as i64 || y0 + h as i64 > ny as i64 {
+        return Err(Error::job(
+            job,
+            format!(
+                "[[object]] image {}: the {w} x {h} px target, shifted by {shift:?}, does not fit the {nx} x {ny} replay grid of the cell (a smaller shift_px or target, or a larger cell_px)",
+                path.display()
+            ),
+        ));
+    }
+    Ok((x0 as usize, y0 as usize))
+}
+
+/// The iterated cell's size: `cell_px`, or the plate, each side at most the plate's.
+pub fn cell_size(spec: &JobSpec, it: &IterativeSpec) -> (usize, usize) {
+    let p = spec.plate;
+    let cell = it.cell_px.unwrap_or([p.width, p.height]);
+    (
+        cell[0].min(p.width) as usize,
+        cell[1].min(p.height) as usize,
+    )
 }
 
 /// The phase levels the encoding will store, if it is a phase encoding.
@@ -252,11 +284,7 @@ fn build_image_cell(
     mode: ProgressMode,
 ) -> Result<(PhaseCell, IterationRecord)> {
     let p = spec.plate;
-    let cell = it.cell_px.unwrap_or([p.width, p.height]);
-    let (nx, ny) = (
-        cell[0].min(p.width) as usize,
-        cell[1].min(p.height) as usize,
-    );
+    let (nx, ny) = cell_size(spec, it);
     if nx > 8192 || ny > 8192 {
         return Err(Error::job(&spec.path, format!("the iterated cell would be {nx} x {ny} px; set [synthesis] cell_px (at most 8192 x 8192) and let it repeat over the plate")));
     }
@@ -295,7 +323,7 @@ fn build_image_cell(
             }
         };
         let img = read_target(&o.points)?;
-        let (target, win) = place(&o.points, img, nx, ny, shift_px)?;
+        let (target, win) = place(&spec.path, &o.points, img, nx, ny, shift_px)?;
         pitches.push(fwd.output().pitch);
         windows.push(win);
         planes.push(Plane {

@@ -12,7 +12,11 @@ fn plan_iterative(spec: &JobSpec, it: &IterativeSpec) -> Result<PlanReport> {
     let mut lines = vec![
         format!("job: {}", spec.path.display()),
         format!("plate: {} x {} px, pitch {:.4} x {:.4} um, wavelength {:.2} nm", p.width, p.height, p.pitch[0] * 1e6, p.pitch[1] * 1e6, p.wavelength * 1e9),
-        format!("iterative synthesis: {}, {} iterations at most, cell {} x {} px repeated over the plate", super::record::algorithm_name(it.algorithm), it.iterations, cell[0], cell[1]),
+        if it.cell_px.is_some() {
+            format!("iterative synthesis: {}, {} iterations at most, cell {} x {} px repeated over the plate", super::record::algorithm_name(it.algorithm), it.iterations, cell[0], cell[1])
+        } else {
+            format!("iterative synthesis: {}, {} iterations at most, over the whole {} x {} px plate (no cell_px)", super::record::algorithm_name(it.algorithm), it.iterations, cell[0], cell[1])
+        },
     ];
     if let super::spec::Geometry::Fourier(f) = it.geometry {
         lines.push(format!(
@@ -62,6 +66,11 @@ fn plan_iterative(spec: &JobSpec, it: &IterativeSpec) -> Result<PlanReport> {
             continue;
         }
         let (w, h, _) = super::iterative::read_target(&o.points)?;
+        if let super::spec::ObjectSource::Image { shift_px, .. } = o.source {
+            // The placement `run` will make, refused here the same way.
+            let (nx, ny) = super::iterative::cell_size(spec, it);
+            super::iterative::placement(&spec.path, &o.points, (w, h), nx, ny, shift_px)?;
+        }
         lines.push(format!("target {}: {} x {} px", o.points.display(), w, h));
     }
     if let Some(c) = &spec.correction {
@@ -83,8 +92,7 @@ fn plan_iterative(spec: &JobSpec, it: &IterativeSpec) -> Result<PlanReport> {
         calibration,
     }) = &spec.encoding
     {
-        let step = std::f64::consts::TAU / f64::from(*levels);
-        if calibration.stroke < std::f64::consts::TAU - step - 1e-9 {
+        if calibration.short_of_two_pi(*levels) {
             lines.push(format!(
                 "warning: the panel's response covers {:.3} rad at {:.1} nm, short of 2 pi: the levels beyond it are written at the nearer end of the branch, and the design's figures (which assume every level) will not be met",
                 calibration.stroke,

@@ -259,6 +259,12 @@ pub fn iterative_record(it: &IterativeSpec, rec: &IterationRecord) -> IterativeR
         replay_lattice: "Fourier and single-FFT Fresnel planes: optical axis on sample floor(N/2) per axis (a plain FFT after fftshift); angular-spectrum planes: the plate's pixel centres".into(),
         iterations_run: rec.errors.len().saturating_sub(1),
         stopped_early: rec.stopped_early,
+        stall_tolerance: Some(it.stall_tolerance),
+        min_iterations: Some(it.min_iterations),
+        replay_sign: Some(match it.geometry {
+            Geometry::Fourier(_) => "Fourier geometry: replayed through a lens (reconstruct --focal-mm F) onto its focal plane".into(),
+            Geometry::Fresnel => "designed for a real image at +D: reconstruct --distance-mm D propagates this plate by +D (other plates: by -D) and draws that plane as the targets are given".into(),
+        }),
         error_per_iteration: rec.errors.clone(),
         cell_px: rec.cell,
         replay_pitch_um: rec

@@ -119,7 +119,7 @@ impl ViewingRecord {
             viewer: "stands on the side opposite the scene (z < 0) and looks towards +z through the plate at the virtual image; plate +x is the viewer's left".into(),
             meshes: "the model's front (front key, +Z by default) is turned to plate -z and its up (+Y, or +Z for a front along Y) to plate +y, so the model faces the viewer right-reading (for +Z a half turn about y: model +X to plate -x); then rotation_deg, scale or fit_mm, offset_mm".into(),
             points: "point files are in plate coordinates as given".into(),
-            replay_images: "depth replays are drawn as the viewer sees them (image right = plate -x, image up = plate +y); Fourier replays on the FFT lattice (optical axis on sample floor(N/2), image right = +x of the focal plane)".into(),
+            replay_images: "depth replays are drawn as the viewer sees them (image right = plate -x, image up = plate +y), except the design plane of an iterative Fresnel plate (a real image at +D, drawn as its targets are given: image right = +x of that plane); Fourier replays on the FFT lattice (optical axis on sample floor(N/2), image right = +x of the focal plane)".into(),
         }
     }
 }
@@ -240,6 +240,16 @@ pub struct IterativeRecord {
     pub iterations_run: usize,
     /// Stopped before the iteration count.
     pub stopped_early: bool,
+    /// The early-stop rule: stop once the error improved by less than this share over the
+    /// stall window (0: never).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub stall_tolerance: Option<f64>,
+    /// Iterations always run before the stall test applies.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub min_iterations: Option<usize>,
+    /// Which way `reconstruct --distance-mm D` propagates this plate, in words.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub replay_sign: Option<String>,
     /// Error after each iteration (first: the start).
     pub error_per_iteration: Vec<f64>,
     /// Cell size [w, h].
