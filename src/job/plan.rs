@@ -158,6 +158,16 @@ pub fn plan(spec: &JobSpec) -> Result<PlanReport> {
         th[1].to_degrees()
     ));
     lines.push(format!("reference: {}", spec.reference.describe()));
+    for (k, o) in spec.objects.iter().enumerate() {
+        if let Some(r) = &o.reference {
+            lines.push(format!(
+                "object {} ({}): its own reference, a separate channel: {}",
+                k + 1,
+                o.points.display(),
+                r.describe()
+            ));
+        }
+    }
     if let crate::optics::Reference::Plane { tilt } = spec.reference {
         for (axis, t, m) in [("x", tilt[0], th[0]), ("y", tilt[1], th[1])] {
             if t.abs() > m {
@@ -181,6 +191,10 @@ pub fn plan(spec: &JobSpec) -> Result<PlanReport> {
     // The direct sum's figures (supports, reach, work) are reported whichever path runs.
     let sum = &sum;
     let path_lines = choice.lines;
+    let plane_cost = match choice.recipe {
+        crate::synthesis::planner::SumRecipe::RecordingPlane => choice.costs.map(|c| c.plane),
+        _ => None,
+    };
     if !zs.is_empty() {
         for (name, z) in [
             ("nearest", zs[0]),
@@ -258,6 +272,19 @@ pub fn plan(spec: &JobSpec) -> Result<PlanReport> {
         super::estimate::SECONDS_PER_VISIBILITY_TEST * 1e6,
         super::estimate::SECONDS_PER_PIXEL_WRITTEN * 1e9
     ));
+    if let Some(c) = plane_cost {
+        // The plane's cost is in f64 exact update equivalents.
+        let plane_secs = super::estimate::wall_seconds(
+            c * super::estimate::seconds_per_update(Approximation::Exact, crate::synthesis::Precision::F64, false),
+            0.0,
+            p.pixels() as f64,
+            threads,
+        );
+        lines.push(format!(
+            "time: about {} on {threads} thread(s) for the recording plane, the path this job takes",
+            super::estimate::human(plane_secs)
+        ));
+    }
     lines.extend(path_lines);
     let encoding = spec.encoding.resolve(|| 1.0);
     let layout = tiff_layout(spec, &encoding);

@@ -418,7 +418,12 @@ pub fn sidecar(spec: &JobSpec, run: RunRecord) -> Sidecar {
                 Method::Iterative(_) => "iterative",
             }
             .into(),
-            approximation: s.approximation.name().into(),
+            // Iterative plates have no point sum: say so rather than carry its wording.
+            approximation: match spec.method {
+                Method::PointSum => s.approximation.name(),
+                Method::Iterative(_) => "none",
+            }
+            .into(),
             // The iterative loop and its FFTs run in f32 whatever the key says.
             precision: match spec.method {
                 Method::PointSum => s.precision.name(),
@@ -427,12 +432,24 @@ pub fn sidecar(spec: &JobSpec, run: RunRecord) -> Sidecar {
             .into(),
             path,
             recording_plane,
-            obliquity: s.obliquity,
-            anti_aliasing: "emitter j contributes where |(d_j - d_R)_x| <= lambda / (2 px) and likewise in y (d: local direction cosines)".into(),
-            fringe_term: "F = O conj(R), O = sum a_j exp(i (k r_j + phi_j)) / r_j".into(),
+            obliquity: s.obliquity && matches!(spec.method, Method::PointSum),
+            anti_aliasing: match spec.method {
+                Method::PointSum => "emitter j contributes where |(d_j - d_R)_x| <= lambda / (2 px) and likewise in y (d: local direction cosines)",
+                Method::Iterative(_) => "none needed: the plate's pixels are the sampling grid of the iteration's FFT propagators",
+            }
+            .into(),
+            fringe_term: match spec.method {
+                Method::PointSum => "F = O conj(R), O = sum a_j exp(i (k r_j + phi_j)) / r_j",
+                Method::Iterative(_) => "F = exp(i phi), phi the iterated cell's phase (plus carrier, lens and correction terms) laid over the plate",
+            }
+            .into(),
             emitters: run.emitters,
             emitters_without_support: run.unreachable,
-            point_pixel_updates: run.updates,
+            // Iterative plates: no point-pixel updates.
+            point_pixel_updates: match spec.method {
+                Method::PointSum => run.updates,
+                Method::Iterative(_) => 0,
+            },
         },
         encoding: encoding_record(run.encoding),
         output,

@@ -84,6 +84,8 @@ pub struct PathChoice {
     pub plane: Option<RecordingPlane>,
     /// What `plan` prints about the choice.
     pub lines: Vec<String>,
+    /// Both paths' costs, when the recording plane applies.
+    pub costs: Option<PathCosts>,
 }
 
 impl PathChoice {
@@ -128,7 +130,13 @@ pub fn choose_path(
             plane: p.estimate_cost(unit, FFT_PASS_WEIGHT),
         };
         lines.push(format!(
-            "estimated cost (f64 exact updates): direct {:.3e}, recording plane {:.3e} (plane {:.3} mm from the plate, grid margins {} x {} px, bands of {} rows)",
+            "estimated cost in f64 exact update equivalents (one {} update counts {unit}): direct {:.3e}, recording plane {:.3e} (plane {:.3} mm from the plate, grid margins {} x {} px, bands of {} rows)",
+            match (opts.approximation, opts.precision) {
+                (Approximation::Exact, Precision::F32) => "f32 exact",
+                (Approximation::Exact, Precision::F64) => "f64 exact",
+                (Approximation::Fresnel, Precision::F32) => "f32 Fresnel",
+                (Approximation::Fresnel, Precision::F64) => "f64 Fresnel",
+            },
             c.direct,
             c.plane,
             p.distance() * 1e3,
@@ -138,7 +146,7 @@ pub fn choose_path(
         ));
         c
     });
-    let recipe = choose(ask, costs)?;
+    let recipe = choose(ask, costs.clone())?;
     lines.push(match &recipe {
         SumRecipe::Direct(DirectBecause::Asked) => "path: direct point sum".into(),
         SumRecipe::Direct(DirectBecause::PlaneNotApplicable(why)) => {
@@ -158,6 +166,7 @@ pub fn choose_path(
         recipe,
         plane,
         lines,
+        costs: costs.ok(),
     })
 }
 
