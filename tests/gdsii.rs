@@ -85,6 +85,20 @@ fn check_max(
     out
 }
 
+/// Rows of pixels packed as the TIFF's (1 bit per pixel, MSB first, rows padded to bytes).
+fn pack_rows(bits: &[Vec<bool>], w: u32) -> Vec<u8> {
+    let rb = (w as usize).div_ceil(8);
+    let mut packed = vec![0u8; rb * bits.len()];
+    for (r, row) in bits.iter().enumerate() {
+        for (c, &b) in row.iter().enumerate() {
+            if b {
+                packed[r * rb + c / 8] |= 0x80 >> (c % 8);
+            }
+        }
+    }
+    packed
+}
+
 fn run(args: &[&str]) -> std::process::Output {
     Command::new(BIN).args(args).output().unwrap()
 }
@@ -208,14 +222,7 @@ fn crafted_patterns_round_trip_through_gdstk() {
         }
     }
     let rb = (w as usize).div_ceil(8);
-    let mut packed = vec![0u8; rb * h as usize];
-    for (r, row) in bits.iter().enumerate() {
-        for (c, &b) in row.iter().enumerate() {
-            if b {
-                packed[r * rb + c / 8] |= 0x80 >> (c % 8);
-            }
-        }
-    }
+    let packed = pack_rows(&bits, w);
     let d = tempfile::tempdir().unwrap();
     std::fs::write(d.path().join("want.bits"), &packed).unwrap();
     // Pitch 2 um in 0.5 nm units: W p = 37 x 4000 units, even.
@@ -301,15 +308,7 @@ fn contour_regions_with_holes_round_trip_through_gdstk() {
                 || pinch;
         }
     }
-    let rb = (w as usize).div_ceil(8);
-    let mut packed = vec![0u8; rb * h as usize];
-    for (r, row) in bits.iter().enumerate() {
-        for (c, &b) in row.iter().enumerate() {
-            if b {
-                packed[r * rb + c / 8] |= 0x80 >> (c % 8);
-            }
-        }
-    }
+    let packed = pack_rows(&bits, w);
     let d = tempfile::tempdir().unwrap();
     std::fs::write(d.path().join("want.bits"), &packed).unwrap();
     for max in [8u32, 60, 8190] {
