@@ -187,8 +187,14 @@ fn contour_layout_equals_the_tiff_pixel_for_pixel() {
         assert_eq!(out.trim(), format!("equal {n} boundaries 1 cells"), "{enc}");
         let nr = rect["output"]["boundaries"].as_u64().unwrap();
         assert!(n * 2 < nr, "{enc}: {n} contours against {nr} rectangles");
-        assert_eq!(side["output"]["max_vertices"].as_u64(), Some(u64::from(max)));
-        assert!(side["output"]["merge"].as_str().unwrap().starts_with("contour"));
+        assert_eq!(
+            side["output"]["max_vertices"].as_u64(),
+            Some(u64::from(max))
+        );
+        assert!(side["output"]["merge"]
+            .as_str()
+            .unwrap()
+            .starts_with("contour"));
         // The XY points, counted from the file's own XY records (type 0x10, 8 bytes a point).
         let bytes = std::fs::read(d.path().join("lay.gds")).unwrap();
         let (mut i, mut points) = (0usize, 0u64);
@@ -279,7 +285,10 @@ fn crafted_patterns_round_trip_through_gdstk() {
         wr.write_rows(&packed).unwrap();
         let done = wr.finish_unpublished().unwrap().publish().unwrap();
         let out = check_max(&path, &d.path().join("want.bits"), w, h, 2000.0, 0.5, max);
-        assert_eq!(out.trim(), format!("equal {} boundaries 1 cells", done.boundaries));
+        assert_eq!(
+            out.trim(),
+            format!("equal {} boundaries 1 cells", done.boundaries)
+        );
     }
 }
 
@@ -320,7 +329,10 @@ fn contour_regions_with_holes_round_trip_through_gdstk() {
         wr.write_rows(&packed).unwrap();
         let done = wr.finish_unpublished().unwrap().publish().unwrap();
         let out = check_max(&path, &d.path().join("want.bits"), w, h, 1000.0, 1.0, max);
-        assert_eq!(out.trim(), format!("equal {} boundaries 1 cells", done.boundaries));
+        assert_eq!(
+            out.trim(),
+            format!("equal {} boundaries 1 cells", done.boundaries)
+        );
         if max == 8190 {
             // Few pieces: each hole costs one cut, the pinch one, the comb none.
             assert!(done.boundaries < 40, "{}", done.boundaries);

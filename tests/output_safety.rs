@@ -160,7 +160,7 @@ fn sample_out_over_an_input_is_refused() {
 fn a_second_run_on_a_locked_output_is_refused_at_once() {
     let (d, j) = setup("plate.tif");
     // The lock another run would hold (an flock on plate.tif.lock).
-    let lock = fringemill::job::guard::lock_output(&d.path().join("plate.tif")).unwrap();
+    let lock = fringemill::output::guard::lock_output(&d.path().join("plate.tif")).unwrap();
     refused(
         &run(d.path(), &["run", "-q", j.to_str().unwrap()]),
         "another run",

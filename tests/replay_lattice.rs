@@ -509,7 +509,10 @@ fn target_outside_the_cell_is_refused_by_plan_and_run() {
         let e = String::from_utf8_lossy(&o.stderr);
         assert!(!o.status.success(), "{cmd} accepted it");
         assert!(
-            e.contains("job.toml") && e.contains("image") && e.contains("spots.png") && e.contains("does not fit the 16 x 16"),
+            e.contains("job.toml")
+                && e.contains("image")
+                && e.contains("spots.png")
+                && e.contains("does not fit the 16 x 16"),
             "{e}"
         );
         assert_eq!(e.trim().lines().count(), 1, "{e}");

@@ -8,7 +8,8 @@
 //! * amplitude: bipolar intensity B = Re F, s = round((1 + B / B0) / 2 (2^b - 1)), clipped.
 //!
 //! Rows come out in file layout: 1-bit packed MSB first, each row padded to a whole byte;
-//! 16-bit little-endian. This module depends on nothing but num-complex.
+//! 16-bit little-endian. This module depends on nothing but num-complex and `cpu` (which SIMD
+//! copy of the level loop runs).
 
 use num_complex::Complex64;
 

@@ -4,7 +4,6 @@
 pub mod batch;
 pub mod estimate;
 pub mod fields;
-pub mod guard;
 pub mod iterative;
 pub mod journal;
 pub mod plan;

@@ -11,7 +11,14 @@ fn plan_iterative(spec: &JobSpec, it: &IterativeSpec) -> Result<PlanReport> {
     let cell = it.cell_px.unwrap_or([p.width, p.height]);
     let mut lines = vec![
         format!("job: {}", spec.path.display()),
-        format!("plate: {} x {} px, pitch {:.4} x {:.4} um, wavelength {:.2} nm", p.width, p.height, p.pitch[0] * 1e6, p.pitch[1] * 1e6, p.wavelength * 1e9),
+        format!(
+            "plate: {} x {} px, pitch {:.4} x {:.4} um, wavelength {:.2} nm",
+            p.width,
+            p.height,
+            p.pitch[0] * 1e6,
+            p.pitch[1] * 1e6,
+            p.wavelength * 1e9
+        ),
         if it.cell_px.is_some() {
             format!("iterative synthesis: {}, {} iterations at most, cell {} x {} px repeated over the plate", super::record::algorithm_name(it.algorithm), it.iterations, cell[0], cell[1])
         } else {
@@ -275,7 +282,11 @@ pub fn plan(spec: &JobSpec) -> Result<PlanReport> {
     if let Some(c) = plane_cost {
         // The plane's cost is in f64 exact update equivalents.
         let plane_secs = super::estimate::wall_seconds(
-            c * super::estimate::seconds_per_update(Approximation::Exact, crate::synthesis::Precision::F64, false),
+            c * super::estimate::seconds_per_update(
+                Approximation::Exact,
+                crate::synthesis::Precision::F64,
+                false,
+            ),
             0.0,
             p.pixels() as f64,
             threads,

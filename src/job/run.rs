@@ -71,7 +71,7 @@ pub struct RunSummary {
 pub(super) fn guard_outputs(
     spec: &JobSpec,
     shard: Option<Shard>,
-) -> Result<super::guard::OutputLock> {
+) -> Result<crate::output::guard::OutputLock> {
     let inputs = spec.inputs();
     if super::prepare::sidecar_path(&spec.output) == spec.output {
         return Err(Error::job(
@@ -82,14 +82,14 @@ pub(super) fn guard_outputs(
             ),
         ));
     }
-    super::guard::check_output(&spec.output, "output plate", &inputs)?;
-    super::guard::check_output(
+    crate::output::guard::check_output(&spec.output, "output plate", &inputs)?;
+    crate::output::guard::check_output(
         &super::prepare::sidecar_path(&spec.output),
         "plate's sidecar",
         &inputs,
     )?;
     if let Some(sh) = shard {
-        super::guard::check_output(&part_path(&spec.output, sh), "shard's part", &inputs)?;
+        crate::output::guard::check_output(&part_path(&spec.output, sh), "shard's part", &inputs)?;
     }
     if let Some(parent) = spec.output.parent().filter(|p| !p.as_os_str().is_empty()) {
         if parent.exists() && !parent.is_dir() {
@@ -100,7 +100,7 @@ pub(super) fn guard_outputs(
         }
     }
     ensure_parent(&spec.output)?;
-    super::guard::lock_output(&match shard {
+    crate::output::guard::lock_output(&match shard {
         Some(sh) => part_path(&spec.output, sh),
         None => spec.output.clone(),
     })

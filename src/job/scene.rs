@@ -245,7 +245,7 @@ pub fn build_scene(spec: &JobSpec) -> Result<Scene> {
 /// `sample`: builds the job's scene and writes its emitters to `out` (refused when `out` is one
 /// of the job's inputs, a folder or a special file). Returns the number of emitters.
 pub fn sample(spec: &JobSpec, out: &std::path::Path) -> Result<usize> {
-    super::guard::check_output(out, "point file", &spec.inputs())?;
+    crate::output::guard::check_output(out, "point file", &spec.inputs())?;
     let scene = build_scene(spec)?;
     write_emitters_ply(out, &scene)?;
     Ok(scene.normals.len())

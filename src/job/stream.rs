@@ -161,7 +161,11 @@ pub(super) fn stream_rows(ctx: &StreamCtx, sink: &mut Sink, opts: &RunOptions) -
     };
     let mut progress = Progress::new(&label, total, opts.progress);
     if ctx.rows_before > 0 {
-        progress.skip(band_work[..(ctx.rows_before as usize).div_ceil(band)].iter().sum());
+        progress.skip(
+            band_work[..(ctx.rows_before as usize).div_ceil(band)]
+                .iter()
+                .sum(),
+        );
     }
     // Workers report each band as it is done (not each wave), so a long run shows progress
     // from its first band.

@@ -10,7 +10,12 @@
 //! virtual image, as an eye or camera focused at D sees it); the intensity equals that of the real
 //! image formed by conjugate illumination at +D.
 //!
-//! Depends on `optics` (propagators), `encoding` (transmittance) and `output` (sidecar format).
+//! An iterative plate in Fresnel geometry is the exception: it is designed for a real image at
+//! +D, so it is propagated by +D (the sidecar's `iterative.replay_sign`).
+//!
+//! Depends on `optics` (propagators), `encoding` (transmittance), `output` (sidecar format, the
+//! output guard), `raster` (targets), `synthesis` (the spot-list model whose figures a Fourier
+//! replay reports) and `error`.
 
 pub mod metrics;
 pub mod orders;

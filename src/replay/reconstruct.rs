@@ -354,7 +354,7 @@ fn check_outputs(req: &ReconstructRequest, pf: &PlateFile) -> Result<()> {
     inputs.extend(req.target.iter().cloned());
     for out in planned_outputs(req) {
         let json = out.extension().is_some_and(|e| e == "json");
-        crate::job::guard::check_output(
+        crate::output::guard::check_output(
             &out,
             if json { "metrics file" } else { "replay image" },
             &inputs,

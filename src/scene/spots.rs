@@ -11,7 +11,22 @@ use super::text::{
     input_error, lines_with_ends, parse_finite, read_checked, shown, strip_cr, Expect,
 };
 use crate::error::Result;
-use crate::synthesis::spots::Spot;
+
+/// One spot: position in the focal plane and defocus, metres; relative intensity; an optional
+/// fixed phase, radians.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Spot {
+    /// Focal-plane x (replay columns increasing), metres.
+    pub x: f64,
+    /// Focal-plane y (up), metres.
+    pub y: f64,
+    /// Distance beyond the focal plane along the axis, metres.
+    pub z: f64,
+    /// Relative intensity wanted (> 0).
+    pub weight: f64,
+    /// The spot's phase, if fixed.
+    pub phase: Option<f64>,
+}
 
 /// Most spots a list may hold (the design costs spots x pixels per iteration).
 pub const MAX_SPOTS: usize = 10_000;

@@ -71,19 +71,29 @@ pub trait FringeSource: Send + Sync {
     fn path(&self) -> SourcePath;
 }
 
+/// The trait's plate, band and reach methods forwarded to a type's own methods of those names.
+macro_rules! forward_band_methods {
+    () => {
+        fn plate(&self) -> &Plate {
+            self.plate()
+        }
+        fn compute_band(
+            &self,
+            r0: usize,
+            n: usize,
+            out: &mut [Complex64],
+            scratch: &mut BandScratch,
+        ) -> u64 {
+            self.compute_band(r0, n, out, scratch)
+        }
+        fn unreachable(&self) -> usize {
+            self.unreachable()
+        }
+    };
+}
+
 impl FringeSource for super::point_sum::PointSum {
-    fn plate(&self) -> &Plate {
-        self.plate()
-    }
-    fn compute_band(
-        &self,
-        r0: usize,
-        n: usize,
-        out: &mut [Complex64],
-        scratch: &mut BandScratch,
-    ) -> u64 {
-        self.compute_band(r0, n, out, scratch)
-    }
+    forward_band_methods!();
     fn estimate_work(&self, max_rows: usize) -> f64 {
         self.estimate_updates(max_rows)
     }
@@ -98,35 +108,18 @@ impl FringeSource for super::point_sum::PointSum {
             .sum();
         (spans as f64 + 0.05 * self.plate().width as f64) * n as f64
     }
-    fn unreachable(&self) -> usize {
-        self.unreachable()
-    }
     fn path(&self) -> SourcePath {
         SourcePath::Direct
     }
 }
 
 impl FringeSource for super::recording_plane::RecordingPlane {
-    fn plate(&self) -> &Plate {
-        self.plate()
-    }
-    fn compute_band(
-        &self,
-        r0: usize,
-        n: usize,
-        out: &mut [Complex64],
-        scratch: &mut BandScratch,
-    ) -> u64 {
-        self.compute_band(r0, n, out, scratch)
-    }
+    forward_band_methods!();
     fn estimate_work(&self, _max_rows: usize) -> f64 {
         self.estimate_cost(1.0, 0.0)
     }
     fn preferred_band_rows(&self) -> Option<usize> {
         Some(self.band_rows())
-    }
-    fn unreachable(&self) -> usize {
-        self.unreachable()
     }
     fn path(&self) -> SourcePath {
         SourcePath::RecordingPlane {

@@ -27,21 +27,7 @@ use rayon::prelude::*;
 
 use crate::optics::Plate;
 
-/// One spot: position in the focal plane and defocus, metres; relative intensity; an optional
-/// fixed phase, radians.
-#[derive(Clone, Copy, Debug, PartialEq)]
-pub struct Spot {
-    /// Focal-plane x (replay columns increasing), metres.
-    pub x: f64,
-    /// Focal-plane y (up), metres.
-    pub y: f64,
-    /// Distance beyond the focal plane along the axis, metres.
-    pub z: f64,
-    /// Relative intensity wanted (> 0).
-    pub weight: f64,
-    /// The spot's phase, if fixed.
-    pub phase: Option<f64>,
-}
+pub use crate::scene::spots::Spot;
 
 /// The algorithm.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]

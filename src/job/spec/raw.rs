@@ -93,7 +93,7 @@ pub struct RawSynthesis {
     pub approximation: Option<String>,
     /// Include the obliquity factor z / r (default false).
     pub obliquity: Option<bool>,
-    /// Exact kernel arithmetic: "f64" (default) or "f32".
+    /// Kernel arithmetic: "f32" (default) or "f64" (the reference).
     pub precision: Option<String>,
     /// Point sum: "direct" (default), "recording-plane" or "auto" (the cheaper by estimate).
     pub path: Option<String>,

@@ -121,7 +121,6 @@ impl Bitmap {
         self.px[(y + 1) as usize * (self.w + 2) + (x + 1) as usize] == 1
     }
 
-
     /// The outline of a region with no hole and no saddle, as lattice points (plate column,
     /// plate row of the pixel edges), counter-clockwise with y up (clockwise on the screen,
     /// rows down), starting at the top-left corner of the first run; no point repeats.
@@ -134,7 +133,10 @@ impl Bitmap {
         const AR: [(i64, i64); 4] = [(0, 0), (-1, 0), (-1, -1), (0, -1)];
         let first = {
             let row = &self.px[self.w + 2..2 * (self.w + 2)];
-            row.iter().position(|&v| v == 1).expect("first row has a run") as i64 - 1
+            row.iter()
+                .position(|&v| v == 1)
+                .expect("first row has a run") as i64
+                - 1
         };
         let start = (first, 0i64);
         let (mut x, mut y, mut d) = (first + 1, 0i64, 0usize);
@@ -183,13 +185,25 @@ fn hole_cuts(runs: &[Run]) -> Vec<u32> {
     for row in r0..=r1 {
         let mut at = c0;
         while i < runs.len() && runs[i].row == row {
-            clear.push(Run { row: row - r0 + 1, c0: at, c1: runs[i].c0 + 1 });
+            clear.push(Run {
+                row: row - r0 + 1,
+                c0: at,
+                c1: runs[i].c0 + 1,
+            });
             at = runs[i].c1 + 1;
             i += 1;
         }
-        clear.push(Run { row: row - r0 + 1, c0: at, c1 });
+        clear.push(Run {
+            row: row - r0 + 1,
+            c0: at,
+            c1,
+        });
     }
-    clear.push(Run { row: r1 - r0 + 2, c0, c1 });
+    clear.push(Run {
+        row: r1 - r0 + 2,
+        c0,
+        c1,
+    });
     let mut cuts: Vec<u32> = components(&clear, 1)
         .into_iter()
         .skip(1) // the outside: it holds the first run (the top padding row)
@@ -250,10 +264,18 @@ fn split(runs: &[Run], cuts: &[u32]) -> Vec<Run> {
             if c >= r.c1 {
                 break;
             }
-            out.push(Run { row: r.row, c0: a, c1: c });
+            out.push(Run {
+                row: r.row,
+                c0: a,
+                c1: c,
+            });
             a = c;
         }
-        out.push(Run { row: r.row, c0: a, c1: r.c1 });
+        out.push(Run {
+            row: r.row,
+            c0: a,
+            c1: r.c1,
+        });
     }
     out
 }
@@ -320,7 +342,11 @@ mod tests {
                     while c < b.len() && b[c] == b'#' {
                         c += 1;
                     }
-                    out.push(Run { row: row as u32, c0: s as u32, c1: c as u32 });
+                    out.push(Run {
+                        row: row as u32,
+                        c0: s as u32,
+                        c1: c as u32,
+                    });
                 } else {
                     c += 1;
                 }
@@ -340,7 +366,11 @@ mod tests {
             if a.0 == b.0 {
                 // Going down the screen (rows increasing) is going down in y: for a ray to the
                 // left, a downward edge counts +1 (counter-clockwise inside is +1).
-                let (lo, hi, s) = if a.1 < b.1 { (a.1, b.1, 1) } else { (b.1, a.1, -1) };
+                let (lo, hi, s) = if a.1 < b.1 {
+                    (a.1, b.1, 1)
+                } else {
+                    (b.1, a.1, -1)
+                };
                 for r in lo..hi {
                     for c in a.0 as usize..w {
                         acc[r as usize * w + c] += s;
