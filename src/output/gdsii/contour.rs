@@ -79,13 +79,13 @@ fn components(runs: &[Run], touch: u32) -> Vec<Vec<Run>> {
     }
     let mut slot: Vec<u32> = vec![u32::MAX; n];
     let mut out: Vec<Vec<Run>> = Vec::new();
-    for i in 0..n {
+    for (i, &run) in runs.iter().enumerate() {
         let root = find(&mut parent, i as u32) as usize;
         if slot[root] == u32::MAX {
             slot[root] = out.len() as u32;
             out.push(Vec::new());
         }
-        out[slot[root] as usize].push(runs[i]);
+        out[slot[root] as usize].push(run);
     }
     out
 }
@@ -254,6 +254,9 @@ fn joins_and_saddles(runs: &[Run]) -> (usize, Vec<u32>) {
     (joins, saddles)
 }
 
+/// Where [`polygons`] sends each polygon's lattice points.
+pub type Emit<'a> = dyn FnMut(&[(u32, u32)]) -> crate::error::Result<()> + 'a;
+
 /// Splits runs at the given plate columns (sorted); the pieces stay sorted by row and column.
 fn split(runs: &[Run], cuts: &[u32]) -> Vec<Run> {
     let mut out = Vec::with_capacity(runs.len() * 2);
@@ -286,7 +289,7 @@ fn split(runs: &[Run], cuts: &[u32]) -> Vec<Run> {
 pub fn polygons(
     runs: &[Run],
     max_vertices: usize,
-    emit: &mut dyn FnMut(&[(u32, u32)]) -> crate::error::Result<()>,
+    emit: &mut Emit<'_>,
 ) -> crate::error::Result<()> {
     debug_assert!(max_vertices >= 4);
     if runs.len() == 1 {

@@ -48,26 +48,11 @@ pub fn columns32_generic(
     ure: &mut [f32],
     uim: &mut [f32],
 ) -> u64 {
-    let (xs, rdx) = (&ri.xs[c0..c1], &ri.rdx[c0..c1]);
-    // Equal lengths up front: no bounds checks in the loop, and no scalar epilogue forced on it.
-    let (ure, uim) = (&mut ure[..xs.len()], &mut uim[..xs.len()]);
-    let inv_z = 1.0 / z;
-    let amp = (amplitude * inv_z) as f32;
-    let q = 0.5 * inv_z * ri.inv_lambda;
-    let bx = ri.half_band[0];
-    let mut n = 0u64;
-    for i in 0..xs.len() {
-        let dx = xs[i] - xj;
-        let inside = (dx * inv_z - rdx[i]).abs() <= bx;
-        let t = dx * dx * q;
-        let t = (t - t.round_ties_even()) as f32;
-        let (s, c) = sincos_half(t);
-        let w = if inside { amp } else { 0.0 };
-        ure[i] = w * c;
-        uim[i] = w * s;
-        n += inside as u64;
-    }
-    n
+    // The phase in cycles reduced in f64, then sine and cosine in f32.
+    let amp = (amplitude * (1.0 / z)) as f32;
+    super::columns_with(ri, xj, z, c0, c1, amp, ure, uim, |t| {
+        sincos_half((t - t.round_ties_even()) as f32)
+    })
 }
 
 /// Row coefficients of one emitter (at height `yj`, distance `z`, phase `cycles0` in cycles)

@@ -105,6 +105,21 @@ macro_rules! avx2_copy {
     };
 }
 
+/// A kernel with an [`avx2_copy!`] and its dispatching function (AVX-512 CPUs run the AVX2
+/// copy): `pub fn $name(isa, args...)`, after the optional `check` block (argument asserts).
+macro_rules! avx2_kernel {
+    ($(#[$m:meta])* pub fn $name:ident = $generic:path, $avx2:ident,
+     ($($arg:ident: $ty:ty),*) -> $ret:ty $(, check $check:block)?) => {
+        avx2_copy!($avx2 = $generic, ($($arg: $ty),*) -> $ret);
+        $(#[$m])*
+        #[allow(clippy::too_many_arguments)]
+        pub fn $name(isa: KernelIsa, $($arg: $ty),*) -> $ret {
+            $($check)?
+            dispatch!(isa, $avx2($($arg),*), $avx2($($arg),*), $generic($($arg),*))
+        }
+    };
+}
+
 mod row64;
 pub use row64::{accumulate_exact, accumulate_fresnel, conj_reference, fresnel_columns, mac};
 
@@ -153,6 +168,42 @@ pub struct EmitterRow {
     pub obliquity: bool,
 }
 
+/// The Fresnel column factor loop of the f64 and f32 kernels: over columns [c0, c1),
+/// u = w amp exp(i 2 pi t), t = dx^2 / (2 z lambda) cycles, w the 0/1 x support weight
+/// (|dx / z - d_R,x| <= lambda / 2p), `phasor(t)` giving (sin, cos) in the kernel's precision.
+/// Writes `c1 - c0` values; returns the columns inside.
+#[allow(clippy::too_many_arguments)]
+#[inline(always)]
+fn columns_with<T: Copy + Default + std::ops::Mul<Output = T>>(
+    ri: &RowInputs,
+    xj: f64,
+    z: f64,
+    c0: usize,
+    c1: usize,
+    amp: T,
+    ure: &mut [T],
+    uim: &mut [T],
+    phasor: impl Fn(f64) -> (T, T),
+) -> u64 {
+    let (xs, rdx) = (&ri.xs[c0..c1], &ri.rdx[c0..c1]);
+    // Equal lengths up front: no bounds checks in the loop, and no scalar epilogue forced on it.
+    let (ure, uim) = (&mut ure[..xs.len()], &mut uim[..xs.len()]);
+    let inv_z = 1.0 / z;
+    let q = 0.5 * inv_z * ri.inv_lambda;
+    let bx = ri.half_band[0];
+    let mut n = 0u64;
+    for i in 0..xs.len() {
+        let dx = xs[i] - xj;
+        let inside = (dx * inv_z - rdx[i]).abs() <= bx;
+        let (s, c) = phasor(dx * dx * q);
+        let w = if inside { amp } else { T::default() };
+        ure[i] = w * c;
+        uim[i] = w * s;
+        n += inside as u64;
+    }
+    n
+}
+
 /// sin(2 pi t) and cos(2 pi t) for any finite t (reduced here).
 #[inline(always)]
 pub fn sincos_cycles(t: f64) -> (f64, f64) {
@@ -180,43 +231,11 @@ pub fn sincos_cycles(t: f64) -> (f64, f64) {
     (2.0 * s * c, 1.0 - 2.0 * s * s)
 }
 
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2,fma,avx512f,avx512vl,avx512dq")]
-unsafe fn exact32_avx512<const OBLIQUE: bool>(
-    ri: &RowInputs,
-    r32: &Row32,
-    e: &EmitterRow,
-    c0: usize,
-    c1: usize,
-    re: &mut [f32],
-    im: &mut [f32],
-) -> u64 {
-    exact32::exact32_generic::<OBLIQUE>(ri, r32, e, c0, c1, re, im)
-}
-
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2,fma")]
-unsafe fn exact32_avx2<const OBLIQUE: bool>(
-    ri: &RowInputs,
-    r32: &Row32,
-    e: &EmitterRow,
-    c0: usize,
-    c1: usize,
-    re: &mut [f32],
-    im: &mut [f32],
-) -> u64 {
-    exact32::exact32_generic::<OBLIQUE>(ri, r32, e, c0, c1, re, im)
-}
-
-/// Adds one emitter's exact spherical wave over columns [c0, c1) into the f32 row sums `re`, `im`
-/// (see [`exact32`] for the phase split and the error bound). Returns the pixels inside the
-/// support, the same set as [`accumulate_exact`].
-///
-/// # Panics
-/// If `re`, `im`, `r32.rdx` or `r32.rdy` are shorter than `c1 + PAD`.
+/// The f32 exact kernel with or without the obliquity factor (decided once per call, outside
+/// the loop).
 #[allow(clippy::too_many_arguments)]
-pub fn accumulate_exact32(
-    isa: KernelIsa,
+#[inline(always)]
+fn exact32_either(
     ri: &RowInputs,
     r32: &Row32,
     e: &EmitterRow,
@@ -225,28 +244,10 @@ pub fn accumulate_exact32(
     re: &mut [f32],
     im: &mut [f32],
 ) -> u64 {
-    assert!(
-        re.len() >= c1 + PAD
-            && im.len() >= c1 + PAD
-            && r32.rdx.len() >= c1 + PAD
-            && r32.rdy.len() >= c1 + PAD
-            && ri.xs.len() >= c1,
-        "f32 row buffers must be padded by PAD"
-    );
     if e.obliquity {
-        dispatch!(
-            isa,
-            exact32_avx2::<true>(ri, r32, e, c0, c1, re, im),
-            exact32_avx512::<true>(ri, r32, e, c0, c1, re, im),
-            exact32::exact32_generic::<true>(ri, r32, e, c0, c1, re, im)
-        )
+        exact32::exact32_generic::<true>(ri, r32, e, c0, c1, re, im)
     } else {
-        dispatch!(
-            isa,
-            exact32_avx2::<false>(ri, r32, e, c0, c1, re, im),
-            exact32_avx512::<false>(ri, r32, e, c0, c1, re, im),
-            exact32::exact32_generic::<false>(ri, r32, e, c0, c1, re, im)
-        )
+        exact32::exact32_generic::<false>(ri, r32, e, c0, c1, re, im)
     }
 }
 
@@ -268,12 +269,6 @@ macro_rules! simd_copies {
 }
 
 simd_copies!(
-    columns32_avx2,
-    columns32_avx512,
-    fresnel32::columns32_generic,
-    (ri: &RowInputs, xj: f64, z: f64, amplitude: f64, c0: usize, c1: usize, ure: &mut [f32], uim: &mut [f32]) -> u64
-);
-simd_copies!(
     mac_tile_avx2,
     mac_tile_avx512,
     mac_tile_for_isa,
@@ -285,15 +280,34 @@ simd_copies!(
 /// the copies run keep a hand-written wrapper.
 macro_rules! simd_kernel {
     ($(#[$m:meta])* pub fn $name:ident = $generic:path, $avx2:ident, $avx512:ident,
-     ($($arg:ident: $ty:ty),*) -> $ret:ty) => {
+     ($($arg:ident: $ty:ty),*) -> $ret:ty $(, check $check:block)?) => {
         simd_copies!($avx2, $avx512, $generic, ($($arg: $ty),*) -> $ret);
         $(#[$m])*
         #[allow(clippy::too_many_arguments)]
         pub fn $name(isa: KernelIsa, $($arg: $ty),*) -> $ret {
+            $($check)?
             dispatch!(isa, $avx2($($arg),*), $avx512($($arg),*), $generic($($arg),*))
         }
     };
 }
+
+simd_kernel!(
+    /// Adds one emitter's exact spherical wave over columns [c0, c1) into the f32 row sums `re`,
+    /// `im` (see [`exact32`] for the phase split and the error bound). Returns the pixels inside
+    /// the support, the same set as [`accumulate_exact`].
+    ///
+    /// # Panics
+    /// If `re`, `im`, `r32.rdx` or `r32.rdy` are shorter than `c1 + PAD`.
+    pub fn accumulate_exact32 = exact32_either, exact32_avx2, exact32_avx512,
+    (ri: &RowInputs, r32: &Row32, e: &EmitterRow, c0: usize, c1: usize, re: &mut [f32], im: &mut [f32]) -> u64,
+    check {
+        let n = c1 + PAD;
+        assert!(
+            re.len() >= n && im.len() >= n && r32.rdx.len() >= n && r32.rdy.len() >= n && ri.xs.len() >= c1,
+            "f32 row buffers must be padded by PAD"
+        );
+    }
+);
 
 simd_kernel!(
     /// Row coefficients of one emitter over a band's rows for the f32 separable Fresnel path (see
@@ -402,31 +416,18 @@ pub fn mac_tile32(
     )
 }
 
-/// The f32 Fresnel column factor of one emitter (see [`fresnel32`]); `ure`, `uim` hold
-/// `c1 - c0` values. Returns the columns inside the x support.
-#[allow(clippy::too_many_arguments)]
-pub fn fresnel_columns32(
-    isa: KernelIsa,
-    ri: &RowInputs,
-    xj: f64,
-    z: f64,
-    amplitude: f64,
-    c0: usize,
-    c1: usize,
-    ure: &mut [f32],
-    uim: &mut [f32],
-) -> u64 {
-    assert!(
-        ure.len() == c1 - c0 && uim.len() == c1 - c0 && c1 <= ri.xs.len(),
-        "column factor length"
-    );
-    dispatch!(
-        isa,
-        columns32_avx2(ri, xj, z, amplitude, c0, c1, ure, uim),
-        columns32_avx512(ri, xj, z, amplitude, c0, c1, ure, uim),
-        fresnel32::columns32_generic(ri, xj, z, amplitude, c0, c1, ure, uim)
-    )
-}
+simd_kernel!(
+    /// The f32 Fresnel column factor of one emitter (see [`fresnel32`]); `ure`, `uim` hold
+    /// `c1 - c0` values. Returns the columns inside the x support.
+    pub fn fresnel_columns32 = fresnel32::columns32_generic, columns32_avx2, columns32_avx512,
+    (ri: &RowInputs, xj: f64, z: f64, amplitude: f64, c0: usize, c1: usize, ure: &mut [f32], uim: &mut [f32]) -> u64,
+    check {
+        assert!(
+            ure.len() == c1 - c0 && uim.len() == c1 - c0 && c1 <= ri.xs.len(),
+            "column factor length"
+        );
+    }
+);
 
 /// Every copy this CPU can run, portable first (tests and benches compare them), whatever the
 /// environment says.

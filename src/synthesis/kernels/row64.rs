@@ -95,22 +95,7 @@ fn fresnel_columns_generic(
     ure: &mut [f64],
     uim: &mut [f64],
 ) -> u64 {
-    let (xs, rdx) = (&ri.xs[c0..c1], &ri.rdx[c0..c1]);
-    let inv_z = 1.0 / z;
-    let amp = amplitude * inv_z;
-    let q = 0.5 * inv_z * ri.inv_lambda;
-    let bx = ri.half_band[0];
-    let mut n = 0u64;
-    for i in 0..xs.len() {
-        let dx = xs[i] - xj;
-        let inside = (dx * inv_z - rdx[i]).abs() <= bx;
-        let w = if inside { amp } else { 0.0 };
-        let (s, c) = sincos_cycles(dx * dx * q);
-        ure[i] = w * c;
-        uim[i] = w * s;
-        n += inside as u64;
-    }
-    n
+    columns_with(ri, xj, z, c0, c1, amplitude * (1.0 / z), ure, uim, sincos_cycles)
 }
 
 /// re + i im += (cr + i ci) (ure + i uim), element by element.
@@ -122,66 +107,30 @@ fn mac_generic(cr: f64, ci: f64, ure: &[f64], uim: &[f64], re: &mut [f64], im: &
     }
 }
 
-avx2_copy!(
-    fresnel_columns_avx2 = fresnel_columns_generic,
-    (ri: &RowInputs, xj: f64, z: f64, amplitude: f64, c0: usize, c1: usize, ure: &mut [f64], uim: &mut [f64]) -> u64
+
+
+avx2_kernel!(
+    /// Fills the Fresnel column factor of one emitter (see `fresnel_columns_generic`); `ure`, `uim`
+    /// hold `c1 - c0` values. Returns the columns inside the x support.
+    pub fn fresnel_columns = fresnel_columns_generic, fresnel_columns_avx2,
+    (ri: &RowInputs, xj: f64, z: f64, amplitude: f64, c0: usize, c1: usize, ure: &mut [f64], uim: &mut [f64]) -> u64,
+    check {
+        assert!(ure.len() == c1 - c0 && uim.len() == c1 - c0, "column factor length");
+    }
 );
 
-avx2_copy!(
-    mac_avx2 = mac_generic,
-    (cr: f64, ci: f64, ure: &[f64], uim: &[f64], re: &mut [f64], im: &mut [f64]) -> ()
+avx2_kernel!(
+    /// re + i im += (cr + i ci) (ure + i uim), element by element.
+    ///
+    /// # Panics
+    /// If the slices differ in length.
+    pub fn mac = mac_generic, mac_avx2,
+    (cr: f64, ci: f64, ure: &[f64], uim: &[f64], re: &mut [f64], im: &mut [f64]) -> (),
+    check {
+        let n = ure.len();
+        assert!(uim.len() == n && re.len() == n && im.len() == n, "mac length");
+    }
 );
-
-/// Fills the Fresnel column factor of one emitter (see `fresnel_columns_generic`); `ure`, `uim`
-/// hold `c1 - c0` values. Returns the columns inside the x support.
-#[allow(clippy::too_many_arguments)]
-pub fn fresnel_columns(
-    isa: KernelIsa,
-    ri: &RowInputs,
-    xj: f64,
-    z: f64,
-    amplitude: f64,
-    c0: usize,
-    c1: usize,
-    ure: &mut [f64],
-    uim: &mut [f64],
-) -> u64 {
-    assert!(
-        ure.len() == c1 - c0 && uim.len() == c1 - c0,
-        "column factor length"
-    );
-    dispatch!(
-        isa,
-        fresnel_columns_avx2(ri, xj, z, amplitude, c0, c1, ure, uim),
-        fresnel_columns_avx2(ri, xj, z, amplitude, c0, c1, ure, uim),
-        fresnel_columns_generic(ri, xj, z, amplitude, c0, c1, ure, uim)
-    )
-}
-
-/// re + i im += (cr + i ci) (ure + i uim).
-///
-/// # Panics
-/// If the slices differ in length.
-pub fn mac(
-    isa: KernelIsa,
-    cr: f64,
-    ci: f64,
-    ure: &[f64],
-    uim: &[f64],
-    re: &mut [f64],
-    im: &mut [f64],
-) {
-    assert!(
-        uim.len() == ure.len() && re.len() == ure.len() && im.len() == ure.len(),
-        "mac length"
-    );
-    dispatch!(
-        isa,
-        mac_avx2(cr, ci, ure, uim, re, im),
-        mac_avx2(cr, ci, ure, uim, re, im),
-        mac_generic(cr, ci, ure, uim, re, im)
-    )
-}
 
 /// out = (re + i im) exp(-i 2 pi t) per pixel: the sum times conj(R), R's phase given in cycles.
 #[inline(always)]
@@ -192,27 +141,18 @@ fn conj_reference_generic(t: &[f64], re: &[f64], im: &[f64], out: &mut [Complex6
     }
 }
 
-avx2_copy!(
-    conj_reference_avx2 = conj_reference_generic,
-    (t: &[f64], re: &[f64], im: &[f64], out: &mut [Complex64]) -> ()
+avx2_kernel!(
+    /// Writes F = (re + i im) conj(R) into `out`, with R = exp(i 2 pi t).
+    ///
+    /// # Panics
+    /// If the slices differ in length.
+    pub fn conj_reference = conj_reference_generic, conj_reference_avx2,
+    (t: &[f64], re: &[f64], im: &[f64], out: &mut [Complex64]) -> (),
+    check {
+        let n = out.len();
+        assert!(t.len() == n && re.len() == n && im.len() == n, "row length");
+    }
 );
-
-/// Writes F = (re + i im) conj(R) into `out`, with R = exp(i 2 pi t).
-///
-/// # Panics
-/// If the slices differ in length.
-pub fn conj_reference(isa: KernelIsa, t: &[f64], re: &[f64], im: &[f64], out: &mut [Complex64]) {
-    assert!(
-        t.len() == out.len() && re.len() == out.len() && im.len() == out.len(),
-        "row length"
-    );
-    dispatch!(
-        isa,
-        conj_reference_avx2(t, re, im, out),
-        conj_reference_avx2(t, re, im, out),
-        conj_reference_generic(t, re, im, out)
-    )
-}
 
 /// The exact kernel with the soft edge or the plain 0/1 support.
 #[inline(always)]
@@ -231,49 +171,15 @@ fn exact_either(
     }
 }
 
-avx2_copy!(
-    exact_avx2 = exact_either,
+avx2_kernel!(
+    /// Adds one emitter's exact spherical wave over columns [c0, c1) into `re`, `im`.
+    /// Returns the number of pixels that passed the support test.
+    pub fn accumulate_exact = exact_either, exact_avx2,
     (ri: &RowInputs, e: &EmitterRow, c0: usize, c1: usize, re: &mut [f64], im: &mut [f64]) -> u64
 );
 
-avx2_copy!(
-    fresnel_avx2 = fresnel_generic,
+avx2_kernel!(
+    /// Adds one emitter's Fresnel wave over columns [c0, c1) into `re`, `im`.
+    pub fn accumulate_fresnel = fresnel_generic, fresnel_avx2,
     (ri: &RowInputs, e: &EmitterRow, c0: usize, c1: usize, re: &mut [f64], im: &mut [f64]) -> u64
 );
-
-/// Adds one emitter's exact spherical wave over columns [c0, c1) into `re`, `im`.
-/// Returns the number of pixels that passed the support test.
-pub fn accumulate_exact(
-    isa: KernelIsa,
-    ri: &RowInputs,
-    e: &EmitterRow,
-    c0: usize,
-    c1: usize,
-    re: &mut [f64],
-    im: &mut [f64],
-) -> u64 {
-    dispatch!(
-        isa,
-        exact_avx2(ri, e, c0, c1, re, im),
-        exact_avx2(ri, e, c0, c1, re, im),
-        exact_either(ri, e, c0, c1, re, im)
-    )
-}
-
-/// Adds one emitter's Fresnel wave over columns [c0, c1) into `re`, `im`.
-pub fn accumulate_fresnel(
-    isa: KernelIsa,
-    ri: &RowInputs,
-    e: &EmitterRow,
-    c0: usize,
-    c1: usize,
-    re: &mut [f64],
-    im: &mut [f64],
-) -> u64 {
-    dispatch!(
-        isa,
-        fresnel_avx2(ri, e, c0, c1, re, im),
-        fresnel_avx2(ri, e, c0, c1, re, im),
-        fresnel_generic(ri, e, c0, c1, re, im)
-    )
-}
