@@ -73,7 +73,8 @@ fn place(
 }
 
 /// The top-left sample of a w x h target shifted by [right, up] on an nx x ny replay lattice
-/// (see [`place`]), or the job's error when it does not fit: `plan` and `run` both ask here.
+/// (the image centre on the axis sample, as `place` lays it), or the job's error when it does
+/// not fit: `plan` and `run` both ask here.
 pub fn placement(
     job: &Path,
     path: &Path,
