@@ -480,6 +480,26 @@ mod tests {
         assert!(check(&pic, 4) > 1);
     }
 
+    /// A w x h picture, each pixel set with probability `density` (xorshift state `s`).
+    fn random_picture(s: &mut u64, w: usize, h: usize, density: f64) -> Vec<String> {
+        (0..h)
+            .map(|_| {
+                (0..w)
+                    .map(|_| {
+                        *s ^= *s << 13;
+                        *s ^= *s >> 7;
+                        *s ^= *s << 17;
+                        if (*s >> 11) as f64 / (1u64 << 53) as f64 <= density {
+                            '#'
+                        } else {
+                            '.'
+                        }
+                    })
+                    .collect()
+            })
+            .collect()
+    }
+
     /// Holes counted the slow, obvious way: clear pixels of the padded box flood-filled
     /// 8-connected from the border; each group left over is one hole (with its leftmost column).
     fn holes_by_flood_fill(runs: &[Run]) -> Vec<u32> {
@@ -532,22 +552,7 @@ mod tests {
         let mut with_holes = 0;
         for density in [0.5, 0.65, 0.8] {
             for _ in 0..200 {
-                let pic: Vec<String> = (0..13)
-                    .map(|_| {
-                        (0..19)
-                            .map(|_| {
-                                s ^= s << 13;
-                                s ^= s >> 7;
-                                s ^= s << 17;
-                                if (s >> 11) as f64 / (1u64 << 53) as f64 <= density {
-                                    '#'
-                                } else {
-                                    '.'
-                                }
-                            })
-                            .collect()
-                    })
-                    .collect();
+                let pic = random_picture(&mut s, 19, 13, density);
                 let refs: Vec<&str> = pic.iter().map(|s| s.as_str()).collect();
                 for reg in regions(&runs_of(&refs)) {
                     let want = holes_by_flood_fill(&reg);
@@ -567,23 +572,7 @@ mod tests {
         let mut s = 0x2545_f491_4f6c_dd1du64;
         for density in [0.2, 0.5, 0.7, 0.9] {
             for _ in 0..40 {
-                let (w, h) = (17, 11);
-                let pic: Vec<String> = (0..h)
-                    .map(|_| {
-                        (0..w)
-                            .map(|_| {
-                                s ^= s << 13;
-                                s ^= s >> 7;
-                                s ^= s << 17;
-                                if (s >> 11) as f64 / (1u64 << 53) as f64 <= density {
-                                    '#'
-                                } else {
-                                    '.'
-                                }
-                            })
-                            .collect()
-                    })
-                    .collect();
+                let pic = random_picture(&mut s, 17, 11, density);
                 let refs: Vec<&str> = pic.iter().map(|s| s.as_str()).collect();
                 check(&refs, 8190);
                 check(&refs, 6);
