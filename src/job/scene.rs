@@ -6,7 +6,7 @@
 
 use std::sync::Arc;
 
-use super::spec::{JobSpec, ObjectSource, Occlusion};
+use super::spec::{JobSpec, MeshObject, ObjectSource, ObjectSpec, Occlusion};
 use crate::error::{Error, Result};
 use crate::optics::Reference;
 use crate::scene::bvh::{visible_from, Bvh};
@@ -68,134 +68,170 @@ struct ObjectEmitters {
     occluder: Option<(Arc<Bvh>, Vec<u32>)>,
 }
 
-/// Builds the scene of a job. Errors name the object file and what is wrong.
+/// Builds the scene of a job: each object's emitters, then the channels. Errors name the object
+/// file and what is wrong.
 pub fn build_scene(spec: &JobSpec) -> Result<Scene> {
-    let p = spec.plate;
     let mut per_object = Vec::new();
     let mut notes = Vec::new();
     for (i, o) in spec.objects.iter().enumerate() {
         let n = i + 1;
-        match &o.source {
+        per_object.push(match &o.source {
             ObjectSource::Image { .. } | ObjectSource::Spots => {
                 return Err(Error::job(&spec.path, format!("[[object]] #{n}: image and spot objects are targets of iterative synthesis, not emitters")));
             }
-            ObjectSource::Points => {
-                let pts = read_points(&o.points)?;
-                let mut em = Vec::with_capacity(pts.len());
-                for (k, q) in pts.iter().enumerate() {
-                    let pos = [
-                        q.x_mm * 1e-3 * o.scale + o.offset[0],
-                        q.y_mm * 1e-3 * o.scale + o.offset[1],
-                        q.z_mm * 1e-3 * o.scale + o.offset[2],
-                    ];
-                    if !(pos[2] > 0.0) {
-                        return Err(Error::job(
-                            &spec.path,
-                            format!(
-                                "point {k} of {} lands at z = {} mm after scale and offset_mm; points must sit in front of the plate (z > 0)",
-                                o.points.display(),
-                                pos[2] * 1e3
-                            ),
-                        ));
-                    }
-                    em.push(Emitter {
-                        pos,
-                        amplitude: q.amplitude * o.gain,
-                        phase: q.phase_rad,
-                    });
-                }
-                notes.push(format!(
-                    "object #{n}: {} points from {}",
-                    em.len(),
-                    o.points.display()
-                ));
-                per_object.push(ObjectEmitters {
-                    normals: vec![None; em.len()],
-                    emitters: em,
-                    occluder: None,
-                });
-            }
-            ObjectSource::Mesh(m) => {
-                let mesh = load_mesh(&o.points)?.placed(&m.placement);
-                let (lo, hi) = mesh.bounds();
-                if !(lo[2] > 0.0) {
-                    return Err(Error::job(
-                        &spec.path,
-                        format!(
-                            "[[object]] #{n} ({}) reaches z = {:.4} mm after placement; the whole mesh must sit in front of the plate (z > 0): raise offset_mm z",
-                            o.points.display(),
-                            lo[2] * 1e3
-                        ),
-                    ));
-                }
-                // Default density: the replay cell lambda z / D at the mesh's depth (physics.md).
-                let density = m.density.unwrap_or_else(|| {
-                    let zc = 0.5 * (lo[2] + hi[2]);
-                    let d = p.size()[0].max(p.size()[1]);
-                    Density::SpacingM(p.wavelength * zc / d)
-                });
-                let opts = SamplingOptions {
-                    density,
-                    pattern: m.pattern,
-                    seed: m.seed,
-                    shading: m.shading,
-                    phase: m.phase,
-                    max_emitters: 20_000_000,
-                };
-                let mut samples = sample_surface(&mesh, &opts).map_err(|e| match e {
-                    Error::Job { message, .. } => Error::job(
-                        &spec.path,
-                        format!("[[object]] #{n} ({}): {message}", o.points.display()),
-                    ),
-                    other => other,
-                })?;
-                let mut occluder = None;
-                match m.occlusion {
-                    Occlusion::None => {}
-                    Occlusion::Centre => {
-                        let bvh = Bvh::build(&mesh);
-                        let vis = visible_from(&samples, &bvh, [0.0, 0.0, 0.0]);
-                        let mut it = vis.iter();
-                        samples.retain(|_| *it.next().expect("one flag per sample"));
-                    }
-                    Occlusion::Tiles => {
-                        occluder = Some((
-                            Arc::new(Bvh::build(&mesh)),
-                            samples.iter().map(|s| s.triangle).collect(),
-                        ));
-                    }
-                }
-                notes.push(format!(
-                    "object #{n}: mesh {}, {} triangles, file unit {} mm, front {} turned to the viewer, placed in x {:.3}..{:.3}, y {:.3}..{:.3}, z {:.3}..{:.3} mm, {} emitters",
+            ObjectSource::Points => point_object(spec, o, n, &mut notes)?,
+            ObjectSource::Mesh(m) => mesh_object(spec, o, m, n, &mut notes)?,
+        });
+    }
+    let (channels, normals, visibility) = group_channels(spec, per_object);
+    Ok(Scene {
+        channels,
+        normals,
+        visibility,
+        notes,
+    })
+}
+
+/// A point file's emitters, scaled and offset (object number `n`, for messages).
+fn point_object(
+    spec: &JobSpec,
+    o: &ObjectSpec,
+    n: usize,
+    notes: &mut Vec<String>,
+) -> Result<ObjectEmitters> {
+    let pts = read_points(&o.points)?;
+    let mut em = Vec::with_capacity(pts.len());
+    for (k, q) in pts.iter().enumerate() {
+        let pos = [
+            q.x_mm * 1e-3 * o.scale + o.offset[0],
+            q.y_mm * 1e-3 * o.scale + o.offset[1],
+            q.z_mm * 1e-3 * o.scale + o.offset[2],
+        ];
+        if !(pos[2] > 0.0) {
+            return Err(Error::job(
+                &spec.path,
+                format!(
+                    "point {k} of {} lands at z = {} mm after scale and offset_mm; points must sit in front of the plate (z > 0)",
                     o.points.display(),
-                    mesh.triangles.len(),
-                    m.placement.unit_mm,
-                    m.front.name(),
-                    lo[0] * 1e3,
-                    hi[0] * 1e3,
-                    lo[1] * 1e3,
-                    hi[1] * 1e3,
-                    lo[2] * 1e3,
-                    hi[2] * 1e3,
-                    samples.len()
-                ));
-                let em = samples
-                    .iter()
-                    .map(|s| Emitter {
-                        pos: s.pos,
-                        amplitude: s.amplitude * o.gain,
-                        phase: s.phase,
-                    })
-                    .collect();
-                per_object.push(ObjectEmitters {
-                    normals: samples.iter().map(|s| Some(s.normal)).collect(),
-                    emitters: em,
-                    occluder,
-                });
-            }
+                    pos[2] * 1e3
+                ),
+            ));
+        }
+        em.push(Emitter {
+            pos,
+            amplitude: q.amplitude * o.gain,
+            phase: q.phase_rad,
+        });
+    }
+    notes.push(format!(
+        "object #{n}: {} points from {}",
+        em.len(),
+        o.points.display()
+    ));
+    Ok(ObjectEmitters {
+        normals: vec![None; em.len()],
+        emitters: em,
+        occluder: None,
+    })
+}
+
+/// A mesh's emitters: loaded, placed, sampled with shading, occlusion prepared.
+fn mesh_object(
+    spec: &JobSpec,
+    o: &ObjectSpec,
+    m: &MeshObject,
+    n: usize,
+    notes: &mut Vec<String>,
+) -> Result<ObjectEmitters> {
+    let p = spec.plate;
+    let mesh = load_mesh(&o.points)?.placed(&m.placement);
+    let (lo, hi) = mesh.bounds();
+    if !(lo[2] > 0.0) {
+        return Err(Error::job(
+            &spec.path,
+            format!(
+                "[[object]] #{n} ({}) reaches z = {:.4} mm after placement; the whole mesh must sit in front of the plate (z > 0): raise offset_mm z",
+                o.points.display(),
+                lo[2] * 1e3
+            ),
+        ));
+    }
+    // Default density: the replay cell lambda z / D at the mesh's depth (physics.md).
+    let density = m.density.unwrap_or_else(|| {
+        let zc = 0.5 * (lo[2] + hi[2]);
+        let d = p.size()[0].max(p.size()[1]);
+        Density::SpacingM(p.wavelength * zc / d)
+    });
+    let opts = SamplingOptions {
+        density,
+        pattern: m.pattern,
+        seed: m.seed,
+        shading: m.shading,
+        phase: m.phase,
+        max_emitters: 20_000_000,
+    };
+    let mut samples = sample_surface(&mesh, &opts).map_err(|e| match e {
+        Error::Job { message, .. } => Error::job(
+            &spec.path,
+            format!("[[object]] #{n} ({}): {message}", o.points.display()),
+        ),
+        other => other,
+    })?;
+    let mut occluder = None;
+    match m.occlusion {
+        Occlusion::None => {}
+        Occlusion::Centre => {
+            let bvh = Bvh::build(&mesh);
+            let vis = visible_from(&samples, &bvh, [0.0, 0.0, 0.0]);
+            let mut it = vis.iter();
+            samples.retain(|_| *it.next().expect("one flag per sample"));
+        }
+        Occlusion::Tiles => {
+            occluder = Some((
+                Arc::new(Bvh::build(&mesh)),
+                samples.iter().map(|s| s.triangle).collect(),
+            ));
         }
     }
-    // Group into channels: the job's reference first, then each object with its own.
+    notes.push(format!(
+        "object #{n}: mesh {}, {} triangles, file unit {} mm, front {} turned to the viewer, placed in x {:.3}..{:.3}, y {:.3}..{:.3}, z {:.3}..{:.3} mm, {} emitters",
+        o.points.display(),
+        mesh.triangles.len(),
+        m.placement.unit_mm,
+        m.front.name(),
+        lo[0] * 1e3,
+        hi[0] * 1e3,
+        lo[1] * 1e3,
+        hi[1] * 1e3,
+        lo[2] * 1e3,
+        hi[2] * 1e3,
+        samples.len()
+    ));
+    let em = samples
+        .iter()
+        .map(|s| Emitter {
+            pos: s.pos,
+            amplitude: s.amplitude * o.gain,
+            phase: s.phase,
+        })
+        .collect();
+    Ok(ObjectEmitters {
+        normals: samples.iter().map(|s| Some(s.normal)).collect(),
+        emitters: em,
+        occluder,
+    })
+}
+
+/// Channels of emitters with their references, the emitters' normals, the occlusion test.
+type Channels = (
+    Vec<(Reference, Vec<Emitter>)>,
+    Vec<Option<[f64; 3]>>,
+    Option<Arc<dyn Visibility>>,
+);
+
+/// The channels: the job's reference first, then each object with its own; emitters renumbered
+/// in that order, with their normals and the occluded ranges.
+fn group_channels(spec: &JobSpec, per_object: Vec<ObjectEmitters>) -> Channels {
     let mut order: Vec<(Reference, Vec<usize>)> = vec![(spec.reference, Vec::new())];
     for (i, o) in spec.objects.iter().enumerate() {
         match o.reference {
@@ -234,12 +270,7 @@ pub fn build_scene(spec: &JobSpec) -> Result<Scene> {
     } else {
         Some(Arc::new(MeshVisibility(occluded)))
     };
-    Ok(Scene {
-        channels,
-        normals,
-        visibility,
-        notes,
-    })
+    (channels, normals, visibility)
 }
 
 /// `sample`: builds the job's scene and writes its emitters to `out` (refused when `out` is one

@@ -95,7 +95,17 @@ fn fresnel_columns_generic(
     ure: &mut [f64],
     uim: &mut [f64],
 ) -> u64 {
-    columns_with(ri, xj, z, c0, c1, amplitude * (1.0 / z), ure, uim, sincos_cycles)
+    columns_with(
+        ri,
+        xj,
+        z,
+        c0,
+        c1,
+        amplitude * (1.0 / z),
+        ure,
+        uim,
+        sincos_cycles,
+    )
 }
 
 /// re + i im += (cr + i ci) (ure + i uim), element by element.
@@ -106,8 +116,6 @@ fn mac_generic(cr: f64, ci: f64, ure: &[f64], uim: &[f64], re: &mut [f64], im: &
         im[i] += cr * uim[i] + ci * ure[i];
     }
 }
-
-
 
 avx2_kernel!(
     /// Fills the Fresnel column factor of one emitter (see `fresnel_columns_generic`); `ure`, `uim`
