@@ -9,8 +9,8 @@ use std::sync::Arc;
 use std::time::Duration;
 
 use super::fields::FieldSink;
-use super::journal::journal_path;
-use super::prepare::{prepare, unit_count};
+use super::journal::{journal_path, Journal};
+use super::prepare::{prepare, unit_count, Prepared};
 use super::progress::ProgressMode;
 use super::resume::find_resume;
 use super::scene::build_scene;
@@ -151,10 +151,63 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
         _ => (end_row - first_row - rows_done) as u64 * row_bytes as u64,
     };
     check_space(data_path.parent().unwrap_or(Path::new(".")), remaining)?;
-    let mut sink = match (&prep.fields, &opts.shard, resume) {
+    let mut sink = open_sink(
+        spec,
+        &prep,
+        opts,
+        resume,
+        &data_path,
+        &journal,
+        first_row + rows_done,
+        rows_done,
+        row_bytes,
+    )?;
+    let ctx = StreamCtx {
+        spec,
+        prep: &prep,
+        journal: &journal,
+        shard: shard_tag,
+        rows: (first_row + rows_done, end_row),
+        rows_before: rows_done,
+        updates_before: updates0,
+        inputs,
+    };
+    let updates = match stream_rows(&ctx, &mut sink, opts) {
+        Ok(u) => u,
+        Err(e) => return Err(stopped(sink, e, &journal, &data_path)),
+    };
+    let summary = finish_sink(
+        spec,
+        &prep,
+        opts,
+        sink,
+        [first_row, end_row],
+        updates,
+        row_bytes,
+    )?;
+    // Done: the journal (none for a PNG) has nothing left to resume.
+    let _ = std::fs::remove_file(&journal);
+    Ok(summary)
+}
+
+/// The sink a run writes to: field files, a panel PNG, a GDSII layout, the TIFF (each new or
+/// reopened at the journal's state), or a shard's part file cut back to its checkpoint.
+#[allow(clippy::too_many_arguments)]
+fn open_sink(
+    spec: &JobSpec,
+    prep: &Prepared,
+    opts: &RunOptions,
+    resume: Option<Journal>,
+    data_path: &Path,
+    journal: &Path,
+    start_row: u32,
+    rows_done: u32,
+    row_bytes: usize,
+) -> Result<Sink> {
+    Ok(match (&prep.fields, &opts.shard, resume) {
         (Some(g), _, resumed) => Sink::Fields(FieldSink::new(
             g.clone(),
-            first_row + rows_done,
+            start_row,
             resumed.and_then(|j| j.fields),
         )?),
         (None, Some(_), _) if prep.png.is_some() => {
@@ -170,7 +223,7 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
         (None, None, Some(j)) if prep.gds.is_some() => {
             let state = j.gds.ok_or_else(|| {
                 Error::input(
-                    &journal,
+                    journal,
                     "journal without GDSII writer state; run with --restart",
                 )
             })?;
@@ -188,7 +241,7 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
         }
         (None, None, Some(j)) => {
             let state = j.writer.ok_or_else(|| {
-                Error::input(&journal, "journal without writer state; run with --restart")
+                Error::input(journal, "journal without writer state; run with --restart")
             })?;
             Sink::Tiff(StripWriter::resume(
                 &spec.output,
@@ -203,77 +256,71 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
                 .read(true)
                 .write(true)
                 .truncate(resumed.is_none())
-                .open(&data_path)
-                .map_err(|e| Error::io(&data_path, e))?;
+                .open(data_path)
+                .map_err(|e| Error::io(data_path, e))?;
             let chunks = resumed.map(|j| j.part_chunks).unwrap_or_default();
             let keep = rows_done as u64 * row_bytes as u64;
             if chunks.last().is_some_and(|c| c.end != keep) {
                 return Err(Error::input(
-                    &journal,
+                    journal,
                     "resume journal: the part's checksums do not end at its rows; rerun with --restart",
                 ));
             }
-            crate::output::chunks::verify(&data_path, &mut f, &chunks)?;
+            crate::output::chunks::verify(data_path, &mut f, &chunks)?;
             f.set_len(keep)
                 .and_then(|_| f.seek(SeekFrom::Start(keep)).map(|_| ()))
-                .map_err(|e| Error::io(&data_path, e))?;
+                .map_err(|e| Error::io(data_path, e))?;
             Sink::Part {
                 file: std::io::BufWriter::with_capacity(1 << 20, f),
-                path: data_path.clone(),
+                path: data_path.to_path_buf(),
                 hasher: crate::output::chunks::ChunkHasher::starting_at(keep, chunks),
                 len: keep,
             }
         }
-    };
-    let ctx = StreamCtx {
-        spec,
-        prep: &prep,
-        journal: &journal,
-        shard: shard_tag,
-        rows: (first_row + rows_done, end_row),
-        rows_before: rows_done,
-        updates_before: updates0,
-        inputs,
-    };
-    let streamed = stream_rows(&ctx, &mut sink, opts);
-    let updates = match streamed {
-        Ok(u) => u,
-        Err(e) => {
-            let checkpointed = journal.exists();
-            if !checkpointed {
-                match sink {
-                    Sink::Tiff(w) => {
-                        let _ = w.abandon();
-                    }
-                    Sink::Gds(w) => {
-                        let _ = w.abandon();
-                    }
-                    Sink::Png(_) => {}
-                    Sink::Part { .. } => {
-                        let _ = std::fs::remove_file(&data_path);
-                    }
-                    Sink::Fields(f) => f.abandon(),
-                }
+    })
+}
+
+/// What a failed or stopped stream leaves: without a checkpoint the partial files go; with one
+/// they stay, and a failure other than a stop says how to continue.
+fn stopped(sink: Sink, e: Error, journal: &Path, data_path: &Path) -> Error {
+    let checkpointed = journal.exists();
+    if !checkpointed {
+        match sink {
+            Sink::Tiff(w) => {
+                let _ = w.abandon();
             }
-            return Err(match e {
-                Error::Interrupted(_) | Error::Job { .. } => e,
-                other if checkpointed => Error::Interrupted(format!("{other}; stopped with the work so far saved in {}: fix the cause (e.g. free disk space) and run the same command again to continue", journal.display())),
-                other => other,
-            });
+            Sink::Gds(w) => {
+                let _ = w.abandon();
+            }
+            Sink::Png(_) => {}
+            Sink::Part { .. } => {
+                let _ = std::fs::remove_file(data_path);
+            }
+            Sink::Fields(f) => f.abandon(),
         }
-    };
+    }
+    match e {
+        Error::Interrupted(_) | Error::Job { .. } => e,
+        other if checkpointed => Error::Interrupted(format!("{other}; stopped with the work so far saved in {}: fix the cause (e.g. free disk space) and run the same command again to continue", journal.display())),
+        other => other,
+    }
+}
+
+/// Finishes the sink: the plate, layout or PNG with its sidecar, a shard's part with its record,
+/// or the fields with their manifest (a shard's: their record).
+fn finish_sink(
+    spec: &JobSpec,
+    prep: &Prepared,
+    opts: &RunOptions,
+    sink: Sink,
+    [first_row, end_row]: [u32; 2],
+    updates: u64,
+    row_bytes: usize,
+) -> Result<RunSummary> {
     match sink {
-        Sink::Tiff(w) => {
-            let summary = finish_plate(spec, &prep, w, updates)?;
-            let _ = std::fs::remove_file(&journal);
-            Ok(summary)
-        }
-        Sink::Gds(w) => {
-            let summary = super::stream::finish_gds(spec, &prep, w, updates)?;
-            let _ = std::fs::remove_file(&journal);
-            Ok(summary)
-        }
-        Sink::Png(w) => super::stream::finish_png(spec, &prep, w, updates),
+        Sink::Tiff(w) => finish_plate(spec, prep, w, updates),
+        Sink::Gds(w) => super::stream::finish_gds(spec, prep, w, updates),
+        Sink::Png(w) => super::stream::finish_png(spec, prep, w, updates),
         Sink::Part { mut file, path, .. } => {
             file.flush()
                 .and_then(|_| file.get_ref().sync_all())
@@ -293,7 +340,6 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
                 Vec::new(),
                 Some(sha),
             )?;
-            let _ = std::fs::remove_file(&journal);
             Ok(RunSummary {
                 tiff: final_part.clone(),
                 sidecar: part_meta_path(&final_part),
@@ -320,7 +366,6 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
                         entries,
                         None,
                     )?;
-                    let _ = std::fs::remove_file(&journal);
                     Ok(RunSummary {
                         tiff: rec.clone(),
                         sidecar: rec,
@@ -329,11 +374,7 @@ pub fn run_job(spec: &JobSpec, opts: &RunOptions) -> Result<RunSummary> {
                         encoding: prep.encoding.clone(),
                     })
                 }
-                None => {
-                    let summary = finish_fields(spec, &prep, &grid, &entries, updates)?;
-                    let _ = std::fs::remove_file(&journal);
-                    Ok(summary)
-                }
+                None => finish_fields(spec, prep, &grid, &entries, updates),
             }
         }
     }
