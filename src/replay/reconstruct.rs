@@ -95,50 +95,7 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
             let mean = t.iter().sum::<num_complex::Complex64>() / t.len().max(1) as f64;
             let spots = match &pf.spots {
                 Some((design_focal, sp)) if whole => {
-                    // The spots sit in the focal plane of the design's lens (a replay through
-                    // another lens scales them; the figures stay those of the design's), moved
-                    // by the illumination's tilt: f sin t.
-                    let focal = *design_focal;
-                    let tilt = match (req.illumination, &pf.reference) {
-                        (Illumination::Plane(t), _) => t,
-                        (Illumination::Recorded, crate::optics::Reference::Plane { tilt }) => *tilt,
-                        (Illumination::Recorded, _) => [0.0, 0.0],
-                    };
-                    let sp: Vec<crate::synthesis::spots::Spot> = sp
-                        .iter()
-                        .map(|s| crate::synthesis::spots::Spot {
-                            x: s.x + focal * tilt[0].sin(),
-                            y: s.y + focal * tilt[1].sin(),
-                            ..*s
-                        })
-                        .collect();
-                    let sp = &sp;
-                    let ideal =
-                        super::orders::spot_replay(&pf.plate, focal, sp, &t, req.fill_factor);
-                    // Through the optics the correction is for: the plate with its Zernike
-                    // correction taken out again (the aberration cancels it).
-                    let through = pf.correction.as_ref().map(|c| {
-                        let p = &pf.plate;
-                        let w = p.width as usize;
-                        let ta: Vec<num_complex::Complex64> = t
-                            .iter()
-                            .enumerate()
-                            .map(|(k, v)| {
-                                let (r, col) = (k / w, k % w);
-                                let ph =
-                                    c.zernike_phase(p.x_of_col(col as f64), p.y_of_row(r as f64));
-                                v * num_complex::Complex64::from_polar(1.0, -ph)
-                            })
-                            .collect();
-                        super::orders::spot_replay(p, focal, sp, &ta, req.fill_factor)
-                    });
-                    Some(serde_json::json!({
-                        "design_focal_mm": focal * 1e3,
-                        "evaluated_at_um": sp.iter().map(|s| [s.x * 1e6, s.y * 1e6, s.z * 1e6]).collect::<Vec<_>>(),
-                        "where": "each spot where the plate puts it (the sidecar's replayed_at_um, moved by f sin t of the illumination's tilt; a spherical illumination is not followed), in the focal plane of the design's lens whatever --focal-mm says",
-                        "ideal_optics": ideal,
-                        "through_the_corrected_aberration": through,
-                    }))
+                    Some(spot_figures(&pf, req, *design_focal, sp, &t))
                 }
                 _ => None,
             };
@@ -154,88 +111,10 @@ pub fn reconstruct(req: &ReconstructRequest) -> Result<Vec<PathBuf>> {
     // plane, as a plain FFT after fftshift shows it), on which targets are designed.
     let mirrored = req.focal.is_none() && !pf.real_image;
     for img in &images {
-        let (w, h) = (img.grid.nx, img.grid.ny);
-        let drawn: Vec<f32> = if mirrored {
-            img.intensity
-                .chunks_exact(w)
-                .flat_map(|row| row.iter().rev().copied())
-                .collect()
-        } else {
-            img.intensity.clone()
-        };
-        let grid_col = |c: usize| if mirrored { w - 1 - c } else { c };
-        let path = if images.len() == 1 {
-            req.out.clone()
-        } else {
-            let stem = req
-                .out
-                .file_stem()
-                .map(|s| s.to_string_lossy().into_owned())
-                .unwrap_or_else(|| "replay".into());
-            req.out
-                .with_file_name(format!("{stem}-z{:.3}mm.png", img.distance * 1e3))
-        };
-        metrics::write_png(&path, w, h, &drawn, req.scale, req.bits)?;
-        written.push(path.clone());
-        let pk: Vec<metrics::Peak> = metrics::peaks(w, h, &drawn, req.peaks, 0.05)
-            .into_iter()
-            .map(|(c, r, rel)| metrics::Peak {
-                col: c,
-                row: r,
-                x_mm: (img.centre[0] + img.grid.x_of_col(grid_col(c))) * 1e3,
-                y_mm: (img.centre[1] + img.grid.y_of_row(r)) * 1e3,
-                relative: rel,
-            })
-            .collect();
-        let region = match req.region {
-            Some(rg) => {
-                Some(metrics::region_stats(w, h, &drawn, rg).map_err(|m| Error::job(&req.tif, m))?)
-            }
-            None => None,
-        };
-        let cmp = match &target {
-            Some((tw, th, t)) => {
-                if (*tw, *th) != (w, h) {
-                    return Err(Error::input(
-                        req.target.as_ref().unwrap(),
-                        format!("is {tw} x {th} px; the replay image is {w} x {h}"),
-                    ));
-                }
-                Some(metrics::compare(w, h, &drawn, t, req.region))
-            }
-            None => None,
-        };
-        // A target of isolated lit pixels is a spot array: figures per spot.
-        let spots = match &target {
-            Some((tw, _, t)) if *tw == w => {
-                metrics::spot_target(w, h, t).map(|sp| metrics::spot_stats(w, &drawn, &sp))
-            }
-            _ => None,
-        };
-        let orders = req.focal.map(|_| {
-            let (zero, twin) =
-                super::orders::orders(w, h, &drawn, mean_t, req.region, req.fill_factor);
-            serde_json::json!({
-                "zero_order": zero,
-                "twin": twin,
-                "fill_factor": req.fill_factor,
-                "what": "zero order: the undiffracted light on the optical axis (a carrier moves the image, not it); twin: the conjugate image, point-mirrored through the axis (as strong as the image for binary phase, weak for many levels); with a fill factor F the zero order is |F mean(t) + 1 - F|^2 of the incident power and designed light keeps F^2",
-            })
-        });
-        planes.push(serde_json::json!({
-            "image": path.file_name().map(|f| f.to_string_lossy().into_owned()),
-            "distance_mm": if req.focal.is_some() { None } else { Some(img.distance * 1e3) },
-            "focal_mm": req.focal.map(|f| f * 1e3),
-            "width_px": w, "height_px": h,
-            "pitch_um": [img.grid.pitch[0] * 1e6, img.grid.pitch[1] * 1e6],
-            "centre_mm": [img.centre[0] * 1e3, img.centre[1] * 1e3],
-            "total_power": img.intensity.iter().map(|&v| v as f64).sum::<f64>() * img.grid.pixel_area(),
-            "peaks": pk,
-            "region": region,
-            "target": cmp,
-            "spots": spots,
-            "orders": orders,
-        }));
+        let (path, plane) =
+            plane_report(req, img, images.len(), mirrored, target.as_ref(), mean_t)?;
+        written.push(path);
+        planes.push(plane);
     }
     let mut oversampled = None;
     if let (Some(k), Some(f)) = (req.oversample, req.focal) {
@@ -385,4 +264,151 @@ fn head_bytes(p: &std::path::Path) -> std::io::Result<Vec<u8>> {
     let mut v = Vec::new();
     std::fs::File::open(p)?.take(4096).read_to_end(&mut v)?;
     Ok(v)
+}
+
+/// The figures of a spot-list plate replayed whole through a Fourier lens, read off its lit
+/// samples `t`: in ideal optics, and through the aberration its correction is for.
+fn spot_figures(
+    pf: &PlateFile,
+    req: &ReconstructRequest,
+    design_focal: f64,
+    sp: &[crate::synthesis::spots::Spot],
+    t: &[num_complex::Complex64],
+) -> serde_json::Value {
+    // The spots sit in the focal plane of the design's lens (a replay through
+    // another lens scales them; the figures stay those of the design's), moved
+    // by the illumination's tilt: f sin t.
+    let focal = design_focal;
+    let tilt = match (req.illumination, &pf.reference) {
+        (Illumination::Plane(t), _) => t,
+        (Illumination::Recorded, crate::optics::Reference::Plane { tilt }) => *tilt,
+        (Illumination::Recorded, _) => [0.0, 0.0],
+    };
+    let sp: Vec<crate::synthesis::spots::Spot> = sp
+        .iter()
+        .map(|s| crate::synthesis::spots::Spot {
+            x: s.x + focal * tilt[0].sin(),
+            y: s.y + focal * tilt[1].sin(),
+            ..*s
+        })
+        .collect();
+    let sp = &sp;
+    let ideal = super::orders::spot_replay(&pf.plate, focal, sp, t, req.fill_factor);
+    // Through the optics the correction is for: the plate with its Zernike
+    // correction taken out again (the aberration cancels it).
+    let through = pf.correction.as_ref().map(|c| {
+        let p = &pf.plate;
+        let w = p.width as usize;
+        let ta: Vec<num_complex::Complex64> = t
+            .iter()
+            .enumerate()
+            .map(|(k, v)| {
+                let (r, col) = (k / w, k % w);
+                let ph = c.zernike_phase(p.x_of_col(col as f64), p.y_of_row(r as f64));
+                v * num_complex::Complex64::from_polar(1.0, -ph)
+            })
+            .collect();
+        super::orders::spot_replay(p, focal, sp, &ta, req.fill_factor)
+    });
+    serde_json::json!({
+        "design_focal_mm": focal * 1e3,
+        "evaluated_at_um": sp.iter().map(|s| [s.x * 1e6, s.y * 1e6, s.z * 1e6]).collect::<Vec<_>>(),
+        "where": "each spot where the plate puts it (the sidecar's replayed_at_um, moved by f sin t of the illumination's tilt; a spherical illumination is not followed), in the focal plane of the design's lens whatever --focal-mm says",
+        "ideal_optics": ideal,
+        "through_the_corrected_aberration": through,
+    })
+}
+
+/// One replayed plane: drawn (mirrored for depth replays), written as PNG, and its metrics
+/// (peaks, region, target comparison, spot array, orders of Fourier replays).
+fn plane_report(
+    req: &ReconstructRequest,
+    img: &super::ReplayImage,
+    planes: usize,
+    mirrored: bool,
+    target: Option<&(usize, usize, Vec<f64>)>,
+    mean_t: num_complex::Complex64,
+) -> Result<(PathBuf, serde_json::Value)> {
+    let (w, h) = (img.grid.nx, img.grid.ny);
+    let drawn: Vec<f32> = if mirrored {
+        img.intensity
+            .chunks_exact(w)
+            .flat_map(|row| row.iter().rev().copied())
+            .collect()
+    } else {
+        img.intensity.clone()
+    };
+    let grid_col = |c: usize| if mirrored { w - 1 - c } else { c };
+    let path = if planes == 1 {
+        req.out.clone()
+    } else {
+        let stem = req
+            .out
+            .file_stem()
+            .map(|s| s.to_string_lossy().into_owned())
+            .unwrap_or_else(|| "replay".into());
+        req.out
+            .with_file_name(format!("{stem}-z{:.3}mm.png", img.distance * 1e3))
+    };
+    metrics::write_png(&path, w, h, &drawn, req.scale, req.bits)?;
+    let pk: Vec<metrics::Peak> = metrics::peaks(w, h, &drawn, req.peaks, 0.05)
+        .into_iter()
+        .map(|(c, r, rel)| metrics::Peak {
+            col: c,
+            row: r,
+            x_mm: (img.centre[0] + img.grid.x_of_col(grid_col(c))) * 1e3,
+            y_mm: (img.centre[1] + img.grid.y_of_row(r)) * 1e3,
+            relative: rel,
+        })
+        .collect();
+    let region = match req.region {
+        Some(rg) => {
+            Some(metrics::region_stats(w, h, &drawn, rg).map_err(|m| Error::job(&req.tif, m))?)
+        }
+        None => None,
+    };
+    let cmp = match target {
+        Some((tw, th, t)) => {
+            if (*tw, *th) != (w, h) {
+                return Err(Error::input(
+                    req.target.as_ref().unwrap(),
+                    format!("is {tw} x {th} px; the replay image is {w} x {h}"),
+                ));
+            }
+            Some(metrics::compare(w, h, &drawn, t, req.region))
+        }
+        None => None,
+    };
+    // A target of isolated lit pixels is a spot array: figures per spot.
+    let spots = match target {
+        Some((tw, _, t)) if *tw == w => {
+            metrics::spot_target(w, h, t).map(|sp| metrics::spot_stats(w, &drawn, &sp))
+        }
+        _ => None,
+    };
+    let orders = req.focal.map(|_| {
+        let (zero, twin) =
+            super::orders::orders(w, h, &drawn, mean_t, req.region, req.fill_factor);
+        serde_json::json!({
+            "zero_order": zero,
+            "twin": twin,
+            "fill_factor": req.fill_factor,
+            "what": "zero order: the undiffracted light on the optical axis (a carrier moves the image, not it); twin: the conjugate image, point-mirrored through the axis (as strong as the image for binary phase, weak for many levels); with a fill factor F the zero order is |F mean(t) + 1 - F|^2 of the incident power and designed light keeps F^2",
+        })
+    });
+    let report = serde_json::json!({
+        "image": path.file_name().map(|f| f.to_string_lossy().into_owned()),
+        "distance_mm": if req.focal.is_some() { None } else { Some(img.distance * 1e3) },
+        "focal_mm": req.focal.map(|f| f * 1e3),
+        "width_px": w, "height_px": h,
+        "pitch_um": [img.grid.pitch[0] * 1e6, img.grid.pitch[1] * 1e6],
+        "centre_mm": [img.centre[0] * 1e3, img.centre[1] * 1e3],
+        "total_power": img.intensity.iter().map(|&v| v as f64).sum::<f64>() * img.grid.pixel_area(),
+        "peaks": pk,
+        "region": region,
+        "target": cmp,
+        "spots": spots,
+        "orders": orders,
+    });
+    Ok((path, report))
 }
