@@ -142,209 +142,37 @@ impl PlateFile {
         let sc = sidecar_of(tif);
         let side = Sidecar::read(&sc)?;
         let h = &side.hologram;
-        let positive = |v: f64, key: &str| -> Result<f64> {
-            if v.is_finite() && v > 0.0 {
-                Ok(v)
-            } else {
-                Err(Error::input(
-                    &sc,
-                    format!("sidecar field {key} = {v} must be > 0"),
-                ))
-            }
-        };
         let plate = Plate {
             width: h.width_px,
             height: h.height_px,
             pitch: [
-                positive(h.pitch_um[0], "hologram.pitch_um")? * 1e-6,
-                positive(h.pitch_um[1], "hologram.pitch_um")? * 1e-6,
+                positive(&sc, h.pitch_um[0], "hologram.pitch_um")? * 1e-6,
+                positive(&sc, h.pitch_um[1], "hologram.pitch_um")? * 1e-6,
             ],
-            wavelength: positive(h.wavelength_nm, "hologram.wavelength_nm")? * 1e-9,
-        };
-        let finite = |v: &[f64], key: &str| -> Result<()> {
-            if v.iter().all(|x| x.is_finite()) {
-                Ok(())
-            } else {
-                Err(Error::input(
-                    &sc,
-                    format!("sidecar field {key} is not finite"),
-                ))
-            }
+            wavelength: positive(&sc, h.wavelength_nm, "hologram.wavelength_nm")? * 1e-9,
         };
         let reference = match side.reference {
             ReferenceRecord::Plane { tilt_deg } => {
-                finite(&tilt_deg, "reference.tilt_deg")?;
+                finite(&sc, &tilt_deg, "reference.tilt_deg")?;
                 Reference::Plane {
                     tilt: tilt_deg.map(f64::to_radians),
                 }
             }
             ReferenceRecord::Spherical { position_mm } => {
-                finite(&position_mm, "reference.position_mm")?;
+                finite(&sc, &position_mm, "reference.position_mm")?;
                 Reference::Spherical {
                     position: position_mm.map(|v| v * 1e-3),
                 }
             }
         };
-        let encoding = match side.encoding {
-            EncodingRecord::Phase {
-                levels,
-                calibration,
-                ..
-            } => match calibration {
-                None => Encoding::Phase { levels },
-                Some(c) => {
-                    let calibration = crate::encoding::Calibration::new(c.table, levels, c.source)
-                        .map_err(|m| Error::input(&sc, format!("encoding.calibration: {m}")))?;
-                    if calibration.level_to_grey != c.level_to_grey {
-                        return Err(Error::input(
-                            &sc,
-                            "encoding.calibration.level_to_grey does not follow from its table by this version's rule; replay the plate with the version that wrote it",
-                        ));
-                    }
-                    Encoding::CalibratedPhase {
-                        levels,
-                        calibration: std::sync::Arc::new(calibration),
-                    }
-                }
-            },
-            EncodingRecord::BinaryPhase { .. } => Encoding::BinaryPhase,
-            EncodingRecord::BinaryAmplitude { .. } => Encoding::BinaryAmplitude,
-            EncodingRecord::Amplitude {
-                bits_per_sample,
-                bipolar_scale,
-                ..
-            } => Encoding::Amplitude {
-                bits: bits_per_sample,
-                scale: positive(bipolar_scale, "encoding.bipolar_scale")?,
-            },
-        };
-        let fields = match &side.output {
-            OutputFiles::Gdsii { .. } | OutputFiles::Png { .. } => {
-                return Err(Error::unsupported(
-                    tif,
-                    "is a GDSII layout or a panel PNG; reconstruct replays TIFF plates (run the same job with [output] format = \"tiff\": the samples are the same)",
-                ))
-            }
-            OutputFiles::Tiff { .. } => {
-                check_tiff_size(tif, [plate.width, plate.height], encoding.bits_per_sample())?;
-                Vec::new()
-            }
-            OutputFiles::Fields {
-                fields_manifest, ..
-            } => {
-                let name = fields_manifest
-                    .as_deref()
-                    .ok_or_else(|| Error::input(&sc, "output.fields_manifest is missing"))?;
-                let mp = tif.with_file_name(name);
-                let bytes = std::fs::read(&mp).map_err(|e| Error::io(&mp, e))?;
-                if let OutputFiles::Fields {
-                    fields_manifest_sha256: Some(want),
-                    ..
-                } = &side.output
-                {
-                    use sha2::Digest;
-                    let got: String = sha2::Sha256::digest(&bytes)
-                        .iter()
-                        .map(|b| format!("{b:02x}"))
-                        .collect();
-                    if &got != want {
-                        return Err(Error::input(
-                            &mp,
-                            format!("is not the manifest its sidecar {} describes (SHA-256 differs): a manifest and a sidecar of different runs; run the job again", sc.display()),
-                        ));
-                    }
-                }
-                let m: FieldsManifest = serde_json::from_slice(&bytes)
-                    .map_err(|e| Error::input(&mp, format!("not a fields manifest: {e}")))?;
-                if m.format != "fringemill-fields" || m.plate_px != [plate.width, plate.height] {
-                    return Err(Error::input(
-                        &mp,
-                        format!(
-                            "not the fields manifest of this {} x {} plate",
-                            plate.width, plate.height
-                        ),
-                    ));
-                }
-                // The fields must tile the plate exactly, each file of its stated size.
-                let mut covered = 0u64;
-                for f in &m.fields {
-                    let fits = f.first_px[0] as u64 + f.size_px[0] as u64 <= plate.width as u64
-                        && f.first_px[1] as u64 + f.size_px[1] as u64 <= plate.height as u64;
-                    if !fits || f.file.contains('/') || f.file.contains('\\') {
-                        return Err(Error::input(
-                            &mp,
-                            format!("field {} leaves the plate", f.file),
-                        ));
-                    }
-                    check_tiff_size(
-                        &tif.with_file_name(&f.file),
-                        f.size_px,
-                        encoding.bits_per_sample(),
-                    )?;
-                    covered += f.size_px[0] as u64 * f.size_px[1] as u64;
-                }
-                if covered != plate.pixels() {
-                    return Err(Error::input(&mp, "the fields do not cover the plate once"));
-                }
-                m.fields
-            }
-        };
+        let encoding = read_encoding(&sc, side.encoding.clone())?;
+        let fields = read_fields(tif, &sc, &side, &plate, &encoding)?;
         let real_image = side
             .iterative
             .as_ref()
             .is_some_and(|i| i.geometry == "fresnel");
-        let spots = match side.iterative.as_ref().map(|i| (i.focal_mm, &i.spots)) {
-            Some((Some(f), Some(sp))) => {
-                let f = positive(f, "iterative.focal_mm")? * 1e-3;
-                let mut v = Vec::with_capacity(sp.spots.len());
-                for s in &sp.spots {
-                    let [x, y, z] = s.replayed_at_um;
-                    finite(&[x, y, z, s.weight], "iterative.spots")?;
-                    v.push(crate::synthesis::spots::Spot {
-                        x: x / 1e6,
-                        y: y / 1e6,
-                        z: z / 1e6,
-                        weight: positive(s.weight, "iterative.spots weight")?,
-                        phase: s.phase_rad,
-                    });
-                }
-                Some((f, v))
-            }
-            _ => None,
-        };
-        let correction = match side.iterative.as_ref().and_then(|i| i.correction.as_ref()) {
-            Some(c) if !c.zernike.is_empty() => {
-                let mut terms = Vec::new();
-                for t in &c.zernike {
-                    if t[0].fract() != 0.0 || t[1].fract() != 0.0 || t[0] < 0.0 || t[1].abs() > 1e3
-                    {
-                        return Err(Error::input(
-                            &sc,
-                            format!("sidecar iterative.correction.zernike: n = {} and m = {} must be whole numbers", t[0], t[1]),
-                        ));
-                    }
-                    let term = crate::optics::zernike::ZernikeTerm::new(
-                        t[0] as u32,
-                        t[1] as i32,
-                        t[2],
-                        "sidecar iterative.correction.zernike",
-                    )
-                    .map_err(|m| Error::input(&sc, m))?;
-                    terms.push(term);
-                }
-                finite(&c.pupil_centre_mm, "iterative.correction.pupil_centre_mm")?;
-                Some(crate::optics::zernike::Correction {
-                    terms,
-                    pupil_radius: positive(
-                        c.pupil_radius_mm,
-                        "iterative.correction.pupil_radius_mm",
-                    )? * 1e-3,
-                    pupil_centre: c.pupil_centre_mm.map(|v| v * 1e-3),
-                    map: None,
-                })
-            }
-            _ => None,
-        };
+        let spots = read_spots(&sc, &side)?;
+        let correction = read_correction(&sc, &side)?;
         Ok(PlateFile {
             tif: tif.to_path_buf(),
             plate,
@@ -493,4 +321,222 @@ fn check_tiff_size(tif: &Path, size: [u32; 2], bits: u8) -> Result<()> {
         Err(e) => return Err(Error::input(tif, format!("unreadable sample layout: {e}"))),
     }
     Ok(())
+}
+
+/// `v` if finite and > 0, else the sidecar's error naming the key.
+fn positive(sc: &Path, v: f64, key: &str) -> Result<f64> {
+    if v.is_finite() && v > 0.0 {
+        Ok(v)
+    } else {
+        Err(Error::input(
+            sc,
+            format!("sidecar field {key} = {v} must be > 0"),
+        ))
+    }
+}
+
+/// Every value finite, else the sidecar's error naming the key.
+fn finite(sc: &Path, v: &[f64], key: &str) -> Result<()> {
+    if v.iter().all(|x| x.is_finite()) {
+        Ok(())
+    } else {
+        Err(Error::input(
+            sc,
+            format!("sidecar field {key} is not finite"),
+        ))
+    }
+}
+
+/// The encoding a sidecar records (a calibration rebuilt and checked against its map).
+fn read_encoding(sc: &Path, rec: EncodingRecord) -> Result<Encoding> {
+    Ok(match rec {
+        EncodingRecord::Phase {
+            levels,
+            calibration,
+            ..
+        } => match calibration {
+            None => Encoding::Phase { levels },
+            Some(c) => {
+                let calibration = crate::encoding::Calibration::new(c.table, levels, c.source)
+                    .map_err(|m| Error::input(sc, format!("encoding.calibration: {m}")))?;
+                if calibration.level_to_grey != c.level_to_grey {
+                    return Err(Error::input(
+                        sc,
+                        "encoding.calibration.level_to_grey does not follow from its table by this version's rule; replay the plate with the version that wrote it",
+                    ));
+                }
+                Encoding::CalibratedPhase {
+                    levels,
+                    calibration: std::sync::Arc::new(calibration),
+                }
+            }
+        },
+        EncodingRecord::BinaryPhase { .. } => Encoding::BinaryPhase,
+        EncodingRecord::BinaryAmplitude { .. } => Encoding::BinaryAmplitude,
+        EncodingRecord::Amplitude {
+            bits_per_sample,
+            bipolar_scale,
+            ..
+        } => Encoding::Amplitude {
+            bits: bits_per_sample,
+            scale: positive(sc, bipolar_scale, "encoding.bipolar_scale")?,
+        },
+    })
+}
+
+/// The field files of a plate written as fields (the manifest checked against the sidecar and
+/// the plate), or none for a single TIFF (its size checked); GDSII and PNG are refused.
+fn read_fields(
+    tif: &Path,
+    sc: &Path,
+    side: &Sidecar,
+    plate: &Plate,
+    encoding: &Encoding,
+) -> Result<Vec<FieldFile>> {
+    Ok(match &side.output {
+        OutputFiles::Gdsii { .. } | OutputFiles::Png { .. } => {
+            return Err(Error::unsupported(
+                tif,
+                "is a GDSII layout or a panel PNG; reconstruct replays TIFF plates (run the same job with [output] format = \"tiff\": the samples are the same)",
+            ))
+        }
+        OutputFiles::Tiff { .. } => {
+            check_tiff_size(tif, [plate.width, plate.height], encoding.bits_per_sample())?;
+            Vec::new()
+        }
+        OutputFiles::Fields {
+            fields_manifest, ..
+        } => {
+            let name = fields_manifest
+                .as_deref()
+                .ok_or_else(|| Error::input(sc, "output.fields_manifest is missing"))?;
+            let mp = tif.with_file_name(name);
+            let bytes = std::fs::read(&mp).map_err(|e| Error::io(&mp, e))?;
+            if let OutputFiles::Fields {
+                fields_manifest_sha256: Some(want),
+                ..
+            } = &side.output
+            {
+                use sha2::Digest;
+                let got: String = sha2::Sha256::digest(&bytes)
+                    .iter()
+                    .map(|b| format!("{b:02x}"))
+                    .collect();
+                if &got != want {
+                    return Err(Error::input(
+                        &mp,
+                        format!("is not the manifest its sidecar {} describes (SHA-256 differs): a manifest and a sidecar of different runs; run the job again", sc.display()),
+                    ));
+                }
+            }
+            let m: FieldsManifest = serde_json::from_slice(&bytes)
+                .map_err(|e| Error::input(&mp, format!("not a fields manifest: {e}")))?;
+            if m.format != "fringemill-fields" || m.plate_px != [plate.width, plate.height] {
+                return Err(Error::input(
+                    &mp,
+                    format!(
+                        "not the fields manifest of this {} x {} plate",
+                        plate.width, plate.height
+                    ),
+                ));
+            }
+            // The fields must tile the plate exactly, each file of its stated size.
+            let mut covered = 0u64;
+            for f in &m.fields {
+                let fits = f.first_px[0] as u64 + f.size_px[0] as u64 <= plate.width as u64
+                    && f.first_px[1] as u64 + f.size_px[1] as u64 <= plate.height as u64;
+                if !fits || f.file.contains('/') || f.file.contains('\\') {
+                    return Err(Error::input(
+                        &mp,
+                        format!("field {} leaves the plate", f.file),
+                    ));
+                }
+                check_tiff_size(
+                    &tif.with_file_name(&f.file),
+                    f.size_px,
+                    encoding.bits_per_sample(),
+                )?;
+                covered += f.size_px[0] as u64 * f.size_px[1] as u64;
+            }
+            if covered != plate.pixels() {
+                return Err(Error::input(&mp, "the fields do not cover the plate once"));
+            }
+            m.fields
+        }
+    })
+}
+
+/// The spots of a spot-list plate (design focal length, spots where the plate puts them).
+fn read_spots(
+    sc: &Path,
+    side: &Sidecar,
+) -> Result<Option<(f64, Vec<crate::synthesis::spots::Spot>)>> {
+    Ok(
+        match side.iterative.as_ref().map(|i| (i.focal_mm, &i.spots)) {
+            Some((Some(f), Some(sp))) => {
+                let f = positive(sc, f, "iterative.focal_mm")? * 1e-3;
+                let mut v = Vec::with_capacity(sp.spots.len());
+                for s in &sp.spots {
+                    let [x, y, z] = s.replayed_at_um;
+                    finite(sc, &[x, y, z, s.weight], "iterative.spots")?;
+                    v.push(crate::synthesis::spots::Spot {
+                        x: x / 1e6,
+                        y: y / 1e6,
+                        z: z / 1e6,
+                        weight: positive(sc, s.weight, "iterative.spots weight")?,
+                        phase: s.phase_rad,
+                    });
+                }
+                Some((f, v))
+            }
+            _ => None,
+        },
+    )
+}
+
+/// The Zernike correction an iterative plate carries (its map is not replayed).
+fn read_correction(
+    sc: &Path,
+    side: &Sidecar,
+) -> Result<Option<crate::optics::zernike::Correction>> {
+    Ok(
+        match side.iterative.as_ref().and_then(|i| i.correction.as_ref()) {
+            Some(c) if !c.zernike.is_empty() => {
+                let mut terms = Vec::new();
+                for t in &c.zernike {
+                    if t[0].fract() != 0.0 || t[1].fract() != 0.0 || t[0] < 0.0 || t[1].abs() > 1e3
+                    {
+                        return Err(Error::input(
+                        sc,
+                        format!("sidecar iterative.correction.zernike: n = {} and m = {} must be whole numbers", t[0], t[1]),
+                    ));
+                    }
+                    let term = crate::optics::zernike::ZernikeTerm::new(
+                        t[0] as u32,
+                        t[1] as i32,
+                        t[2],
+                        "sidecar iterative.correction.zernike",
+                    )
+                    .map_err(|m| Error::input(sc, m))?;
+                    terms.push(term);
+                }
+                finite(
+                    sc,
+                    &c.pupil_centre_mm,
+                    "iterative.correction.pupil_centre_mm",
+                )?;
+                Some(crate::optics::zernike::Correction {
+                    terms,
+                    pupil_radius: positive(
+                        sc,
+                        c.pupil_radius_mm,
+                        "iterative.correction.pupil_radius_mm",
+                    )? * 1e-3,
+                    pupil_centre: c.pupil_centre_mm.map(|v| v * 1e-3),
+                    map: None,
+                })
+            }
+            _ => None,
+        },
+    )
 }
