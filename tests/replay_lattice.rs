@@ -475,12 +475,12 @@ fn carrier_moves_the_replay_by_whole_samples() {
     assert!(in_spots / total > 0.7, "efficiency {}", in_spots / total);
 }
 
-/// `cell_px` larger than the plate is refused (it cannot repeat over it), by `plan` and `run`.
-#[test]
-fn cell_larger_than_the_plate_is_refused() {
+/// `plan` and `run` both refuse the spot job with `extra` in one line holding every `needle`,
+/// and no plate is written.
+fn refused_by_plan_and_run(extra: &str, needles: &[&str]) {
     let d = tempfile::tempdir().unwrap();
     spot_target(d.path());
-    let job = spot_job(d.path(), 128, "cell_px = [128, 192]");
+    let job = spot_job(d.path(), 128, extra);
     for cmd in ["plan", "run"] {
         let o = Command::new(BIN)
             .args([cmd, job.to_str().unwrap()])
@@ -488,36 +488,26 @@ fn cell_larger_than_the_plate_is_refused() {
             .unwrap();
         let e = String::from_utf8_lossy(&o.stderr);
         assert!(!o.status.success(), "{cmd} accepted it");
-        assert!(e.contains("cell_px") && e.contains("larger than"), "{e}");
+        assert!(needles.iter().all(|n| e.contains(n)), "{e}");
         assert_eq!(e.trim().lines().count(), 1, "{e}");
     }
     assert!(!d.path().join("p.tif").exists());
+}
+
+/// `cell_px` larger than the plate is refused (it cannot repeat over it), by `plan` and `run`.
+#[test]
+fn cell_larger_than_the_plate_is_refused() {
+    refused_by_plan_and_run("cell_px = [128, 192]", &["cell_px", "larger than"]);
 }
 
 /// A target that does not fit the cell's replay lattice is refused by `plan` as by `run`, in
 /// one line naming the job, the key and the image.
 #[test]
 fn target_outside_the_cell_is_refused_by_plan_and_run() {
-    let d = tempfile::tempdir().unwrap();
-    spot_target(d.path());
-    let job = spot_job(d.path(), 128, "cell_px = [16, 16]");
-    for cmd in ["plan", "run"] {
-        let o = Command::new(BIN)
-            .args([cmd, job.to_str().unwrap()])
-            .output()
-            .unwrap();
-        let e = String::from_utf8_lossy(&o.stderr);
-        assert!(!o.status.success(), "{cmd} accepted it");
-        assert!(
-            e.contains("job.toml")
-                && e.contains("image")
-                && e.contains("spots.png")
-                && e.contains("does not fit the 16 x 16"),
-            "{e}"
-        );
-        assert_eq!(e.trim().lines().count(), 1, "{e}");
-    }
-    assert!(!d.path().join("p.tif").exists());
+    refused_by_plan_and_run(
+        "cell_px = [16, 16]",
+        &["job.toml", "image", "spots.png", "does not fit the 16 x 16"],
+    );
 }
 
 /// An iterative plate in Fresnel geometry is designed for a real image at +D: a lab's own

@@ -13,28 +13,7 @@ use crate::error::{Error, Result};
 use crate::optics::Plate;
 use crate::output::tiff::{StripWriter, TiffLayout, WriterState};
 
-/// One finished field.
-#[derive(Clone, Debug, Serialize, Deserialize, PartialEq)]
-pub struct FieldEntry {
-    /// File name (in the output's folder).
-    pub file: String,
-    /// Field row (0 = top).
-    pub row: u32,
-    /// Field column (0 = left).
-    pub col: u32,
-    /// Plate pixel of the field's top-left pixel: [column, row].
-    pub first_px: [u32; 2],
-    /// Size in pixels [w, h].
-    pub size_px: [u32; 2],
-    /// Plate coordinates of the field's top-left corner (pixel edge, not centre), mm: [x, y], y up.
-    pub origin_mm: [f64; 2],
-    /// Physical size [w, h], mm.
-    pub size_mm: [f64; 2],
-    /// File size.
-    pub bytes: u64,
-    /// SHA-256 of the file.
-    pub sha256: String,
-}
+pub use crate::output::manifest::FieldEntry;
 
 /// Resume state of a field run: fields done and the writers of the field row in progress.
 #[derive(Clone, Debug, Serialize, Deserialize, PartialEq, Default)]
@@ -270,24 +249,25 @@ impl FieldSink {
     }
 }
 
-/// The manifest JSON of a finished field set.
-pub fn manifest_json(
+/// The manifest of a finished field set.
+pub fn manifest(
     grid: &FieldGrid,
     entries: &[FieldEntry],
     job_sha256: &str,
-) -> serde_json::Value {
+) -> crate::output::manifest::FieldsManifest {
     let n = grid.counts();
-    serde_json::json!({
-        "format": "fringemill-fields",
-        "format_version": 1,
-        "job_sha256": job_sha256,
-        "plate_px": [grid.plate.width, grid.plate.height],
-        "pitch_um": [grid.plate.pitch[0] * 1e6, grid.plate.pitch[1] * 1e6],
-        "field_px": grid.field,
-        "fields_x": n[0], "fields_y": n[1],
-        "origin_convention": "origin_mm is the field's top-left corner in plate coordinates (x right, y up, plate centre at 0)",
-        "fields": entries,
-    })
+    crate::output::manifest::FieldsManifest {
+        format: crate::output::manifest::FORMAT.into(),
+        format_version: 1,
+        job_sha256: job_sha256.into(),
+        plate_px: [grid.plate.width, grid.plate.height],
+        pitch_um: [grid.plate.pitch[0] * 1e6, grid.plate.pitch[1] * 1e6],
+        field_px: grid.field,
+        fields_x: n[0],
+        fields_y: n[1],
+        origin_convention: "origin_mm is the field's top-left corner in plate coordinates (x right, y up, plate centre at 0)".into(),
+        fields: entries.to_vec(),
+    }
 }
 
 /// Checks a field size against the plate: each side at least 1.

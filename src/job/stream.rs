@@ -10,7 +10,7 @@ use std::time::Instant;
 use num_complex::Complex64;
 use rayon::prelude::*;
 
-use super::fields::{manifest_json, FieldEntry, FieldGrid, FieldSink, FieldsState};
+use super::fields::{FieldEntry, FieldGrid, FieldSink, FieldsState};
 use super::journal::{Journal, FORMAT};
 use super::prepare::{sidecar_path, Prepared};
 use super::progress::Progress;
@@ -383,9 +383,7 @@ pub(super) fn finish_fields(
     updates: u64,
 ) -> Result<RunSummary> {
     let manifest = grid.manifest_path();
-    let text = serde_json::to_string_pretty(&manifest_json(grid, entries, &spec.sha256))
-        .expect("plain data")
-        + "\n";
+    let text = super::fields::manifest(grid, entries, &spec.sha256).to_text() + "\n";
     let manifest_sha256: String = {
         use sha2::Digest;
         sha2::Sha256::digest(text.as_bytes())

@@ -7,6 +7,7 @@ pub mod atomic;
 pub mod chunks;
 pub mod gdsii;
 pub mod guard;
+pub mod manifest;
 pub mod panel_png;
 pub mod sidecar;
 pub mod tiff;

@@ -38,8 +38,9 @@ pub struct PlateFile {
     pub correction: Option<crate::optics::zernike::Correction>,
 }
 
-/// One field file of a plate written as fields, from the fields manifest.
-#[derive(Clone, Debug, PartialEq, Eq, serde::Deserialize)]
+/// One field file of a plate written as fields: what replay takes of the manifest's entry
+/// ([`crate::output::manifest::FieldEntry`]).
+#[derive(Clone, Debug, PartialEq, Eq)]
 pub struct FieldFile {
     /// File name, beside the manifest.
     pub file: String,
@@ -48,16 +49,7 @@ pub struct FieldFile {
     /// Its size [columns, rows].
     pub size_px: [u32; 2],
     /// SHA-256 of the file, as the manifest records it.
-    #[serde(default)]
     pub sha256: String,
-}
-
-/// The part of the fields manifest replay reads.
-#[derive(serde::Deserialize)]
-struct FieldsManifest {
-    format: String,
-    plate_px: [u32; 2],
-    fields: Vec<FieldFile>,
 }
 
 /// A rectangle of plate pixels: first column, first row, width, height.
@@ -429,9 +421,9 @@ fn read_fields(
                     ));
                 }
             }
-            let m: FieldsManifest = serde_json::from_slice(&bytes)
+            let m: crate::output::manifest::FieldsManifest = serde_json::from_slice(&bytes)
                 .map_err(|e| Error::input(&mp, format!("not a fields manifest: {e}")))?;
-            if m.format != "fringemill-fields" || m.plate_px != [plate.width, plate.height] {
+            if m.format != crate::output::manifest::FORMAT || m.plate_px != [plate.width, plate.height] {
                 return Err(Error::input(
                     &mp,
                     format!(
@@ -462,6 +454,14 @@ fn read_fields(
                 return Err(Error::input(&mp, "the fields do not cover the plate once"));
             }
             m.fields
+                .into_iter()
+                .map(|f| FieldFile {
+                    file: f.file,
+                    first_px: f.first_px,
+                    size_px: f.size_px,
+                    sha256: f.sha256,
+                })
+                .collect()
         }
     })
 }
