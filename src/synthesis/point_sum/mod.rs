@@ -447,37 +447,7 @@ impl PointSum {
             for ch in &self.channels {
                 scratch.re.fill(0.0);
                 scratch.im.fill(0.0);
-                match ch.reference {
-                    Reference::Plane { .. } => {
-                        let d = ch.reference.direction(0.0, y);
-                        scratch.ref_dir_x.fill(d[0]);
-                        scratch.ref_dir_y.fill(d[1]);
-                    }
-                    Reference::Spherical { .. } => {
-                        for c in 0..w {
-                            let d = ch.reference.direction(self.xs[c], y);
-                            scratch.ref_dir_x[c] = d[0];
-                            scratch.ref_dir_y[c] = d[1];
-                        }
-                    }
-                }
-                if fast {
-                    for (d, s) in scratch.rdx32.iter_mut().zip(&scratch.ref_dir_x) {
-                        *d = *s as f32;
-                    }
-                    for (d, s) in scratch.rdy32.iter_mut().zip(&scratch.ref_dir_y) {
-                        *d = *s as f32;
-                    }
-                }
-                let mut ref_step = [0.0f64; 2];
-                if fast && matches!(ch.reference, Reference::Spherical { .. }) {
-                    for c in 1..w {
-                        ref_step[0] = ref_step[0]
-                            .max((scratch.ref_dir_x[c] - scratch.ref_dir_x[c - 1]).abs());
-                        ref_step[1] = ref_step[1]
-                            .max((scratch.ref_dir_y[c] - scratch.ref_dir_y[c - 1]).abs());
-                    }
-                }
+                let ref_step = self.reference_directions(&ch.reference, y, fast, scratch);
                 let r32 = Row32 {
                     rdx: &scratch.rdx32,
                     rdy: &scratch.rdy32,
@@ -485,7 +455,6 @@ impl PointSum {
                     ref_step,
                     poly_min_distance: self.poly_min_distance,
                 };
-                let (wx, wy) = self.row_window(&ch.reference, y);
                 let inputs = RowInputs {
                     xs: &self.xs,
                     rdx: &scratch.ref_dir_x,
@@ -494,102 +463,20 @@ impl PointSum {
                     inv_lambda,
                     taper_start: self.taper_start,
                 };
-                let (re, im) = (&mut scratch.re, &mut scratch.im);
-                let (re32, im32) = (&mut scratch.re32, &mut scratch.im32);
-                // f32 path: sums of the current emitter group over the columns [lo, hi) it touched.
-                let mut group = usize::MAX;
-                let mut touched = (w, 0usize);
-                let k0 = cands.partition_point(|&j| (j as usize) < ch.start);
-                let k1 = cands.partition_point(|&j| (j as usize) < ch.end);
-                for &j in cands.iter().take(k1).skip(k0) {
-                    let e = &self.emitters[j as usize];
-                    // Rows outside the emitter's row range hold none of its support (the range
-                    // is a tested superset); in a tall band most candidates miss most rows.
-                    if let Some((a, b)) = self.rows[j as usize] {
-                        if row < a || row >= b {
-                            continue;
-                        }
-                    }
-                    let (c0, c1) = if self.opts.anti_alias {
-                        match row_columns(&self.plate, e, y, wx, wy, self.opts.approximation) {
-                            Some(s) => s,
-                            None => continue,
-                        }
-                    } else {
-                        (0, w)
-                    };
-                    // Off the foot row the y test may cut a hole out of the middle of the span:
-                    // walk the one or two intervals left.
-                    let hole = if self.opts.anti_alias {
-                        row_hole_columns(&self.plate, e, y, wy, self.opts.approximation)
-                    } else {
-                        None
-                    };
-                    let spans = match hole {
-                        Some((h0, h1)) if h0 < c1 && h1 > c0 => {
-                            [(c0, h0.max(c0)), (h1.min(c1), c1)]
-                        }
-                        _ => [(c0, c1), (c1, c1)],
-                    };
-                    let er = EmitterRow {
-                        xj: e.pos[0],
-                        dy: y - e.pos[1],
-                        z: e.pos[2],
-                        amplitude: e.amplitude,
-                        phase_cycles: reduced_cycles(e.phase),
-                        obliquity: self.opts.obliquity,
-                    };
-                    if fast {
-                        if j as usize / F32_GROUP != group {
-                            flush_group(&mut touched, re32, im32, re, im);
-                            group = j as usize / F32_GROUP;
-                        }
-                        touched = (touched.0.min(c0), touched.1.max(c1));
-                    }
-                    let mut add = |a: usize, b: usize| match (self.opts.approximation, fast) {
-                        (Approximation::Exact, true) => kernels::accumulate_exact32(
-                            self.isa, &inputs, &r32, &er, a, b, re32, im32,
-                        ),
-                        (Approximation::Exact, false) => {
-                            kernels::accumulate_exact(self.isa, &inputs, &er, a, b, re, im)
-                        }
-                        (Approximation::Fresnel, _) => {
-                            kernels::accumulate_fresnel(self.isa, &inputs, &er, a, b, re, im)
-                        }
-                    };
-                    for (c0, c1) in spans {
-                        if c0 >= c1 {
-                            continue;
-                        }
-                        if let Some((_, tr)) = &tile_row {
-                            for t in c0 / tile_cols..=(c1 - 1) / tile_cols {
-                                if tr.visible(j as usize, t) {
-                                    updates +=
-                                        add(c0.max(t * tile_cols), c1.min((t + 1) * tile_cols));
-                                }
-                            }
-                        } else {
-                            updates += add(c0, c1);
-                        }
-                    }
-                }
-                if fast {
-                    flush_group(&mut touched, re32, im32, re, im);
-                }
-                // O_c conj(R_c), R's phase in cycles (path length / lambda).
-                match ch.reference {
-                    Reference::Plane { tilt } => {
-                        let (ax, ty) = (tilt[0].sin() * inv_lambda, y * tilt[1].sin() * inv_lambda);
-                        for (t, &x) in scratch.ref_cycles.iter_mut().zip(&self.xs) {
-                            *t = x * ax + ty;
-                        }
-                    }
-                    Reference::Spherical { .. } => {
-                        for (t, &x) in scratch.ref_cycles.iter_mut().zip(&self.xs) {
-                            *t = ch.reference.phase(x, y, 1.0) * inv_lambda;
-                        }
-                    }
-                }
+                let tile = tile_row.as_ref().map(|(_, tr)| (&**tr, tile_cols));
+                updates += self.channel_row(
+                    ch,
+                    row,
+                    y,
+                    &cands,
+                    &inputs,
+                    &r32,
+                    tile,
+                    fast,
+                    [&mut scratch.re, &mut scratch.im],
+                    [&mut scratch.re32, &mut scratch.im32],
+                );
+                self.reference_cycles(&ch.reference, y, inv_lambda, &mut scratch.ref_cycles);
                 if single {
                     kernels::conj_reference(
                         self.isa,
@@ -613,6 +500,166 @@ impl PointSum {
             }
         }
         scratch.candidates = cands;
+        updates
+    }
+
+    /// The reference's direction cosines along row height `y` into `s.ref_dir_x`, `s.ref_dir_y`
+    /// (and their f32 copies for the f32 exact kernel); returns the largest step between
+    /// neighbouring columns (spherical references, f32 kernel), which its phase split needs.
+    fn reference_directions(
+        &self,
+        reference: &Reference,
+        y: f64,
+        fast: bool,
+        s: &mut BandScratch,
+    ) -> [f64; 2] {
+        let w = self.plate.width as usize;
+        match *reference {
+            Reference::Plane { .. } => {
+                let d = reference.direction(0.0, y);
+                s.ref_dir_x.fill(d[0]);
+                s.ref_dir_y.fill(d[1]);
+            }
+            Reference::Spherical { .. } => {
+                for c in 0..w {
+                    let d = reference.direction(self.xs[c], y);
+                    s.ref_dir_x[c] = d[0];
+                    s.ref_dir_y[c] = d[1];
+                }
+            }
+        }
+        if fast {
+            for (d, v) in s.rdx32.iter_mut().zip(&s.ref_dir_x) {
+                *d = *v as f32;
+            }
+            for (d, v) in s.rdy32.iter_mut().zip(&s.ref_dir_y) {
+                *d = *v as f32;
+            }
+        }
+        let mut ref_step = [0.0f64; 2];
+        if fast && matches!(reference, Reference::Spherical { .. }) {
+            for c in 1..w {
+                ref_step[0] = ref_step[0].max((s.ref_dir_x[c] - s.ref_dir_x[c - 1]).abs());
+                ref_step[1] = ref_step[1].max((s.ref_dir_y[c] - s.ref_dir_y[c - 1]).abs());
+            }
+        }
+        ref_step
+    }
+
+    /// The reference's phase along row height `y`, in cycles (path length / lambda), into `out`.
+    fn reference_cycles(&self, reference: &Reference, y: f64, inv_lambda: f64, out: &mut [f64]) {
+        match *reference {
+            Reference::Plane { tilt } => {
+                let (ax, ty) = (tilt[0].sin() * inv_lambda, y * tilt[1].sin() * inv_lambda);
+                for (t, &x) in out.iter_mut().zip(&self.xs) {
+                    *t = x * ax + ty;
+                }
+            }
+            Reference::Spherical { .. } => {
+                for (t, &x) in out.iter_mut().zip(&self.xs) {
+                    *t = reference.phase(x, y, 1.0) * inv_lambda;
+                }
+            }
+        }
+    }
+
+    /// Adds the channel's candidate emitters on plate row `row` (height `y`) into the row sums
+    /// (`re`, `im`; the f32 kernel sums groups of [`F32_GROUP`] in `re32`, `im32` first), each
+    /// over its support spans, tile by tile where occlusion applies. Returns the updates.
+    #[allow(clippy::too_many_arguments)]
+    fn channel_row(
+        &self,
+        ch: &Channel,
+        row: usize,
+        y: f64,
+        cands: &[u32],
+        inputs: &RowInputs,
+        r32: &Row32,
+        occlusion: Option<(&TileRow, usize)>,
+        fast: bool,
+        [re, im]: [&mut Vec<f64>; 2],
+        [re32, im32]: [&mut Vec<f32>; 2],
+    ) -> u64 {
+        let w = self.plate.width as usize;
+        let (wx, wy) = self.row_window(&ch.reference, y);
+        let mut updates = 0u64;
+        // f32 path: sums of the current emitter group over the columns [lo, hi) it touched.
+        let mut group = usize::MAX;
+        let mut touched = (w, 0usize);
+        let k0 = cands.partition_point(|&j| (j as usize) < ch.start);
+        let k1 = cands.partition_point(|&j| (j as usize) < ch.end);
+        for &j in cands.iter().take(k1).skip(k0) {
+            let e = &self.emitters[j as usize];
+            // Rows outside the emitter's row range hold none of its support (the range
+            // is a tested superset); in a tall band most candidates miss most rows.
+            if let Some((a, b)) = self.rows[j as usize] {
+                if row < a || row >= b {
+                    continue;
+                }
+            }
+            let (c0, c1) = if self.opts.anti_alias {
+                match row_columns(&self.plate, e, y, wx, wy, self.opts.approximation) {
+                    Some(s) => s,
+                    None => continue,
+                }
+            } else {
+                (0, w)
+            };
+            // Off the foot row the y test may cut a hole out of the middle of the span:
+            // walk the one or two intervals left.
+            let hole = if self.opts.anti_alias {
+                row_hole_columns(&self.plate, e, y, wy, self.opts.approximation)
+            } else {
+                None
+            };
+            let spans = match hole {
+                Some((h0, h1)) if h0 < c1 && h1 > c0 => [(c0, h0.max(c0)), (h1.min(c1), c1)],
+                _ => [(c0, c1), (c1, c1)],
+            };
+            let er = EmitterRow {
+                xj: e.pos[0],
+                dy: y - e.pos[1],
+                z: e.pos[2],
+                amplitude: e.amplitude,
+                phase_cycles: reduced_cycles(e.phase),
+                obliquity: self.opts.obliquity,
+            };
+            if fast {
+                if j as usize / F32_GROUP != group {
+                    flush_group(&mut touched, re32, im32, re, im);
+                    group = j as usize / F32_GROUP;
+                }
+                touched = (touched.0.min(c0), touched.1.max(c1));
+            }
+            let mut add = |a: usize, b: usize| match (self.opts.approximation, fast) {
+                (Approximation::Exact, true) => {
+                    kernels::accumulate_exact32(self.isa, inputs, r32, &er, a, b, re32, im32)
+                }
+                (Approximation::Exact, false) => {
+                    kernels::accumulate_exact(self.isa, inputs, &er, a, b, re, im)
+                }
+                (Approximation::Fresnel, _) => {
+                    kernels::accumulate_fresnel(self.isa, inputs, &er, a, b, re, im)
+                }
+            };
+            for (c0, c1) in spans {
+                if c0 >= c1 {
+                    continue;
+                }
+                if let Some((tr, tile_cols)) = occlusion {
+                    for t in c0 / tile_cols..=(c1 - 1) / tile_cols {
+                        if tr.visible(j as usize, t) {
+                            updates += add(c0.max(t * tile_cols), c1.min((t + 1) * tile_cols));
+                        }
+                    }
+                } else {
+                    updates += add(c0, c1);
+                }
+            }
+        }
+        if fast {
+            flush_group(&mut touched, re32, im32, re, im);
+        }
         updates
     }
 
