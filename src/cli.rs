@@ -62,58 +62,7 @@ pub enum Command {
         job: PathBuf,
     },
     /// Replays a plate numerically: intensity images at chosen depths plus metrics (JSON).
-    Reconstruct {
-        /// The plate TIFF (its sidecar NAME.json must sit beside it).
-        #[arg(value_name = "PLATE.tif")]
-        plate: PathBuf,
-        /// Depth in front of the plate, mm: D, or a stack A:B:STEP.
-        #[arg(
-            long,
-            value_name = "D|A:B:STEP",
-            required_unless_present = "focal_mm",
-            conflicts_with = "focal_mm",
-            value_parser = parse_distances
-        )]
-        distance_mm: Option<Distances>,
-        /// Replay through a lens of this focal length (mm) onto its focal plane (Fourier geometry).
-        #[arg(long, value_name = "F", value_parser = parse_focal_m, allow_hyphen_values = true)]
-        focal_mm: Option<f64>,
-        /// Replay only this window of the plate: first column, first row, width, height (pixels).
-        #[arg(long, value_name = "X,Y,W,H", value_parser = Window::parse)]
-        window: Option<Window>,
-        /// Light the plate with a plane wave at these tilts (degrees) instead of the recorded reference.
-        #[arg(long, value_name = "TX,TY", value_parser = parse_illumination, allow_hyphen_values = true)]
-        illumination: Option<Illumination>,
-        /// Output PNG (default: PLATE-replay.png); metrics go to the same name with .json.
-        #[arg(long, value_name = "FILE")]
-        out: Option<PathBuf>,
-        /// Grey mapping: linear, gamma or log.
-        #[arg(long, default_value = "gamma", value_parser = ToneScale::parse)]
-        scale: ToneScale,
-        /// PNG bits per sample: 8 or 16.
-        #[arg(long, default_value = "8", value_parser = parse_png_bits)]
-        bits: u8,
-        /// Region of the replay image for power fraction, uniformity, speckle contrast: X,Y,W,H pixels.
-        #[arg(long, value_name = "X,Y,W,H", value_parser = Window::parse)]
-        region: Option<Window>,
-        /// Target image (PNG, same size as the replay) for correlation and RMSE.
-        #[arg(long, value_name = "PNG")]
-        target: Option<PathBuf>,
-        /// Number of intensity peaks to report.
-        #[arg(long, default_value_t = 10)]
-        peaks: usize,
-        /// Fourier replays: also replay K times finer (zero padding; K = 2..8), written as
-        /// OUT-osK.png, with the target's flat top measured between the designed samples.
-        #[arg(long, value_name = "K", value_parser = clap::value_parser!(u8).range(2..=8))]
-        oversample: Option<u8>,
-        /// Skip checking the TIFF against its sidecar's SHA-256 (which reads the whole plate).
-        #[arg(long)]
-        no_verify: bool,
-        /// Fourier replays of modulator patterns: the panel's fill factor F (0 < F <= 1), for
-        /// the zero order's strength (dead area passes light unmodulated).
-        #[arg(long, value_name = "F", value_parser = parse_fill_factor)]
-        fill_factor: Option<f64>,
-    },
+    Reconstruct(ReconstructArgs),
     /// Writes a job's emitters (position, amplitude, phase, normal, channel) as a PLY point cloud.
     Sample {
         /// Job file.
@@ -129,6 +78,94 @@ pub enum Command {
         #[arg(value_name = "JOB")]
         job: PathBuf,
     },
+}
+
+/// `reconstruct`'s arguments.
+#[derive(Args, Debug)]
+pub struct ReconstructArgs {
+    /// The plate TIFF (its sidecar NAME.json must sit beside it).
+    #[arg(value_name = "PLATE.tif")]
+    pub plate: PathBuf,
+    /// Depth in front of the plate, mm: D, or a stack A:B:STEP.
+    #[arg(
+        long,
+        value_name = "D|A:B:STEP",
+        required_unless_present = "focal_mm",
+        conflicts_with = "focal_mm",
+        value_parser = parse_distances
+    )]
+    pub distance_mm: Option<Distances>,
+    /// Replay through a lens of this focal length (mm) onto its focal plane (Fourier geometry).
+    #[arg(long, value_name = "F", value_parser = parse_focal_m, allow_hyphen_values = true)]
+    pub focal_mm: Option<f64>,
+    /// Replay only this window of the plate: first column, first row, width, height (pixels).
+    #[arg(long, value_name = "X,Y,W,H", value_parser = Window::parse)]
+    pub window: Option<Window>,
+    /// Light the plate with a plane wave at these tilts (degrees) instead of the recorded reference.
+    #[arg(long, value_name = "TX,TY", value_parser = parse_illumination, allow_hyphen_values = true)]
+    pub illumination: Option<Illumination>,
+    /// Output PNG (default: PLATE-replay.png); metrics go to the same name with .json.
+    #[arg(long, value_name = "FILE")]
+    pub out: Option<PathBuf>,
+    /// Grey mapping: linear, gamma or log.
+    #[arg(long, default_value = "gamma", value_parser = ToneScale::parse)]
+    pub scale: ToneScale,
+    /// PNG bits per sample: 8 or 16.
+    #[arg(long, default_value = "8", value_parser = parse_png_bits)]
+    pub bits: u8,
+    /// Region of the replay image for power fraction, uniformity, speckle contrast: X,Y,W,H pixels.
+    #[arg(long, value_name = "X,Y,W,H", value_parser = Window::parse)]
+    pub region: Option<Window>,
+    /// Target image (PNG, same size as the replay) for correlation and RMSE.
+    #[arg(long, value_name = "PNG")]
+    pub target: Option<PathBuf>,
+    /// Number of intensity peaks to report.
+    #[arg(long, default_value_t = 10)]
+    pub peaks: usize,
+    /// Fourier replays: also replay K times finer (zero padding; K = 2..8), written as
+    /// OUT-osK.png, with the target's flat top measured between the designed samples.
+    #[arg(long, value_name = "K", value_parser = clap::value_parser!(u8).range(2..=8))]
+    pub oversample: Option<u8>,
+    /// Skip checking the TIFF against its sidecar's SHA-256 (which reads the whole plate).
+    #[arg(long)]
+    pub no_verify: bool,
+    /// Fourier replays of modulator patterns: the panel's fill factor F (0 < F <= 1), for
+    /// the zero order's strength (dead area passes light unmodulated).
+    #[arg(long, value_name = "F", value_parser = parse_fill_factor)]
+    pub fill_factor: Option<f64>,
+}
+
+impl ReconstructArgs {
+    /// The library's request: the default image name `PLATE-replay.png` beside the plate, the
+    /// recorded reference unless `--illumination` says otherwise.
+    pub fn into_request(self) -> fringemill::replay::ReconstructRequest {
+        let out = self.out.unwrap_or_else(|| {
+            let stem = self
+                .plate
+                .file_stem()
+                .map(|s| s.to_string_lossy().into_owned())
+                .unwrap_or_else(|| "plate".into());
+            self.plate.with_file_name(format!("{stem}-replay.png"))
+        });
+        fringemill::replay::ReconstructRequest {
+            tif: self.plate,
+            distances: self.distance_mm.map(|d| d.0).unwrap_or_default(),
+            focal: self.focal_mm,
+            window: self.window,
+            illumination: self.illumination.unwrap_or(Illumination::Recorded),
+            out,
+            scale: self.scale,
+            bits: self.bits,
+            region: self
+                .region
+                .map(|w| [w.x as usize, w.y as usize, w.w as usize, w.h as usize]),
+            target: self.target,
+            peaks: self.peaks,
+            oversample: self.oversample.map(usize::from),
+            verify: !self.no_verify,
+            fill_factor: self.fill_factor,
+        }
+    }
 }
 
 /// Replay depths, metres (from `--distance-mm D|A:B:STEP`).
@@ -263,7 +300,7 @@ mod tests {
     #[test]
     fn distances_and_focal() {
         match reconstruct(&["--distance-mm", "4:6:1"]).unwrap() {
-            Command::Reconstruct { distance_mm, .. } => {
+            Command::Reconstruct(ReconstructArgs { distance_mm, .. }) => {
                 let d = distance_mm.unwrap().0;
                 assert_eq!(d.len(), 3);
                 assert!((d[0] - 4e-3).abs() < 1e-15 && (d[2] - 6e-3).abs() < 1e-15);
@@ -271,7 +308,9 @@ mod tests {
             _ => panic!(),
         }
         match reconstruct(&["--focal-mm", "200"]).unwrap() {
-            Command::Reconstruct { focal_mm, .. } => assert_eq!(focal_mm, Some(0.2)),
+            Command::Reconstruct(ReconstructArgs { focal_mm, .. }) => {
+                assert_eq!(focal_mm, Some(0.2))
+            }
             _ => panic!(),
         }
         assert!(reconstruct(&["--focal-mm", "-3"]).is_err());
@@ -299,7 +338,7 @@ mod tests {
         ])
         .unwrap()
         {
-            Command::Reconstruct {
+            Command::Reconstruct(ReconstructArgs {
                 window,
                 region,
                 illumination,
@@ -307,7 +346,7 @@ mod tests {
                 bits,
                 oversample,
                 ..
-            } => {
+            }) => {
                 assert_eq!(
                     window,
                     Some(Window {
@@ -345,7 +384,9 @@ mod tests {
             assert!(reconstruct(&a).is_err(), "{bad:?} accepted");
         }
         match reconstruct(&["--focal-mm", "100", "--oversample", "2"]).unwrap() {
-            Command::Reconstruct { oversample, .. } => assert_eq!(oversample, Some(2)),
+            Command::Reconstruct(ReconstructArgs { oversample, .. }) => {
+                assert_eq!(oversample, Some(2))
+            }
             _ => panic!(),
         }
     }
@@ -373,5 +414,22 @@ mod tests {
     #[test]
     fn run_needs_a_job() {
         assert!(Cli::try_parse_from(["fringemill", "run"]).is_err());
+    }
+
+    #[test]
+    fn fill_factor_and_default_image_name() {
+        match reconstruct(&["--distance-mm", "5", "--fill-factor", "0.93"]).unwrap() {
+            Command::Reconstruct(a) => {
+                assert_eq!(a.fill_factor, Some(0.93));
+                let req = a.into_request();
+                assert_eq!(req.out, PathBuf::from("p-replay.png"));
+                assert!(req.verify);
+            }
+            _ => panic!(),
+        }
+        for bad in ["0", "1.5", "x"] {
+            let e = reconstruct(&["--distance-mm", "5", "--fill-factor", bad]).unwrap_err();
+            assert!(e.to_string().contains("--fill-factor"), "{e}");
+        }
     }
 }

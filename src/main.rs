@@ -66,29 +66,7 @@ fn main() -> ExitCode {
             opts.restart = restart;
             opts.shard = shard;
             opts.checkpoint_every = checkpoint_secs;
-            let files = job::batch::job_files(&jobs);
-            let out = job::batch::run_batch(&files, &opts, |f, r, t| report(f, r, common, t));
-            if files.len() > 1 {
-                let skipped = files.len() - out.run;
-                eprintln!(
-                    "fringemill: {} job(s): {} succeeded, {} failed{}",
-                    files.len(),
-                    out.run - out.failed,
-                    out.failed,
-                    if skipped > 0 {
-                        format!(", {skipped} not started")
-                    } else {
-                        String::new()
-                    }
-                );
-            }
-            if out.interrupted {
-                ExitCode::from(130)
-            } else if out.failed > 0 {
-                ExitCode::from(1)
-            } else {
-                ExitCode::SUCCESS
-            }
+            run(&jobs, &opts, common)
         }
         cli::Command::Assemble { job } => {
             let t0 = Instant::now();
@@ -100,64 +78,7 @@ fn main() -> ExitCode {
                 Err(_) => ExitCode::from(1),
             }
         }
-        cli::Command::Reconstruct {
-            plate,
-            distance_mm,
-            focal_mm,
-            window,
-            illumination,
-            out,
-            scale,
-            bits,
-            region,
-            target,
-            peaks,
-            oversample,
-            no_verify,
-            fill_factor,
-        } => {
-            let out = out.unwrap_or_else(|| {
-                let stem = plate
-                    .file_stem()
-                    .map(|s| s.to_string_lossy().into_owned())
-                    .unwrap_or_else(|| "plate".into());
-                plate.with_file_name(format!("{stem}-replay.png"))
-            });
-            let req = replay::ReconstructRequest {
-                tif: plate,
-                distances: distance_mm.map(|d| d.0).unwrap_or_default(),
-                focal: focal_mm,
-                window,
-                illumination: illumination.unwrap_or(replay::Illumination::Recorded),
-                out,
-                scale,
-                bits,
-                region: region.map(|w| [w.x as usize, w.y as usize, w.w as usize, w.h as usize]),
-                target,
-                peaks,
-                oversample: oversample.map(usize::from),
-                verify: !no_verify,
-                fill_factor,
-            };
-            match replay::reconstruct(&req) {
-                Ok(files) => {
-                    if common.stats {
-                        eprintln!(
-                            "fringemill: stats: reconstruct {}: {:.3} s, {} file(s) written, peak memory {}",
-                            req.tif.display(),
-                            t_start.elapsed().as_secs_f64(),
-                            files.len(),
-                            peak_memory()
-                        );
-                    }
-                    for f in files {
-                        println!("{}", f.display());
-                    }
-                    ExitCode::SUCCESS
-                }
-                Err(e) => fail(&e),
-            }
-        }
+        cli::Command::Reconstruct(args) => reconstruct(args.into_request(), common, t_start),
         cli::Command::Sample { job, out } => {
             match JobSpec::load(&job).and_then(|s| job::scene::sample(&s, &out)) {
                 Ok(n) => {
@@ -177,6 +98,60 @@ fn main() -> ExitCode {
             }
             Err(e) => fail(&e),
         },
+    }
+}
+
+/// `run`: the batch of job files (folders expanded), a summary line for several, the exit code
+/// (130 when interrupted, 1 when any failed).
+fn run(jobs: &[std::path::PathBuf], opts: &RunOptions, common: &cli::Common) -> ExitCode {
+    let files = job::batch::job_files(jobs);
+    let out = job::batch::run_batch(&files, opts, |f, r, t| report(f, r, common, t));
+    if files.len() > 1 {
+        let skipped = files.len() - out.run;
+        eprintln!(
+            "fringemill: {} job(s): {} succeeded, {} failed{}",
+            files.len(),
+            out.run - out.failed,
+            out.failed,
+            if skipped > 0 {
+                format!(", {skipped} not started")
+            } else {
+                String::new()
+            }
+        );
+    }
+    if out.interrupted {
+        ExitCode::from(130)
+    } else if out.failed > 0 {
+        ExitCode::from(1)
+    } else {
+        ExitCode::SUCCESS
+    }
+}
+
+/// `reconstruct`: the files written on stdout, statistics on request.
+fn reconstruct(
+    req: replay::ReconstructRequest,
+    common: &cli::Common,
+    t_start: Instant,
+) -> ExitCode {
+    match replay::reconstruct(&req) {
+        Ok(files) => {
+            if common.stats {
+                eprintln!(
+                    "fringemill: stats: reconstruct {}: {:.3} s, {} file(s) written, peak memory {}",
+                    req.tif.display(),
+                    t_start.elapsed().as_secs_f64(),
+                    files.len(),
+                    peak_memory()
+                );
+            }
+            for f in files {
+                println!("{}", f.display());
+            }
+            ExitCode::SUCCESS
+        }
+        Err(e) => fail(&e),
     }
 }
 
