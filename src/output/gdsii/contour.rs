@@ -35,6 +35,38 @@ pub fn regions(runs: &[Run]) -> Vec<Vec<Run>> {
     components(runs, 0)
 }
 
+/// Calls `f(i, k)` for every run `i` of a row and run `k` of the next row that share a column
+/// (`touch` 0) or also meet at a corner (`touch` 1); runs sorted by row, then column. Also
+/// `row(a0, a1, b1)` once per row: its runs are `a0 .. a1`, the next row's `a1 .. b1` (empty
+/// when that row holds none).
+fn adjacent_pairs(
+    runs: &[Run],
+    touch: u32,
+    mut row: impl FnMut(usize, usize, usize),
+    mut f: impl FnMut(usize, usize),
+) {
+    let mut a0 = 0;
+    while a0 < runs.len() {
+        let r = runs[a0].row;
+        let a1 = a0 + runs[a0..].iter().take_while(|q| q.row == r).count();
+        let b1 = a1 + runs[a1..].iter().take_while(|q| q.row == r + 1).count();
+        row(a0, a1, b1);
+        let (mut i, mut k) = (a0, a1);
+        while i < a1 && k < b1 {
+            let (p, q) = (runs[i], runs[k]);
+            if p.c0.max(q.c0) < p.c1.min(q.c1) + touch {
+                f(i, k);
+            }
+            if p.c1 <= q.c1 {
+                i += 1;
+            } else {
+                k += 1;
+            }
+        }
+        a0 = a1;
+    }
+}
+
 /// Groups runs of adjacent rows that share a column (`touch` 0: 4-connected) or also meet at a
 /// corner (`touch` 1: 8-connected).
 fn components(runs: &[Run], touch: u32) -> Vec<Vec<Run>> {
@@ -48,35 +80,17 @@ fn components(runs: &[Run], touch: u32) -> Vec<Vec<Run>> {
         }
         i
     }
-    // Row starts.
-    let mut starts = Vec::new();
-    for (i, r) in runs.iter().enumerate() {
-        if i == 0 || runs[i - 1].row != r.row {
-            starts.push(i);
-        }
-    }
-    starts.push(n);
-    for w in 0..starts.len().saturating_sub(2) {
-        let (a0, a1, b1) = (starts[w], starts[w + 1], starts[w + 2]);
-        if runs[a1].row != runs[a0].row + 1 {
-            continue;
-        }
-        let (mut i, mut k) = (a0, a1);
-        while i < a1 && k < b1 {
-            let (p, q) = (runs[i], runs[k]);
-            if p.c0.max(q.c0) < p.c1.min(q.c1) + touch {
-                let (x, y) = (find(&mut parent, i as u32), find(&mut parent, k as u32));
-                // The smaller index as root keeps the first run's region first.
-                let (lo, hi) = if x < y { (x, y) } else { (y, x) };
-                parent[hi as usize] = lo;
-            }
-            if p.c1 <= q.c1 {
-                i += 1;
-            } else {
-                k += 1;
-            }
-        }
-    }
+    adjacent_pairs(
+        runs,
+        touch,
+        |_, _, _| {},
+        |i, k| {
+            let (x, y) = (find(&mut parent, i as u32), find(&mut parent, k as u32));
+            // The smaller index as root keeps the first run's region first.
+            let (lo, hi) = if x < y { (x, y) } else { (y, x) };
+            parent[hi as usize] = lo;
+        },
+    );
     let mut slot: Vec<u32> = vec![u32::MAX; n];
     let mut out: Vec<Vec<Run>> = Vec::new();
     for (i, &run) in runs.iter().enumerate() {
@@ -217,38 +231,26 @@ fn hole_cuts(runs: &[Run]) -> Vec<u32> {
 /// run of one row ends at the column where a run of the next row starts (sorted, distinct).
 fn joins_and_saddles(runs: &[Run]) -> (usize, Vec<u32>) {
     let (mut joins, mut saddles) = (0, Vec::new());
-    let mut a0 = 0;
-    while a0 < runs.len() {
-        let row = runs[a0].row;
-        let a1 = a0 + runs[a0..].iter().take_while(|r| r.row == row).count();
-        let b1 = a1 + runs[a1..].iter().take_while(|r| r.row == row + 1).count();
-        let (mut i, mut k) = (a0, a1);
-        while i < a1 && k < b1 {
-            let (p, q) = (runs[i], runs[k]);
-            if p.c0.max(q.c0) < p.c1.min(q.c1) {
-                joins += 1;
+    adjacent_pairs(
+        runs,
+        0,
+        |a0, a1, b1| {
+            // Corner contacts: a run of the next row starting where this run ends, or ending
+            // where it starts.
+            let next = &runs[a1..b1];
+            for p in &runs[a0..a1] {
+                let k = next.partition_point(|q| q.c0 < p.c1);
+                if k < next.len() && next[k].c0 == p.c1 {
+                    saddles.push(p.c1);
+                }
+                let k = next.partition_point(|q| q.c1 < p.c0);
+                if k < next.len() && next[k].c1 == p.c0 {
+                    saddles.push(p.c0);
+                }
             }
-            if p.c1 <= q.c1 {
-                i += 1;
-            } else {
-                k += 1;
-            }
-        }
-        // Corner contacts: a run of the next row starting where this run ends, or ending
-        // where it starts.
-        for i in a0..a1 {
-            let p = runs[i];
-            let next_start = runs[a1..b1].partition_point(|q| q.c0 < p.c1);
-            if a1 + next_start < b1 && runs[a1 + next_start].c0 == p.c1 {
-                saddles.push(p.c1);
-            }
-            let prev = runs[a1..b1].partition_point(|q| q.c1 < p.c0);
-            if a1 + prev < b1 && runs[a1 + prev].c1 == p.c0 {
-                saddles.push(p.c0);
-            }
-        }
-        a0 = a1;
-    }
+        },
+        |_, _| joins += 1,
+    );
     saddles.sort_unstable();
     saddles.dedup();
     (joins, saddles)
@@ -304,7 +306,7 @@ pub fn polygons(
     // Holes and saddles from the runs alone: a region's holes are the independent cycles of its
     // graph of runs joined by shared columns (Euler number of a 4-connected region: runs minus
     // joins = 1 - holes), and a saddle is a run of the next row starting where a run ends (or
-    // ending where it starts). Only a region with holes needs its pixels flood-filled.
+    // ending where it starts). Only a region with holes needs its clear runs grouped.
     let (joins, mut cuts) = joins_and_saddles(runs);
     if joins + 1 > runs.len() {
         cuts.extend(hole_cuts(runs));
