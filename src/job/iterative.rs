@@ -396,7 +396,8 @@ fn build_image_cell(
 /// plate that is not a whole number of cells (the cut tiling spreads each designed sample).
 pub fn placement_warnings(spec: &JobSpec, it: &IterativeSpec) -> Result<Vec<String>> {
     let p = &spec.plate;
-    let cell = it.cell_px.unwrap_or([p.width, p.height]);
+    let (cx, cy) = cell_size(spec, it);
+    let cell = [cx as u32, cy as u32];
     let mut out = Vec::new();
     if !p.width.is_multiple_of(cell[0]) || !p.height.is_multiple_of(cell[1]) {
         out.push(format!(

@@ -8,7 +8,12 @@ use crate::synthesis::Approximation;
 /// `plan` for iterative synthesis: sizes and replay sampling, without iterating.
 fn plan_iterative(spec: &JobSpec, it: &IterativeSpec) -> Result<PlanReport> {
     let p = spec.plate;
-    let cell = it.cell_px.unwrap_or([p.width, p.height]);
+    let (cx, cy) = super::iterative::cell_size(spec, it);
+    let over = if it.cell_px.is_some() {
+        format!("cell {cx} x {cy} px repeated over the plate")
+    } else {
+        format!("over the whole {cx} x {cy} px plate (no cell_px)")
+    };
     let mut lines = vec![
         format!("job: {}", spec.path.display()),
         format!(
@@ -19,18 +24,18 @@ fn plan_iterative(spec: &JobSpec, it: &IterativeSpec) -> Result<PlanReport> {
             p.pitch[1] * 1e6,
             p.wavelength * 1e9
         ),
-        if it.cell_px.is_some() {
-            format!("iterative synthesis: {}, {} iterations at most, cell {} x {} px repeated over the plate", super::record::algorithm_name(it.algorithm), it.iterations, cell[0], cell[1])
-        } else {
-            format!("iterative synthesis: {}, {} iterations at most, over the whole {} x {} px plate (no cell_px)", super::record::algorithm_name(it.algorithm), it.iterations, cell[0], cell[1])
-        },
+        format!(
+            "iterative synthesis: {}, {} iterations at most, {over}",
+            super::record::algorithm_name(it.algorithm),
+            it.iterations
+        ),
     ];
     if let super::spec::Geometry::Fourier(f) = it.geometry {
         lines.push(format!(
             "fourier geometry, f = {:.3} mm: replay pitch lambda f / (N p) = {:.3} x {:.3} um, replay field {:.3} x {:.3} mm",
             f * 1e3,
-            p.wavelength * f / (cell[0] as f64 * p.pitch[0]) * 1e6,
-            p.wavelength * f / (cell[1] as f64 * p.pitch[1]) * 1e6,
+            p.wavelength * f / (cx as f64 * p.pitch[0]) * 1e6,
+            p.wavelength * f / (cy as f64 * p.pitch[1]) * 1e6,
             p.wavelength * f / p.pitch[0] * 1e3,
             p.wavelength * f / p.pitch[1] * 1e3
         ));
@@ -75,8 +80,7 @@ fn plan_iterative(spec: &JobSpec, it: &IterativeSpec) -> Result<PlanReport> {
         let (w, h, _) = super::iterative::read_target(&o.points)?;
         if let super::spec::ObjectSource::Image { shift_px, .. } = o.source {
             // The placement `run` will make, refused here the same way.
-            let (nx, ny) = super::iterative::cell_size(spec, it);
-            super::iterative::placement(&spec.path, &o.points, (w, h), nx, ny, shift_px)?;
+            super::iterative::placement(&spec.path, &o.points, (w, h), cx, cy, shift_px)?;
         }
         lines.push(format!("target {}: {} x {} px", o.points.display(), w, h));
     }

@@ -130,13 +130,9 @@ pub fn choose_path(
             plane: p.estimate_cost(unit, FFT_PASS_WEIGHT),
         };
         lines.push(format!(
-            "estimated cost in f64 exact update equivalents (one {} update counts {unit}): direct {:.3e}, recording plane {:.3e} (plane {:.3} mm from the plate, grid margins {} x {} px, bands of {} rows)",
-            match (opts.approximation, opts.precision) {
-                (Approximation::Exact, Precision::F32) => "f32 exact",
-                (Approximation::Exact, Precision::F64) => "f64 exact",
-                (Approximation::Fresnel, Precision::F32) => "f32 Fresnel",
-                (Approximation::Fresnel, Precision::F64) => "f64 Fresnel",
-            },
+            "estimated cost in f64 exact update equivalents (one {} {} update counts {unit}): direct {:.3e}, recording plane {:.3e} (plane {:.3} mm from the plate, grid margins {} x {} px, bands of {} rows)",
+            opts.precision.name(),
+            opts.approximation.name(),
             c.direct,
             c.plane,
             p.distance() * 1e3,
