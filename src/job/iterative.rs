@@ -59,17 +59,16 @@ fn place(
 ) -> Result<(Vec<f64>, [usize; 4])> {
     let (w, h, v) = img;
     let (x0, y0) = placement(job, path, (w, h), nx, ny, shift)?;
-    let (x0, y0) = (x0 as i64, y0 as i64);
     let mut t = vec![0.0; nx * ny];
     for r in 0..h {
         for c in 0..w {
-            t[(y0 as usize + r) * nx + x0 as usize + c] = v[r * w + c].max(0.0);
+            t[(y0 + r) * nx + x0 + c] = v[r * w + c].max(0.0);
         }
     }
     if t.iter().all(|&x| x == 0.0) {
         return Err(Error::input(path, "the target image is black everywhere"));
     }
-    Ok((t, [x0 as usize, y0 as usize, w, h]))
+    Ok((t, [x0, y0, w, h]))
 }
 
 /// The top-left sample of a w x h target shifted by [right, up] on an nx x ny replay lattice

@@ -385,6 +385,29 @@ pub fn sidecar(spec: &JobSpec, run: RunRecord) -> Sidecar {
         Some((name, plane)) => (Some(name.to_string()), plane),
         None => (None, None),
     };
+    // What the method computed, in the sidecar's words. Iterative plates have no point sum:
+    // say so rather than carry its wording; their loop and FFTs run in f32 whatever the key says.
+    let (method, approximation, precision, obliquity, anti_aliasing, fringe_term, point_pixel_updates) =
+        match spec.method {
+            Method::PointSum => (
+                "point-sum",
+                s.approximation.name(),
+                s.precision.name(),
+                s.obliquity,
+                "emitter j contributes where |(d_j - d_R)_x| <= lambda / (2 px) and likewise in y (d: local direction cosines)",
+                "F = O conj(R), O = sum a_j exp(i (k r_j + phi_j)) / r_j",
+                run.updates,
+            ),
+            Method::Iterative(_) => (
+                "iterative",
+                "none",
+                "f32",
+                false,
+                "none needed: the plate's pixels are the sampling grid of the iteration's FFT propagators",
+                "F = exp(i phi), phi the iterated cell's phase (plus carrier, lens and correction terms) laid over the plate",
+                0,
+            ),
+        };
     Sidecar {
         format: FORMAT_NAME.into(),
         format_version: FORMAT_VERSION,
@@ -400,7 +423,8 @@ pub fn sidecar(spec: &JobSpec, run: RunRecord) -> Sidecar {
             wavelength_nm: p.wavelength * 1e9,
             size_mm: [p.size()[0] * 1e3, p.size()[1] * 1e3],
             max_half_angle_deg: p.max_half_angle().map(f64::to_degrees),
-            pixel_centre: "x = (j - (W-1)/2) px, y = ((H-1)/2 - i) py; row 0 is the top row; y up".into(),
+            pixel_centre: "x = (j - (W-1)/2) px, y = ((H-1)/2 - i) py; row 0 is the top row; y up"
+                .into(),
         },
         viewing: ViewingRecord::this(),
         reference: reference_record(&spec.reference),
@@ -413,43 +437,17 @@ pub fn sidecar(spec: &JobSpec, run: RunRecord) -> Sidecar {
         ),
         iterative: run.iterative,
         synthesis: SynthesisRecord {
-            method: match spec.method {
-                Method::PointSum => "point-sum",
-                Method::Iterative(_) => "iterative",
-            }
-            .into(),
-            // Iterative plates have no point sum: say so rather than carry its wording.
-            approximation: match spec.method {
-                Method::PointSum => s.approximation.name(),
-                Method::Iterative(_) => "none",
-            }
-            .into(),
-            // The iterative loop and its FFTs run in f32 whatever the key says.
-            precision: match spec.method {
-                Method::PointSum => s.precision.name(),
-                Method::Iterative(_) => "f32",
-            }
-            .into(),
+            method: method.into(),
+            approximation: approximation.into(),
+            precision: precision.into(),
             path,
             recording_plane,
-            obliquity: s.obliquity && matches!(spec.method, Method::PointSum),
-            anti_aliasing: match spec.method {
-                Method::PointSum => "emitter j contributes where |(d_j - d_R)_x| <= lambda / (2 px) and likewise in y (d: local direction cosines)",
-                Method::Iterative(_) => "none needed: the plate's pixels are the sampling grid of the iteration's FFT propagators",
-            }
-            .into(),
-            fringe_term: match spec.method {
-                Method::PointSum => "F = O conj(R), O = sum a_j exp(i (k r_j + phi_j)) / r_j",
-                Method::Iterative(_) => "F = exp(i phi), phi the iterated cell's phase (plus carrier, lens and correction terms) laid over the plate",
-            }
-            .into(),
+            obliquity,
+            anti_aliasing: anti_aliasing.into(),
+            fringe_term: fringe_term.into(),
             emitters: run.emitters,
             emitters_without_support: run.unreachable,
-            // Iterative plates: no point-pixel updates.
-            point_pixel_updates: match spec.method {
-                Method::PointSum => run.updates,
-                Method::Iterative(_) => 0,
-            },
+            point_pixel_updates,
         },
         encoding: encoding_record(run.encoding),
         output,
