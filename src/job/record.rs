@@ -343,6 +343,10 @@ pub fn sidecar(spec: &JobSpec, run: RunRecord) -> Sidecar {
         }
         Written::Gds(g) => {
             let gs = spec.gdsii.as_ref().expect("a GDSII run has its spec");
+            let (merge, max_vertices) = match gs.merge {
+                crate::output::gdsii::Merge::Rectangles => ("rectangles: the runs of set pixels (stored bit 1: clear, or pi) of each row, a run continuing with the same columns in the next rows extended downwards, closed at each strip's end; no pixel changes state".into(), None),
+                crate::output::gdsii::Merge::Contour { max_vertices } => (format!("contour: each 4-connected region of set pixels (stored bit 1: clear, or pi) within a strip traced along pixel edges into one rectilinear polygon, counter-clockwise, no vertex repeated; regions with holes or corner-touching pixels cut along vertical pixel edges (at each hole's leftmost column and each such corner), outlines above {max_vertices} vertices cut at their middle column; no pixel changes state"), Some(max_vertices)),
+            };
             OutputFiles::Gdsii {
                 file: file_name(&g.path),
                 format: "gdsii".into(),
@@ -355,14 +359,8 @@ pub fn sidecar(spec: &JobSpec, run: RunRecord) -> Sidecar {
                 layer: gs.layer,
                 datatype: gs.datatype,
                 rows_per_strip: run.layout.effective_rows_per_strip(),
-                merge: match gs.merge {
-                    crate::output::gdsii::Merge::Rectangles => "rectangles: the runs of set pixels (stored bit 1: clear, or pi) of each row, a run continuing with the same columns in the next rows extended downwards, closed at each strip's end; no pixel changes state".into(),
-                    crate::output::gdsii::Merge::Contour { max_vertices } => format!("contour: each 4-connected region of set pixels (stored bit 1: clear, or pi) within a strip traced along pixel edges into one rectilinear polygon, counter-clockwise, no vertex repeated; regions with holes or corner-touching pixels cut along vertical pixel edges (at each hole's leftmost column and each such corner), outlines above {max_vertices} vertices cut at their middle column; no pixel changes state"),
-                },
-                max_vertices: match gs.merge {
-                    crate::output::gdsii::Merge::Rectangles => None,
-                    crate::output::gdsii::Merge::Contour { max_vertices } => Some(max_vertices),
-                },
+                merge,
+                max_vertices,
                 coordinates: "plate coordinates in database units: origin at the plate's centre, x right, y up (row 0 on top); pixel (row i, column j) spans x (j - W/2) p .. (j + 1 - W/2) p, y (H/2 - i - 1) p .. (H/2 - i) p".into(),
             }
         }
