@@ -39,6 +39,23 @@ pub const SECONDS_PER_VISIBILITY_TEST: f64 = 1.1e-6;
 /// 2-5 ns).
 pub const SECONDS_PER_PIXEL_WRITTEN: f64 = 5e-9;
 
+/// Seconds of one thread per FFT element-pass (one element of one radix-2 pass, f32 complex,
+/// rustfft) in the layers path's transforms, multiplies and file passes together: measured on whole
+/// layers jobs (BENCHMARKS.md).
+pub const SECONDS_PER_FFT_ELEMENT_PASS: f64 = 1.0e-9;
+
+/// Seconds of one thread per lattice point tested by the layers path's rasterisation.
+pub const SECONDS_PER_RASTER_POINT: f64 = 3.0e-9;
+
+/// Wall-clock seconds of a layers job: its FFT element-passes, rasterised lattice points and
+/// pixels written, on `threads` threads.
+pub fn layer_seconds(passes: f64, raster: f64, pixels: f64, threads: usize) -> f64 {
+    let cpu = passes * SECONDS_PER_FFT_ELEMENT_PASS
+        + raster * SECONDS_PER_RASTER_POINT
+        + pixels * SECONDS_PER_PIXEL_WRITTEN;
+    cpu / (threads.max(1) as f64 * PARALLEL_EFFICIENCY)
+}
+
 /// Share of the threads' time a run keeps busy (two threads give 1.7-1.9x one).
 pub const PARALLEL_EFFICIENCY: f64 = 0.9;
 

@@ -127,6 +127,85 @@ fn plan_iterative(spec: &JobSpec, it: &IterativeSpec) -> Result<PlanReport> {
     })
 }
 
+/// The plate's lines (size, pitch, half-angle, reference) that every point-sum plan starts with.
+fn plate_lines(spec: &JobSpec) -> Vec<String> {
+    let p = spec.plate;
+    let size = p.size();
+    let th = p.max_half_angle();
+    vec![
+        format!("job: {}", spec.path.display()),
+        format!(
+            "plate: {} x {} px = {:.3} Mpx, pitch {:.4} x {:.4} um, {:.3} x {:.3} mm, wavelength {:.2} nm",
+            p.width,
+            p.height,
+            p.pixels() as f64 / 1e6,
+            p.pitch[0] * 1e6,
+            p.pitch[1] * 1e6,
+            size[0] * 1e3,
+            size[1] * 1e3,
+            p.wavelength * 1e9
+        ),
+        format!(
+            "largest diffraction half-angle asin(lambda / 2p): {:.3} deg in x, {:.3} deg in y",
+            th[0].to_degrees(),
+            th[1].to_degrees()
+        ),
+        format!("reference: {}", spec.reference.describe()),
+    ]
+}
+
+/// `plan` for the layers path: the slabs, the frame, memory, scratch files and time.
+fn plan_layers(spec: &JobSpec) -> Result<PlanReport> {
+    let (layers, notes) = super::scene::layer_synthesis(spec)?;
+    let p = spec.plate;
+    let mut lines = plate_lines(spec);
+    lines.extend(notes);
+    lines.extend(layers.describe());
+    let w = layers.work();
+    let threads = rayon::current_num_threads();
+    let secs = super::estimate::layer_seconds(
+        w.slices + w.frame + w.bands,
+        layers.raster_work(),
+        p.pixels() as f64,
+        threads,
+    );
+    lines.push(format!(
+        "work: {:.3e} FFT element-passes in the slabs, {:.3e} in the frame, {:.3e} in the bands",
+        w.slices, w.frame, w.bands
+    ));
+    lines.push(format!(
+        "time: about {} on {threads} thread(s) ({:.2} ns per FFT element-pass, {:.1} ns per lattice point rasterised, {:.0} ns per pixel written, per thread, as measured on the development machine: see BENCHMARKS.md)",
+        super::estimate::human(secs),
+        super::estimate::SECONDS_PER_FFT_ELEMENT_PASS * 1e9,
+        super::estimate::SECONDS_PER_RASTER_POINT * 1e9,
+        super::estimate::SECONDS_PER_PIXEL_WRITTEN * 1e9
+    ));
+    if layers.peak_bytes() > 4 << 30 {
+        lines.push(format!(
+            "warning: peak memory about {:.1} GB: the front plane is held whole while the slabs are carried",
+            layers.peak_bytes() as f64 / 1e9
+        ));
+    }
+    lines.push("path: layers (meshes sliced in depth; asked for by [synthesis] path)".into());
+    let encoding = spec.encoding.resolve(|| 1.0);
+    let layout = tiff_layout(spec, &encoding);
+    let bytes = layout.estimated_file_bytes();
+    lines.push(format!(
+        "output: {} ({} encoding, {} bit, {:.3} MB)",
+        spec.output.display(),
+        encoding.kind_name(),
+        encoding.bits_per_sample(),
+        bytes as f64 / 1e6
+    ));
+    lines.push(format!("sidecar: {}", sidecar_path(&spec.output).display()));
+    Ok(PlanReport {
+        lines,
+        unreachable: 0,
+        updates: p.pixels() as f64,
+        bytes,
+    })
+}
+
 /// What `plan` reports.
 #[derive(Clone, Debug)]
 pub struct PlanReport {
@@ -144,6 +223,9 @@ pub struct PlanReport {
 pub fn plan(spec: &JobSpec) -> Result<PlanReport> {
     if let Method::Iterative(it) = &spec.method {
         return plan_iterative(spec, it);
+    }
+    if spec.sum_path == super::spec::SumPath::Layers {
+        return plan_layers(spec);
     }
     let (sum, choice, notes) = point_sum_and_path(spec)?;
     let emitters = sum.emitters();

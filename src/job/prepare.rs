@@ -7,9 +7,9 @@ use num_complex::Complex64;
 
 use super::fields::FieldGrid;
 use super::iterative::{build_cell, IterationRecord};
-use super::progress::ProgressMode;
+use super::progress::{Progress, ProgressMode};
 use super::scene::build_scene;
-use super::spec::{IterativeSpec, JobSpec, Method};
+use super::spec::{IterativeSpec, JobSpec, Method, SumPath};
 use crate::encoding::Encoding;
 use crate::error::{Error, Result};
 use crate::output::tiff::TiffLayout;
@@ -126,6 +126,15 @@ pub(super) fn point_sum_and_path(spec: &JobSpec) -> Result<(PointSum, PathChoice
 
 pub(super) fn prepare(spec: &JobSpec, mode: ProgressMode) -> Result<Prepared> {
     let (sum, iteration, n): (Box<dyn FringeSource>, _, _) = match &spec.method {
+        Method::PointSum if spec.sum_path == SumPath::Layers => {
+            let (layers, _) = super::scene::layer_synthesis(spec)?;
+            super::space::check_space(layers.scratch_dir(), layers.scratch_bytes())?;
+            let total = FringeSource::prepare_work(&layers);
+            let mut progress = Progress::new("layers", total.max(1.0), mode);
+            FringeSource::prepare(&layers, &mut |w| progress.advance(w))?;
+            progress.finish();
+            (Box::new(layers), None, 0)
+        }
         Method::PointSum => {
             let (sum, choice, _) = point_sum_and_path(spec)?;
             let n = sum.emitters().len();

@@ -61,17 +61,40 @@ pub struct RunRecord<'a> {
     pub iterative: Option<IterativeRecord>,
     /// How the point sum was computed ("direct" or "recording-plane", with the plane), for
     /// point sums.
-    pub sum_path: Option<(&'static str, Option<RecordingPlaneRecord>)>,
+    pub sum_path: Option<PathRecord>,
 }
 
+/// `synthesis.path` with the record of the path's own figures.
+pub type PathRecord = (
+    &'static str,
+    Option<RecordingPlaneRecord>,
+    Option<crate::output::sidecar::LayersRecord>,
+);
+
 /// `synthesis.path` and the recording plane's record, for point sums (None for a phase cell).
-pub fn path_record(
-    path: &crate::synthesis::source::SourcePath,
-) -> Option<(&'static str, Option<RecordingPlaneRecord>)> {
+pub fn path_record(path: &crate::synthesis::source::SourcePath) -> Option<PathRecord> {
     use crate::synthesis::source::SourcePath;
+    let mut layers = None;
     let plane = match *path {
         SourcePath::PhaseCell => return None,
         SourcePath::Direct => None,
+        SourcePath::Layers {
+            slabs,
+            spacing,
+            plane,
+            frame,
+            silhouettes,
+        } => {
+            layers = Some(crate::output::sidecar::LayersRecord {
+                slabs,
+                slab_um: spacing * 1e6,
+                front_plane_px: plane,
+                frame_px: frame,
+                occlusion: if silhouettes { "silhouette" } else { "none" }.into(),
+                method: "meshes cut into depth slabs on the plate's pixel lattice (orthographic rays); each sample of a surface facing the plate is a diffuse emitter of the shaded amplitude with a random phase; slabs carried back to front by band-limited angular-spectrum steps in the reference's frame, masked by the occluding surfaces and the insides of closed occluding meshes, then carried to the plate by one periodic transform".into(),
+            });
+            None
+        }
         SourcePath::RecordingPlane {
             distance,
             margins,
@@ -84,7 +107,7 @@ pub fn path_record(
             method: "emitters summed on a plane parallel to the plate (supports weighted by a quintic smooth step from 80 % of the half band to the Nyquist limit), carried to the plate by a band-limited angular-spectrum step centred on the reference's frequency".into(),
         }),
     };
-    path.name().map(|n| (n, plane))
+    path.name().map(|n| (n, plane, layers))
 }
 
 /// The reference as recorded.
@@ -379,14 +402,23 @@ pub fn sidecar(spec: &JobSpec, run: RunRecord) -> Sidecar {
             photometric: "min-is-black".into(),
         },
     };
-    let (path, recording_plane) = match run.sum_path {
-        Some((name, plane)) => (Some(name.to_string()), plane),
-        None => (None, None),
+    let (path, recording_plane, layers) = match run.sum_path {
+        Some((name, plane, layers)) => (Some(name.to_string()), plane, layers),
+        None => (None, None, None),
     };
     // What the method computed, in the sidecar's words. Iterative plates have no point sum:
     // say so rather than carry its wording; their loop and FFTs run in f32 whatever the key says.
     let (method, approximation, precision, obliquity, anti_aliasing, fringe_term, point_pixel_updates) =
         match spec.method {
+            Method::PointSum if layers.is_some() => (
+                "point-sum",
+                "exact",
+                "f32",
+                true,
+                "the plate's band: the slices and the frame are sampled at the plate's pitch in the reference's frame, so every component has |f - f_R| <= 1 / (2p) per axis, and only directions from the scene to the plate are kept",
+                "F = O conj(R), O the angular spectrum (Rayleigh-Sommerfeld, first kind) of the slabs' samples a exp(i phi) i lambda / (px py)",
+                0,
+            ),
             Method::PointSum => (
                 "point-sum",
                 s.approximation.name(),
@@ -440,6 +472,7 @@ pub fn sidecar(spec: &JobSpec, run: RunRecord) -> Sidecar {
             precision: precision.into(),
             path,
             recording_plane,
+            layers,
             obliquity,
             anti_aliasing: anti_aliasing.into(),
             fringe_term: fringe_term.into(),

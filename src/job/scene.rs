@@ -13,6 +13,7 @@ use crate::scene::bvh::{visible_from, Bvh};
 use crate::scene::mesh::load_mesh;
 use crate::scene::points::read_points;
 use crate::scene::sampling::{sample_surface, Density, SamplingOptions};
+use crate::synthesis::layers::{LayerObject, LayerSynthesis};
 use crate::synthesis::point_sum::Visibility;
 use crate::synthesis::Emitter;
 
@@ -313,4 +314,87 @@ pub fn write_emitters_ply(path: &std::path::Path, scene: &Scene) -> Result<()> {
         }
     }
     crate::output::atomic::write_atomically(path, t.as_bytes())
+}
+
+/// The meshes of a job for the layers path (`[synthesis] path = "layers"`), loaded and placed, with
+/// the path built on them; also a line per object for `plan`. Point clouds, objects with their own
+/// reference and a paraxial approximation are refused with the reason.
+pub fn layer_synthesis(spec: &JobSpec) -> Result<(LayerSynthesis, Vec<String>)> {
+    let bad = |m: String| Error::job(&spec.path, m);
+    if spec.synthesis.approximation != crate::synthesis::Approximation::Exact {
+        return Err(bad(
+            "[synthesis] path = \"layers\" propagates exact waves: approximation = \"fresnel\" does not apply".into(),
+        ));
+    }
+    let mut objects = Vec::new();
+    let mut notes = Vec::new();
+    for (i, o) in spec.objects.iter().enumerate() {
+        let n = i + 1;
+        let m = match &o.source {
+            ObjectSource::Mesh(m) => m,
+            _ => {
+                return Err(bad(format!(
+                    "[[object]] #{n} ({}): path = \"layers\" slices meshes; point clouds take path = \"direct\"",
+                    o.points.display()
+                )))
+            }
+        };
+        if o.reference.is_some() {
+            return Err(bad(format!(
+                "[[object]] #{n} ({}): path = \"layers\" records every object with the job's one reference",
+                o.points.display()
+            )));
+        }
+        let mesh = load_mesh(&o.points)?.placed(&m.placement);
+        mesh.check().map_err(|e| Error::input(&o.points, e))?;
+        let (lo, hi) = mesh.bounds();
+        if !(lo[2] > 0.0) {
+            return Err(bad(format!(
+                "[[object]] #{n} ({}) reaches z = {:.4} mm after placement; the whole mesh must sit in front of the plate (z > 0): raise offset_mm z",
+                o.points.display(),
+                lo[2] * 1e3
+            )));
+        }
+        notes.push(format!(
+            "object #{n}: mesh {}, {} triangles, file unit {} mm, front {} turned to the viewer, placed in x {:.3}..{:.3}, y {:.3}..{:.3}, z {:.3}..{:.3} mm, {}",
+            o.points.display(),
+            mesh.triangles.len(),
+            m.placement.unit_mm,
+            m.front.name(),
+            lo[0] * 1e3,
+            hi[0] * 1e3,
+            lo[1] * 1e3,
+            hi[1] * 1e3,
+            lo[2] * 1e3,
+            hi[2] * 1e3,
+            if m.occlusion == Occlusion::None { "not occluding" } else { "occluding (silhouettes)" }
+        ));
+        objects.push(LayerObject {
+            mesh,
+            shading: m.shading,
+            phase: m.phase,
+            seed: m.seed,
+            gain: o.gain,
+            occludes: m.occlusion != Occlusion::None,
+        });
+    }
+    let dir = match spec.output.parent() {
+        Some(d) if !d.as_os_str().is_empty() => d.to_path_buf(),
+        _ => std::path::PathBuf::from("."),
+    };
+    let stem = spec
+        .output
+        .file_stem()
+        .map_or_else(|| "plate".to_string(), |s| s.to_string_lossy().into_owned());
+    let stem = format!("{stem}.{}", std::process::id());
+    let layers = LayerSynthesis::new(
+        spec.plate,
+        spec.reference,
+        objects,
+        spec.layer_slabs,
+        dir,
+        &stem,
+    )
+    .map_err(bad)?;
+    Ok((layers, notes))
 }

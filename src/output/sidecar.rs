@@ -342,6 +342,9 @@ pub struct SynthesisRecord {
     pub path: Option<String>,
     /// The recording plane, when that path ran.
     pub recording_plane: Option<RecordingPlaneRecord>,
+    /// The layers, when that path ran.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub layers: Option<LayersRecord>,
     /// Obliquity factor z / r included.
     pub obliquity: bool,
     /// The anti-aliasing rule.
@@ -367,6 +370,23 @@ pub struct RecordingPlaneRecord {
     pub band_rows: usize,
     /// Start of the soft support edge, as a share of the half band.
     pub edge_taper_from: f64,
+    /// The method in words.
+    pub method: String,
+}
+
+/// `synthesis.layers`
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct LayersRecord {
+    /// Number of depth slabs.
+    pub slabs: usize,
+    /// Slab thickness, micrometres.
+    pub slab_um: f64,
+    /// The front plane's samples [columns, rows], at the plate's pitch.
+    pub front_plane_px: [usize; 2],
+    /// The last step's periodic frame [columns, rows].
+    pub frame_px: [usize; 2],
+    /// "silhouette" or "none".
+    pub occlusion: String,
     /// The method in words.
     pub method: String,
 }
@@ -614,6 +634,7 @@ mod unit_tests {
                 precision: "f32".into(),
                 path: Some("direct".into()),
                 recording_plane: None,
+                layers: None,
                 obliquity: false,
                 anti_aliasing: "a".into(),
                 fringe_term: "f".into(),

@@ -244,19 +244,7 @@ pub fn emitter_count(mesh: &Mesh, opts: &SamplingOptions) -> Result<usize> {
 pub fn sample_surface(mesh: &Mesh, opts: &SamplingOptions) -> Result<Vec<SurfaceSample>> {
     let bad = |msg: String| Error::job(&mesh.source, msg);
     mesh.check().map_err(|m| Error::input(&mesh.source, m))?;
-    let sh = &opts.shading;
-    if !(0.0..=1.0).contains(&sh.ambient) {
-        return Err(bad(format!(
-            "shading: ambient {} must lie in [0, 1]",
-            sh.ambient
-        )));
-    }
-    let light = normalized(sh.light_dir).ok_or_else(|| {
-        bad(format!(
-            "shading: light direction {:?} must be finite and not zero",
-            sh.light_dir
-        ))
-    })?;
+    let base = SurfaceShader::new(mesh, &opts.shading)?;
     if let PhaseMode::Constant(p) = opts.phase {
         if !p.is_finite() {
             return Err(bad(format!("sampling: constant phase {p} is not finite")));
@@ -272,23 +260,8 @@ pub fn sample_surface(mesh: &Mesh, opts: &SamplingOptions) -> Result<Vec<Surface
         cumulative.push(acc);
     }
     let total = acc;
-    let computed_normals;
-    let vertex_normals: Option<&[[f64; 3]]> = if sh.smooth_normals {
-        match &mesh.normals {
-            Some(v) => Some(v),
-            None => {
-                computed_normals = mesh.computed_vertex_normals();
-                Some(&computed_normals)
-            }
-        }
-    } else {
-        None
-    };
     let shader = Shader {
-        mesh,
-        light,
-        ambient: sh.ambient,
-        vertex_normals,
+        base,
         phase: opts.phase,
     };
     let seed = opts.seed;
@@ -388,25 +361,69 @@ fn cell_point(cell: u64, m: u64, r1: f64, r2: f64) -> (f64, f64) {
     (u / mf, v / mf)
 }
 
-struct Shader<'a> {
+/// The shading of a placed mesh's surface (module documentation, "Shading"): what every
+/// emitter, or every surface sample of another path, gets at a point of a triangle.
+pub struct SurfaceShader<'a> {
     mesh: &'a Mesh,
     light: [f64; 3],
     ambient: f64,
-    vertex_normals: Option<&'a [[f64; 3]]>,
-    phase: PhaseMode,
+    vertex_normals: Option<std::borrow::Cow<'a, [[f64; 3]]>>,
 }
 
-impl Shader<'_> {
-    /// The emitter at barycentric `(u, v)` of triangle `t` (weights `1 - u - v, u, v` of its
+/// What the shading gives at one point of the surface.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Shaded {
+    /// Position, in the mesh's units.
+    pub pos: [f64; 3],
+    /// Unit shading normal (turned towards the plate on double-sided materials).
+    pub normal: [f64; 3],
+    /// Amplitude: the square root of the Lambertian intensity.
+    pub amplitude: f64,
+}
+
+impl<'a> SurfaceShader<'a> {
+    /// The shader of `mesh` under `shading`; errors name the mesh when the ambient share or
+    /// the light direction is not usable.
+    pub fn new(mesh: &'a Mesh, shading: &Shading) -> Result<Self> {
+        let bad = |msg: String| Error::job(&mesh.source, msg);
+        if !(0.0..=1.0).contains(&shading.ambient) {
+            return Err(bad(format!(
+                "shading: ambient {} must lie in [0, 1]",
+                shading.ambient
+            )));
+        }
+        let light = normalized(shading.light_dir).ok_or_else(|| {
+            bad(format!(
+                "shading: light direction {:?} must be finite and not zero",
+                shading.light_dir
+            ))
+        })?;
+        let vertex_normals = if shading.smooth_normals {
+            Some(match &mesh.normals {
+                Some(v) => std::borrow::Cow::Borrowed(v.as_slice()),
+                None => std::borrow::Cow::Owned(mesh.computed_vertex_normals()),
+            })
+        } else {
+            None
+        };
+        Ok(SurfaceShader {
+            mesh,
+            light,
+            ambient: shading.ambient,
+            vertex_normals,
+        })
+    }
+
+    /// The shading at barycentric `(u, v)` of triangle `t` (weights `1 - u - v, u, v` of its
     /// corners).
-    fn sample(&self, t: usize, u: f64, v: f64, rng: &mut SplitMix64) -> SurfaceSample {
+    pub fn shade(&self, t: usize, u: f64, v: f64) -> Shaded {
         let mesh = self.mesh;
         let tri = mesh.triangles[t];
         let [a, b, c] = mesh.corners(&tri);
         let w = [1.0 - u - v, u, v];
         let pos = [0, 1, 2].map(|k| w[0] * a[k] + w[1] * b[k] + w[2] * c[k]);
         let face = normalized(cross(sub(b, a), sub(c, a))).unwrap_or([0.0, 0.0, -1.0]);
-        let mut normal = match self.vertex_normals {
+        let mut normal = match &self.vertex_normals {
             Some(ns) => {
                 let [na, nb, nc] = tri.map(|i| ns[i as usize]);
                 normalized([0, 1, 2].map(|k| w[0] * na[k] + w[1] * nb[k] + w[2] * nc[k]))
@@ -439,14 +456,31 @@ impl Shader<'_> {
         let albedo = (0.2126 * rgb[0] + 0.7152 * rgb[1] + 0.0722 * rgb[2]).max(0.0);
         let lambert = dot(normal, self.light).max(0.0);
         let intensity = albedo * (self.ambient + (1.0 - self.ambient) * lambert);
+        Shaded {
+            pos,
+            normal,
+            amplitude: intensity.sqrt(),
+        }
+    }
+}
+
+struct Shader<'a> {
+    base: SurfaceShader<'a>,
+    phase: PhaseMode,
+}
+
+impl Shader<'_> {
+    /// The emitter at barycentric `(u, v)` of triangle `t`.
+    fn sample(&self, t: usize, u: f64, v: f64, rng: &mut SplitMix64) -> SurfaceSample {
+        let s = self.base.shade(t, u, v);
         let phase = match self.phase {
             PhaseMode::Random => rng.next_f64() * std::f64::consts::TAU,
             PhaseMode::Constant(p) => p,
         };
         SurfaceSample {
-            pos,
-            normal,
-            amplitude: intensity.sqrt(),
+            pos: s.pos,
+            normal: s.normal,
+            amplitude: s.amplitude,
             phase,
             triangle: t as u32,
         }

@@ -10,6 +10,7 @@
 
 pub mod iterative;
 pub mod kernels;
+pub mod layers;
 pub mod occlusion;
 pub mod phase_cell;
 pub mod planner;

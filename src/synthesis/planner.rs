@@ -13,6 +13,9 @@ pub enum SumPath {
     Direct,
     /// Emitters summed on a recording plane near them, carried to the plate by an FFT step.
     RecordingPlane,
+    /// Meshes sliced in depth and carried to the plate by angular-spectrum steps
+    /// ([`super::layers`]); not a point sum: the job builds it from its meshes.
+    Layers,
     /// The cheaper of the two by the estimates `plan` prints.
     Auto,
 }
@@ -62,6 +65,9 @@ pub struct PathCosts {
 pub fn choose(ask: SumPath, plane: Result<PathCosts, String>) -> Result<SumRecipe, String> {
     match (ask, plane) {
         (SumPath::Direct, _) => Ok(SumRecipe::Direct(DirectBecause::Asked)),
+        (SumPath::Layers, _) => Err(
+            "[synthesis] path = \"layers\" slices the meshes themselves: it is not a path of the point sum".into(),
+        ),
         (SumPath::RecordingPlane, Err(why)) => {
             Err(format!("[synthesis] path = \"recording-plane\": {why}"))
         }

@@ -24,6 +24,19 @@ pub enum SourcePath {
     },
     /// An iterated phase cell repeated over the plate.
     PhaseCell,
+    /// Meshes sliced in depth, carried to the plate by angular-spectrum steps.
+    Layers {
+        /// Number of slabs.
+        slabs: usize,
+        /// Slab thickness, metres.
+        spacing: f64,
+        /// Front plane [columns, rows].
+        plane: [usize; 2],
+        /// Frame of the last step [columns, rows].
+        frame: [usize; 2],
+        /// Whether silhouettes mask.
+        silhouettes: bool,
+    },
 }
 
 impl SourcePath {
@@ -32,6 +45,7 @@ impl SourcePath {
         match self {
             SourcePath::Direct => Some("direct"),
             SourcePath::RecordingPlane { .. } => Some("recording-plane"),
+            SourcePath::Layers { .. } => Some("layers"),
             SourcePath::PhaseCell => None,
         }
     }
@@ -69,6 +83,16 @@ pub trait FringeSource: Send + Sync {
     }
     /// Which path this is.
     fn path(&self) -> SourcePath;
+    /// Work done once before the bands (in the units `prepare` reports), 0 for none.
+    fn prepare_work(&self) -> f64 {
+        0.0
+    }
+    /// Does the work every band needs, once, before the first band; `on_work` gets the work done
+    /// by each step. Sources that need nothing keep the default.
+    fn prepare(&self, on_work: &mut dyn FnMut(f64)) -> crate::error::Result<()> {
+        let _ = on_work;
+        Ok(())
+    }
 }
 
 /// The trait's plate, band and reach methods forwarded to a type's own methods of those names.
@@ -148,5 +172,27 @@ impl FringeSource for super::phase_cell::PhaseCell {
     }
     fn path(&self) -> SourcePath {
         SourcePath::PhaseCell
+    }
+}
+
+impl FringeSource for super::layers::LayerSynthesis {
+    forward_band_methods!();
+    fn estimate_work(&self, _max_rows: usize) -> f64 {
+        self.plate().pixels() as f64
+    }
+    fn path(&self) -> SourcePath {
+        SourcePath::Layers {
+            slabs: self.slicing().count,
+            spacing: self.slicing().spacing,
+            plane: self.plane_rect().size,
+            frame: self.frame_layout().n,
+            silhouettes: self.occludes(),
+        }
+    }
+    fn prepare_work(&self) -> f64 {
+        self.prepare_work()
+    }
+    fn prepare(&self, on_work: &mut dyn FnMut(f64)) -> crate::error::Result<()> {
+        self.prepare(on_work)
     }
 }

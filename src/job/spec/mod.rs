@@ -207,6 +207,8 @@ pub struct JobSpec {
     pub sum_path: SumPath,
     /// Recording-plane gap, metres (None: the method's default).
     pub recording_plane_gap: Option<f64>,
+    /// Layers path: number of depth slabs (None: the path's default).
+    pub layer_slabs: Option<usize>,
     /// Encoding.
     pub encoding: EncodingRequest,
     /// Output TIFF path, resolved.
@@ -402,6 +404,7 @@ impl JobSpec {
             band_rows: sum.band_rows,
             sum_path: sum.path,
             recording_plane_gap: sum.plane_gap,
+            layer_slabs: sum.layer_slabs,
             encoding,
             output: out.path,
             compression: out.compression,

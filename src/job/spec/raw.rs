@@ -99,6 +99,8 @@ pub struct RawSynthesis {
     pub path: Option<String>,
     /// Recording-plane path: distance from the nearest emitter to the plane, mm.
     pub recording_plane_gap_mm: Option<f64>,
+    /// Layers path: number of depth slabs (default: 25 um slabs, at most 64).
+    pub layers: Option<i64>,
     /// Rows computed together per task (default: chosen from the width).
     pub band_rows: Option<i64>,
     /// Iterative: "fourier" or "fresnel".

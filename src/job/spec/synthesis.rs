@@ -70,6 +70,7 @@ pub(super) struct PointSumKeys {
     pub options: PointSumOptions,
     pub path: SumPath,
     pub plane_gap: Option<f64>,
+    pub layer_slabs: Option<usize>,
     pub band_rows: Option<usize>,
 }
 
@@ -100,9 +101,22 @@ pub(super) fn parse_point_sum(
         "direct" => SumPath::Direct,
         "recording-plane" => SumPath::RecordingPlane,
         "auto" => SumPath::Auto,
+        "layers" => SumPath::Layers,
         other => {
             return Err(bad(format!(
-                "[synthesis] path = \"{other}\" is not one of \"direct\", \"recording-plane\", \"auto\""
+                "[synthesis] path = \"{other}\" is not one of \"direct\", \"recording-plane\", \"layers\", \"auto\""
+            )))
+        }
+    };
+    let layer_slabs = match s.layers {
+        None => None,
+        Some(_) if sum_path != SumPath::Layers => {
+            return Err(bad("[synthesis] layers applies to path = \"layers\"".into()))
+        }
+        Some(n) if (1..=100_000).contains(&n) => Some(n as usize),
+        Some(n) => {
+            return Err(bad(format!(
+                "[synthesis] layers = {n} is outside 1..=100000"
             )))
         }
     };
@@ -134,6 +148,7 @@ pub(super) fn parse_point_sum(
         },
         path: sum_path,
         plane_gap: recording_plane_gap,
+        layer_slabs,
         band_rows,
     })
 }

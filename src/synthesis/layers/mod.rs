@@ -1,0 +1,607 @@
+//! Layers: the scene as continuous diffuse surfaces cut into depth slices, carried to the plate
+//! by angular-spectrum steps, with silhouette occlusion in wave optics (the layer-based method of
+//! Matsushima and Shimobaba, Optics Express 17, 19662, 2009; silhouettes slice by slice from
+//! back to front: Matsushima, Applied Optics 44, 4607, 2005).
+//!
+//! # What is computed
+//! 1. **Slices** ([`slices`]): the lattice of the plate's pixel centres, extended over the
+//!    scene's front plane, casts rays parallel to z through every mesh. Each crossing of a
+//!    surface facing the plate is one sample of a diffuse surface: the shaded amplitude a (the
+//!    point sum's shading, [`crate::scene::sampling::SurfaceShader`]), a random phase per lattice
+//!    point and triangle, in the slab of depth it falls in. A sample is the emitter a of the
+//!    direct sum, spread over one pixel: its value is a e^(i phi) i lambda / (p_x p_y), so that
+//!    the angular spectrum (Rayleigh-Sommerfeld of the first kind, which carries the obliquity
+//!    factor z / r) gives a e^(i phi) (z / r) e^(i k r) / r on the plate (Goodman, Introduction to
+//!    Fourier Optics, 3rd ed., eq. 3-41 with k r >> 1).
+//! 2. **Back to front**: the field of the slabs behind is carried over one slab's thickness to
+//!    the next plane ([`transfer`]), then masked: zero wherever that slab holds a surface of an
+//!    occluding object, or the inside of a closed occluding mesh (crossings behind the plane
+//!    odd); then the slab's own samples are added. Light that leaves a surface behind is stopped
+//!    by what stands in front of it along its own direction, for every direction the plate
+//!    records: parallax and occlusion are right from every viewing position, to within a slab.
+//! 3. **To the plate** ([`frame`]): the front plane is carried to the plate by one periodic
+//!    transform over a frame that holds both, streamed through scratch files beside the output.
+//!
+//! All of it runs in the frame of the plane reference (fields demodulated by R), so the plate's
+//! band is exactly the grid's and F = O conj(R) comes out directly (physics.md, Sampling limits;
+//! the recording plane does the same).
+//!
+//! # Accuracy
+//! Against the direct sum with the obliquity factor of the same samples, each placed on its
+//! slab's plane, the plate agrees to the f32 transforms' rounding where every sample sees the
+//! plate inside its band (`tests/layers.rs`). The layer model itself moves every surface point to
+//! its slab's plane: depth is quantised to the slab thickness (a staircase of terraces on sloped
+//! surfaces, seen only at apertures far wider than an eye's).
+//!
+//! # Applies to
+//! Meshes (the surfaces are what is sliced; point clouds take the direct sum), one plane
+//! reference, exact waves. Every encoding, band, shard and resume rule of the direct sum holds:
+//! the slices and the frame are computed again, bit for bit, by every process that needs them.
+
+pub mod frame;
+pub mod slices;
+pub mod transfer;
+
+use std::path::PathBuf;
+use std::sync::OnceLock;
+
+use num_complex::{Complex32, Complex64};
+
+use self::frame::{Frame, FrameLayout};
+use self::slices::{is_closed, Hit, LatticeRect, Slices, Slicing};
+use self::transfer::{smooth_size, SpectralGrid, Window};
+use super::point_sum::BandScratch;
+use super::Emitter;
+use crate::error::Result;
+use crate::optics::fft2d::Fft2d;
+use crate::optics::{Plate, Reference};
+use crate::scene::mesh::{cross, sub, Mesh};
+use crate::scene::sampling::{PhaseMode, Shading, SplitMix64, SurfaceShader};
+
+/// One mesh of a layered scene.
+#[derive(Clone, Debug)]
+pub struct LayerObject {
+    /// The mesh, placed (plate coordinates, metres).
+    pub mesh: Mesh,
+    /// Lighting.
+    pub shading: Shading,
+    /// Phases of the surface samples.
+    pub phase: PhaseMode,
+    /// Seed of the random phases.
+    pub seed: u64,
+    /// Amplitude factor.
+    pub gain: f64,
+    /// Whether the object stops light from behind it (silhouette masks).
+    pub occludes: bool,
+}
+
+/// Largest default number of slices.
+pub const MAX_DEFAULT_SLICES: usize = 64;
+/// Default slab thickness when the scene is shallow enough, metres.
+pub const DEFAULT_SLAB: f64 = 25e-6;
+
+/// The layer synthesis of one scene on one plate.
+pub struct LayerSynthesis {
+    plate: Plate,
+    tilt: [f64; 2],
+    objects: Vec<LayerObject>,
+    closed: Vec<bool>,
+    slicing: Slicing,
+    /// The front plane's lattice rectangle (the slices share it).
+    rect: LatticeRect,
+    hop_window: Window,
+    final_window: Window,
+    layout: FrameLayout,
+    scratch_dir: PathBuf,
+    stem: String,
+    frame: OnceLock<Frame>,
+}
+
+/// `lo..=hi` of a set of values.
+fn span(v: impl Iterator<Item = f64>) -> [f64; 2] {
+    v.fold([f64::INFINITY, f64::NEG_INFINITY], |[a, b], x| {
+        [a.min(x), b.max(x)]
+    })
+}
+
+impl LayerSynthesis {
+    /// Prepares the synthesis (geometry only; [`Self::prepare`] computes). `slices`: number of
+    /// depth slabs (default: slabs of [`DEFAULT_SLAB`], at most [`MAX_DEFAULT_SLICES`]).
+    /// Scratch files go to `scratch_dir`, named after `stem`. Returns why the method does not
+    /// apply, if it does not.
+    pub fn new(
+        plate: Plate,
+        reference: Reference,
+        objects: Vec<LayerObject>,
+        slices: Option<usize>,
+        scratch_dir: PathBuf,
+        stem: &str,
+    ) -> std::result::Result<Self, String> {
+        let tilt = match reference {
+            Reference::Plane { tilt } => tilt,
+            Reference::Spherical { .. } => {
+                return Err("the layers path needs a plane reference".into())
+            }
+        };
+        if objects.is_empty() {
+            return Err("the layers path slices meshes, and the job has none".into());
+        }
+        let x = span(
+            objects
+                .iter()
+                .flat_map(|o| o.mesh.positions.iter().map(|p| p[0])),
+        );
+        let y = span(
+            objects
+                .iter()
+                .flat_map(|o| o.mesh.positions.iter().map(|p| p[1])),
+        );
+        let z = span(
+            objects
+                .iter()
+                .flat_map(|o| o.mesh.positions.iter().map(|p| p[2])),
+        );
+        if !(z[0] > 0.0
+            && x[0].is_finite()
+            && x[1].is_finite()
+            && y[0].is_finite()
+            && y[1].is_finite()
+            && z[1].is_finite())
+        {
+            return Err(
+                "every mesh must lie in front of the plate (z > 0) at finite positions".into(),
+            );
+        }
+        let depth = z[1] - z[0];
+        let count = match slices {
+            Some(n) => n,
+            None => ((depth / DEFAULT_SLAB).ceil() as usize).clamp(1, MAX_DEFAULT_SLICES),
+        };
+        if count == 0 || count > 100_000 {
+            return Err(format!("layers = {count} is outside 1..=100000"));
+        }
+        // Slabs cover [z0, z1] with the last depth inside the last slab.
+        let spacing = (depth / count as f64).max(1e-9) * (1.0 + 1e-9);
+        let slicing = Slicing {
+            z0: z[0],
+            spacing,
+            count,
+        };
+        let p = plate;
+        let half = [p.pitch[0] / 2.0, p.pitch[1] / 2.0];
+        let plate_x = [
+            p.x_of_col(0.0) - half[0],
+            p.x_of_col(p.width as f64 - 1.0) + half[0],
+        ];
+        let plate_y = [
+            p.y_of_row(p.height as f64 - 1.0) - half[1],
+            p.y_of_row(0.0) + half[1],
+        ];
+        // Tangents of every ray from a scene point to a plate point.
+        let tangents = |s: [f64; 2], q: [f64; 2], zs: [f64; 2]| -> [f64; 2] {
+            let lo = zs
+                .iter()
+                .map(|&d| (q[0] - s[1]) / d)
+                .fold(f64::INFINITY, f64::min);
+            let hi = zs
+                .iter()
+                .map(|&d| (q[1] - s[0]) / d)
+                .fold(f64::NEG_INFINITY, f64::max);
+            [lo, hi]
+        };
+        let hop_window = Window {
+            x: tangents(x, plate_x, z),
+            y: tangents(y, plate_y, z),
+        };
+        let z_front = slicing.plane(0);
+        let travel = slicing.plane(count - 1) - z_front;
+        let ring = |d: f64, pitch: f64| {
+            (4.0 * (p.wavelength * d.max(0.0)).sqrt() / pitch).ceil() as i64 + 16
+        };
+        // The front plane: the scene's box widened by the farthest sideways travel from the back
+        // plane, and a guard for the edges' ringing.
+        let sx = [
+            x[0] + hop_window.x[0].min(0.0) * travel,
+            x[1] + hop_window.x[1].max(0.0) * travel,
+        ];
+        let sy = [
+            y[0] + hop_window.y[0].min(0.0) * travel,
+            y[1] + hop_window.y[1].max(0.0) * travel,
+        ];
+        let gx = ring(travel, p.pitch[0]);
+        let gy = ring(travel, p.pitch[1]);
+        let c0 = p.col_of_x(sx[0]).floor() as i64 - gx;
+        let c1 = p.col_of_x(sx[1]).ceil() as i64 + gx;
+        let row_of = |yy: f64| (p.height as f64 - 1.0) / 2.0 - yy / p.pitch[1];
+        let r0 = row_of(sy[1]).floor() as i64 - gy;
+        let r1 = row_of(sy[0]).ceil() as i64 + gy;
+        let size = [
+            smooth_size((c1 - c0 + 1) as usize),
+            smooth_size((r1 - r0 + 1) as usize),
+        ];
+        if size[0] > 1 << 20 || size[1] > 1 << 20 {
+            return Err(format!(
+                "the scene's front plane would be {} x {} samples (more than 2^20 on a side)",
+                size[0], size[1]
+            ));
+        }
+        let rect = LatticeRect {
+            origin: [c0, r0],
+            size,
+        };
+        // The frame: plate and front plane apart by more than both extents, plus a guard.
+        let gfx = ring(z_front, p.pitch[0]) as usize;
+        let gfy = ring(z_front, p.pitch[1]) as usize;
+        let n = [
+            smooth_size(p.width as usize + size[0] + gfx),
+            smooth_size(p.height as usize + size[1] + gfy),
+        ];
+        let layout = FrameLayout {
+            n,
+            plane: size,
+            plane_origin: [c0, r0],
+            plate: [p.width as usize, p.height as usize],
+        };
+        // The last step keeps every ray from the front plane's rectangle to the plate.
+        let fx = [
+            p.x_of_col(c0 as f64),
+            p.x_of_col((c0 + size[0] as i64 - 1) as f64),
+        ];
+        let fy = [
+            p.y_of_row((r0 + size[1] as i64 - 1) as f64),
+            p.y_of_row(r0 as f64),
+        ];
+        let final_window = Window {
+            x: tangents(fx, plate_x, [z_front, z_front]),
+            y: tangents(fy, plate_y, [z_front, z_front]),
+        };
+        let closed = objects.iter().map(|o| is_closed(&o.mesh)).collect();
+        Ok(LayerSynthesis {
+            plate,
+            tilt,
+            objects,
+            closed,
+            slicing,
+            rect,
+            hop_window,
+            final_window,
+            layout,
+            scratch_dir,
+            stem: stem.to_string(),
+            frame: OnceLock::new(),
+        })
+    }
+
+    /// The plate.
+    pub fn plate(&self) -> &Plate {
+        &self.plate
+    }
+    /// The depth slabs.
+    pub fn slicing(&self) -> Slicing {
+        self.slicing
+    }
+    /// The front plane's lattice rectangle.
+    pub fn plane_rect(&self) -> LatticeRect {
+        self.rect
+    }
+    /// The frame of the last step.
+    pub fn frame_layout(&self) -> FrameLayout {
+        self.layout
+    }
+    /// Whether each object is a closed mesh (its inside is masked too).
+    pub fn closed(&self) -> &[bool] {
+        &self.closed
+    }
+    /// Whether any object occludes.
+    pub fn occludes(&self) -> bool {
+        self.objects.iter().any(|o| o.occludes)
+    }
+    /// Emitters nothing can reach (always 0: the frame carries every sample).
+    pub fn unreachable(&self) -> usize {
+        0
+    }
+
+    fn spectral(&self, n: [usize; 2]) -> SpectralGrid {
+        let p = &self.plate;
+        SpectralGrid {
+            n,
+            pitch: p.pitch,
+            wavelength: p.wavelength,
+            f_r: [
+                self.tilt[0].sin() / p.wavelength,
+                self.tilt[1].sin() / p.wavelength,
+            ],
+        }
+    }
+
+    /// Work of the whole computation in FFT element-passes (one element of one radix-2 pass):
+    /// the slices' transforms, the frame's three passes, and the rasterisation counted as one
+    /// element-pass per lattice point tested.
+    pub fn work(&self) -> LayerWork {
+        let s = self.rect.len() as f64;
+        let [nx, ny] = self.layout.n.map(|v| v as f64);
+        let ph = self.layout.plane[1] as f64;
+        let hops = self.slicing.count.saturating_sub(1) as f64;
+        let slices = hops * 2.0 * s * s.log2().max(1.0);
+        let frame = ph * nx * nx.log2() + nx * 2.0 * ny * ny.log2();
+        let bands = self.plate.height as f64 * nx * nx.log2();
+        LayerWork {
+            slices,
+            frame,
+            bands,
+        }
+    }
+
+    /// Lattice points the rasterisation tests (the triangles' boxes over the slabs they span).
+    pub fn raster_work(&self) -> f64 {
+        self.slices().work()
+    }
+
+    /// Peak memory of the computation, bytes: the front plane, its transfer function and FFT
+    /// scratch while slicing, or a column block of the frame.
+    pub fn peak_bytes(&self) -> u64 {
+        let s = self.rect.len() as u64 * 8;
+        let bits = self.closed.iter().filter(|c| **c).count() as u64 * self.rect.len() as u64 / 8;
+        (3 * s + bits).max(s + 2 * frame::BLOCK_BYTES as u64)
+    }
+
+    /// Where the scratch files go.
+    pub fn scratch_dir(&self) -> &std::path::Path {
+        &self.scratch_dir
+    }
+    /// Bytes of the scratch files.
+    pub fn scratch_bytes(&self) -> u64 {
+        self.layout.scratch_bytes()
+    }
+
+    /// Lines for `plan`.
+    pub fn describe(&self) -> Vec<String> {
+        let s = self.slicing;
+        let [fw, fh] = self.rect.size;
+        let [nx, ny] = self.layout.n;
+        let occl = if self.occludes() {
+            let closed = self.closed.iter().filter(|c| **c).count();
+            format!(
+                "silhouette masks slice by slice, back to front ({closed} of {} meshes closed: their insides are masked too)",
+                self.objects.len()
+            )
+        } else {
+            "none".to_string()
+        };
+        vec![
+            format!(
+                "layers: {} slabs of {:.2} um from z = {:.3} to {:.3} mm; front plane {fw} x {fh} samples at the plate's pitch; frame {nx} x {ny} ({:.2} GB of scratch files beside the output, peak memory about {:.2} GB)",
+                s.count,
+                s.spacing * 1e6,
+                s.z0 * 1e3,
+                (s.z0 + s.spacing * s.count as f64) * 1e3,
+                self.scratch_bytes() as f64 / 1e9,
+                self.peak_bytes() as f64 / 1e9
+            ),
+            format!("layers occlusion: {occl}"),
+        ]
+    }
+
+    /// The surface samples as emitters on their slabs' planes (for checks against the direct
+    /// sum: with the obliquity factor they give the same plate). Errors as [`Self::prepare`].
+    pub fn samples_as_emitters(&self) -> Result<Vec<Emitter>> {
+        let slices = self.slices();
+        let shaders = self.shaders()?;
+        let mut out = Vec::new();
+        for k in 0..self.slicing.count {
+            for h in slices.hits(k) {
+                if let Some((amp, phase)) = self.sample_of(&h, &shaders) {
+                    let (x, y) = self.lattice_xy(h.sample);
+                    out.push(Emitter {
+                        pos: [x, y, self.slicing.plane(k)],
+                        amplitude: amp,
+                        phase,
+                    });
+                }
+            }
+        }
+        Ok(out)
+    }
+
+    fn slices(&self) -> Slices {
+        let meshes: Vec<&Mesh> = self.objects.iter().map(|o| &o.mesh).collect();
+        Slices::new(&meshes, &self.plate, self.rect, self.slicing)
+    }
+
+    fn shaders(&self) -> Result<Vec<SurfaceShader<'_>>> {
+        self.objects
+            .iter()
+            .map(|o| SurfaceShader::new(&o.mesh, &o.shading))
+            .collect()
+    }
+
+    fn lattice(&self, sample: usize) -> [i64; 2] {
+        let w = self.rect.size[0];
+        [
+            self.rect.origin[0] + (sample % w) as i64,
+            self.rect.origin[1] + (sample / w) as i64,
+        ]
+    }
+
+    fn lattice_xy(&self, sample: usize) -> (f64, f64) {
+        let [c, r] = self.lattice(sample);
+        (self.plate.x_of_col(c as f64), self.plate.y_of_row(r as f64))
+    }
+
+    /// Amplitude and phase of a hit's sample, or None when its surface faces away from the plate.
+    fn sample_of(&self, h: &Hit, shaders: &[SurfaceShader<'_>]) -> Option<(f64, f64)> {
+        let o = &self.objects[h.object as usize];
+        let mesh = &o.mesh;
+        let t = h.triangle as usize;
+        let [a, b, c] = mesh.corners(&mesh.triangles[t]);
+        let face = cross(sub(b, a), sub(c, a));
+        let double = mesh.materials[mesh.tri_material[t] as usize].double_sided;
+        if !(face[2] < 0.0 || double) {
+            return None;
+        }
+        let amp = shaders[h.object as usize]
+            .shade(t, h.uv[0], h.uv[1])
+            .amplitude
+            * o.gain;
+        let [gx, gy] = self.lattice(h.sample);
+        let phase = match o.phase {
+            PhaseMode::Random => {
+                SplitMix64::stream(o.seed, gx as u64, gy as u64, t as u64).next_f64()
+                    * std::f64::consts::TAU
+            }
+            PhaseMode::Constant(p) => p,
+        };
+        Some((amp, phase))
+    }
+
+    /// Work shares of the steps of [`Self::prepare`], for progress.
+    pub fn prepare_work(&self) -> f64 {
+        let w = self.work();
+        w.slices + w.frame
+    }
+
+    /// Computes the slices and the frame (once; later calls return at once). `on_work` gets the
+    /// work done by each step, in the units of [`Self::prepare_work`]. Errors: the meshes'
+    /// shading, or the scratch files (named).
+    pub fn prepare(&self, on_work: &mut dyn FnMut(f64)) -> Result<()> {
+        if self.frame.get().is_some() {
+            return Ok(());
+        }
+        let work = self.work();
+        let plane = self.front_plane(&mut |share| on_work(share * work.slices))?;
+        let frame = Frame::build(
+            &plane,
+            self.layout,
+            self.spectral(self.layout.n),
+            self.slicing.plane(0),
+            &self.final_window,
+            &self.scratch_dir,
+            &self.stem,
+            &mut |share| on_work(share * work.frame),
+        )?;
+        let _ = self.frame.set(frame);
+        Ok(())
+    }
+
+    /// The field on the front plane (row-major over [`Self::plane_rect`], demodulated by R):
+    /// every slab back to front, carried, masked and added to.
+    pub fn front_plane(&self, on_work: &mut dyn FnMut(f64)) -> Result<Vec<Complex32>> {
+        let shaders = self.shaders()?;
+        let slices = self.slices();
+        let [w, h] = self.rect.size;
+        let count = self.slicing.count;
+        let mut u = vec![Complex32::new(0.0, 0.0); w * h];
+        let fft = Fft2d::<f32>::new(w, h);
+        let hop = if count > 1 {
+            self.spectral(self.rect.size)
+                .transfer_columns(self.slicing.spacing, &self.hop_window)
+        } else {
+            Vec::new()
+        };
+        let mut scratch =
+            vec![Complex32::new(0.0, 0.0); if count > 1 { fft.scratch_len() } else { 0 }];
+        let words = (w * h).div_ceil(64);
+        let mut behind: Vec<Option<Vec<u64>>> = self
+            .objects
+            .iter()
+            .zip(&self.closed)
+            .map(|(o, &c)| (o.occludes && c).then(|| vec![0u64; words]))
+            .collect();
+        let k_wave = self.plate.k();
+        let s_r = [self.tilt[0].sin(), self.tilt[1].sin()];
+        let sample_scale = self.plate.wavelength / (self.plate.pitch[0] * self.plate.pitch[1]);
+        let mut lit = false;
+        for k in (0..count).rev() {
+            if lit && k + 1 < count {
+                fft.run(
+                    &mut u,
+                    &mut scratch,
+                    false,
+                    |_, _| {},
+                    |j, col| {
+                        for (v, t) in col.iter_mut().zip(&hop[j * h..(j + 1) * h]) {
+                            *v *= t;
+                        }
+                    },
+                );
+                fft.process_inverse_with_scratch(&mut u, &mut scratch);
+            }
+            let hits = slices.hits(k);
+            let plane = self.slicing.plane(k);
+            let toggle = |behind: &mut [Option<Vec<u64>>], pass_behind: bool| {
+                for hh in &hits {
+                    if (hh.z > plane) == pass_behind {
+                        if let Some(bits) = &mut behind[hh.object as usize] {
+                            bits[hh.sample / 64] ^= 1 << (hh.sample % 64);
+                        }
+                    }
+                }
+            };
+            if self.occludes() {
+                toggle(&mut behind, true);
+                for hh in &hits {
+                    if self.objects[hh.object as usize].occludes {
+                        u[hh.sample] = Complex32::new(0.0, 0.0);
+                    }
+                }
+                for bits in behind.iter().flatten() {
+                    for (wi, &word) in bits.iter().enumerate() {
+                        let mut m = word;
+                        while m != 0 {
+                            let b = m.trailing_zeros() as usize;
+                            u[wi * 64 + b] = Complex32::new(0.0, 0.0);
+                            m &= m - 1;
+                        }
+                    }
+                }
+                toggle(&mut behind, false);
+            }
+            for hh in &hits {
+                if let Some((amp, phase)) = self.sample_of(hh, &shaders) {
+                    let (x, y) = self.lattice_xy(hh.sample);
+                    // The sample's value, demodulated by R at its lattice point.
+                    let cycles =
+                        (phase - k_wave * (s_r[0] * x + s_r[1] * y)) / std::f64::consts::TAU;
+                    let t = cycles - cycles.round();
+                    let (s, c) = (std::f64::consts::TAU * t).sin_cos();
+                    // i a lambda / (p_x p_y) e^(i phase): the factor i turns (c, s) to (-s, c).
+                    let m = amp * sample_scale;
+                    u[hh.sample] += Complex32::new((-s * m) as f32, (c * m) as f32);
+                    lit = true;
+                }
+            }
+            on_work(1.0 / count as f64);
+        }
+        Ok(u)
+    }
+
+    /// Computes F for rows [r0, r0 + n) into `out`; returns the pixels computed.
+    ///
+    /// # Panics
+    /// If [`Self::prepare`] has not run (a bug in the caller), or as [`Frame::read_band`].
+    pub fn compute_band(
+        &self,
+        r0: usize,
+        n: usize,
+        out: &mut [Complex64],
+        _scratch: &mut BandScratch,
+    ) -> u64 {
+        let frame = self
+            .frame
+            .get()
+            .expect("LayerSynthesis::prepare runs before the bands");
+        frame.read_band(r0, n, out);
+        (n * self.plate.width as usize) as u64
+    }
+}
+
+/// Work of a layer synthesis, in FFT element-passes.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct LayerWork {
+    /// The slabs' transforms.
+    pub slices: f64,
+    /// The frame's row and column passes.
+    pub frame: f64,
+    /// The bands' inverse row transforms.
+    pub bands: f64,
+}

@@ -1,0 +1,166 @@
+//! Free-space transfer in the frame of a plane reference, kept to the directions that carry
+//! light from the scene to the plate.
+//!
+//! A grid of pitch p holds, after demodulation by the reference R = exp(i 2 pi f_R . x), the
+//! frequencies f = f' + f_R with |f'| <= 1 / (2p) per axis (physics.md, Sampling limits). Free
+//! space over a distance d, travelling towards the plate, multiplies the spectrum by
+//! H(f) = exp(i 2 pi d sqrt(1 / lambda^2 - |f|^2)) (the angular spectrum, Goodman,
+//! Introduction to Fourier Optics, 3rd ed., sec. 3.10; zero for evanescent f). Multiplying by H is
+//! exact for the sampled field when nothing wraps around the periodic grid; what keeps wrap-around
+//! out is a window of directions: a component of frequency f travels sideways by
+//! d f / sqrt(1 / lambda^2 - |f|^2) (its ray's tangent times d), and only tangents in
+//! [`Window`] are kept (the band-limited angular spectrum of Matsushima and Shimobaba, Optics
+//! Express 17, 19662, 2009, with the limit set by the scene-to-plate geometry rather than the grid,
+//! as in the shifted form: Matsushima, Optics Express 18, 18453, 2010).
+
+use num_complex::Complex32;
+
+/// Tangents (sideways travel per unit of distance travelled towards the plate, plate axes) that
+/// are kept, per axis: `[lo, hi]`.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Window {
+    /// x tangents.
+    pub x: [f64; 2],
+    /// y tangents (y up).
+    pub y: [f64; 2],
+}
+
+impl Window {
+    /// Whether a direction with these tangents is kept.
+    #[inline]
+    pub fn keeps(&self, tx: f64, ty: f64) -> bool {
+        tx >= self.x[0] && tx <= self.x[1] && ty >= self.y[0] && ty <= self.y[1]
+    }
+}
+
+/// The spectral grid of a periodic plane of `n` = [columns, rows] samples at `pitch`, for a
+/// wavelength and a plane reference's frequency `f_r` (cycles per metre, plate axes).
+#[derive(Clone, Copy, Debug)]
+pub struct SpectralGrid {
+    /// Samples [columns, rows].
+    pub n: [usize; 2],
+    /// Pitch [x, y], metres.
+    pub pitch: [f64; 2],
+    /// Wavelength, metres.
+    pub wavelength: f64,
+    /// Reference frequency, cycles per metre.
+    pub f_r: [f64; 2],
+}
+
+/// Signed DFT index of bin `k` of `n`: k for k < ceil(n/2), k - n above.
+#[inline]
+fn signed(k: usize, n: usize) -> f64 {
+    if k < n.div_ceil(2) {
+        k as f64
+    } else {
+        k as f64 - n as f64
+    }
+}
+
+impl SpectralGrid {
+    /// Physical x frequency of column bin `j` (cycles per metre).
+    #[inline]
+    pub fn fx(&self, j: usize) -> f64 {
+        signed(j, self.n[0]) / (self.n[0] as f64 * self.pitch[0]) + self.f_r[0]
+    }
+    /// Physical y frequency of row bin `i`: the row index grows downwards while y grows upwards,
+    /// so DFT bin k along the rows is the frequency -k / (N p).
+    #[inline]
+    pub fn fy(&self, i: usize) -> f64 {
+        -signed(i, self.n[1]) / (self.n[1] as f64 * self.pitch[1]) + self.f_r[1]
+    }
+
+    /// H at physical frequency (fx, fy) over `distance`, zero outside `window` or evanescent.
+    #[inline]
+    pub fn transfer_at(&self, fx: f64, fy: f64, distance: f64, window: &Window) -> Complex32 {
+        let inv_l2 = 1.0 / (self.wavelength * self.wavelength);
+        let w2 = inv_l2 - fx * fx - fy * fy;
+        if w2 <= 0.0 {
+            return Complex32::new(0.0, 0.0);
+        }
+        let w = w2.sqrt();
+        if !window.keeps(fx / w, fy / w) {
+            return Complex32::new(0.0, 0.0);
+        }
+        // Whole cycles dropped in f64 before the sine: d w is up to ~1e5 cycles.
+        let cycles = distance * w;
+        let t = cycles - cycles.round();
+        let (s, c) = (std::f64::consts::TAU * t).sin_cos();
+        Complex32::new(c as f32, s as f32)
+    }
+
+    /// H over `distance` for every bin, column-major (column j at `[j * rows, (j + 1) * rows)`),
+    /// the order the FFT's column pass visits them in.
+    pub fn transfer_columns(&self, distance: f64, window: &Window) -> Vec<Complex32> {
+        use rayon::prelude::*;
+        let [nx, ny] = self.n;
+        let mut out = vec![Complex32::new(0.0, 0.0); nx * ny];
+        out.par_chunks_mut(ny).enumerate().for_each(|(j, col)| {
+            let fx = self.fx(j);
+            for (i, h) in col.iter_mut().enumerate() {
+                *h = self.transfer_at(fx, self.fy(i), distance, window);
+            }
+        });
+        out
+    }
+}
+
+/// The smallest n' >= n whose only prime factors are 2, 3 and 5 (fast FFT sizes).
+pub fn smooth_size(n: usize) -> usize {
+    let mut m = n.max(1);
+    loop {
+        let mut r = m;
+        for p in [2, 3, 5] {
+            while r.is_multiple_of(p) {
+                r /= p;
+            }
+        }
+        if r == 1 {
+            return m;
+        }
+        m += 1;
+    }
+}
+
+#[cfg(test)]
+mod unit_tests {
+    use super::*;
+
+    #[test]
+    fn smooth_sizes() {
+        assert_eq!(smooth_size(1), 1);
+        assert_eq!(smooth_size(7), 8);
+        assert_eq!(smooth_size(17700), 18000);
+        assert_eq!(smooth_size(1025), 1080);
+    }
+
+    #[test]
+    fn frequencies_follow_the_lattice() {
+        // Row bins: y grows upwards, so bin 1 is a negative y frequency (the recording plane's
+        // rule, tested there against the direct sum).
+        let g = SpectralGrid {
+            n: [8, 4],
+            pitch: [1e-6, 2e-6],
+            wavelength: 0.5e-6,
+            f_r: [0.0, 1e5],
+        };
+        assert!((g.fx(1) - 1.0 / 8e-6).abs() < 1e-6);
+        assert!((g.fx(7) + 1.0 / 8e-6).abs() < 1e-6);
+        assert!((g.fy(1) - (1e5 - 1.0 / 8e-6)).abs() < 1e-6);
+        // The direction window cuts: everything kept with a wide window, nothing with an
+        // empty one.
+        let wide = Window {
+            x: [-10.0, 10.0],
+            y: [-10.0, 10.0],
+        };
+        let none = Window {
+            x: [1.0, -1.0],
+            y: [0.0, 0.0],
+        };
+        let h = g.transfer_at(g.fx(1), g.fy(1), 1e-3, &wide);
+        assert!((h.norm() - 1.0).abs() < 1e-6);
+        assert_eq!(g.transfer_at(g.fx(1), g.fy(1), 1e-3, &none).norm(), 0.0);
+        // Evanescent: |f| above 1 / lambda.
+        assert_eq!(g.transfer_at(2.1e6, 0.0, 1e-3, &wide).norm(), 0.0);
+    }
+}
