@@ -34,7 +34,7 @@ use super::transfer::{SpectralGrid, Window};
 use crate::error::{Error, Result};
 
 /// Largest column block of pass 2, bytes.
-pub const BLOCK_BYTES: usize = 256 << 20;
+pub const BLOCK_BYTES: usize = 64 << 20;
 
 const SAMPLE: usize = 8; // bytes per Complex32
 

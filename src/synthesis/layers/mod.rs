@@ -75,6 +75,11 @@ pub struct LayerObject {
     pub occludes: bool,
 }
 
+/// Share of the half band kept at full weight in every step (the outer fifth rolls off to zero at
+/// the Nyquist limit, as on the recording plane; repeated at each slab's step, so the farther
+/// slabs roll off more steeply there).
+pub const BAND_FLAT: f64 = 0.8;
+
 /// Largest default number of slices.
 pub const MAX_DEFAULT_SLICES: usize = 64;
 /// Default slab thickness when the scene is shallow enough, metres.
@@ -189,24 +194,43 @@ impl LayerSynthesis {
                 .fold(f64::NEG_INFINITY, f64::max);
             [lo, hi]
         };
-        let hop_window = Window {
-            x: tangents(x, plate_x, z),
-            y: tangents(y, plate_y, z),
-        };
         let z_front = slicing.plane(0);
         let travel = slicing.plane(count - 1) - z_front;
+        // The last step: full weight for every ray from the scene's box to the plate, then a soft
+        // edge 8 Fresnel widths (at least 32 pixels) wide in position at the front plane's depth.
+        let edge = (8.0 * (p.wavelength * z_front).sqrt()).max(32.0 * p.pitch[0].max(p.pitch[1]));
+        // The flat part reaches half an edge width past the outermost rays: a smooth step that
+        // starts on a ray still bends it by about 1e-3.
+        let widen = |t: [f64; 2]| [t[0] - edge / 2.0 / z_front, t[1] + edge / 2.0 / z_front];
+        let final_window = Window {
+            x: widen(tangents(x, plate_x, z)),
+            y: widen(tangents(y, plate_y, z)),
+            soft: [edge / z_front; 2],
+        };
+        // The slabs' steps: flat a little beyond the last step's soft edge (what the slabs' steps
+        // attenuate there, the last step drops anyway), then soft too. A sharp cut would give each
+        // step's kernel tails that fall off only as 1 / distance and wrap around the front plane's
+        // periodic grid (measured: 1 % of max |F| on the test scene).
+        let sup = final_window.support();
+        let extra = edge / z[1];
+        let hop_window = Window {
+            x: [sup[0][0] - extra, sup[0][1] + extra],
+            y: [sup[1][0] - extra, sup[1][1] + extra],
+            soft: [edge / z_front; 2],
+        };
+        let hop_sup = hop_window.support();
         let ring = |d: f64, pitch: f64| {
             (4.0 * (p.wavelength * d.max(0.0)).sqrt() / pitch).ceil() as i64 + 16
         };
         // The front plane: the scene's box widened by the farthest sideways travel from the back
         // plane, and a guard for the edges' ringing.
         let sx = [
-            x[0] + hop_window.x[0].min(0.0) * travel,
-            x[1] + hop_window.x[1].max(0.0) * travel,
+            x[0] + hop_sup[0][0].min(0.0) * travel,
+            x[1] + hop_sup[0][1].max(0.0) * travel,
         ];
         let sy = [
-            y[0] + hop_window.y[0].min(0.0) * travel,
-            y[1] + hop_window.y[1].max(0.0) * travel,
+            y[0] + hop_sup[1][0].min(0.0) * travel,
+            y[1] + hop_sup[1][1].max(0.0) * travel,
         ];
         let gx = ring(travel, p.pitch[0]);
         let gy = ring(travel, p.pitch[1]);
@@ -229,20 +253,9 @@ impl LayerSynthesis {
             origin: [c0, r0],
             size,
         };
-        // The frame: plate and front plane apart by more than both extents, plus a guard.
-        let gfx = ring(z_front, p.pitch[0]) as usize;
-        let gfy = ring(z_front, p.pitch[1]) as usize;
-        let n = [
-            smooth_size(p.width as usize + size[0] + gfx),
-            smooth_size(p.height as usize + size[1] + gfy),
-        ];
-        let layout = FrameLayout {
-            n,
-            plane: size,
-            plane_origin: [c0, r0],
-            plate: [p.width as usize, p.height as usize],
-        };
-        // The last step keeps every ray from the front plane's rectangle to the plate.
+        // The frame: every kept ray from the front plane lands in [land_lo, land_hi]; a period N
+        // with N > plate_hi - land_lo and N > land_hi - plate_lo folds none of them onto the
+        // plate (plus half an edge width for the soft edge's own tails).
         let fx = [
             p.x_of_col(c0 as f64),
             p.x_of_col((c0 + size[0] as i64 - 1) as f64),
@@ -251,9 +264,21 @@ impl LayerSynthesis {
             p.y_of_row((r0 + size[1] as i64 - 1) as f64),
             p.y_of_row(r0 as f64),
         ];
-        let final_window = Window {
-            x: tangents(fx, plate_x, [z_front, z_front]),
-            y: tangents(fy, plate_y, [z_front, z_front]),
+        let period =
+            |f: [f64; 2], s: [f64; 2], q: [f64; 2], pitch: f64, own: usize, plate_n: usize| {
+                let land = [f[0] + s[0] * z_front, f[1] + s[1] * z_front];
+                let span = (q[1] - land[0]).max(land[1] - q[0]) + edge / 2.0;
+                smooth_size(((span / pitch).ceil() as usize + 16).max(own + plate_n))
+            };
+        let n = [
+            period(fx, sup[0], plate_x, p.pitch[0], size[0], p.width as usize),
+            period(fy, sup[1], plate_y, p.pitch[1], size[1], p.height as usize),
+        ];
+        let layout = FrameLayout {
+            n,
+            plane: size,
+            plane_origin: [c0, r0],
+            plate: [p.width as usize, p.height as usize],
         };
         let closed = objects.iter().map(|o| is_closed(&o.mesh)).collect();
         Ok(LayerSynthesis {
@@ -311,6 +336,7 @@ impl LayerSynthesis {
                 self.tilt[0].sin() / p.wavelength,
                 self.tilt[1].sin() / p.wavelength,
             ],
+            band_flat: BAND_FLAT,
         }
     }
 

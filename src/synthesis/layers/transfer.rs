@@ -16,20 +16,51 @@
 use num_complex::Complex32;
 
 /// Tangents (sideways travel per unit of distance travelled towards the plate, plate axes) that
-/// are kept, per axis: `[lo, hi]`.
+/// are kept, per axis: weight 1 over `[lo, hi]`, then a quintic smooth step down to 0 over `soft`
+/// beyond each end (0: a sharp cut).
+///
+/// A sharp cut in direction rings like a knife edge (Fresnel): a ray a distance x inside the cut
+/// at distance z is off by about sqrt(lambda z) / (pi x sqrt 2) (Born and Wolf, Principles of
+/// Optics, sec. 8.7), 5 % four Fresnel widths in. The last step's window is therefore soft, with
+/// its flat part holding every ray from the scene to the plate, so the rays that matter keep full
+/// weight and the edge diffracts nothing back onto them.
 #[derive(Clone, Copy, Debug, PartialEq)]
 pub struct Window {
     /// x tangents.
     pub x: [f64; 2],
     /// y tangents (y up).
     pub y: [f64; 2],
+    /// Width of the soft edge beyond each end, [x, y], in tangent.
+    pub soft: [f64; 2],
+}
+
+/// 1 - s^3 (6 s^2 - 15 s + 10) for s = distance past the end / soft width, clamped.
+#[inline]
+fn roll_off(t: f64, lo: f64, hi: f64, soft: f64) -> f64 {
+    let past = (lo - t).max(t - hi);
+    if past <= 0.0 {
+        return 1.0;
+    }
+    if soft <= 0.0 || past >= soft {
+        return 0.0;
+    }
+    let s = past / soft;
+    1.0 - s * s * s * (s * (6.0 * s - 15.0) + 10.0)
 }
 
 impl Window {
-    /// Whether a direction with these tangents is kept.
+    /// The weight of a direction with these tangents.
     #[inline]
-    pub fn keeps(&self, tx: f64, ty: f64) -> bool {
-        tx >= self.x[0] && tx <= self.x[1] && ty >= self.y[0] && ty <= self.y[1]
+    pub fn weight(&self, tx: f64, ty: f64) -> f64 {
+        roll_off(tx, self.x[0], self.x[1], self.soft[0])
+            * roll_off(ty, self.y[0], self.y[1], self.soft[1])
+    }
+    /// Tangents with nonzero weight, [x, y] x [lo, hi].
+    pub fn support(&self) -> [[f64; 2]; 2] {
+        [
+            [self.x[0] - self.soft[0], self.x[1] + self.soft[0]],
+            [self.y[0] - self.soft[1], self.y[1] + self.soft[1]],
+        ]
     }
 }
 
@@ -45,6 +76,12 @@ pub struct SpectralGrid {
     pub wavelength: f64,
     /// Reference frequency, cycles per metre.
     pub f_r: [f64; 2],
+    /// Share of the half band (per axis, from the reference's frequency) kept at full weight;
+    /// the rest rolls off to zero at the Nyquist limit ([`crate::synthesis::kernels::edge_taper`]).
+    /// A grid's band cut sharply at Nyquist gives every step's kernel tails falling off as
+    /// 1 / distance, which wrap around a periodic grid (measured: 1 % of max |F| on a 100-pixel
+    /// front plane); the soft band keeps them in the guard.
+    pub band_flat: f64,
 }
 
 /// Signed DFT index of bin `k` of `n`: k for k < ceil(n/2), k - n above.
@@ -79,14 +116,22 @@ impl SpectralGrid {
             return Complex32::new(0.0, 0.0);
         }
         let w = w2.sqrt();
-        if !window.keeps(fx / w, fy / w) {
+        let band = crate::synthesis::kernels::edge_taper(
+            ((fx - self.f_r[0]) * 2.0 * self.pitch[0]).abs(),
+            self.band_flat,
+        ) * crate::synthesis::kernels::edge_taper(
+            ((fy - self.f_r[1]) * 2.0 * self.pitch[1]).abs(),
+            self.band_flat,
+        );
+        let weight = window.weight(fx / w, fy / w) * band;
+        if weight == 0.0 {
             return Complex32::new(0.0, 0.0);
         }
         // Whole cycles dropped in f64 before the sine: d w is up to ~1e5 cycles.
         let cycles = distance * w;
         let t = cycles - cycles.round();
         let (s, c) = (std::f64::consts::TAU * t).sin_cos();
-        Complex32::new(c as f32, s as f32)
+        Complex32::new((c * weight) as f32, (s * weight) as f32)
     }
 
     /// H over `distance` for every bin, column-major (column j at `[j * rows, (j + 1) * rows)`),
@@ -143,6 +188,7 @@ mod unit_tests {
             pitch: [1e-6, 2e-6],
             wavelength: 0.5e-6,
             f_r: [0.0, 1e5],
+            band_flat: 1.0,
         };
         assert!((g.fx(1) - 1.0 / 8e-6).abs() < 1e-6);
         assert!((g.fx(7) + 1.0 / 8e-6).abs() < 1e-6);
@@ -152,11 +198,23 @@ mod unit_tests {
         let wide = Window {
             x: [-10.0, 10.0],
             y: [-10.0, 10.0],
+            soft: [0.0, 0.0],
         };
         let none = Window {
             x: [1.0, -1.0],
             y: [0.0, 0.0],
+            soft: [0.0, 0.0],
         };
+        // The soft edge: 1 inside, 1/2 half-way through the roll-off, 0 beyond.
+        let soft = Window {
+            x: [-0.1, 0.1],
+            y: [-1.0, 1.0],
+            soft: [0.1, 0.0],
+        };
+        assert_eq!(soft.weight(0.1, 0.0), 1.0);
+        assert!((soft.weight(-0.15, 0.0) - 0.5).abs() < 1e-12);
+        assert_eq!(soft.weight(0.2, 0.0), 0.0);
+        assert_eq!(soft.weight(0.0, 1.0001), 0.0);
         let h = g.transfer_at(g.fx(1), g.fy(1), 1e-3, &wide);
         assert!((h.norm() - 1.0).abs() < 1e-6);
         assert_eq!(g.transfer_at(g.fx(1), g.fy(1), 1e-3, &none).norm(), 0.0);
