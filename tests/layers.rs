@@ -250,8 +250,9 @@ fn shadow_centre(i: &[f64], n: usize, p: &Plate, rows: [usize; 2], cols: [usize;
             |m, (k, &v)| if v < m.1 { (k, v) } else { m },
         );
     let (mut m0, mut m1) = (0.0, 0.0);
-    for k in kmin.saturating_sub(50)..(kmin + 51).min(smooth.len()) {
-        let dip = (level - smooth[k]).max(0.0);
+    let first = kmin.saturating_sub(50);
+    for (k, v) in smooth.iter().enumerate().take(kmin + 51).skip(first) {
+        let dip = (level - v).max(0.0);
         m0 += dip;
         m1 += dip * p.x_of_col((cols[0] + k) as f64);
     }

@@ -40,9 +40,11 @@ pub const SECONDS_PER_VISIBILITY_TEST: f64 = 1.1e-6;
 pub const SECONDS_PER_PIXEL_WRITTEN: f64 = 5e-9;
 
 /// Seconds of one thread per FFT element-pass (one element of one radix-2 pass, f32 complex,
-/// rustfft) in the layers path's transforms, multiplies and file passes together: measured on whole
-/// layers jobs (BENCHMARKS.md).
-pub const SECONDS_PER_FFT_ELEMENT_PASS: f64 = 1.0e-9;
+/// rustfft) in the layers path's slab steps with their masks and samples, the frame's passes
+/// counted [`crate::synthesis::layers::FRAME_PASS_WEIGHT`] times (file traffic and strided
+/// gathers): measured on whole layers jobs, 0.41 ns on the 8192^2 production benchmark (200 s),
+/// 0.55 ns on a 2048^2 job (5.8 s); BENCHMARKS.md.
+pub const SECONDS_PER_FFT_ELEMENT_PASS: f64 = 0.45e-9;
 
 /// Seconds of one thread per lattice point tested by the layers path's rasterisation.
 pub const SECONDS_PER_RASTER_POINT: f64 = 3.0e-9;

@@ -155,7 +155,7 @@ fn plate_lines(spec: &JobSpec) -> Vec<String> {
 }
 
 /// `plan` for the layers path: the slabs, the frame, memory, scratch files and time.
-fn plan_layers(spec: &JobSpec) -> Result<PlanReport> {
+fn plan_layers(spec: &JobSpec, auto: Option<String>) -> Result<PlanReport> {
     let (layers, notes) = super::scene::layer_synthesis(spec)?;
     let p = spec.plate;
     let mut lines = plate_lines(spec);
@@ -163,12 +163,7 @@ fn plan_layers(spec: &JobSpec) -> Result<PlanReport> {
     lines.extend(layers.describe());
     let w = layers.work();
     let threads = rayon::current_num_threads();
-    let secs = super::estimate::layer_seconds(
-        w.slices + w.frame + w.bands,
-        layers.raster_work(),
-        p.pixels() as f64,
-        threads,
-    );
+    let secs = layers_seconds(&layers, spec);
     lines.push(format!(
         "work: {:.3e} FFT element-passes in the slabs, {:.3e} in the frame, {:.3e} in the bands",
         w.slices, w.frame, w.bands
@@ -186,7 +181,10 @@ fn plan_layers(spec: &JobSpec) -> Result<PlanReport> {
             layers.peak_bytes() as f64 / 1e9
         ));
     }
-    lines.push("path: layers (meshes sliced in depth; asked for by [synthesis] path)".into());
+    lines.push(match auto {
+        None => "path: layers (meshes sliced in depth; asked for by [synthesis] path)".into(),
+        Some(why) => format!("path: layers (meshes sliced in depth); {why}"),
+    });
     let encoding = spec.encoding.resolve(|| 1.0);
     let layout = tiff_layout(spec, &encoding);
     let bytes = layout.estimated_file_bytes();
@@ -204,6 +202,92 @@ fn plan_layers(spec: &JobSpec) -> Result<PlanReport> {
         updates: p.pixels() as f64,
         bytes,
     })
+}
+
+/// Time estimates of a prepared point sum: the direct sum's, and the recording plane's when the
+/// choice takes it (`plane_cost` in f64 exact update equivalents).
+pub(super) struct PointSumEstimate {
+    /// Visibility tests.
+    pub tests: f64,
+    /// Share of emitter-tile pairs visible (1 without occlusion).
+    pub visible_share: f64,
+    /// Seconds per update of the kernel that runs.
+    pub per_update: f64,
+    /// Wall-clock seconds of the direct sum.
+    pub direct_seconds: f64,
+    /// Wall-clock seconds of the recording plane, when it is the path.
+    pub plane_seconds: Option<f64>,
+}
+
+impl PointSumEstimate {
+    /// Seconds of the path the choice takes.
+    pub fn seconds(&self) -> f64 {
+        self.plane_seconds.unwrap_or(self.direct_seconds)
+    }
+}
+
+pub(super) fn point_sum_estimate(
+    spec: &JobSpec,
+    sum: &crate::synthesis::point_sum::PointSum,
+    plane_cost: Option<f64>,
+) -> PointSumEstimate {
+    let p = spec.plate;
+    let updates = sum.estimate_updates(256);
+    let tests = sum
+        .occlusion()
+        .map_or(0, |o| o.tests_needed(sum.row_ranges())) as f64;
+    let visible_share = sum
+        .occlusion()
+        .map_or(1.0, |o| o.sampled_visible_share(sum.row_ranges(), 4000));
+    let threads = rayon::current_num_threads();
+    let sep = spec.synthesis.approximation == Approximation::Fresnel
+        && sum.occlusion().is_none()
+        && sum.channel_count() == 1
+        && matches!(spec.reference, crate::optics::Reference::Plane { .. });
+    let per_update = super::estimate::seconds_per_update(
+        spec.synthesis.approximation,
+        spec.synthesis.precision,
+        sep,
+    );
+    let direct_seconds = super::estimate::wall_seconds(
+        updates * visible_share * per_update,
+        tests,
+        p.pixels() as f64,
+        threads,
+    );
+    // The plane's cost is in f64 exact update equivalents.
+    let plane_seconds = plane_cost.map(|c| {
+        super::estimate::wall_seconds(
+            c * super::estimate::seconds_per_update(
+                Approximation::Exact,
+                crate::synthesis::Precision::F64,
+                false,
+            ),
+            0.0,
+            p.pixels() as f64,
+            threads,
+        )
+    });
+    PointSumEstimate {
+        tests,
+        visible_share,
+        per_update,
+        direct_seconds,
+        plane_seconds,
+    }
+}
+
+/// Wall-clock seconds of a layers synthesis on this machine's threads.
+pub(super) fn layers_seconds(
+    layers: &crate::synthesis::layers::LayerSynthesis,
+    spec: &JobSpec,
+) -> f64 {
+    super::estimate::layer_seconds(
+        layers.prepare_work() + layers.work().bands,
+        layers.raster_work(),
+        spec.plate.pixels() as f64,
+        rayon::current_num_threads(),
+    )
 }
 
 /// What `plan` reports.
@@ -225,7 +309,11 @@ pub fn plan(spec: &JobSpec) -> Result<PlanReport> {
         return plan_iterative(spec, it);
     }
     if spec.sum_path == super::spec::SumPath::Layers {
-        return plan_layers(spec);
+        return plan_layers(spec, None);
+    }
+    let (auto, why) = super::prepare::auto_layers(spec)?;
+    if auto.is_some() {
+        return plan_layers(spec, why);
     }
     let (sum, choice, notes) = point_sum_and_path(spec)?;
     let emitters = sum.emitters();
@@ -280,7 +368,6 @@ pub fn plan(spec: &JobSpec) -> Result<PlanReport> {
         sum.channel_count()
     ));
     lines.extend(notes);
-    let n_channels = sum.channel_count();
     // The direct sum's figures (supports, reach, work) are reported whichever path runs.
     let sum = &sum;
     let path_lines = choice.lines;
@@ -326,63 +413,33 @@ pub fn plan(spec: &JobSpec) -> Result<PlanReport> {
         updates,
         updates / p.pixels() as f64
     ));
-    let tests = sum
-        .occlusion()
-        .map_or(0, |o| o.tests_needed(sum.row_ranges()));
-    let mut visible_updates = updates;
+    let est = point_sum_estimate(spec, sum, plane_cost);
     if let Some(o) = sum.occlusion() {
-        let share = o.sampled_visible_share(sum.row_ranges(), 4000);
-        visible_updates = updates * share;
         lines.push(format!(
             "occlusion: visibility tested from the centre of each {} x {} px tile (a grid fixed in plate pixels): about {:.3e} tests; about {:.0} % of emitter-tile pairs visible (4000 sampled), so about {:.3e} updates",
             o.tile()[0],
             o.tile()[1],
-            tests as f64,
-            share * 100.0,
-            visible_updates
+            est.tests,
+            est.visible_share * 100.0,
+            updates * est.visible_share
         ));
     }
     let threads = rayon::current_num_threads();
-    let sep = spec.synthesis.approximation == Approximation::Fresnel
-        && sum.occlusion().is_none()
-        && n_channels == 1
-        && matches!(spec.reference, crate::optics::Reference::Plane { .. });
-    let per_update = super::estimate::seconds_per_update(
-        spec.synthesis.approximation,
-        spec.synthesis.precision,
-        sep,
-    );
-    let secs = super::estimate::wall_seconds(
-        visible_updates * per_update,
-        tests as f64,
-        p.pixels() as f64,
-        threads,
-    );
     lines.push(format!(
         "time: about {} on {threads} thread(s) for the direct sum ({:.2} ns per update, {:.1} us per visibility test, {:.0} ns per pixel written, per thread, as measured on the development machine: see BENCHMARKS.md)",
-        super::estimate::human(secs),
-        per_update * 1e9,
+        super::estimate::human(est.direct_seconds),
+        est.per_update * 1e9,
         super::estimate::SECONDS_PER_VISIBILITY_TEST * 1e6,
         super::estimate::SECONDS_PER_PIXEL_WRITTEN * 1e9
     ));
-    if let Some(c) = plane_cost {
-        // The plane's cost is in f64 exact update equivalents.
-        let plane_secs = super::estimate::wall_seconds(
-            c * super::estimate::seconds_per_update(
-                Approximation::Exact,
-                crate::synthesis::Precision::F64,
-                false,
-            ),
-            0.0,
-            p.pixels() as f64,
-            threads,
-        );
+    if let Some(plane_secs) = est.plane_seconds {
         lines.push(format!(
             "time: about {} on {threads} thread(s) for the recording plane, the path this job takes",
             super::estimate::human(plane_secs)
         ));
     }
     lines.extend(path_lines);
+    lines.extend(why);
     let encoding = spec.encoding.resolve(|| 1.0);
     let layout = tiff_layout(spec, &encoding);
     let bytes = layout.estimated_file_bytes();

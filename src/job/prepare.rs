@@ -13,6 +13,7 @@ use super::spec::{IterativeSpec, JobSpec, Method, SumPath};
 use crate::encoding::Encoding;
 use crate::error::{Error, Result};
 use crate::output::tiff::TiffLayout;
+use crate::synthesis::layers::LayerSynthesis;
 use crate::synthesis::planner::{choose_path, PathChoice};
 use crate::synthesis::point_sum::{BandScratch, PointSum};
 use crate::synthesis::source::FringeSource;
@@ -124,15 +125,62 @@ pub(super) fn point_sum_and_path(spec: &JobSpec) -> Result<(PointSum, PathChoice
     Ok((sum, choice, notes))
 }
 
+/// For `[synthesis] path = "auto"` on a job of meshes only: the layers path, built, when it is
+/// faster than the point sum by `plan`'s estimates (or the point sum cannot run), and the line
+/// saying why; None when the point sum is taken (with the line) or the job is not such a job.
+pub(super) fn auto_layers(spec: &JobSpec) -> Result<(Option<LayerSynthesis>, Option<String>)> {
+    let meshes_only = spec
+        .objects
+        .iter()
+        .all(|o| matches!(o.source, super::spec::ObjectSource::Mesh(_)));
+    if spec.sum_path != SumPath::Auto || !meshes_only || spec.objects.is_empty() {
+        return Ok((None, None));
+    }
+    let layers = super::scene::layer_synthesis(spec).map(|(l, _)| l);
+    let point = point_sum_and_path(spec).map(|(sum, choice, _)| {
+        let plane = match choice.recipe {
+            crate::synthesis::planner::SumRecipe::RecordingPlane => choice.costs.map(|c| c.plane),
+            _ => None,
+        };
+        super::plan::point_sum_estimate(spec, &sum, plane).seconds()
+    });
+    let l_secs = layers
+        .as_ref()
+        .map(|l| super::plan::layers_seconds(l, spec))
+        .map_err(|e| e.to_string());
+    match crate::synthesis::planner::choose_layers(point.map_err(|e| e.to_string()), l_secs) {
+        Ok((crate::synthesis::planner::AutoChoice::Layers, why)) => {
+            Ok((Some(layers.expect("layers estimated")), Some(why)))
+        }
+        Ok((crate::synthesis::planner::AutoChoice::PointSum, why)) => Ok((None, Some(why))),
+        Err(_) => {
+            // Neither runs: the point sum's own error, as before `auto` weighed layers.
+            point_sum_and_path(spec)?;
+            Ok((None, None))
+        }
+    }
+}
+
+/// Computes the layers path's slabs and frame with a progress line (its own work, before the
+/// plate's bands), after checking the scratch files fit.
+fn prepare_layers(layers: &LayerSynthesis, mode: ProgressMode) -> Result<()> {
+    super::space::check_space(layers.scratch_dir(), layers.scratch_bytes())?;
+    let total = FringeSource::prepare_work(layers);
+    let mut progress = Progress::new("layers", total.max(1.0), mode);
+    FringeSource::prepare(layers, &mut |w| progress.advance(w))?;
+    progress.finish();
+    Ok(())
+}
+
 pub(super) fn prepare(spec: &JobSpec, mode: ProgressMode) -> Result<Prepared> {
+    let auto = auto_layers(spec)?.0;
     let (sum, iteration, n): (Box<dyn FringeSource>, _, _) = match &spec.method {
-        Method::PointSum if spec.sum_path == SumPath::Layers => {
-            let (layers, _) = super::scene::layer_synthesis(spec)?;
-            super::space::check_space(layers.scratch_dir(), layers.scratch_bytes())?;
-            let total = FringeSource::prepare_work(&layers);
-            let mut progress = Progress::new("layers", total.max(1.0), mode);
-            FringeSource::prepare(&layers, &mut |w| progress.advance(w))?;
-            progress.finish();
+        Method::PointSum if spec.sum_path == SumPath::Layers || auto.is_some() => {
+            let layers = match auto {
+                Some(l) => l,
+                None => super::scene::layer_synthesis(spec)?.0,
+            };
+            prepare_layers(&layers, mode)?;
             (Box::new(layers), None, 0)
         }
         Method::PointSum => {

@@ -81,6 +81,59 @@ pub fn choose(ask: SumPath, plane: Result<PathCosts, String>) -> Result<SumRecip
     }
 }
 
+/// What `path = "auto"` takes for a job the layers path can also compute.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum AutoChoice {
+    /// The point sum (direct or recording plane, as [`choose_path`] decides).
+    PointSum,
+    /// The layers path.
+    Layers,
+}
+
+/// `auto` between the point sum (its estimated seconds, or why it cannot run: too many emitters,
+/// say) and the layers path (its estimated seconds, or why it does not apply): the faster of those
+/// that can run, the point sum on a tie; with a line for `plan` saying why. Errors with the point
+/// sum's reason when neither can run.
+pub fn choose_layers(
+    point: Result<f64, String>,
+    layers: Result<f64, String>,
+) -> Result<(AutoChoice, String), String> {
+    let h = |s: f64| format!("{s:.1} s");
+    match (point, layers) {
+        (Ok(p), Ok(l)) if l < p => Ok((
+            AutoChoice::Layers,
+            format!(
+                "auto: layers ({}) is faster than the point sum ({})",
+                h(l),
+                h(p)
+            ),
+        )),
+        (Ok(p), Ok(l)) => Ok((
+            AutoChoice::PointSum,
+            format!(
+                "auto: the point sum ({}) is not slower than layers ({})",
+                h(p),
+                h(l)
+            ),
+        )),
+        (Err(why), Ok(l)) => Ok((
+            AutoChoice::Layers,
+            format!(
+                "auto: layers ({}), since the point sum cannot run: {why}",
+                h(l)
+            ),
+        )),
+        (Ok(p), Err(why)) => Ok((
+            AutoChoice::PointSum,
+            format!(
+                "auto: the point sum ({}); layers does not apply: {why}",
+                h(p)
+            ),
+        )),
+        (Err(why), Err(_)) => Err(why),
+    }
+}
+
 /// The path chosen for a point sum, with the recording plane when it was built, and lines for
 /// `plan` (costs and choice).
 pub struct PathChoice {
@@ -200,6 +253,28 @@ mod unit_tests {
         assert_eq!(
             choose(SumPath::Auto, c(10.0, 5.0)),
             Ok(SumRecipe::Direct(DirectBecause::Cheaper))
+        );
+        assert_eq!(
+            choose_layers(Ok(10.0), Ok(9.0)).unwrap().0,
+            AutoChoice::Layers
+        );
+        assert_eq!(
+            choose_layers(Ok(10.0), Ok(10.0)).unwrap().0,
+            AutoChoice::PointSum
+        );
+        let (c, why) = choose_layers(Err("too many emitters".into()), Ok(1e4)).unwrap();
+        assert!(
+            c == AutoChoice::Layers && why.contains("too many emitters"),
+            "{why}"
+        );
+        let (c, why) = choose_layers(Ok(1e4), Err("a point cloud".into())).unwrap();
+        assert!(
+            c == AutoChoice::PointSum && why.contains("a point cloud"),
+            "{why}"
+        );
+        assert_eq!(
+            choose_layers(Err("bad file".into()), Err("bad file too".into())),
+            Err("bad file".into())
         );
         assert_eq!(
             choose(SumPath::Auto, Err("two references".into())),

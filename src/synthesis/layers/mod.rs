@@ -40,6 +40,7 @@
 
 pub mod frame;
 pub mod slices;
+pub mod step;
 pub mod transfer;
 
 use std::path::PathBuf;
@@ -49,11 +50,10 @@ use num_complex::{Complex32, Complex64};
 
 use self::frame::{Frame, FrameLayout};
 use self::slices::{is_closed, Hit, LatticeRect, Slices, Slicing};
-use self::transfer::{smooth_size, SpectralGrid, Window};
+use self::transfer::{band_tangents, smooth_size, SpectralGrid, Window};
 use super::point_sum::BandScratch;
 use super::Emitter;
 use crate::error::Result;
-use crate::optics::fft2d::Fft2d;
 use crate::optics::{Plate, Reference};
 use crate::scene::mesh::{cross, sub, Mesh};
 use crate::scene::sampling::{PhaseMode, Shading, SplitMix64, SurfaceShader};
@@ -79,6 +79,11 @@ pub struct LayerObject {
 /// the Nyquist limit, as on the recording plane; repeated at each slab's step, so the farther
 /// slabs roll off more steeply there).
 pub const BAND_FLAT: f64 = 0.8;
+
+/// How many slab-step element-passes one element-pass of the frame costs (its rows and column
+/// blocks go through scratch files, its columns are gathered with a stride): 4 on the 8192^2
+/// production benchmark, where the frame took a tenth of the time for a fortieth of the passes.
+pub const FRAME_PASS_WEIGHT: f64 = 4.0;
 
 /// Largest default number of slices.
 pub const MAX_DEFAULT_SLICES: usize = 64;
@@ -218,7 +223,11 @@ impl LayerSynthesis {
             y: [sup[1][0] - extra, sup[1][1] + extra],
             soft: [edge / z_front; 2],
         };
-        let hop_sup = hop_window.support();
+        // Sideways travel over the slabs: the steps' support, within the plate's band (about the
+        // reference: an off-axis reference or a coarse pitch keeps light from spreading far).
+        let band = band_tangents([tilt[0].sin(), tilt[1].sin()], p.nyquist_cosines());
+        let hs = hop_window.support();
+        let hop_sup = [0, 1].map(|a| [hs[a][0].max(band[a][0]), hs[a][1].min(band[a][1])]);
         let ring = |d: f64, pitch: f64| {
             (4.0 * (p.wavelength * d.max(0.0)).sqrt() / pitch).ceil() as i64 + 16
         };
@@ -363,12 +372,12 @@ impl LayerSynthesis {
         self.slices().work()
     }
 
-    /// Peak memory of the computation, bytes: the front plane, its transfer function and FFT
-    /// scratch while slicing, or a column block of the frame.
+    /// Peak memory of the computation, bytes: the front plane and its transfer function while
+    /// slicing, or the plane and a column block of the frame.
     pub fn peak_bytes(&self) -> u64 {
         let s = self.rect.len() as u64 * 8;
         let bits = self.closed.iter().filter(|c| **c).count() as u64 * self.rect.len() as u64 / 8;
-        (3 * s + bits).max(s + 2 * frame::BLOCK_BYTES as u64)
+        (2 * s + bits).max(s + 2 * frame::BLOCK_BYTES as u64)
     }
 
     /// Where the scratch files go.
@@ -480,10 +489,11 @@ impl LayerSynthesis {
         Some((amp, phase))
     }
 
-    /// Work shares of the steps of [`Self::prepare`], for progress.
+    /// Work of [`Self::prepare`] in slab-step element-passes (the frame's weighted by
+    /// [`FRAME_PASS_WEIGHT`]), for progress and estimates.
     pub fn prepare_work(&self) -> f64 {
         let w = self.work();
-        w.slices + w.frame
+        w.slices + FRAME_PASS_WEIGHT * w.frame
     }
 
     /// Computes the slices and the frame (once; later calls return at once). `on_work` gets the
@@ -503,7 +513,7 @@ impl LayerSynthesis {
             &self.final_window,
             &self.scratch_dir,
             &self.stem,
-            &mut |share| on_work(share * work.frame),
+            &mut |share| on_work(share * FRAME_PASS_WEIGHT * work.frame),
         )?;
         let _ = self.frame.set(frame);
         Ok(())
@@ -517,15 +527,13 @@ impl LayerSynthesis {
         let [w, h] = self.rect.size;
         let count = self.slicing.count;
         let mut u = vec![Complex32::new(0.0, 0.0); w * h];
-        let fft = Fft2d::<f32>::new(w, h);
+        let step = self::step::Step::new(w, h);
         let hop = if count > 1 {
             self.spectral(self.rect.size)
                 .transfer_columns(self.slicing.spacing, &self.hop_window)
         } else {
             Vec::new()
         };
-        let mut scratch =
-            vec![Complex32::new(0.0, 0.0); if count > 1 { fft.scratch_len() } else { 0 }];
         let words = (w * h).div_ceil(64);
         let mut behind: Vec<Option<Vec<u64>>> = self
             .objects
@@ -539,18 +547,7 @@ impl LayerSynthesis {
         let mut lit = false;
         for k in (0..count).rev() {
             if lit && k + 1 < count {
-                fft.run(
-                    &mut u,
-                    &mut scratch,
-                    false,
-                    |_, _| {},
-                    |j, col| {
-                        for (v, t) in col.iter_mut().zip(&hop[j * h..(j + 1) * h]) {
-                            *v *= t;
-                        }
-                    },
-                );
-                fft.process_inverse_with_scratch(&mut u, &mut scratch);
+                step.apply(&mut u, &hop);
             }
             let hits = slices.hits(k);
             let plane = self.slicing.plane(k);

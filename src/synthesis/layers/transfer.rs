@@ -150,6 +150,32 @@ impl SpectralGrid {
     }
 }
 
+/// Signed tangent range `[[x lo, x hi], [y lo, y hi]]` of the propagating directions in the band
+/// of direction cosines `s_r +- half` per axis (the plate's band about the reference), sampled on a
+/// 129 x 129 grid with its edges (the tangents are monotonic along each axis, so the extremes sit
+/// on the edges). Directions within 1e-6 of grazing are left out: their tangents have no bound,
+/// and the geometry of scene and plate bounds them instead.
+pub fn band_tangents(s_r: [f64; 2], half: [f64; 2]) -> [[f64; 2]; 2] {
+    let mut t = [[f64::INFINITY, f64::NEG_INFINITY]; 2];
+    let n = 128;
+    for a in 0..=n {
+        let ux = s_r[0] - half[0] + 2.0 * half[0] * a as f64 / n as f64;
+        for b in 0..=n {
+            let uy = s_r[1] - half[1] + 2.0 * half[1] * b as f64 / n as f64;
+            let uz2 = 1.0 - ux * ux - uy * uy;
+            if uz2 <= 1e-6 {
+                continue;
+            }
+            let uz = uz2.sqrt();
+            for (k, v) in [ux / uz, uy / uz].into_iter().enumerate() {
+                t[k][0] = t[k][0].min(v);
+                t[k][1] = t[k][1].max(v);
+            }
+        }
+    }
+    t
+}
+
 /// The smallest n' >= n whose only prime factors are 2, 3 and 5 (fast FFT sizes).
 pub fn smooth_size(n: usize) -> usize {
     let mut m = n.max(1);
@@ -170,6 +196,16 @@ pub fn smooth_size(n: usize) -> usize {
 #[cfg(test)]
 mod unit_tests {
     use super::*;
+
+    #[test]
+    fn band_tangents_of_a_tilted_band() {
+        // Band of half-width 0.25 about s = 0.5 in y, 0 in x: y tangents from
+        // 0.25 / sqrt(1 - 0.0625) (at x = 0) to 0.75 / sqrt(1 - 0.5625 - 0.0625) (at a corner).
+        let t = band_tangents([0.0, 0.5], [0.25, 0.25]);
+        assert!((t[1][0] - 0.25 / (1.0f64 - 0.0625).sqrt()).abs() < 1e-12);
+        assert!((t[1][1] - 0.75 / (1.0f64 - 0.5625 - 0.0625).sqrt()).abs() < 1e-12);
+        assert!(t[0][0] < 0.0 && (t[0][0] + t[0][1]).abs() < 1e-12);
+    }
 
     #[test]
     fn smooth_sizes() {
