@@ -47,6 +47,7 @@ use std::path::PathBuf;
 use std::sync::OnceLock;
 
 use num_complex::{Complex32, Complex64};
+use rayon::prelude::*;
 
 use self::frame::{Frame, FrameLayout};
 use self::slices::{is_closed, Hit, LatticeRect, Slices, Slicing};
@@ -549,24 +550,27 @@ impl LayerSynthesis {
             if lit && k + 1 < count {
                 step.apply(&mut u, &hop);
             }
-            let hits = slices.hits(k);
             let plane = self.slicing.plane(k);
-            let toggle = |behind: &mut [Option<Vec<u64>>], pass_behind: bool| {
-                for hh in &hits {
-                    if (hh.z > plane) == pass_behind {
-                        if let Some(bits) = &mut behind[hh.object as usize] {
-                            bits[hh.sample / 64] ^= 1 << (hh.sample % 64);
-                        }
-                    }
+            // Crossings are visited twice, a bounded piece at a time: first the masks (the
+            // parity of the closed occluders' crossings behind the plane, and their surfaces),
+            // then the parity in front and the samples, so no sample of this slab is masked by
+            // another piece of it.
+            let toggle = |behind: &mut [Option<Vec<u64>>], hh: &Hit| {
+                if let Some(bits) = &mut behind[hh.object as usize] {
+                    bits[hh.sample / 64] ^= 1 << (hh.sample % 64);
                 }
             };
             if self.occludes() {
-                toggle(&mut behind, true);
-                for hh in &hits {
-                    if self.objects[hh.object as usize].occludes {
-                        u[hh.sample] = Complex32::new(0.0, 0.0);
+                slices.visit(k, &mut |hits| {
+                    for hh in hits {
+                        if hh.z > plane {
+                            toggle(&mut behind, hh);
+                        }
+                        if self.objects[hh.object as usize].occludes {
+                            u[hh.sample] = Complex32::new(0.0, 0.0);
+                        }
                     }
-                }
+                });
                 for bits in behind.iter().flatten() {
                     for (wi, &word) in bits.iter().enumerate() {
                         let mut m = word;
@@ -577,22 +581,33 @@ impl LayerSynthesis {
                         }
                     }
                 }
-                toggle(&mut behind, false);
             }
-            for hh in &hits {
-                if let Some((amp, phase)) = self.sample_of(hh, &shaders) {
-                    let (x, y) = self.lattice_xy(hh.sample);
-                    // The sample's value, demodulated by R at its lattice point.
-                    let cycles =
-                        (phase - k_wave * (s_r[0] * x + s_r[1] * y)) / std::f64::consts::TAU;
-                    let t = cycles - cycles.round();
-                    let (s, c) = (std::f64::consts::TAU * t).sin_cos();
-                    // i a lambda / (p_x p_y) e^(i phase): the factor i turns (c, s) to (-s, c).
-                    let m = amp * sample_scale;
-                    u[hh.sample] += Complex32::new((-s * m) as f32, (c * m) as f32);
-                    lit = true;
+            slices.visit(k, &mut |hits| {
+                let values: Vec<Option<Complex32>> = hits
+                    .par_iter()
+                    .map(|hh| {
+                        let (amp, phase) = self.sample_of(hh, &shaders)?;
+                        let (x, y) = self.lattice_xy(hh.sample);
+                        // The sample's value, demodulated by R at its lattice point.
+                        let cycles =
+                            (phase - k_wave * (s_r[0] * x + s_r[1] * y)) / std::f64::consts::TAU;
+                        let t = cycles - cycles.round();
+                        let (s, c) = (std::f64::consts::TAU * t).sin_cos();
+                        // i a lambda / (p_x p_y) e^(i phase): the factor i turns (c, s) to (-s, c).
+                        let m = amp * sample_scale;
+                        Some(Complex32::new((-s * m) as f32, (c * m) as f32))
+                    })
+                    .collect();
+                for (hh, v) in hits.iter().zip(values) {
+                    if self.occludes() && hh.z <= plane {
+                        toggle(&mut behind, hh);
+                    }
+                    if let Some(v) = v {
+                        u[hh.sample] += v;
+                        lit = true;
+                    }
                 }
-            }
+            });
             on_work(1.0 / count as f64);
         }
         Ok(u)

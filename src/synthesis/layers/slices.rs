@@ -208,49 +208,82 @@ impl Slices {
     }
 
     /// Every crossing in slab `k`, in triangle order then row-major sample order (deterministic).
+    /// Holds them all at once: for tests and small scenes; [`Self::visit`] bounds the memory.
     pub fn hits(&self, k: usize) -> Vec<Hit> {
+        let mut all = Vec::new();
+        self.visit(k, &mut |h| all.extend_from_slice(h));
+        all
+    }
+
+    /// Calls `f` with the crossings in slab `k`, in the order of [`Self::hits`], a bounded piece at
+    /// a time: each triangle's rows are cut into pieces of at most [`PIECE_POINTS`] lattice points
+    /// of its box, and a few pieces per thread are rasterised together, so a large face (a flat
+    /// backdrop lands in one slab whole) never holds more than a few megabytes of hits.
+    pub fn visit(&self, k: usize, f: &mut dyn FnMut(&[Hit])) {
+        let mut pieces = Vec::new();
+        for &ti in &self.by_slab[k] {
+            let b = self.tris[ti as usize].bounds;
+            let cols = (b[1] - b[0]).max(1);
+            let rows = (PIECE_POINTS / cols).max(1);
+            let mut r = b[2];
+            while r < b[3] {
+                pieces.push((ti, r, (r + rows).min(b[3])));
+                r += rows;
+            }
+        }
+        let group = 4 * rayon::current_num_threads().max(1);
+        for chunk in pieces.chunks(group) {
+            let done: Vec<Vec<Hit>> = chunk
+                .par_iter()
+                .map(|&(ti, r0, r1)| self.piece(k, ti as usize, r0, r1))
+                .collect();
+            for h in &done {
+                f(h);
+            }
+        }
+    }
+
+    /// The crossings of triangle `ti` in slab `k` on rows [r0, r1).
+    fn piece(&self, k: usize, ti: usize, r0: usize, r1: usize) -> Vec<Hit> {
         let w = self.rect.size[0];
-        let per: Vec<Vec<Hit>> = self.by_slab[k]
-            .par_iter()
-            .map(|&ti| {
-                let t = &self.tris[ti as usize];
-                let mut out = Vec::new();
-                let [a, b, c] = t.p;
-                let ties = [owns_tie(b, c), owns_tie(c, a), owns_tie(a, b)];
-                let inv = 1.0 / t.area2 as f64;
-                for i in t.bounds[2]..t.bounds[3] {
-                    let py = i as i64 * SUB as i64;
-                    for j in t.bounds[0]..t.bounds[1] {
-                        let q = [j as i64 * SUB as i64, py];
-                        let e = [edge(b, c, q), edge(c, a, q), edge(a, b, q)];
-                        if !(0..3).all(|m| e[m] > 0 || (e[m] == 0 && ties[m])) {
-                            continue;
-                        }
-                        let wts = e.map(|v| v as f64 * inv);
-                        let z = wts[0] * t.z[0] + wts[1] * t.z[1] + wts[2] * t.z[2];
-                        if self.slicing.slab_of(z) != k {
-                            continue;
-                        }
-                        // Weights back in file corner order.
-                        let mut file = [0.0; 3];
-                        for m in 0..3 {
-                            file[t.order[m]] = wts[m];
-                        }
-                        out.push(Hit {
-                            sample: i * w + j,
-                            z,
-                            object: t.object,
-                            triangle: t.triangle,
-                            uv: [file[1], file[2]],
-                        });
-                    }
+        let t = &self.tris[ti];
+        let mut out = Vec::new();
+        let [a, b, c] = t.p;
+        let ties = [owns_tie(b, c), owns_tie(c, a), owns_tie(a, b)];
+        let inv = 1.0 / t.area2 as f64;
+        for i in r0..r1 {
+            let py = i as i64 * SUB as i64;
+            for j in t.bounds[0]..t.bounds[1] {
+                let q = [j as i64 * SUB as i64, py];
+                let e = [edge(b, c, q), edge(c, a, q), edge(a, b, q)];
+                if !(0..3).all(|m| e[m] > 0 || (e[m] == 0 && ties[m])) {
+                    continue;
                 }
-                out
-            })
-            .collect();
-        per.into_iter().flatten().collect()
+                let wts = e.map(|v| v as f64 * inv);
+                let z = wts[0] * t.z[0] + wts[1] * t.z[1] + wts[2] * t.z[2];
+                if self.slicing.slab_of(z) != k {
+                    continue;
+                }
+                // Weights back in file corner order.
+                let mut file = [0.0; 3];
+                for m in 0..3 {
+                    file[t.order[m]] = wts[m];
+                }
+                out.push(Hit {
+                    sample: i * w + j,
+                    z,
+                    object: t.object,
+                    triangle: t.triangle,
+                    uv: [file[1], file[2]],
+                });
+            }
+        }
+        out
     }
 }
+
+/// Lattice points of a triangle's box rasterised as one piece by [`Slices::visit`].
+pub const PIECE_POINTS: usize = 1 << 16;
 
 /// Whether every edge of the mesh, by corner positions, is shared by exactly two triangles.
 pub fn is_closed(mesh: &Mesh) -> bool {
@@ -368,6 +401,63 @@ mod unit_tests {
                 assert_eq!(per[i * 64 + j], 1, "sample ({j}, {i})");
             }
         }
+    }
+
+    /// A triangle whose box spans several pieces gives the same crossings, in row-major order,
+    /// as a brute-force point-in-triangle test on every lattice point.
+    #[test]
+    fn pieces_cover_a_large_triangle_in_order() {
+        let p = Plate {
+            width: 640,
+            height: 320,
+            pitch: [1e-6, 1e-6],
+            wavelength: 0.5e-6,
+        };
+        let c = [
+            [-300.3e-6, -150.2e-6],
+            [310.1e-6, -140.7e-6],
+            [-20.5e-6, 155.9e-6],
+        ];
+        let m = Mesh::from_triangles(
+            c.iter().map(|v| [v[0], v[1], 1e-3]).collect(),
+            vec![[0, 1, 2]],
+            std::path::Path::new("big"),
+        );
+        let rect = LatticeRect {
+            origin: [0, 0],
+            size: [640, 320],
+        };
+        let s = Slicing {
+            z0: 0.9e-3,
+            spacing: 0.2e-3,
+            count: 1,
+        };
+        let sl = Slices::new(&[&m], &p, rect, s);
+        let mut pieces = 0;
+        let mut got = Vec::new();
+        sl.visit(0, &mut |h| {
+            pieces += 1;
+            got.extend(h.iter().map(|x| x.sample));
+        });
+        assert!(pieces >= 3, "{pieces} pieces");
+        let side = |a: [f64; 2], b: [f64; 2], q: [f64; 2]| {
+            (b[0] - a[0]) * (q[1] - a[1]) - (b[1] - a[1]) * (q[0] - a[0])
+        };
+        let mut want = Vec::new();
+        for i in 0..320 {
+            for j in 0..640 {
+                let q = [p.x_of_col(j as f64), p.y_of_row(i as f64)];
+                let e = [
+                    side(c[0], c[1], q),
+                    side(c[1], c[2], q),
+                    side(c[2], c[0], q),
+                ];
+                if e.iter().all(|v| *v > 0.0) || e.iter().all(|v| *v < 0.0) {
+                    want.push(i * 640 + j);
+                }
+            }
+        }
+        assert_eq!(got, want);
     }
 
     #[test]

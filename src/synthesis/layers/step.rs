@@ -59,7 +59,10 @@ impl Step {
     /// If a buffer has the wrong length.
     pub fn apply(&self, u: &mut [Complex32], transfer: &[Complex32]) {
         let (w, h) = (self.w, self.h);
-        assert!(u.len() == w * h && transfer.len() == w * h, "step buffer mismatch");
+        assert!(
+            u.len() == w * h && transfer.len() == w * h,
+            "step buffer mismatch"
+        );
         self.rows(u, &self.fx, 1.0);
         let blocks: Vec<usize> = (0..w).step_by(BLOCK).collect();
         let group = 4 * rayon::current_num_threads().max(1);
@@ -130,13 +133,23 @@ mod unit_tests {
         let fft = Fft2d::<f32>::new(w, h);
         let mut b = u0.clone();
         let mut scr = vec![Complex32::new(0.0, 0.0); fft.scratch_len()];
-        fft.run(&mut b, &mut scr, false, |_, _| {}, |j, col| {
-            for (v, x) in col.iter_mut().zip(&t[j * h..(j + 1) * h]) {
-                *v *= x;
-            }
-        });
+        fft.run(
+            &mut b,
+            &mut scr,
+            false,
+            |_, _| {},
+            |j, col| {
+                for (v, x) in col.iter_mut().zip(&t[j * h..(j + 1) * h]) {
+                    *v *= x;
+                }
+            },
+        );
         fft.process_inverse_with_scratch(&mut b, &mut scr);
-        let err = a.iter().zip(&b).map(|(x, y)| (x - y).norm()).fold(0.0, f32::max);
+        let err = a
+            .iter()
+            .zip(&b)
+            .map(|(x, y)| (x - y).norm())
+            .fold(0.0, f32::max);
         let max = b.iter().map(|x| x.norm()).fold(0.0, f32::max);
         assert!(err <= 1e-5 * max, "error {err} of {max}");
     }
