@@ -1,6 +1,9 @@
 //! End-to-end tests of the real binary: a small job runs and writes TIFF + sidecar; bad inputs give
 //! a one-line error naming the problem, a non-zero exit and no output file.
 
+mod common;
+use common::peak_mib;
+
 use std::path::{Path, PathBuf};
 use std::process::{Command, Output};
 
@@ -241,19 +244,6 @@ fn batch_goes_on_after_a_failure() {
     assert!(!o.status.success());
     assert!(d.path().join("a.tif").exists());
     assert!(String::from_utf8_lossy(&o.stderr).contains("1 failed"));
-}
-
-fn peak_mib(stderr: &str) -> f64 {
-    let l = stderr
-        .lines()
-        .find(|l| l.contains("peak memory"))
-        .unwrap_or_else(|| panic!("no stats in {stderr}"));
-    l.split("peak memory ")
-        .nth(1)
-        .unwrap()
-        .trim_end_matches(" MiB")
-        .parse()
-        .unwrap()
 }
 
 /// Peak memory is set by the band, not the plate: 32 times more rows (1.9 GB of complex field if held

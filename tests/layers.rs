@@ -3,6 +3,9 @@
 //! this file's own angular-spectrum code (rustfft, Goodman, Introduction to Fourier Optics,
 //! 3rd ed., sec. 3.10).
 
+mod common;
+use common::peak_mib;
+
 use std::path::{Path, PathBuf};
 use std::process::{Command, Output};
 
@@ -509,19 +512,6 @@ fn threads_and_shards_give_the_same_plate() {
             .collect();
         assert!(!names.iter().any(|n| n.contains("frame")), "{names:?}");
     }
-}
-
-fn peak_mib(stderr: &str) -> f64 {
-    let l = stderr
-        .lines()
-        .find(|l| l.contains("peak memory"))
-        .unwrap_or_else(|| panic!("no stats in {stderr}"));
-    l.split("peak memory ")
-        .nth(1)
-        .unwrap()
-        .trim_end_matches(" MiB")
-        .parse()
-        .unwrap()
 }
 
 /// Memory follows the front plane and one column block, not the plate: a plate 4 times taller

@@ -318,27 +318,8 @@ pub fn plan(spec: &JobSpec) -> Result<PlanReport> {
     let (sum, choice, notes) = point_sum_and_path(spec)?;
     let emitters = sum.emitters();
     let p = spec.plate;
-    let mut lines = Vec::new();
-    let size = p.size();
-    lines.push(format!("job: {}", spec.path.display()));
-    lines.push(format!(
-        "plate: {} x {} px = {:.3} Mpx, pitch {:.4} x {:.4} um, {:.3} x {:.3} mm, wavelength {:.2} nm",
-        p.width,
-        p.height,
-        p.pixels() as f64 / 1e6,
-        p.pitch[0] * 1e6,
-        p.pitch[1] * 1e6,
-        size[0] * 1e3,
-        size[1] * 1e3,
-        p.wavelength * 1e9
-    ));
     let th = p.max_half_angle();
-    lines.push(format!(
-        "largest diffraction half-angle asin(lambda / 2p): {:.3} deg in x, {:.3} deg in y",
-        th[0].to_degrees(),
-        th[1].to_degrees()
-    ));
-    lines.push(format!("reference: {}", spec.reference.describe()));
+    let mut lines = plate_lines(spec);
     for (k, o) in spec.objects.iter().enumerate() {
         if let Some(r) = &o.reference {
             lines.push(format!(

@@ -194,19 +194,12 @@ fn mesh_object(
             ));
         }
     }
-    notes.push(format!(
-        "object #{n}: mesh {}, {} triangles, file unit {} mm, front {} turned to the viewer, placed in x {:.3}..{:.3}, y {:.3}..{:.3}, z {:.3}..{:.3} mm, {} emitters",
-        o.points.display(),
-        mesh.triangles.len(),
-        m.placement.unit_mm,
-        m.front.name(),
-        lo[0] * 1e3,
-        hi[0] * 1e3,
-        lo[1] * 1e3,
-        hi[1] * 1e3,
-        lo[2] * 1e3,
-        hi[2] * 1e3,
-        samples.len()
+    notes.push(mesh_note(
+        n,
+        o,
+        m,
+        &mesh,
+        &format!("{} emitters", samples.len()),
     ));
     let em = samples
         .iter()
@@ -221,6 +214,30 @@ fn mesh_object(
         emitters: em,
         occluder,
     })
+}
+
+/// `plan`'s line for a placed mesh object (number `n`), ending with `tail`.
+fn mesh_note(
+    n: usize,
+    o: &ObjectSpec,
+    m: &MeshObject,
+    mesh: &crate::scene::mesh::Mesh,
+    tail: &str,
+) -> String {
+    let (lo, hi) = mesh.bounds();
+    format!(
+        "object #{n}: mesh {}, {} triangles, file unit {} mm, front {} turned to the viewer, placed in x {:.3}..{:.3}, y {:.3}..{:.3}, z {:.3}..{:.3} mm, {tail}",
+        o.points.display(),
+        mesh.triangles.len(),
+        m.placement.unit_mm,
+        m.front.name(),
+        lo[0] * 1e3,
+        hi[0] * 1e3,
+        lo[1] * 1e3,
+        hi[1] * 1e3,
+        lo[2] * 1e3,
+        hi[2] * 1e3,
+    )
 }
 
 /// Channels of emitters with their references, the emitters' normals, the occlusion test.
@@ -347,7 +364,7 @@ pub fn layer_synthesis(spec: &JobSpec) -> Result<(LayerSynthesis, Vec<String>)> 
         }
         let mesh = load_mesh(&o.points)?.placed(&m.placement);
         mesh.check().map_err(|e| Error::input(&o.points, e))?;
-        let (lo, hi) = mesh.bounds();
+        let (lo, _) = mesh.bounds();
         if !(lo[2] > 0.0) {
             return Err(bad(format!(
                 "[[object]] #{n} ({}) reaches z = {:.4} mm after placement; the whole mesh must sit in front of the plate (z > 0): raise offset_mm z",
@@ -355,19 +372,16 @@ pub fn layer_synthesis(spec: &JobSpec) -> Result<(LayerSynthesis, Vec<String>)> 
                 lo[2] * 1e3
             )));
         }
-        notes.push(format!(
-            "object #{n}: mesh {}, {} triangles, file unit {} mm, front {} turned to the viewer, placed in x {:.3}..{:.3}, y {:.3}..{:.3}, z {:.3}..{:.3} mm, {}",
-            o.points.display(),
-            mesh.triangles.len(),
-            m.placement.unit_mm,
-            m.front.name(),
-            lo[0] * 1e3,
-            hi[0] * 1e3,
-            lo[1] * 1e3,
-            hi[1] * 1e3,
-            lo[2] * 1e3,
-            hi[2] * 1e3,
-            if m.occlusion == Occlusion::None { "not occluding" } else { "occluding (silhouettes)" }
+        notes.push(mesh_note(
+            n,
+            o,
+            m,
+            &mesh,
+            if m.occlusion == Occlusion::None {
+                "not occluding"
+            } else {
+                "occluding (silhouettes)"
+            },
         ));
         objects.push(LayerObject {
             mesh,

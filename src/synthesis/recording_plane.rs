@@ -76,25 +76,11 @@ pub struct RecordingPlane {
 }
 
 /// Largest |u_x / u_z| and |u_y / u_z| over the propagating directions of the band
-/// |u - s_R| <= half (per axis), sampled on a 65 x 65 grid including the corners (the ratios are
-/// monotonic along each axis, so the extremes sit on the sampled edges).
+/// |u - s_R| <= half (per axis), sampled on a 65 x 65 grid including the corners
+/// ([`super::layers::transfer::band_tangents`]).
 fn band_tangents(s_r: [f64; 2], half: [f64; 2]) -> [f64; 2] {
-    let mut t = [0.0f64; 2];
-    let n = 64;
-    for a in 0..=n {
-        let ux = s_r[0] - half[0] + 2.0 * half[0] * a as f64 / n as f64;
-        for b in 0..=n {
-            let uy = s_r[1] - half[1] + 2.0 * half[1] * b as f64 / n as f64;
-            let uz2 = 1.0 - ux * ux - uy * uy;
-            if uz2 <= 1e-6 {
-                continue; // evanescent (H = 0) or grazing: carries nothing to the plate
-            }
-            let uz = uz2.sqrt();
-            t[0] = t[0].max(ux.abs() / uz);
-            t[1] = t[1].max(uy.abs() / uz);
-        }
-    }
-    t
+    let t = super::layers::transfer::band_tangents(s_r, half, 64);
+    [0, 1].map(|a| t[a][0].abs().max(t[a][1].abs()).max(0.0))
 }
 
 /// Share of each emitter's band (from its centre, per axis) kept at full weight; the rest rolls

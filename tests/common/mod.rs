@@ -33,3 +33,17 @@ pub fn decode(path: &Path) -> (u32, u32, Vec<u16>) {
     };
     (w, h, v)
 }
+
+/// The peak memory (MiB) a `run --stats` printed on stderr.
+pub fn peak_mib(stderr: &str) -> f64 {
+    let l = stderr
+        .lines()
+        .find(|l| l.contains("peak memory"))
+        .unwrap_or_else(|| panic!("no stats in {stderr}"));
+    l.split("peak memory ")
+        .nth(1)
+        .unwrap()
+        .trim_end_matches(" MiB")
+        .parse()
+        .unwrap()
+}

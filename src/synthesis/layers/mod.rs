@@ -226,7 +226,7 @@ impl LayerSynthesis {
         };
         // Sideways travel over the slabs: the steps' support, within the plate's band (about the
         // reference: an off-axis reference or a coarse pitch keeps light from spreading far).
-        let band = band_tangents([tilt[0].sin(), tilt[1].sin()], p.nyquist_cosines());
+        let band = band_tangents([tilt[0].sin(), tilt[1].sin()], p.nyquist_cosines(), 128);
         let hs = hop_window.support();
         let hop_sup = [0, 1].map(|a| [hs[a][0].max(band[a][0]), hs[a][1].min(band[a][1])]);
         let ring = |d: f64, pitch: f64| {

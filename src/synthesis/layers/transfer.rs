@@ -151,13 +151,13 @@ impl SpectralGrid {
 }
 
 /// Signed tangent range `[[x lo, x hi], [y lo, y hi]]` of the propagating directions in the band
-/// of direction cosines `s_r +- half` per axis (the plate's band about the reference), sampled on a
-/// 129 x 129 grid with its edges (the tangents are monotonic along each axis, so the extremes sit
-/// on the edges). Directions within 1e-6 of grazing are left out: their tangents have no bound,
-/// and the geometry of scene and plate bounds them instead.
-pub fn band_tangents(s_r: [f64; 2], half: [f64; 2]) -> [[f64; 2]; 2] {
+/// of direction cosines `s_r +- half` per axis (the plate's band about the reference), sampled on an
+/// (n + 1) x (n + 1) grid with its edges (the tangents are monotonic along each axis, so the
+/// extremes sit on the edges). Directions within 1e-6 of grazing are left out: their tangents have
+/// no bound, and the geometry of scene and plate (or a refusal, on the recording plane) bounds them
+/// instead.
+pub fn band_tangents(s_r: [f64; 2], half: [f64; 2], n: usize) -> [[f64; 2]; 2] {
     let mut t = [[f64::INFINITY, f64::NEG_INFINITY]; 2];
-    let n = 128;
     for a in 0..=n {
         let ux = s_r[0] - half[0] + 2.0 * half[0] * a as f64 / n as f64;
         for b in 0..=n {
@@ -201,7 +201,7 @@ mod unit_tests {
     fn band_tangents_of_a_tilted_band() {
         // Band of half-width 0.25 about s = 0.5 in y, 0 in x: y tangents from
         // 0.25 / sqrt(1 - 0.0625) (at x = 0) to 0.75 / sqrt(1 - 0.5625 - 0.0625) (at a corner).
-        let t = band_tangents([0.0, 0.5], [0.25, 0.25]);
+        let t = band_tangents([0.0, 0.5], [0.25, 0.25], 128);
         assert!((t[1][0] - 0.25 / (1.0f64 - 0.0625).sqrt()).abs() < 1e-12);
         assert!((t[1][1] - 0.75 / (1.0f64 - 0.5625 - 0.0625).sqrt()).abs() < 1e-12);
         assert!(t[0][0] < 0.0 && (t[0][0] + t[0][1]).abs() < 1e-12);
