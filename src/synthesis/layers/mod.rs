@@ -426,7 +426,7 @@ impl LayerSynthesis {
         let mut out = Vec::new();
         for k in 0..self.slicing.count {
             for h in slices.hits(k) {
-                if let Some((amp, phase)) = self.sample_of(&h, &shaders) {
+                if let Some((amp, phase)) = self.sample_of(&h, &shaders, &self.rect) {
                     let (x, y) = self.lattice_xy(h.sample);
                     out.push(Emitter {
                         pos: [x, y, self.slicing.plane(k)],
@@ -452,11 +452,7 @@ impl LayerSynthesis {
     }
 
     fn lattice(&self, sample: usize) -> [i64; 2] {
-        let w = self.rect.size[0];
-        [
-            self.rect.origin[0] + (sample % w) as i64,
-            self.rect.origin[1] + (sample / w) as i64,
-        ]
+        lattice_in(&self.rect, sample)
     }
 
     fn lattice_xy(&self, sample: usize) -> (f64, f64) {
@@ -464,8 +460,14 @@ impl LayerSynthesis {
         (self.plate.x_of_col(c as f64), self.plate.y_of_row(r as f64))
     }
 
-    /// Amplitude and phase of a hit's sample, or None when its surface faces away from the plate.
-    fn sample_of(&self, h: &Hit, shaders: &[SurfaceShader<'_>]) -> Option<(f64, f64)> {
+    /// Amplitude and phase of a hit's sample (the hit's sample index in `rect`), or None when its
+    /// surface faces away from the plate.
+    fn sample_of(
+        &self,
+        h: &Hit,
+        shaders: &[SurfaceShader<'_>],
+        rect: &LatticeRect,
+    ) -> Option<(f64, f64)> {
         let o = &self.objects[h.object as usize];
         let mesh = &o.mesh;
         let t = h.triangle as usize;
@@ -479,7 +481,7 @@ impl LayerSynthesis {
             .shade(t, h.uv[0], h.uv[1])
             .amplitude
             * o.gain;
-        let [gx, gy] = self.lattice(h.sample);
+        let [gx, gy] = lattice_in(rect, h.sample);
         let phase = match o.phase {
             PhaseMode::Random => {
                 SplitMix64::stream(o.seed, gx as u64, gy as u64, t as u64).next_f64()
@@ -535,82 +537,126 @@ impl LayerSynthesis {
         } else {
             Vec::new()
         };
-        let words = (w * h).div_ceil(64);
-        let mut behind: Vec<Option<Vec<u64>>> = self
-            .objects
-            .iter()
-            .zip(&self.closed)
-            .map(|(o, &c)| (o.occludes && c).then(|| vec![0u64; words]))
-            .collect();
-        let k_wave = self.plate.k();
-        let s_r = [self.tilt[0].sin(), self.tilt[1].sin()];
-        let sample_scale = self.plate.wavelength / (self.plate.pitch[0] * self.plate.pitch[1]);
+        let mut behind = self.parity_bits();
         let mut lit = false;
         for k in (0..count).rev() {
             if lit && k + 1 < count {
                 step.apply(&mut u, &hop);
             }
-            let plane = self.slicing.plane(k);
-            // Crossings are visited twice, a bounded piece at a time: first the masks (the
-            // parity of the closed occluders' crossings behind the plane, and their surfaces),
-            // then the parity in front and the samples, so no sample of this slab is masked by
-            // another piece of it.
-            let toggle = |behind: &mut [Option<Vec<u64>>], hh: &Hit| {
-                if let Some(bits) = &mut behind[hh.object as usize] {
-                    bits[hh.sample / 64] ^= 1 << (hh.sample % 64);
-                }
-            };
-            if self.occludes() {
-                slices.visit(k, &mut |hits| {
-                    for hh in hits {
-                        if hh.z > plane {
-                            toggle(&mut behind, hh);
-                        }
-                        if self.objects[hh.object as usize].occludes {
-                            u[hh.sample] = Complex32::new(0.0, 0.0);
-                        }
+            self.apply_slab(
+                k,
+                &slices,
+                &self.rect,
+                &mut u,
+                &mut behind,
+                &shaders,
+                &mut lit,
+            );
+            on_work(1.0 / count as f64);
+        }
+        Ok(u)
+    }
+
+    /// One bit per front-plane sample for each closed occluding mesh: the parity of its crossings
+    /// behind the current plane (None for the other objects).
+    fn parity_bits(&self) -> Vec<Option<Vec<u64>>> {
+        let words = self.rect.len().div_ceil(64);
+        self.objects
+            .iter()
+            .zip(&self.closed)
+            .map(|(o, &c)| (o.occludes && c).then(|| vec![0u64; words]))
+            .collect()
+    }
+
+    /// Slab `k`'s masks and samples on `u`, the field over `rect` (the front plane or a part of
+    /// it; `slices` built on `rect`). `behind` indexes the whole front plane.
+    ///
+    /// Crossings are visited twice, a bounded piece at a time: first the masks (the parity of the
+    /// closed occluders' crossings behind the plane, their surfaces, then the insides), then the
+    /// parity in front and the samples, so no sample of this slab is masked by another piece of it.
+    #[allow(clippy::too_many_arguments)]
+    fn apply_slab(
+        &self,
+        k: usize,
+        slices: &Slices,
+        rect: &LatticeRect,
+        u: &mut [Complex32],
+        behind: &mut [Option<Vec<u64>>],
+        shaders: &[SurfaceShader<'_>],
+        lit: &mut bool,
+    ) {
+        let plane = self.slicing.plane(k);
+        let [w, h] = rect.size;
+        let big = self.rect.size[0];
+        let off = [
+            (rect.origin[0] - self.rect.origin[0]) as usize,
+            (rect.origin[1] - self.rect.origin[1]) as usize,
+        ];
+        let global = |s: usize| (off[1] + s / w) * big + off[0] + s % w;
+        let toggle = |behind: &mut [Option<Vec<u64>>], hh: &Hit| {
+            if let Some(bits) = &mut behind[hh.object as usize] {
+                let g = global(hh.sample);
+                bits[g / 64] ^= 1 << (g % 64);
+            }
+        };
+        if self.occludes() {
+            slices.visit(k, &mut |hits| {
+                for hh in hits {
+                    if hh.z > plane {
+                        toggle(behind, hh);
                     }
-                });
-                for bits in behind.iter().flatten() {
-                    for (wi, &word) in bits.iter().enumerate() {
-                        let mut m = word;
+                    if self.objects[hh.object as usize].occludes {
+                        u[hh.sample] = Complex32::new(0.0, 0.0);
+                    }
+                }
+            });
+            for bits in behind.iter().flatten() {
+                for i in 0..h {
+                    let g0 = (off[1] + i) * big + off[0];
+                    let g1 = g0 + w;
+                    for wi in g0 / 64..g1.div_ceil(64) {
+                        let mut m = bits[wi];
                         while m != 0 {
-                            let b = m.trailing_zeros() as usize;
-                            u[wi * 64 + b] = Complex32::new(0.0, 0.0);
+                            let g = wi * 64 + m.trailing_zeros() as usize;
                             m &= m - 1;
+                            if g >= g0 && g < g1 {
+                                u[i * w + g - g0] = Complex32::new(0.0, 0.0);
+                            }
                         }
                     }
                 }
             }
-            slices.visit(k, &mut |hits| {
-                let values: Vec<Option<Complex32>> = hits
-                    .par_iter()
-                    .map(|hh| {
-                        let (amp, phase) = self.sample_of(hh, &shaders)?;
-                        let (x, y) = self.lattice_xy(hh.sample);
-                        // The sample's value, demodulated by R at its lattice point.
-                        let cycles =
-                            (phase - k_wave * (s_r[0] * x + s_r[1] * y)) / std::f64::consts::TAU;
-                        let t = cycles - cycles.round();
-                        let (s, c) = (std::f64::consts::TAU * t).sin_cos();
-                        // i a lambda / (p_x p_y) e^(i phase): the factor i turns (c, s) to (-s, c).
-                        let m = amp * sample_scale;
-                        Some(Complex32::new((-s * m) as f32, (c * m) as f32))
-                    })
-                    .collect();
-                for (hh, v) in hits.iter().zip(values) {
-                    if self.occludes() && hh.z <= plane {
-                        toggle(&mut behind, hh);
-                    }
-                    if let Some(v) = v {
-                        u[hh.sample] += v;
-                        lit = true;
-                    }
-                }
-            });
-            on_work(1.0 / count as f64);
         }
-        Ok(u)
+        let k_wave = self.plate.k();
+        let s_r = [self.tilt[0].sin(), self.tilt[1].sin()];
+        let sample_scale = self.plate.wavelength / (self.plate.pitch[0] * self.plate.pitch[1]);
+        slices.visit(k, &mut |hits| {
+            let values: Vec<Option<Complex32>> = hits
+                .par_iter()
+                .map(|hh| {
+                    let (amp, phase) = self.sample_of(hh, shaders, rect)?;
+                    let [c, r] = lattice_in(rect, hh.sample);
+                    let (x, y) = (self.plate.x_of_col(c as f64), self.plate.y_of_row(r as f64));
+                    // The sample's value, demodulated by R at its lattice point.
+                    let cycles =
+                        (phase - k_wave * (s_r[0] * x + s_r[1] * y)) / std::f64::consts::TAU;
+                    let t = cycles - cycles.round();
+                    let (s, c) = (std::f64::consts::TAU * t).sin_cos();
+                    // i a lambda / (p_x p_y) e^(i phase): the factor i turns (c, s) to (-s, c).
+                    let m = amp * sample_scale;
+                    Some(Complex32::new((-s * m) as f32, (c * m) as f32))
+                })
+                .collect();
+            for (hh, v) in hits.iter().zip(values) {
+                if self.occludes() && hh.z <= plane {
+                    toggle(behind, hh);
+                }
+                if let Some(v) = v {
+                    u[hh.sample] += v;
+                    *lit = true;
+                }
+            }
+        });
     }
 
     /// Computes F for rows [r0, r0 + n) into `out`; returns the pixels computed.
@@ -631,6 +677,15 @@ impl LayerSynthesis {
         frame.read_band(r0, n, out);
         (n * self.plate.width as usize) as u64
     }
+}
+
+/// Lattice column and row of sample `s` of `rect`.
+fn lattice_in(rect: &LatticeRect, s: usize) -> [i64; 2] {
+    let w = rect.size[0];
+    [
+        rect.origin[0] + (s % w) as i64,
+        rect.origin[1] + (s / w) as i64,
+    ]
 }
 
 /// Work of a layer synthesis, in FFT element-passes.
