@@ -147,18 +147,128 @@ fn layers_equal_the_direct_sum_of_their_samples() {
         .zip(&d)
         .map(|(a, b)| (a - b).norm())
         .fold(0.0, f64::max);
+    // Values under the residue floor are written as 0: allowed on top of the bound.
+    let floor = l.residue_floor().unwrap();
     eprintln!(
-        "layers vs direct sum: {:.3e} of max |F| ({max:.3e})",
-        err / max
+        "layers vs direct sum: {:.3e} of max |F| ({max:.3e}), floor {:.3e} of max",
+        err / max,
+        floor / max
     );
+    assert!(floor < 1e-3 * max, "floor {:.3e} of max", floor / max);
     assert!(
-        max > 0.0 && err <= 1e-4 * max,
+        max > 0.0 && err <= 1e-4 * max + floor,
         "error {:.3e} of max",
         err / max
     );
     // The scratch files are gone once the synthesis is dropped.
     drop(l);
     assert_eq!(std::fs::read_dir(dir.path()).unwrap().count(), 0);
+}
+
+/// The front plane carried in tiles through scratch files (tiles of 48 samples, margins from the
+/// slab's reach) equals the plane held in memory: same scene as above, with occlusion on (the
+/// closed box masks its inside across tiles). Measured 1.1e-5 of max |F| (different transform
+/// sizes round differently in f32, and the margins' soft-edge tails); bound 1e-4. With margins of
+/// 2 samples instead the same test gives 0.14. The tiled path's scratch files are gone after.
+#[test]
+fn tiled_front_plane_equals_the_plane_in_memory() {
+    let plate = Plate {
+        width: 192,
+        height: 160,
+        pitch: [1e-6, 1e-6],
+        wavelength: 532e-9,
+    };
+    let reference = Reference::Plane {
+        tilt: [0.0, 3f64.to_radians()],
+    };
+    let make = |tiles: Option<usize>, dir: &Path| {
+        let bx = cuboid([-35e-6, -20e-6, 2.0e-3], [5e-6, 12e-6, 2.04e-3], "box");
+        let mut s = sheet([20e-6, 15e-6, 2.05e-3], 18e-6);
+        for (k, p) in s.positions.iter_mut().enumerate() {
+            p[2] += if k == 1 || k == 2 { 60e-6 } else { 0.0 };
+        }
+        LayerSynthesis::new(
+            plate,
+            reference,
+            vec![object(s, true, 4), object(bx, true, 3)],
+            Some(5),
+            dir.to_path_buf(),
+            "t",
+        )
+        .unwrap()
+        .with_tiles(tiles)
+    };
+    let d = tempfile::tempdir().unwrap();
+    let a = make(None, d.path());
+    let b = make(Some(48), d.path());
+    assert!(b.plane_rect().size[0] > 2 * 48, "{:?}", b.plane_rect());
+    let fa = layers_field(&a, 160);
+    let fb = layers_field(&b, 160);
+    let max = fa.iter().map(|v| v.norm()).fold(0.0, f64::max);
+    let err = fa
+        .iter()
+        .zip(&fb)
+        .map(|(x, y)| (x - y).norm())
+        .fold(0.0, f64::max);
+    eprintln!("tiled vs in memory: {:.3e} of max |F|", err / max);
+    assert!(
+        max > 0.0 && err <= 1e-4 * max,
+        "error {:.3e} of max",
+        err / max
+    );
+    drop((a, b));
+    assert_eq!(std::fs::read_dir(d.path()).unwrap().count(), 0);
+}
+
+/// Where no sample's band reaches (a small square 1 mm before a plate much wider than its band's
+/// footprint), F is exactly 0, as the direct sum's is: the transforms' rounding residue there is
+/// floored, or phase and binary encodings would turn it into full-strength noise. Inside the
+/// footprint F is not floored (every pixel within 0.2 mm of the axis is nonzero).
+#[test]
+fn no_light_means_zero_not_residue() {
+    let plate = Plate {
+        width: 1024,
+        height: 1024,
+        pitch: [1e-6, 1e-6],
+        wavelength: 532e-9,
+    };
+    let dir = tempfile::tempdir().unwrap();
+    let l = LayerSynthesis::new(
+        plate,
+        Reference::Plane { tilt: [0.0, 0.0] },
+        vec![object(sheet([0.0, 0.0, 1e-3], 25e-6), false, 9)],
+        None,
+        dir.path().to_path_buf(),
+        "r",
+    )
+    .unwrap();
+    let f = layers_field(&l, 256);
+    // The band's footprint: tan(asin(lambda / 2p)) x 1 mm = 0.28 mm, plus the square's half side.
+    let (mut outside, mut zero_out, mut inside, mut lit_in) = (0, 0, 0, 0);
+    for i in 0..1024 {
+        for j in 0..1024 {
+            let r = plate.x_of_col(j as f64).hypot(plate.y_of_row(i as f64));
+            let v = f[i * 1024 + j];
+            if r > 0.45e-3
+                && (plate.x_of_col(j as f64).abs() > 0.36e-3
+                    || plate.y_of_row(i as f64).abs() > 0.36e-3)
+            {
+                outside += 1;
+                zero_out += usize::from(v.norm() == 0.0);
+            } else if r < 0.2e-3 {
+                inside += 1;
+                lit_in += usize::from(v.norm() > 0.0);
+            }
+        }
+    }
+    assert!(outside > 100_000 && inside > 100_000);
+    assert_eq!(
+        zero_out,
+        outside,
+        "{} of {outside} pixels beyond the band left nonzero",
+        outside - zero_out
+    );
+    assert_eq!(lit_in, inside);
 }
 
 /// Intensity of the windowed plate field refocused at depth z (backward angular spectrum over a

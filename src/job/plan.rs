@@ -132,7 +132,7 @@ fn plate_lines(spec: &JobSpec) -> Vec<String> {
     let p = spec.plate;
     let size = p.size();
     let th = p.max_half_angle();
-    vec![
+    let mut lines = vec![
         format!("job: {}", spec.path.display()),
         format!(
             "plate: {} x {} px = {:.3} Mpx, pitch {:.4} x {:.4} um, {:.3} x {:.3} mm, wavelength {:.2} nm",
@@ -151,7 +151,15 @@ fn plate_lines(spec: &JobSpec) -> Vec<String> {
             th[1].to_degrees()
         ),
         format!("reference: {}", spec.reference.describe()),
-    ]
+    ];
+    if let crate::optics::Reference::Plane { tilt } = spec.reference {
+        for (axis, t, m) in [("x", tilt[0], th[0]), ("y", tilt[1], th[1])] {
+            if t.abs() > m {
+                lines.push(format!("warning: reference tilt in {axis} ({:.2} deg) exceeds the half-angle the pitch holds: the carrier aliases", t.to_degrees()));
+            }
+        }
+    }
+    lines
 }
 
 /// `plan` for the layers path: the slabs, the frame, memory, scratch files and time.
@@ -318,7 +326,6 @@ pub fn plan(spec: &JobSpec) -> Result<PlanReport> {
     let (sum, choice, notes) = point_sum_and_path(spec)?;
     let emitters = sum.emitters();
     let p = spec.plate;
-    let th = p.max_half_angle();
     let mut lines = plate_lines(spec);
     for (k, o) in spec.objects.iter().enumerate() {
         if let Some(r) = &o.reference {
@@ -328,13 +335,6 @@ pub fn plan(spec: &JobSpec) -> Result<PlanReport> {
                 o.points.display(),
                 r.describe()
             ));
-        }
-    }
-    if let crate::optics::Reference::Plane { tilt } = spec.reference {
-        for (axis, t, m) in [("x", tilt[0], th[0]), ("y", tilt[1], th[1])] {
-            if t.abs() > m {
-                lines.push(format!("warning: reference tilt in {axis} ({:.2} deg) exceeds the half-angle the pitch holds: the carrier aliases", t.to_degrees()));
-            }
         }
     }
     let zs: Vec<f64> = {

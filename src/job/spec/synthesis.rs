@@ -110,9 +110,10 @@ pub(super) fn parse_point_sum(
     };
     let layer_slabs = match s.layers {
         None => None,
-        Some(_) if sum_path != SumPath::Layers => {
-            return Err(bad("[synthesis] layers applies to path = \"layers\"".into()))
-        }
+        Some(_) if !matches!(sum_path, SumPath::Layers | SumPath::Auto) => return Err(bad(
+            "[synthesis] layers applies to path = \"layers\" (or \"auto\", when it takes layers)"
+                .into(),
+        )),
         Some(n) if (1..=100_000).contains(&n) => Some(n as usize),
         Some(n) => {
             return Err(bad(format!(

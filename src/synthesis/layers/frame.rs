@@ -118,15 +118,16 @@ pub struct Frame {
     b: Scratch,
     layout: FrameLayout,
     inverse_x: Arc<dyn Fft<f32>>,
+    power: f64,
 }
 
 impl Frame {
-    /// Propagates `plane` (plane rows x columns, row-major) over `distance` to the plate. `stem`
-    /// names the scratch files in `dir`; `on_work` gets the share of the work done by each step
-    /// (they add up to 1).
+    /// Propagates the front plane over `distance` to the plate; `plane_row(r, out)` reads its row
+    /// r (of `layout.plane[1]`) into `out` (`layout.plane[0]` samples). `stem` names the scratch
+    /// files in `dir`; `on_work` gets the share of the work done by each step (they add up to 1).
     #[allow(clippy::too_many_arguments)]
     pub fn build(
-        plane: &[Complex32],
+        plane_row: &(dyn Fn(usize, &mut [Complex32]) -> Result<()> + Sync),
         layout: FrameLayout,
         spectral: SpectralGrid,
         distance: f64,
@@ -137,7 +138,6 @@ impl Frame {
     ) -> Result<Frame> {
         let [nx, ny] = layout.n;
         let [pw, ph] = layout.plane;
-        assert_eq!(plane.len(), pw * ph, "plane buffer mismatch");
         assert!(pw + layout.plate[0] <= nx && ph + layout.plate[1] <= ny);
         let mut planner = FftPlanner::<f32>::new();
         let (fx, ix) = (planner.plan_fft_forward(nx), planner.plan_fft_inverse(nx));
@@ -148,26 +148,29 @@ impl Frame {
         // Pass 1: rows along x.
         let row_share = 0.2;
         let chunk = 64usize;
-        for (c, rows) in plane.chunks(pw * chunk).enumerate() {
-            rows.par_chunks(pw).enumerate().try_for_each_init(
+        for first in (0..ph).step_by(chunk) {
+            let rows = chunk.min(ph - first);
+            (first..first + rows).into_par_iter().try_for_each_init(
                 || {
                     (
                         vec![Complex32::new(0.0, 0.0); nx],
                         vec![Complex32::new(0.0, 0.0); fx.get_inplace_scratch_len()],
                         Vec::new(),
+                        vec![Complex32::new(0.0, 0.0); pw],
                     )
                 },
-                |(row, scr, bytes), (r, src)| {
+                |(row, scr, bytes, src), r| {
+                    plane_row(r, src)?;
                     row.fill(Complex32::new(0.0, 0.0));
                     for (j, v) in src.iter().enumerate() {
                         row[wrap(layout.plane_origin[0] + j as i64, nx)] = *v;
                     }
                     fx.process_with_scratch(row, scr);
                     to_bytes(row, bytes);
-                    a.write(bytes, ((c * chunk + r) * nx * SAMPLE) as u64)
+                    a.write(bytes, (r * nx * SAMPLE) as u64)
                 },
             )?;
-            on_work(row_share * rows.len() as f64 / ph as f64);
+            on_work(row_share * rows as f64 / ph as f64);
         }
         // Pass 2: column blocks along y, the transfer function, back along y.
         let bc = layout.block_cols();
@@ -175,6 +178,7 @@ impl Frame {
         let mut out = vec![Complex32::new(0.0, 0.0); bc * layout.plate[1]];
         let mut bytes = vec![0u8; bc * SAMPLE];
         let mut vals = vec![Complex32::new(0.0, 0.0); bc];
+        let mut power = 0.0f64;
         let mut c0 = 0;
         while c0 < nx {
             let c1 = (c0 + bc).min(nx);
@@ -214,6 +218,11 @@ impl Frame {
             }
             let mut rb = Vec::new();
             for r in 0..layout.plate[1] {
+                // Parseval along x: sum_x |F|^2 = N_x sum_k |out|^2 / (N_x N_y)^2.
+                power += out[r * bc..r * bc + w]
+                    .iter()
+                    .map(|v| f64::from(v.norm_sqr()))
+                    .sum::<f64>();
                 to_bytes(&out[r * bc..r * bc + w], &mut rb);
                 b.write(&rb, ((r * nx + c0) * SAMPLE) as u64)?;
             }
@@ -223,10 +232,17 @@ impl Frame {
         b.file.sync_data().map_err(|e| Error::io(&b.path, e))?;
         drop(a);
         Ok(Frame {
+            power: power * nx as f64 / (nx as f64 * ny as f64).powi(2),
             b,
             layout,
             inverse_x: ix,
         })
+    }
+
+    /// sum |F|^2 over the plate's rows across the whole frame width (Parseval, summed in a fixed
+    /// order): the plate's own power plus what lands beside it.
+    pub fn plate_power(&self) -> f64 {
+        self.power
     }
 
     /// F on plate rows [r0, r0 + n) into `out` (n x plate columns).
@@ -234,7 +250,9 @@ impl Frame {
     /// # Panics
     /// If the scratch file cannot be read back (it was written and synced by [`Frame::build`];
     /// the message names it), or `out` has the wrong length.
-    pub fn read_band(&self, r0: usize, n: usize, out: &mut [Complex64]) {
+    ///
+    /// Values with |F| below `floor` are written as 0 (see [`super::LayerSynthesis::prepare`]).
+    pub fn read_band(&self, r0: usize, n: usize, out: &mut [Complex64], floor: f64) {
         let [nx, ny] = self.layout.n;
         let w = self.layout.plate[0];
         assert_eq!(out.len(), n * w, "band buffer mismatch");
@@ -253,7 +271,12 @@ impl Frame {
             from_bytes(&bytes, &mut row);
             self.inverse_x.process_with_scratch(&mut row, &mut scr);
             for (o, v) in dst.iter_mut().zip(&row[..w]) {
-                *o = Complex64::new(f64::from(v.re) * scale, f64::from(v.im) * scale);
+                let f = Complex64::new(f64::from(v.re) * scale, f64::from(v.im) * scale);
+                *o = if f.norm_sqr() < floor * floor {
+                    Complex64::new(0.0, 0.0)
+                } else {
+                    f
+                };
             }
         }
     }

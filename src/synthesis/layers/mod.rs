@@ -22,6 +22,10 @@
 //! 3. **To the plate** ([`frame`]): the front plane is carried to the plate by one periodic
 //!    transform over a frame that holds both, streamed through scratch files beside the output.
 //!
+//! The steps run in place ([`step`]) on the front plane in memory, or, above
+//! [`PLANE_MEMORY_BYTES`], in tiles with overlap margins through two scratch files ([`tiles`]).
+//! The choice follows the scene alone, so every process makes the same one.
+//!
 //! All of it runs in the frame of the plane reference (fields demodulated by R), so the plate's
 //! band is exactly the grid's and F = O conj(R) comes out directly (physics.md, Sampling limits;
 //! the recording plane does the same).
@@ -41,6 +45,7 @@
 pub mod frame;
 pub mod slices;
 pub mod step;
+pub mod tiles;
 pub mod transfer;
 
 use std::path::PathBuf;
@@ -103,10 +108,27 @@ pub struct LayerSynthesis {
     hop_window: Window,
     final_window: Window,
     layout: FrameLayout,
+    /// Largest |tangent| per axis a slab's step carries light along (its reach over one slab).
+    step_tangent: [f64; 2],
+    /// Tile core of the front plane on disk, or None to hold it in memory.
+    tile_core: Option<usize>,
     scratch_dir: PathBuf,
     stem: String,
-    frame: OnceLock<Frame>,
+    frame: OnceLock<(Frame, f64)>,
 }
+
+/// Share of the RMS of F over the plate below which F is written as 0: where no sample's band
+/// reaches, the transforms and the soft edges' tails leave a residue (about 5e-5 of the plate's
+/// RMS) that phase and binary encodings would turn into full-strength noise. Real light under it
+/// is an intensity of 1e-7 of the plate's mean at most (speckle minima, the soft edges' last
+/// tails).
+pub const RESIDUE_FLOOR: f64 = 3e-4;
+
+/// Front planes above this many bytes (the plane and its transfer function, f32 complex each) are
+/// carried in tiles through scratch files ([`tiles`]) instead of in memory.
+pub const PLANE_MEMORY_BYTES: u64 = 2 << 30;
+/// Tile core of a front plane on disk, samples per side.
+pub const TILE_CORE: usize = 4096;
 
 /// `lo..=hi` of a set of values.
 fn span(v: impl Iterator<Item = f64>) -> [f64; 2] {
@@ -165,6 +187,8 @@ impl LayerSynthesis {
         }
         let depth = z[1] - z[0];
         let count = match slices {
+            // A flat scene is one slab, whatever was asked.
+            _ if depth == 0.0 => 1,
             Some(n) => n,
             None => ((depth / DEFAULT_SLAB).ceil() as usize).clamp(1, MAX_DEFAULT_SLICES),
         };
@@ -291,7 +315,12 @@ impl LayerSynthesis {
             plate: [p.width as usize, p.height as usize],
         };
         let closed = objects.iter().map(|o| is_closed(&o.mesh)).collect();
+        let step_tangent = [0, 1].map(|a| hop_sup[a][0].abs().max(hop_sup[a][1].abs()));
+        let tile_core =
+            (2 * size[0] as u64 * size[1] as u64 * 8 > PLANE_MEMORY_BYTES).then_some(TILE_CORE);
         Ok(LayerSynthesis {
+            step_tangent,
+            tile_core,
             plate,
             tilt,
             objects,
@@ -310,6 +339,31 @@ impl LayerSynthesis {
     /// The plate.
     pub fn plate(&self) -> &Plate {
         &self.plate
+    }
+    /// Carries the front plane in tiles of `core` samples through scratch files (None: in
+    /// memory), whatever its size: for checks of the tiled path on small scenes.
+    pub fn with_tiles(mut self, core: Option<usize>) -> Self {
+        self.tile_core = core;
+        self
+    }
+    /// |F| below which the plate is written as 0 ([`RESIDUE_FLOOR`]), once prepared.
+    pub fn residue_floor(&self) -> Option<f64> {
+        self.frame.get().map(|f| f.1)
+    }
+    /// The tile core of the front plane on disk, if it is tiled.
+    pub fn tile_core(&self) -> Option<usize> {
+        self.tile_core
+    }
+    /// Margins [x, y] (samples) a tile needs for one slab's step: the reach of its steepest ray
+    /// over one slab, plus 4 Fresnel widths of the slab and 32 samples for the soft edges' tails.
+    pub fn step_halo(&self) -> [usize; 2] {
+        let s = self.slicing.spacing;
+        [0, 1].map(|a| {
+            let p = self.plate.pitch[a];
+            ((s * self.step_tangent[a]) / p).ceil() as usize
+                + (4.0 * (self.plate.wavelength * s).sqrt() / p).ceil() as usize
+                + 32
+        })
     }
     /// The depth slabs.
     pub fn slicing(&self) -> Slicing {
@@ -376,8 +430,15 @@ impl LayerSynthesis {
     /// Peak memory of the computation, bytes: the front plane and its transfer function while
     /// slicing, or the plane and a column block of the frame.
     pub fn peak_bytes(&self) -> u64 {
-        let s = self.rect.len() as u64 * 8;
         let bits = self.closed.iter().filter(|c| **c).count() as u64 * self.rect.len() as u64 / 8;
+        let s = match self.tile_core {
+            None => self.rect.len() as u64 * 8,
+            // A tile with its margins, its transfer function and its core.
+            Some(core) => {
+                let [hx, hy] = self.step_halo();
+                3 * ((core + 2 * hx) * (core + 2 * hy)) as u64 * 8
+            }
+        };
         (2 * s + bits).max(s + 2 * frame::BLOCK_BYTES as u64)
     }
 
@@ -387,7 +448,11 @@ impl LayerSynthesis {
     }
     /// Bytes of the scratch files.
     pub fn scratch_bytes(&self) -> u64 {
-        self.layout.scratch_bytes()
+        let plane = match self.tile_core {
+            Some(_) => 2 * self.rect.len() as u64 * 8,
+            None => 0,
+        };
+        self.layout.scratch_bytes() + plane
     }
 
     /// Lines for `plan`.
@@ -415,6 +480,16 @@ impl LayerSynthesis {
                 self.peak_bytes() as f64 / 1e9
             ),
             format!("layers occlusion: {occl}"),
+            match self.tile_core {
+                None => "layers front plane: held in memory".to_string(),
+                Some(c) => {
+                    let [hx, hy] = self.step_halo();
+                    format!(
+                        "layers front plane: on disk in tiles of {c} x {c} samples with margins of {hx} x {hy} (more than {:.1} GB held whole)",
+                        PLANE_MEMORY_BYTES as f64 / 1e9
+                    )
+                }
+            },
         ]
     }
 
@@ -507,9 +582,26 @@ impl LayerSynthesis {
             return Ok(());
         }
         let work = self.work();
-        let plane = self.front_plane(&mut |share| on_work(share * work.slices))?;
+        let pw = self.rect.size[0];
+        let (memory, disk) = match self.tile_core {
+            None => (
+                Some(self.front_plane(&mut |share| on_work(share * work.slices))?),
+                None,
+            ),
+            Some(core) => (
+                None,
+                Some(self.front_plane_tiled(core, &mut |share| on_work(share * work.slices))?),
+            ),
+        };
         let frame = Frame::build(
-            &plane,
+            &|r, out: &mut [Complex32]| match (&memory, &disk) {
+                (Some(plane), _) => {
+                    out.copy_from_slice(&plane[r * pw..(r + 1) * pw]);
+                    Ok(())
+                }
+                (None, Some(file)) => file.read_row(r, out),
+                (None, None) => unreachable!("one of the two is set"),
+            },
             self.layout,
             self.spectral(self.layout.n),
             self.slicing.plane(0),
@@ -518,7 +610,9 @@ impl LayerSynthesis {
             &self.stem,
             &mut |share| on_work(share * FRAME_PASS_WEIGHT * work.frame),
         )?;
-        let _ = self.frame.set(frame);
+        // The floor: RESIDUE_FLOOR of the RMS of F over the plate's rows (Parseval in the frame).
+        let floor = RESIDUE_FLOOR * (frame.plate_power() / self.plate.pixels() as f64).sqrt();
+        let _ = self.frame.set((frame, floor));
         Ok(())
     }
 
@@ -614,8 +708,10 @@ impl LayerSynthesis {
                 for i in 0..h {
                     let g0 = (off[1] + i) * big + off[0];
                     let g1 = g0 + w;
-                    for wi in g0 / 64..g1.div_ceil(64) {
-                        let mut m = bits[wi];
+                    let first = g0 / 64;
+                    for (k, &word) in bits[first..g1.div_ceil(64)].iter().enumerate() {
+                        let wi = first + k;
+                        let mut m = word;
                         while m != 0 {
                             let g = wi * 64 + m.trailing_zeros() as usize;
                             m &= m - 1;
@@ -670,11 +766,11 @@ impl LayerSynthesis {
         out: &mut [Complex64],
         _scratch: &mut BandScratch,
     ) -> u64 {
-        let frame = self
+        let (frame, floor) = self
             .frame
             .get()
             .expect("LayerSynthesis::prepare runs before the bands");
-        frame.read_band(r0, n, out);
+        frame.read_band(r0, n, out, *floor);
         (n * self.plate.width as usize) as u64
     }
 }
